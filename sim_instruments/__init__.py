@@ -1,0 +1,1 @@
+"""Simulated bench: SCPI servers on loopback sharing one physical flyback model."""
