@@ -40,3 +40,7 @@ class LimitError(InstrumentError):
 
 class UnsafeTextError(InstrumentError):
     """User text carrying a command separator or line terminator; nothing was sent."""
+
+
+class CommandMapError(InstrumentError):
+    """A scope command map file that is missing, unreadable or invalid; names file and key."""

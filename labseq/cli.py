@@ -17,7 +17,7 @@ from labseq import __version__
 from labseq.errors import LabseqError
 
 #: Modules under ``labseq.commands`` that each add one command to the group.
-COMMAND_MODULES: tuple[str, ...] = ()
+COMMAND_MODULES: tuple[str, ...] = ("sim", "analyze", "design", "check", "runs", "export")
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})

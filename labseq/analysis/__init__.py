@@ -1,0 +1,63 @@
+"""Analysis of switch-node captures: pure functions on numpy arrays, no I/O.
+
+* :func:`analyze_capture` — per-edge figures of a record (IEEE 181 levels, ring fit, settling,
+  snubber loss, stress margin).
+* :func:`fit_ring` — a decaying sinusoid fitted by matrix pencil and least squares.
+* :func:`aggregate` and :func:`judge` — per-point summaries and verdicts.
+* :func:`propose_snubber` and the design equations of :mod:`labseq.analysis.design`.
+"""
+
+from labseq.analysis.capture import (
+    DEFAULT_DERATING,
+    EDGE_FIGURE_NAMES,
+    FIGURE_UNITS,
+    MIN_RECORD_SAMPLES,
+    CaptureFigures,
+    EdgeFigures,
+    NoEdgeError,
+    analyze_capture,
+)
+from labseq.analysis.design import (
+    DesignInputError,
+    SnubberProposal,
+    added_capacitance_method,
+    capacitance_for_loss_f,
+    characteristic_impedance_ohm,
+    parasitic_capacitance_f,
+    propose_snubber,
+    snubber_damping_ratio,
+)
+from labseq.analysis.levels import histogram_state_levels
+from labseq.analysis.ringfit import RingFit, RingFitError, fit_ring
+from labseq.analysis.snubber import SnubberBranch, cv2f_loss_w
+from labseq.analysis.verdict import Limits, PointFigures, Verdict, aggregate, judge
+
+__all__ = [
+    "DEFAULT_DERATING",
+    "EDGE_FIGURE_NAMES",
+    "FIGURE_UNITS",
+    "MIN_RECORD_SAMPLES",
+    "CaptureFigures",
+    "DesignInputError",
+    "EdgeFigures",
+    "Limits",
+    "NoEdgeError",
+    "PointFigures",
+    "RingFit",
+    "RingFitError",
+    "SnubberBranch",
+    "SnubberProposal",
+    "Verdict",
+    "added_capacitance_method",
+    "aggregate",
+    "analyze_capture",
+    "capacitance_for_loss_f",
+    "characteristic_impedance_ohm",
+    "cv2f_loss_w",
+    "fit_ring",
+    "histogram_state_levels",
+    "judge",
+    "parasitic_capacitance_f",
+    "propose_snubber",
+    "snubber_damping_ratio",
+]

@@ -1,0 +1,158 @@
+"""IEEE 488.2 arbitrary block program/response data (IEEE Std 488.2-1992, 7.7.6 and 8.7.9).
+
+Two forms exist:
+
+* definite length: ``#<n><length><payload>`` where ``<n>`` is one non-zero digit giving the
+  number of digits of ``<length>``, the payload byte count;
+* indefinite length: ``#0<payload>`` terminated by a newline sent with END; on a socket
+  transport there is no END, so the payload runs up to the final newline of the reply.
+
+Payloads are decoded with :func:`numpy.frombuffer`, never element by element, so a 10 M-sample
+record costs one pass of memory at most.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from instruments.errors import BlockFormatError
+
+#: Payload formats a scope may send, by the name a command map uses.
+DATA_FORMATS: dict[str, str] = {"int8": "i1", "int16": "i2", "float32": "f4"}
+#: Byte orders by the name a command map uses, as numpy byte-order characters.
+BYTE_ORDERS: dict[str, str] = {"big": ">", "little": "<"}
+
+_HASH = ord("#")
+_NEWLINE = b"\n"
+
+
+def payload_dtype(data_format: str, byte_order: str = "big") -> np.dtype:
+    """Return the numpy dtype of one payload item.
+
+    Parameters
+    ----------
+    data_format : {"int8", "int16", "float32"}
+    byte_order : {"big", "little"}
+        Ignored for one-byte items.
+    """
+    try:
+        code = DATA_FORMATS[data_format]
+    except KeyError:
+        raise BlockFormatError(
+            f"unknown data format {data_format!r}; valid: {', '.join(DATA_FORMATS)}"
+        ) from None
+    try:
+        order = BYTE_ORDERS[byte_order]
+    except KeyError:
+        raise BlockFormatError(
+            f"unknown byte order {byte_order!r}; valid: {', '.join(BYTE_ORDERS)}"
+        ) from None
+    return np.dtype(order + code)
+
+
+def length_digit_count(prefix: bytes) -> int:
+    """Parse the first two bytes of a block (``#`` and the digit count).
+
+    Returns the number of length digits that follow, 0 for the indefinite form.
+    """
+    if len(prefix) < 2:
+        raise BlockFormatError(f"block header too short: {bytes(prefix)!r}")
+    if prefix[0] != _HASH:
+        raise BlockFormatError(
+            f"block does not start with '#' (IEEE 488.2 8.7.9): starts with {bytes(prefix[:2])!r}"
+        )
+    digit = prefix[1]
+    if not 0x30 <= digit <= 0x39:
+        raise BlockFormatError(
+            f"block header digit count is not a digit: {bytes(prefix[:2])!r}"
+        )
+    return digit - 0x30
+
+
+def parse_length(digits: bytes) -> int:
+    """Parse the ``<length>`` field of a definite block header (ASCII decimal digits only)."""
+    if not digits or not all(0x30 <= byte <= 0x39 for byte in digits):
+        raise BlockFormatError(f"block length field is not all digits: {bytes(digits)!r}")
+    return int(digits)
+
+
+def check_item_size(byte_count: int, dtype: np.dtype) -> None:
+    """Refuse a payload that is not a whole number of items."""
+    if byte_count % dtype.itemsize:
+        raise BlockFormatError(
+            f"block payload of {byte_count} bytes is not a multiple of the "
+            f"{dtype.itemsize}-byte item size ({dtype.name})"
+        )
+
+
+def split_block(data: bytes | bytearray | memoryview) -> memoryview:
+    """Return the payload of one complete block reply, without copying it.
+
+    A definite block may be followed by the newline that ends the reply; anything else after
+    the announced length is refused. An indefinite block must end with a newline, which is not
+    part of the payload.
+    """
+    view = memoryview(data).cast("B")
+    digit_count = length_digit_count(view[:2])
+    if digit_count == 0:
+        if view[-1:] != _NEWLINE:
+            raise BlockFormatError("indefinite block (#0) does not end with a newline")
+        return view[2:-1]
+    header_end = 2 + digit_count
+    if len(view) < header_end:
+        raise BlockFormatError(
+            f"block header announces {digit_count} length digits but only "
+            f"{len(view) - 2} bytes follow"
+        )
+    length = parse_length(view[2:header_end])
+    payload_end = header_end + length
+    if len(view) < payload_end:
+        raise BlockFormatError(
+            f"block announces {length} payload bytes but only {len(view) - header_end} arrived"
+        )
+    trailer = bytes(view[payload_end:])
+    if trailer not in (b"", b"\n", b"\r\n"):
+        raise BlockFormatError(
+            f"{len(trailer)} unexpected bytes after the {length}-byte block: {trailer[:16]!r}"
+        )
+    return view[header_end:payload_end]
+
+
+def decode_payload(
+    payload: bytes | bytearray | memoryview, data_format: str, byte_order: str = "big"
+) -> np.ndarray:
+    """Decode a payload into a native-endian numpy array (a view when no swap is needed)."""
+    dtype = payload_dtype(data_format, byte_order)
+    check_item_size(len(payload), dtype)
+    values = np.frombuffer(payload, dtype=dtype)
+    return values.astype(dtype.newbyteorder("="), copy=False)
+
+
+def parse_block(
+    data: bytes | bytearray | memoryview, data_format: str, byte_order: str = "big"
+) -> np.ndarray:
+    """Parse one complete block reply into an array of ``data_format`` items.
+
+    Implements the arbitrary block response data of IEEE Std 488.2-1992, 8.7.9.
+
+    Raises
+    ------
+    BlockFormatError
+        Missing ``#``, a non-digit count or length, fewer bytes than announced, trailing bytes,
+        or a payload that is not a whole number of items.
+    """
+    return decode_payload(split_block(data), data_format, byte_order)
+
+
+def encode_block(payload: bytes | np.ndarray, *, definite: bool = True) -> bytes:
+    """Wrap ``payload`` in a block header (the inverse of :func:`split_block`).
+
+    A definite block gets no trailing newline; an indefinite one gets the newline that ends it.
+    """
+    raw = payload.tobytes() if isinstance(payload, np.ndarray) else bytes(payload)
+    if not definite:
+        return b"#0" + raw + _NEWLINE
+    length = str(len(raw)).encode("ascii")
+    if len(length) > 9:
+        raise BlockFormatError(f"payload of {len(raw)} bytes exceeds a definite block's 9 digits")
+    return b"#" + str(len(length)).encode("ascii") + length + raw

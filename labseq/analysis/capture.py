@@ -1,0 +1,474 @@
+"""Figures of every turn-off edge in a switch-node capture: levels, overshoot, ring, settling, loss.
+
+How the plateau is found
+------------------------
+IEEE Std 181's histogram mode method takes the high state level as the mode of the upper half of
+the histogram. On a record that is mostly ringing that mode can sit on a ring extreme, because a
+sinusoid spends most of its time near its turning points. The whole-record histogram is therefore
+used only to find the edges; each edge's plateau is then the histogram mode of the stretch after
+its fitted ring has decayed (below 5 % of the step) and before the node leaves the plateau again
+(a DCM valley ring or the next turn-on). When that stretch is shorter than two ring periods (the
+record is mostly ringing) the plateau is the level the fitted ring decays to (the fit's offset).
+The base level is the mode of the lower half of the whole-record histogram (IEEE 181, 5.2.1.3).
+
+The ring
+--------
+The fit covers the first, dominant ring after the peak: the window starts at the peak (or after
+the last clipped sample), spans about three decay time constants (at least 3 and at most 20 ring
+periods), and ends early where the node departs from the plateau by more than 10 % of the step
+after the ring has decayed, so a later, slower ring is not mixed in. The window is decimated to
+at most ``FIT_MAX_SAMPLES`` samples, which keeps at least 20 samples per ring period.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field, fields
+
+import numpy as np
+
+from labseq.analysis.levels import (
+    HIGH_REFERENCE,
+    LOW_REFERENCE,
+    MID_REFERENCE,
+    histogram_mode,
+    histogram_state_levels,
+    last_band_entry,
+    last_upward_crossing,
+    reference_level,
+    state_changes,
+)
+from labseq.analysis.ringfit import RingFit, RingFitError, fit_ring
+from labseq.analysis.snubber import (
+    SnubberBranch,
+    branch_resistor_power_w,
+    cv2f_loss_w,
+    period_means_w,
+)
+
+#: Fraction of the rating that the peak may use. From memory of common power-supply component
+#: derating guidelines (switch and rectifier voltage around 80 % of rating); not from a document.
+DEFAULT_DERATING = 0.8
+#: Shortest record the analysis accepts.
+MIN_RECORD_SAMPLES = 32
+#: Fit windows are decimated to at most this many samples (20 periods at 20 samples each).
+FIT_MAX_SAMPLES = 400
+#: Fit window span: about this many decay time constants, bounded in ring periods.
+FIT_TIME_CONSTANTS = 3.0
+FIT_MIN_PERIODS = 3.0
+FIT_MAX_PERIODS = 20.0
+#: Departure from the plateau (fraction of the step) that ends the fit window and plateau stretch.
+DEPARTURE_FRACTION = 0.1
+#: The ring counts as decayed once its envelope is below this fraction of the step.
+DECAYED_FRACTION = 0.05
+#: A transition slower than this many times the fastest one in the record is a resonant swing
+#: (e.g. a DCM valley ring reaching the low state), not a switching edge.
+SLOW_SWING_FACTOR = 10.0
+#: Snubber branch start-up: decay time constants skipped before the loss window.
+BRANCH_SETTLE_TIME_CONSTANTS = 5.0
+
+
+class NoEdgeError(ValueError):
+    """The record holds no turn-off edge to analyse."""
+
+
+@dataclass(frozen=True)
+class EdgeFigures:
+    """Figures of one turn-off edge, SI units; None where the record does not determine them.
+
+    With ``clipped`` True the record hit full scale near this edge: ``peak_v``, ``overshoot_v``
+    and ``overshoot_pct`` are then lower bounds and ``stress_margin_v`` an upper bound.
+    """
+
+    base_v: float
+    plateau_v: float
+    peak_v: float
+    overshoot_v: float
+    overshoot_pct: float
+    rise_time_s: float | None
+    edge_time_s: float
+    ring_frequency_hz: float | None
+    decay_rate_per_s: float | None
+    damping_ratio: float | None
+    q_factor: float | None
+    fit_quality: float | None
+    settling_time_s: float | None
+    snubber_loss_w: float | None
+    snubber_loss_method: str | None
+    stress_margin_v: float | None
+    clipped: bool
+
+    def as_dict(self) -> dict[str, float | str | bool | None]:
+        """Plain dict for JSON and the store (keys are the field names)."""
+        return asdict(self)
+
+
+#: Units of the per-edge figures that have one (for engineering notation at the edges).
+FIGURE_UNITS: dict[str, str] = {
+    "base_v": "V",
+    "plateau_v": "V",
+    "peak_v": "V",
+    "overshoot_v": "V",
+    "overshoot_pct": "%",
+    "rise_time_s": "s",
+    "edge_time_s": "s",
+    "ring_frequency_hz": "Hz",
+    "decay_rate_per_s": "/s",
+    "settling_time_s": "s",
+    "snubber_loss_w": "W",
+    "stress_margin_v": "V",
+}
+
+#: Names of the per-edge figures, in order (JSON keys and store columns).
+EDGE_FIGURE_NAMES: tuple[str, ...] = tuple(f.name for f in fields(EdgeFigures))
+
+
+@dataclass(frozen=True)
+class CaptureFigures:
+    """Figures of every turn-off edge in a capture; ``worst`` is the edge with the highest peak.
+
+    ``clipped`` is True when any sample of the capture hit full scale. ``ring_fits`` holds each
+    edge's fitted ring (None where the fit failed), in the record's own polarity.
+    """
+
+    edges: list[EdgeFigures]
+    worst: EdgeFigures
+    worst_index: int
+    clipped: bool
+    polarity: int
+    ring_fits: list[RingFit | None] = field(default_factory=list, repr=False, compare=False)
+
+    def as_dict(self) -> dict[str, object]:
+        """The worst edge's figures at the top level, plus ``edges`` (one dict per edge)."""
+        return {
+            **self.worst.as_dict(),
+            "clipped": self.clipped,
+            "worst_edge_index": self.worst_index,
+            "polarity": self.polarity,
+            "edges": [edge.as_dict() for edge in self.edges],
+        }
+
+
+@dataclass(frozen=True)
+class _Record:
+    """The record as the edge analysis sees it: turned so that turn-off rises."""
+
+    u: np.ndarray
+    dt: float
+    t0: float
+    clip: np.ndarray
+    flagged: bool
+    base: float
+    top: float
+
+
+def _check_inputs(
+    volts: np.ndarray,
+    sample_interval_s: float,
+    polarity: int,
+    settling_band: float,
+    rating_v: float | None,
+    derating: float,
+) -> np.ndarray:
+    v = np.asarray(volts, dtype=float)
+    if v.ndim != 1:
+        raise ValueError(f"volts must be a 1-D array, got shape {v.shape}")
+    if v.size < MIN_RECORD_SAMPLES:
+        raise ValueError(f"the record has {v.size} samples; at least {MIN_RECORD_SAMPLES} needed")
+    if not np.all(np.isfinite(v)):
+        bad = int(np.flatnonzero(~np.isfinite(v))[0])
+        raise ValueError(f"volts holds a non-finite value at sample {bad}")
+    if not (math.isfinite(sample_interval_s) and sample_interval_s > 0):
+        raise ValueError(f"sample_interval_s must be positive, got {sample_interval_s!r}")
+    if polarity not in (1, -1):
+        raise ValueError(f"polarity must be +1 (rising turn-off) or -1 (falling), got {polarity!r}")
+    if not 0 < settling_band < 1:
+        raise ValueError(
+            f"settling_band is a fraction of the step between 0 and 1, got {settling_band!r}"
+        )
+    if rating_v is not None and not rating_v > 0:
+        raise ValueError(f"rating_v must be positive, got {rating_v!r}")
+    if not 0 < derating <= 1:
+        raise ValueError(f"derating must be in (0, 1], got {derating!r}")
+    return v
+
+
+def _clip_mask(
+    v: np.ndarray, full_scale_v: tuple[float, float] | None, clipped: np.ndarray | bool | None
+) -> tuple[np.ndarray, bool]:
+    """Samples known to be at or beyond full scale, and the caller's whole-record flag.
+
+    A per-sample mask also keeps those samples out of the ring fit; a single flag cannot say
+    which samples are affected, so it only marks the figures as bounds.
+    """
+    mask = np.zeros(v.size, dtype=bool)
+    if full_scale_v is not None:
+        low, high = (float(x) for x in full_scale_v)
+        if not high > low:
+            raise ValueError(
+                f"full_scale_v must be (low, high) with low < high, got {full_scale_v}"
+            )
+        tolerance = 1e-6 * (high - low)
+        mask |= (v >= high - tolerance) | (v <= low + tolerance)
+    flags = np.asarray(False if clipped is None else clipped, dtype=bool)
+    if flags.ndim == 0:
+        return mask, bool(flags)
+    if flags.shape != v.shape:
+        raise ValueError(f"clipped mask has shape {flags.shape}, the record {v.shape}")
+    return mask | flags, False
+
+
+def _first_departure(u: np.ndarray, start: int, stop: int, centre: float, half_width: float) -> int:
+    """First index in [start, stop) where |u − centre| exceeds ``half_width``; ``stop`` if none."""
+    if start >= stop:
+        return stop
+    outside = np.flatnonzero(np.abs(u[start:stop] - centre) > half_width)
+    return start + int(outside[0]) if outside.size else stop
+
+
+def _fit_window(
+    rec: _Record, start: int, samples: int, *, rough: RingFit | None = None
+) -> RingFit | None:
+    """Fit the ring on ``samples`` samples from ``start``, decimated to ``FIT_MAX_SAMPLES``.
+
+    Without ``rough`` this is the matrix-pencil start only; with it, the least-squares fit
+    started from ``rough``.
+    """
+    stride = max(1, -(-samples // FIT_MAX_SAMPLES))
+    window = slice(start, start + samples, stride)
+    try:
+        return fit_ring(
+            rec.u[window],
+            rec.dt * stride,
+            rec.t0 + start * rec.dt,
+            weights=(~rec.clip[window]).astype(float),
+            refine=rough is not None,
+            start=rough,
+        )
+    except RingFitError:
+        return None
+
+
+def _fit_dominant_ring(rec: _Record, peak: int, first_high: int, high_end: int) -> RingFit | None:
+    """Two-pass fit of the first ring after the peak (see the module notes).
+
+    The rough pass (matrix pencil only) spans sixteen times the delay from the 90 % crossing to
+    the peak, which is at least a quarter ring period; its frequency and decay then size the
+    final window.
+    """
+    start = peak
+    rough_samples = min(max(16 * max(peak - first_high, 2), 48), high_end - start)
+    clipped_after = np.flatnonzero(rec.clip[start : start + rough_samples])
+    if clipped_after.size:
+        start += int(clipped_after[-1]) + 1
+    rough_samples = min(rough_samples, high_end - start)
+    if rough_samples < 24:
+        return None
+    rough = _fit_window(rec, start, rough_samples)
+    if rough is None:
+        return None
+    period_samples = 2 * math.pi / rough.angular_frequency_rad_s / rec.dt
+    span_samples = min(
+        max(FIT_TIME_CONSTANTS / rough.decay_rate_per_s / rec.dt, FIT_MIN_PERIODS * period_samples),
+        FIT_MAX_PERIODS * period_samples,
+    )
+    step = abs(rough.offset_v - rec.base)
+    decayed = rough.time_envelope_below_s(0.5 * DEPARTURE_FRACTION * step)
+    quiet = max(start, math.ceil((decayed - rec.t0) / rec.dt))
+    stop = _first_departure(rec.u, quiet, high_end, rough.offset_v, DEPARTURE_FRACTION * step)
+    return _fit_window(rec, start, int(min(span_samples, stop - start)), rough=rough) or rough
+
+
+def _plateau(rec: _Record, fit: RingFit | None, peak: int, high_end: int) -> float:
+    """Level of the high state after this edge (see the module notes for the method)."""
+    if fit is None:
+        return rec.top
+    step = fit.offset_v - rec.base
+    decayed = fit.time_envelope_below_s(DECAYED_FRACTION * abs(step))
+    quiet = max(peak, math.ceil((decayed - rec.t0) / rec.dt))
+    stop = _first_departure(rec.u, quiet, high_end, fit.offset_v, DEPARTURE_FRACTION * abs(step))
+    period_samples = 2 * math.pi / fit.angular_frequency_rad_s / rec.dt
+    if stop - quiet >= max(32, 2 * period_samples):
+        return histogram_mode(rec.u[quiet:stop])
+    return fit.offset_v
+
+
+def _edge(
+    rec: _Record,
+    search_from: int,
+    first_high: int,
+    high_end: int,
+    settling_band: float,
+) -> tuple[dict[str, float | bool | None], RingFit | None] | None:
+    """Figures of the edge that reaches the high state at ``first_high`` (None: not measurable)."""
+    u, dt, t0 = rec.u, rec.dt, rec.t0
+    peak = first_high + int(np.argmax(u[first_high : high_end + 1]))
+    if peak >= u.size - 1:
+        return None  # the record ends before the peak
+    fit = _fit_dominant_ring(rec, peak, first_high, high_end)
+    plateau = _plateau(rec, fit, peak, high_end)
+    step = plateau - rec.base
+    if step <= 0:
+        return None
+    t10, t50, t90 = (
+        last_upward_crossing(u, reference_level(rec.base, plateau, fraction), search_from, peak + 1)
+        for fraction in (LOW_REFERENCE, MID_REFERENCE, HIGH_REFERENCE)
+    )
+    if t50 is None:
+        return None
+    half_band = settling_band * step
+    limit = high_end + 1
+    if fit is not None:
+        decayed = fit.time_envelope_below_s(0.5 * half_band)
+        quiet = max(peak, math.ceil((decayed - t0) / dt))
+        limit = _first_departure(u, quiet, high_end + 1, plateau, half_band)
+    entry = last_band_entry(u, plateau, half_band, math.ceil(t50), limit)
+    overshoot = float(u[peak]) - plateau
+    figures: dict[str, float | bool | None] = {
+        "plateau_v": plateau,
+        "peak_v": float(u[peak]),
+        "overshoot_v": overshoot,
+        "overshoot_pct": 100.0 * overshoot / step,
+        "rise_time_s": (t90 - t10) * dt if t10 is not None and t90 is not None else None,
+        "edge_time_s": t0 + t50 * dt,
+        "ring_frequency_hz": fit.frequency_hz if fit else None,
+        "decay_rate_per_s": fit.decay_rate_per_s if fit else None,
+        "damping_ratio": fit.damping_ratio if fit else None,
+        "q_factor": fit.q_factor if fit else None,
+        "fit_quality": fit.fit_quality if fit else None,
+        "settling_time_s": (entry - t50) * dt if entry is not None else None,
+        "clipped": rec.flagged or bool(np.any(rec.clip[search_from : high_end + 1])),
+    }
+    return figures, fit
+
+
+def _snubber_losses(
+    rec: _Record, edges: list[dict[str, float | bool | None]], branch: SnubberBranch
+) -> list[tuple[float, str]]:
+    """Per-edge snubber resistor loss and the method used (see ``analyze_capture``)."""
+    record_s = (rec.u.size - 1) * rec.dt
+    settle_s = BRANCH_SETTLE_TIME_CONSTANTS * branch.time_constant_s
+    if record_s - branch.period_s < settle_s:
+        return [
+            (cv2f_loss_w(branch.cs_f, float(e["plateau_v"]) - rec.base, branch.fsw_hz), "cv2f")
+            for e in edges
+        ]
+    power = branch_resistor_power_w(rec.u, rec.dt, branch)
+    centred = np.array([float(e["edge_time_s"]) - rec.t0 for e in edges]) - 0.5 * branch.period_s
+    starts = np.clip(centred, settle_s, record_s - branch.period_s)
+    return [(float(p), "waveform") for p in period_means_w(power, rec.dt, starts, branch.period_s)]
+
+
+def analyze_capture(
+    volts: np.ndarray,
+    sample_interval_s: float,
+    t0_s: float = 0.0,
+    *,
+    polarity: int = 1,
+    settling_band: float = 0.05,
+    full_scale_v: tuple[float, float] | None = None,
+    clipped: np.ndarray | bool | None = None,
+    snubber: SnubberBranch | None = None,
+    rating_v: float | None = None,
+    derating: float = DEFAULT_DERATING,
+) -> CaptureFigures:
+    """Analyse every turn-off edge of a switch-node record.
+
+    Parameters
+    ----------
+    volts : samples in volts, uniformly spaced.
+    sample_interval_s : sample spacing.
+    t0_s : time of the first sample (the trigger is at t = 0; pre-trigger samples are negative).
+    polarity : +1 when the node rises at turn-off (a MOSFET drain), -1 when it falls (a diode's
+        reverse voltage); a falling record is analysed as its negative and reported in its own sign.
+    settling_band : half-width of the settling band as a fraction of the step (IEEE 181, 5.7).
+    full_scale_v : (low, high) limits of the digitiser; samples there count as clipped.
+    clipped : a per-sample mask or a single flag from the caller, added to ``full_scale_v``.
+    snubber : Rs–Cs branch and switching frequency, for the resistor loss.
+    rating_v : voltage rating of the device at the node, for the stress margin.
+    derating : fraction of ``rating_v`` the peak may use.
+
+    Returns
+    -------
+    CaptureFigures
+
+    Raises
+    ------
+    NoEdgeError
+        When the record holds no transition from below 10 % to above 90 % of its range.
+    ValueError
+        For inputs outside their valid ranges.
+
+    Notes
+    -----
+    Levels, reference instants, overshoot and settling follow IEEE Std 181-2011 (see
+    :mod:`labseq.analysis.levels` and this module's notes on the plateau); ring frequency and
+    damping come from :func:`labseq.analysis.ringfit.fit_ring`. Snubber resistor loss: when the
+    record spans a switching period (after ``BRANCH_SETTLE_TIME_CONSTANTS``·Rs·Cs of branch
+    start-up), the branch is driven by the measured voltage and Rs·i² is averaged over one
+    period around each edge (method "waveform"); otherwise Cs·V²·fsw with V the edge's step
+    (method "cv2f").
+    """
+    v = _check_inputs(volts, sample_interval_s, polarity, settling_band, rating_v, derating)
+    clip, flagged = _clip_mask(v, full_scale_v, clipped)
+    u = v if polarity == 1 else -v
+    base, top = histogram_state_levels(u)
+    what = "rising" if polarity == 1 else "falling"
+    if top <= base:
+        raise NoEdgeError(f"no {what} turn-off edge: the record is flat at {base * polarity:g} V")
+    changes = state_changes(
+        u, reference_level(base, top, LOW_REFERENCE), reference_level(base, top, HIGH_REFERENCE)
+    )
+    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top)
+
+    durations = changes.rise_to - changes.rise_from
+    fast = durations <= SLOW_SWING_FACTOR * max(2, durations.min(initial=u.size))
+    edges: list[dict[str, float | bool | None]] = []
+    fits: list[RingFit | None] = []
+    for rise_from, first_high in zip(changes.rise_from[fast], changes.rise_to[fast], strict=True):
+        next_fall = np.searchsorted(changes.fall_from, first_high)
+        high_end = (
+            int(changes.fall_from[next_fall]) if next_fall < changes.fall_from.size else u.size - 1
+        )
+        previous_low = np.searchsorted(changes.fall_to, rise_from, side="right") - 1
+        search_from = int(changes.fall_to[previous_low]) if previous_low >= 0 else 0
+        found = _edge(rec, search_from, int(first_high), high_end, settling_band)
+        if found is not None:
+            edges.append(found[0])
+            fits.append(found[1])
+    if not edges:
+        raise NoEdgeError(
+            f"no {what} turn-off edge: looked for a transition from below 10 % to above 90 % of "
+            f"the range between the histogram levels {base * polarity:g} V and {top * polarity:g} V"
+            " with its peak inside the record"
+        )
+
+    losses = _snubber_losses(rec, edges, snubber) if snubber else [(None, None)] * len(edges)
+    results = []
+    for figures, (loss_w, method) in zip(edges, losses, strict=True):
+        peak_v = polarity * float(figures["peak_v"])
+        margin = rating_v * derating - abs(peak_v) if rating_v is not None else None
+        results.append(
+            EdgeFigures(
+                **{
+                    **{
+                        k: float(x) if isinstance(x, np.floating) else x for k, x in figures.items()
+                    },
+                    "base_v": polarity * base,
+                    "plateau_v": polarity * float(figures["plateau_v"]),
+                    "peak_v": peak_v,
+                    "snubber_loss_w": loss_w,
+                    "snubber_loss_method": method,
+                    "stress_margin_v": margin,
+                }
+            )
+        )
+    worst = int(np.argmax([float(e["peak_v"]) for e in edges]))
+    return CaptureFigures(
+        edges=results,
+        worst=results[worst],
+        worst_index=worst,
+        clipped=flagged or bool(np.any(clip)),
+        polarity=polarity,
+        ring_fits=[fit if fit is None or polarity == 1 else fit.flipped() for fit in fits],
+    )

@@ -1,0 +1,228 @@
+"""RC snubber design from measured ringing: parasitics, damping resistor, capacitor and its loss.
+
+The switch node rings as a parallel tank: the leakage inductance L against the node capacitance
+Cpar (Coss, winding and stray capacitance), with the far end of L held by the stiff reflected
+voltage. The published design forms (Severns, "Design of Snubbers for Power Circuits", RC snubber
+section) are
+
+* f = 1 / (2π√(L·Cpar)), so Cpar = 1 / ((2πf)²·L) when L is known;
+* added-capacitance method: a known Cadd across the node moves the ring from f1 to f2, so
+  Cpar = Cadd / ((f1/f2)² − 1) and L = 1 / ((2π·f1)²·Cpar);
+* the damping resistor equals the characteristic impedance R = √(L/Cpar) = 2π·f·L, which gives a
+  Q of about 1;
+* the resistor dissipates Cs·V²·fsw, so a loss budget P at V and fsw allows Cs = P / (V²·fsw).
+
+Messages of :class:`DesignInputError` name the offending inputs by their keyword names so that a
+caller can map them to its own option names.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from labseq.analysis.snubber import cv2f_loss_w
+
+#: Conventional Cs/Cpar ratio range for an RC snubber (common practice, no published source).
+CONVENTIONAL_CS_RATIO = (3.0, 4.0)
+
+
+class DesignInputError(ValueError):
+    """Design inputs that are missing, inconsistent or out of range."""
+
+
+def parasitic_capacitance_f(ring_frequency_hz: float, leakage_h: float) -> float:
+    """Node capacitance Cpar = 1 / ((2πf)²·L) from the ring frequency and the leakage inductance."""
+    return 1.0 / ((2 * math.pi * ring_frequency_hz) ** 2 * leakage_h)
+
+
+def added_capacitance_method(
+    ring_freq_hz: float, ring_freq_added_hz: float, added_cap_f: float
+) -> tuple[float, float]:
+    """(Cpar, L) from the ring frequency without (f1) and with (f2) a known added capacitance.
+
+    Cpar = Cadd / ((f1/f2)² − 1) and L = 1 / ((2π·f1)²·Cpar), from f ∝ 1/√C at fixed L.
+    """
+    if not ring_freq_added_hz < ring_freq_hz:
+        raise DesignInputError(
+            f"ring_freq_added_hz ({ring_freq_added_hz:g} Hz) must be below ring_freq_hz "
+            f"({ring_freq_hz:g} Hz): added capacitance lowers the ring frequency"
+        )
+    c_par_f = added_cap_f / ((ring_freq_hz / ring_freq_added_hz) ** 2 - 1.0)
+    return c_par_f, 1.0 / ((2 * math.pi * ring_freq_hz) ** 2 * c_par_f)
+
+
+def characteristic_impedance_ohm(leakage_h: float, c_par_f: float) -> float:
+    """R = √(L/Cpar), the damping resistor for Q ≈ 1 (equal to 2π·f·L at the ring frequency)."""
+    return math.sqrt(leakage_h / c_par_f)
+
+
+def capacitance_for_loss_f(loss_w: float, volts: float, fsw_hz: float) -> float:
+    """Snubber capacitance Cs = P / (V²·fsw) whose resistor loss is ``loss_w``."""
+    return loss_w / (volts**2 * fsw_hz)
+
+
+def snubber_damping_ratio(leakage_h: float, c_par_f: float, r_ohm: float, cs_f: float) -> float:
+    """Damping ratio of the dominant pole pair of the node with an Rs–Cs snubber across Cpar.
+
+    Derivation: the node admittance of L ∥ Cpar ∥ (R + 1/(s·Cs)) is
+    Y(s) = 1/(sL) + s·Cpar + s·Cs/(1 + s·R·Cs). Its zeros are the natural frequencies; multiplying
+    by s·L·(1 + s·R·Cs) gives the characteristic polynomial
+
+        L·Cpar·R·Cs·s³ + L·(Cpar + Cs)·s² + R·Cs·s + 1 = 0.
+
+    Its roots (``numpy.roots``) are one real pole and either a complex pair or two more real
+    poles. The dominant pair is the complex pair, or else the two real poles nearest the origin;
+    for a pair (s1, s2) the equivalent second-order ζ = −(s1 + s2) / (2√(s1·s2)), which is
+    σ/√(σ² + ωd²) for a complex pair and ≥ 1 for a real one. As Cs ≫ Cpar the branch acts as R
+    alone and ζ tends to √(L/Cpar)/(2R), the parallel RLC value (0.5 at R = √(L/Cpar)).
+    """
+    roots = np.roots(
+        [leakage_h * c_par_f * r_ohm * cs_f, leakage_h * (c_par_f + cs_f), r_ohm * cs_f, 1.0]
+    )
+    complex_roots = roots[np.abs(roots.imag) > 1e-9 * np.abs(roots)]
+    if complex_roots.size:
+        pair = complex_roots[:2]
+    else:
+        pair = roots.real[np.argsort(np.abs(roots.real))][:2]
+    s1, s2 = pair
+    return float((-(s1 + s2) / (2 * np.sqrt(s1 * s2))).real)
+
+
+def _positive(name: str, value: float | None) -> None:
+    if value is not None and not (math.isfinite(value) and value > 0):
+        raise DesignInputError(f"{name} must be a positive number, got {value!r}")
+
+
+@dataclass(frozen=True)
+class SnubberProposal:
+    """Result of :func:`propose_snubber`; None where the inputs do not determine a value."""
+
+    ring_freq_hz: float | None
+    c_par_f: float | None
+    l_leak_h: float | None
+    r_ohm: float | None
+    cs_f: float | None
+    loss_w: float | None
+    damping_ratio: float | None
+    cs_source: str | None
+    warnings: list[str] = field(default_factory=list)
+
+    def as_dict(self) -> dict[str, object]:
+        """Plain dict of SI numbers for JSON."""
+        return asdict(self)
+
+
+def propose_snubber(
+    *,
+    ring_freq_hz: float | Sequence[float] | None = None,
+    leakage_h: float | None = None,
+    added_cap_f: float | None = None,
+    ring_freq_added_hz: float | None = None,
+    volts: float | None = None,
+    fsw_hz: float | None = None,
+    loss_budget_w: float | None = None,
+    cs_f: float | None = None,
+) -> SnubberProposal:
+    """Propose Rs and Cs from a measured ring and either L or an added-capacitance measurement.
+
+    Parameters
+    ----------
+    ring_freq_hz : ring frequency, or several measured ring frequencies (their median is used).
+    leakage_h : known leakage inductance (the first way to find Cpar).
+    added_cap_f, ring_freq_added_hz : the second way: a known added capacitance and the ring
+        frequency with it fitted.
+    volts, fsw_hz : step voltage at the node and switching frequency, for Cs and its loss.
+    loss_budget_w : allowed resistor loss; sets Cs = P/(V²·fsw).
+    cs_f : a chosen Cs instead of a budget; its loss is Cs·V²·fsw.
+
+    Returns
+    -------
+    SnubberProposal, with warnings when the budget forces Cs below Cpar or outside the
+    conventional 3–4 × Cpar (common practice, no published source).
+
+    Raises
+    ------
+    DesignInputError
+        For non-positive values or combinations that do not go together.
+    """
+    if ring_freq_hz is not None and not isinstance(ring_freq_hz, int | float):
+        frequencies = [float(f) for f in ring_freq_hz]
+        if not frequencies:
+            raise DesignInputError("ring_freq_hz: the list of measured ring frequencies is empty")
+        for f in frequencies:
+            _positive("ring_freq_hz", f)
+        ring_freq_hz = float(np.median(frequencies))
+    for name, value in (
+        ("ring_freq_hz", ring_freq_hz),
+        ("leakage_h", leakage_h),
+        ("added_cap_f", added_cap_f),
+        ("ring_freq_added_hz", ring_freq_added_hz),
+        ("volts", volts),
+        ("fsw_hz", fsw_hz),
+        ("loss_budget_w", loss_budget_w),
+        ("cs_f", cs_f),
+    ):
+        _positive(name, value)
+    if ring_freq_hz is None:
+        raise DesignInputError("ring_freq_hz is needed: the measured ring frequency")
+    if (added_cap_f is None) != (ring_freq_added_hz is None):
+        raise DesignInputError(
+            "added_cap_f and ring_freq_added_hz go together: the added capacitance and the ring "
+            "frequency measured with it"
+        )
+    if leakage_h is not None and added_cap_f is not None:
+        raise DesignInputError(
+            "give either leakage_h or the pair added_cap_f + ring_freq_added_hz, not both"
+        )
+    if loss_budget_w is not None and cs_f is not None:
+        raise DesignInputError("give either loss_budget_w or cs_f, not both")
+    if (loss_budget_w is not None or cs_f is not None) and (volts is None or fsw_hz is None):
+        raise DesignInputError("loss_budget_w and cs_f need volts and fsw_hz")
+
+    c_par_f = l_leak_h = r_ohm = damping = None
+    if added_cap_f is not None and ring_freq_added_hz is not None:
+        c_par_f, l_leak_h = added_capacitance_method(ring_freq_hz, ring_freq_added_hz, added_cap_f)
+    elif leakage_h is not None:
+        l_leak_h = leakage_h
+        c_par_f = parasitic_capacitance_f(ring_freq_hz, leakage_h)
+    if c_par_f is not None and l_leak_h is not None:
+        r_ohm = characteristic_impedance_ohm(l_leak_h, c_par_f)
+
+    warnings: list[str] = []
+    cs_source = None
+    if loss_budget_w is not None and volts is not None and fsw_hz is not None:
+        cs_f, cs_source = capacitance_for_loss_f(loss_budget_w, volts, fsw_hz), "loss budget"
+    elif cs_f is not None:
+        cs_source = "chosen"
+    if cs_f is None and c_par_f is not None:
+        cs_f, cs_source = CONVENTIONAL_CS_RATIO[0] * c_par_f, "3 × Cpar"
+    loss_w = cv2f_loss_w(cs_f, volts, fsw_hz) if cs_f and volts and fsw_hz else None
+
+    if cs_f is not None and c_par_f is not None and r_ohm is not None and l_leak_h is not None:
+        damping = snubber_damping_ratio(l_leak_h, c_par_f, r_ohm, cs_f)
+        ratio = cs_f / c_par_f
+        low, high = CONVENTIONAL_CS_RATIO
+        if ratio < 1:
+            warnings.append(
+                f"Cs from the {cs_source} is below Cpar (Cs/Cpar = {ratio:.2g}): an RC snubber "
+                "cannot damp this ring within it; a clamp is the better tool"
+            )
+        elif ratio < low:
+            warnings.append(
+                f"Cs/Cpar = {ratio:.2g} is below the usual {low:g}–{high:g}: expect weaker damping"
+            )
+    return SnubberProposal(
+        ring_freq_hz=ring_freq_hz,
+        c_par_f=c_par_f,
+        l_leak_h=l_leak_h,
+        r_ohm=r_ohm,
+        cs_f=cs_f,
+        loss_w=loss_w,
+        damping_ratio=damping,
+        cs_source=cs_source,
+        warnings=warnings,
+    )

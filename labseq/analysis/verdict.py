@@ -1,0 +1,151 @@
+"""Per-point aggregation of capture figures and the pass / fail / incomplete verdict.
+
+A point is captured several times. Each figure is summarised by its worst value (the one a limit
+is judged on), its mean and its spread (sample standard deviation). A limit on a figure that no
+capture determined (no capture analysed, a failed ring fit, a clipped peak that only bounds the
+truth on the safe side) cannot pass: the point is then incomplete.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, fields
+from typing import Literal
+
+import numpy as np
+
+from labseq.analysis.capture import FIGURE_UNITS
+from labseq.units import format_si
+
+#: Figures whose worst value is the largest.
+WORST_IS_MAX = frozenset(
+    {"peak_v", "overshoot_v", "overshoot_pct", "settling_time_s", "snubber_loss_w", "q_factor"}
+)
+#: Figures whose worst value is the smallest.
+WORST_IS_MIN = frozenset({"damping_ratio", "stress_margin_v", "efficiency", "fit_quality"})
+#: Figures that clipping turns into a bound on the safe side (their true value may be worse).
+BOUNDED_BY_CLIPPING = frozenset({"peak_v", "overshoot_v", "overshoot_pct", "stress_margin_v"})
+
+
+@dataclass(frozen=True)
+class FigureSummary:
+    """Worst, mean and sample standard deviation of one figure over a point's captures."""
+
+    worst: float | None
+    mean: float
+    spread: float | None
+    count: int
+
+
+@dataclass(frozen=True)
+class PointFigures:
+    """Summaries per figure over the captures of one point."""
+
+    figures: dict[str, FigureSummary]
+    n_captures: int
+    n_clipped: int
+
+    def worst(self, name: str) -> float | None:
+        """Worst value of ``name`` (None when no capture determined it)."""
+        summary = self.figures.get(name)
+        return summary.worst if summary else None
+
+
+def aggregate(captures: Sequence[Mapping[str, object]]) -> PointFigures:
+    """Summarise the figures of a point's captures (one mapping per capture, e.g. ``as_dict()``).
+
+    Numbers are summarised per key; None, booleans and text are skipped. ``worst`` is the maximum
+    or minimum according to ``WORST_IS_MAX`` / ``WORST_IS_MIN`` (None for figures without a
+    direction); ``spread`` is the sample standard deviation (ddof = 1), None for one capture.
+    A capture counts as clipped when its ``clipped`` entry is true.
+    """
+    values: dict[str, list[float]] = {}
+    for capture in captures:
+        for name, value in capture.items():
+            number = isinstance(value, int | float) and not isinstance(value, bool)
+            if number and math.isfinite(value):
+                values.setdefault(name, []).append(float(value))
+    figures = {}
+    for name, samples in values.items():
+        x = np.asarray(samples)
+        worst = x.max() if name in WORST_IS_MAX else x.min() if name in WORST_IS_MIN else None
+        figures[name] = FigureSummary(
+            worst=None if worst is None else float(worst),
+            mean=float(x.mean()),
+            spread=float(x.std(ddof=1)) if x.size > 1 else None,
+            count=int(x.size),
+        )
+    n_clipped = sum(1 for capture in captures if capture.get("clipped"))
+    return PointFigures(figures=figures, n_captures=len(captures), n_clipped=n_clipped)
+
+
+@dataclass(frozen=True)
+class Limits:
+    """Limits of a point; each is optional and checked only when set."""
+
+    max_peak_v: float | None = None
+    min_stress_margin_v: float | None = None
+    min_damping_ratio: float | None = None
+    max_q_factor: float | None = None
+    max_settling_time_s: float | None = None
+    max_snubber_loss_w: float | None = None
+    min_efficiency: float | None = None
+
+
+#: Limit field → (figure, True when the limit is a maximum).
+LIMIT_FIGURES: dict[str, tuple[str, bool]] = {
+    f.name: (f.name.removeprefix("max_").removeprefix("min_"), f.name.startswith("max_"))
+    for f in fields(Limits)
+}
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """Outcome of a point: ``status`` and one reason per failed or undetermined limit."""
+
+    status: Literal["pass", "fail", "incomplete"]
+    reasons: list[str]
+
+
+def _text(name: str, value: float) -> str:
+    if name == "efficiency":
+        return f"{100 * value:.3g} %"
+    return format_si(value, FIGURE_UNITS.get(name, ""))
+
+
+def judge(point: PointFigures, limits: Limits, efficiency: float | None = None) -> Verdict:
+    """Judge a point against ``limits``.
+
+    Fail when any worst value is beyond its limit; otherwise incomplete when a limited figure is
+    missing, or is a clipped bound that could hide a failure; otherwise pass. Reasons name the
+    figure, its value and the limit in engineering notation.
+    """
+    failures: list[str] = []
+    missing: list[str] = []
+    for limit_name, (figure, is_max) in LIMIT_FIGURES.items():
+        limit = getattr(limits, limit_name)
+        if limit is None:
+            continue
+        value = efficiency if figure == "efficiency" else point.worst(figure)
+        relation = "≤" if is_max else "≥"
+        wanted = f"limit {relation} {_text(figure, limit)}"
+        if value is None:
+            why = "no captures analysed" if point.n_captures == 0 else "not determined"
+            missing.append(f"{figure}: {why}; {wanted}")
+            continue
+        beyond = value > limit if is_max else value < limit
+        clipped = point.n_clipped and figure in BOUNDED_BY_CLIPPING
+        if beyond:
+            bound = " (a bound: the capture clipped)" if clipped else ""
+            failures.append(f"{figure} {_text(figure, value)}{bound} breaks {wanted}")
+        elif clipped:
+            missing.append(
+                f"{figure} {_text(figure, value)} is only a bound ({point.n_clipped} clipped "
+                f"capture(s)); {wanted} cannot be shown"
+            )
+    if failures:
+        return Verdict("fail", failures + missing)
+    if missing:
+        return Verdict("incomplete", missing)
+    return Verdict("pass", [])

@@ -1,0 +1,56 @@
+"""``labseq runs``: list the runs in a store."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import asdict
+from pathlib import Path
+
+import click
+
+from labseq.store import Store
+
+DEFAULT_DB = "labseq.sqlite"
+
+
+@click.command("runs")
+@click.option(
+    "--db",
+    "db_path",
+    type=click.Path(path_type=Path),
+    default=DEFAULT_DB,
+    show_default=True,
+    help="The store to read.",
+)
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON array instead of a table.")
+def command(db_path: Path, as_json: bool) -> None:
+    """List the runs in the store: id, start, status, DUT and snubber, points done/total."""
+    with Store(db_path, create=False) as store:
+        runs = store.runs()
+    if as_json:
+        fields = (
+            "id",
+            "started_at",
+            "finished_at",
+            "status",
+            "dut_label",
+            "snubber_label",
+            "bench_kind",
+            "sequence_path",
+            "sequence_sha256",
+            "points_done",
+            "points_total",
+        )
+        rows = [{name: asdict(run)[name] for name in fields} for run in runs]
+        click.echo(json.dumps(rows, indent=2))
+        return
+    if not runs:
+        click.echo(f"{db_path}: no runs yet")
+        return
+    click.echo(f"{'id':>4}  {'started (UTC)':19}  {'status':11}  {'points':>9}  DUT / snubber")
+    for run in runs:
+        points = f"{run.points_done}/{run.points_total}"
+        click.echo(
+            f"{run.id:>4}  {run.started_at[:19].replace('T', ' '):19}  {run.status:11}  "
+            f"{points:>9}  {run.dut_label} / {run.snubber_label}"
+        )

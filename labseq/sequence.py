@@ -1,0 +1,951 @@
+"""Sequence files: which bench, which DUT and snubber, which line × load grid, which limits.
+
+A sequence file is TOML. :func:`load_sequence` reads it, converts every quantity to SI through
+:func:`labseq.units.parse_quantity`, and validates everything before any instrument is opened:
+unknown keys (with a "did you mean" suggestion), missing keys, wrong types, bad units,
+non-positive values, points outside the bench's or the DUT's declared limits, duplicate points
+and AC/DC mismatches. All problems found are reported together in one :class:`SequenceError`,
+each naming the file, the key path, the line where it was found and what would be valid.
+
+The result is a frozen :class:`Sequence` tree that also keeps the file's text and SHA-256, so a
+run stored in the database can always be traced back to the exact file that drove it.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import math
+import re
+import tomllib
+from collections.abc import Callable, Iterable
+from dataclasses import MISSING, dataclass, field, fields
+from importlib import resources
+from pathlib import Path
+from typing import Any, NamedTuple
+
+from labseq.errors import InputError
+from labseq.units import UnitError, format_si, parse_quantity
+
+#: ES1 limits of IEC 62368-1 (from memory): above these a real bench needs the acknowledgement.
+ES1_DC_LIMIT_V = 60.0
+ES1_AC_RMS_LIMIT_V = 30.0
+
+#: Switch voltage derating used when the file gives none (from memory of common power-supply
+#: derating guidelines).
+DEFAULT_DERATING = 0.8
+
+#: Settling band as a fraction of the step when the file gives none (IEEE 181 leaves the band to
+#: the user; 5 % is common practice, no published source).
+DEFAULT_SETTLING_BAND = 0.05
+
+BENCH_KINDS = ("sim", "visa")
+BENCH_ROLES = ("source", "load", "meter", "scope")
+LINE_KINDS = ("dc", "ac")
+POINT_ERROR_ACTIONS = ("skip", "abort")
+COUPLINGS = ("dc", "ac")
+TRIGGER_SLOPES = ("rising", "falling")
+
+#: VISA interface types (IVI VPP-4.3 resource names) we accept at the start of a resource string.
+_VISA_RESOURCE = re.compile(r"^(TCPIP|USB|GPIB|ASRL|VXI|PXI|VICP)[^:\s]*::\S+$", re.IGNORECASE)
+
+# Relative tolerance under which two grid values count as the same point.
+_SAME_VALUE_RTOL = 1e-9
+
+
+class Problem(NamedTuple):
+    """One thing wrong in a sequence file."""
+
+    key: str
+    message: str
+    line: int | None
+
+
+class SequenceError(InputError):
+    """A sequence file that cannot be used; ``problems`` lists every problem found."""
+
+    def __init__(self, path: Path, problems: list[Problem]) -> None:
+        self.path = path
+        self.problems = problems
+        count = f"{len(problems)} problems" if len(problems) > 1 else "1 problem"
+        lines = [f"{path}: {count}:"]
+        for problem in problems:
+            where = f"line {problem.line}, " if problem.line else ""
+            lines.append(f"  {where}{problem.key}: {problem.message}")
+        super().__init__("\n".join(lines))
+
+
+# --------------------------------------------------------------------------- the result tree
+
+
+class GridPoint(NamedTuple):
+    """One operating point: line value (DC volts or AC rms volts) and load current."""
+
+    line_v: float
+    load_a: float
+
+
+@dataclass(frozen=True)
+class BenchLimits:
+    """What the bench may be asked for; every setpoint is checked against these."""
+
+    source_max_voltage_v: float
+    source_max_current_a: float
+    load_max_current_a: float
+    line_step_max_v: float
+    line_step_dwell_s: float
+    source_min_frequency_hz: float | None = None
+    source_max_frequency_hz: float | None = None
+    scope_max_record_length: int | None = None
+    probe_max_voltage_v: float | None = None
+
+    def ramp_v(self, start_v: float, stop_v: float) -> list[float]:
+        """Line values from ``start_v`` (excluded) to ``stop_v`` (included) in equal steps no
+        larger than ``line_step_max_v``, so the source never jumps by more than the declared step.
+        """
+        distance_v = stop_v - start_v
+        if distance_v == 0:
+            return []
+        steps = max(1, math.ceil(abs(distance_v) / self.line_step_max_v - 1e-9))
+        return [start_v + distance_v * k / steps for k in range(1, steps)] + [stop_v]
+
+
+@dataclass(frozen=True)
+class Bench:
+    """The instruments of a run: simulated, or real ones reached by VISA resource strings."""
+
+    kind: str  # "sim" or "visa"
+    limits: BenchLimits
+    scope_map: str  # a command-map family name, or the path of a command-map file
+    visa_library: str
+    timeout_s: float
+    resources: dict[str, str] = field(default_factory=dict)  # role -> VISA resource string
+    sim_dut_path: Path | None = None  # the DUT file a simulated bench runs
+
+    @property
+    def is_sim(self) -> bool:
+        """True for the simulated bench."""
+        return self.kind == "sim"
+
+
+@dataclass(frozen=True)
+class Dut:
+    """The device under test as its designer declares it."""
+
+    label: str
+    line_is_ac: bool
+    line_min_v: float
+    line_max_v: float
+    rated_load_a: float
+    overload_margin: float  # fraction above the rated load the grid may reach
+    switch_rating_v: float
+    derating: float
+    switching_frequency_hz: float
+    leakage_inductance_h: float | None = None
+
+    @property
+    def max_load_a(self) -> float:
+        """Highest load the grid may ask for: rated load × (1 + overload margin)."""
+        return self.rated_load_a * (1.0 + self.overload_margin)
+
+
+@dataclass(frozen=True)
+class Snubber:
+    """The RC snubber across the switch."""
+
+    label: str
+    resistance_ohm: float
+    capacitance_f: float
+    resistor_power_budget_w: float
+
+
+@dataclass(frozen=True)
+class Grid:
+    """The line × load grid and what to do at each point."""
+
+    line_is_ac: bool
+    line_values_v: tuple[float, ...]
+    line_frequency_hz: float  # 0 for DC
+    load_values_a: tuple[float, ...]
+    settle_s: float
+    captures_per_point: int
+
+
+@dataclass(frozen=True)
+class ScopeSettings:
+    """Scope set-up for the switch-node capture (volts at the probe tip)."""
+
+    channel: int
+    volts_per_div_v: float
+    offset_v: float
+    probe_ratio: float
+    coupling: str
+    bandwidth_limit_hz: float  # 0 = full bandwidth
+    time_per_div_s: float
+    record_length: int
+    trigger_level_v: float
+    trigger_slope: str
+    trigger_position: float  # fraction of the record before the trigger
+    acquisition_timeout_s: float
+    node: str
+
+    @property
+    def polarity(self) -> int:
+        """+1 when the node rises at turn-off (rising trigger), −1 otherwise."""
+        return 1 if self.trigger_slope == "rising" else -1
+
+
+@dataclass(frozen=True)
+class VerdictLimits:
+    """Limits a point is judged against (None = not judged on that figure)."""
+
+    max_peak_v: float | None
+    min_stress_margin_v: float | None
+    min_damping_ratio: float | None
+    max_q_factor: float | None
+    max_settling_time_s: float | None
+    max_snubber_loss_w: float | None
+    min_efficiency: float | None
+    settling_band: float
+
+
+@dataclass(frozen=True)
+class Sequence:
+    """A validated sequence file, SI units throughout."""
+
+    path: Path
+    text: str
+    sha256: str
+    name: str
+    description: str
+    bench: Bench
+    dut: Dut
+    snubber: Snubber
+    grid: Grid
+    scope: ScopeSettings
+    limits: VerdictLimits
+    on_point_error: str  # "skip" or "abort"
+    hazardous_voltage_acknowledged: bool
+
+    def points(self) -> list[GridPoint]:
+        """The grid in run order: lines ascending, and loads ascending within each line, so the
+        source changes as seldom as possible and the load changes inside a line value."""
+        return [
+            GridPoint(line_v, load_a)
+            for line_v in sorted(self.grid.line_values_v)
+            for load_a in sorted(self.grid.load_values_a)
+        ]
+
+    def verdict_limits(self) -> Any:
+        """The verdict limits as :class:`labseq.analysis.verdict.Limits`."""
+        from labseq.analysis.verdict import Limits
+
+        return Limits(
+            max_peak_v=self.limits.max_peak_v,
+            min_stress_margin_v=self.limits.min_stress_margin_v,
+            min_damping_ratio=self.limits.min_damping_ratio,
+            max_q_factor=self.limits.max_q_factor,
+            max_settling_time_s=self.limits.max_settling_time_s,
+            max_snubber_loss_w=self.limits.max_snubber_loss_w,
+            min_efficiency=self.limits.min_efficiency,
+        )
+
+
+# --------------------------------------------------------------------------- reading helpers
+
+_MISSING = object()
+
+
+def find_key_line(text: str, key: str) -> int | None:
+    """Line number (1-based) where ``key`` (a dotted path, indices ignored) is written in ``text``.
+
+    A simple scan of table headers and ``name =`` lines; falls back to the parent key's line.
+    """
+    target = re.sub(r"\[\d+\]", "", key)
+    section = ""
+    found: dict[str, int] = {}
+    for number, raw in enumerate(text.splitlines(), start=1):
+        line = raw.strip()
+        header = re.match(r"^\[\[?\s*([^\]]+?)\s*\]\]?", line)
+        if header:
+            section = re.sub(r"\s*\.\s*", ".", header.group(1)).replace('"', "")
+            found.setdefault(section, number)
+            continue
+        assignment = re.match(r'^([A-Za-z0-9_\-."\' ]+?)\s*=', line)
+        if assignment:
+            name = re.sub(r"\s*\.\s*", ".", assignment.group(1)).replace('"', "").replace("'", "")
+            found.setdefault(f"{section}.{name}" if section else name, number)
+    while target:
+        if target in found:
+            return found[target]
+        target = target.rpartition(".")[0]
+    return None
+
+
+def _example(unit: str) -> str:
+    """A short example of a quantity in ``unit`` for error messages."""
+    return {
+        "V": "'75 V'",
+        "A": "'2.5 A'",
+        "W": "'0.5 W'",
+        "F": "'470pF'",
+        "H": "'1.2uH'",
+        "Hz": "'200kHz'",
+        "s": "'50 ms'",
+        "Ω": "'47 ohm'",
+    }.get(unit, "'1.5'")
+
+
+class _Collector:
+    """Gathers every problem of one file so they are reported together."""
+
+    def __init__(self, path: Path, text: str) -> None:
+        self.path = path
+        self.text = text
+        self.problems: list[Problem] = []
+
+    def fail(self, key: str, message: str) -> None:
+        self.problems.append(Problem(key, message, find_key_line(self.text, key)))
+
+
+class _Table:
+    """One TOML table being read; remembers which keys were read to report unknown ones."""
+
+    def __init__(self, data: dict[str, Any], prefix: str, out: _Collector) -> None:
+        self.data = data
+        self.prefix = prefix
+        self.out = out
+        self.known: list[str] = []
+
+    def key(self, name: str) -> str:
+        return f"{self.prefix}.{name}" if self.prefix else name
+
+    def raw(self, name: str, required: bool, what: str) -> Any:
+        """The value of ``name``, or _MISSING (recording a problem when it is required)."""
+        self.known.append(name)
+        if name in self.data:
+            return self.data[name]
+        if required:
+            self.out.fail(self.key(name), f"missing; expected {what}")
+        return _MISSING
+
+    def table(self, name: str, required: bool = True) -> _Table | None:
+        value = self.raw(name, required, "a table of settings")
+        if value is _MISSING:
+            return None
+        if not isinstance(value, dict):
+            self.out.fail(self.key(name), f"expected a table of settings, got {_kind(value)}")
+            return None
+        return _Table(value, self.key(name), self.out)
+
+    def _convert(self, name: str, value: Any, convert: Callable[[Any, str], Any]) -> Any:
+        try:
+            return convert(value, self.key(name))
+        except (UnitError, ValueError, OverflowError, TypeError) as exc:
+            self.out.fail(self.key(name), str(exc).removeprefix(f"{self.key(name)}: "))
+            return None
+
+    def quantity(
+        self,
+        name: str,
+        unit: str,
+        *,
+        default: Any = _MISSING,
+        minimum: float | None = 0.0,
+        allow_equal: bool = False,
+    ) -> float | None:
+        """A quantity in ``unit``, SI float; must be above ``minimum`` (or equal when allowed)."""
+        value = self.raw(name, default is _MISSING, f"a quantity in {unit}, e.g. {_example(unit)}")
+        if value is _MISSING:
+            return None if default is _MISSING else default
+        return self._convert(name, value, lambda v, k: _quantity(v, unit, k, minimum, allow_equal))
+
+    def fraction(self, name: str, *, default: Any = _MISSING, allow_zero: bool = False) -> Any:
+        """A fraction written as a number (0.05) or a percentage ('5 %'); 0 < f ≤ 1."""
+        value = self.raw(name, default is _MISSING, "a fraction such as 0.8 or '80 %'")
+        if value is _MISSING:
+            return None if default is _MISSING else default
+        return self._convert(name, value, lambda v, k: _fraction(v, k, allow_zero))
+
+    def integer(self, name: str, *, default: Any = _MISSING, minimum: int = 1) -> Any:
+        """A whole number ≥ ``minimum`` (engineering notation such as '20k' accepted)."""
+        value = self.raw(name, default is _MISSING, f"a whole number ≥ {minimum}, e.g. 20000")
+        if value is _MISSING:
+            return None if default is _MISSING else default
+        return self._convert(name, value, lambda v, k: _integer(v, k, minimum))
+
+    def text(self, name: str, *, default: Any = _MISSING, choices: Iterable[str] = ()) -> Any:
+        """A string, optionally one of ``choices``."""
+        choices = tuple(choices)
+        what = f"one of {_or_list(choices)}" if choices else "a string"
+        value = self.raw(name, default is _MISSING, what)
+        if value is _MISSING:
+            return None if default is _MISSING else default
+        return self._convert(name, value, lambda v, k: _text(v, choices))
+
+    def boolean(self, name: str, *, default: bool) -> bool | None:
+        value = self.raw(name, False, "true or false")
+        if value is _MISSING:
+            return None if default is _MISSING else default
+        if not isinstance(value, bool):
+            self.out.fail(self.key(name), f"expected true or false, got {_kind(value)}")
+            return None
+        return value
+
+    def finish(self) -> None:
+        """Report keys nobody asked for, with the closest known name as a suggestion."""
+        for name in self.data:
+            if name in self.known:
+                continue
+            close = difflib.get_close_matches(name, self.known, n=1, cutoff=0.6)
+            known = ", ".join(self.known)
+            hint = f"did you mean {close[0]!r}?" if close else f"known keys: {known}"
+            self.out.fail(self.key(name), f"unknown key; {hint}")
+
+
+def _kind(value: Any) -> str:
+    """How a TOML value reads in a message: 'a string', 'an array', ..."""
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, str):
+        return f"the string {value!r}"
+    if isinstance(value, int | float):
+        return f"the number {value!r}"
+    if isinstance(value, list):
+        return "an array"
+    if isinstance(value, dict):
+        return "a table"
+    return f"a {type(value).__name__}"
+
+
+def _or_list(choices: Iterable[str]) -> str:
+    return " or ".join(f'"{c}"' for c in choices)
+
+
+def _quantity(value: Any, unit: str, key: str, minimum: float | None, allow_equal: bool) -> float:
+    result = parse_quantity(value, unit, what=key)
+    if minimum is not None and (result < minimum or (result == minimum and not allow_equal)):
+        relation = "≥" if allow_equal else ">"
+        raise ValueError(
+            f"{format_si(result, unit)} is out of range; must be {relation} "
+            f"{format_si(minimum, unit)}, e.g. {_example(unit)}"
+        )
+    return result
+
+
+def _fraction(value: Any, key: str, allow_zero: bool) -> float:
+    if isinstance(value, str) and "%" in value:
+        result = parse_quantity(value, "%", what=key) / 100.0
+    else:
+        result = parse_quantity(value, "", what=key)
+    if not (0.0 <= result <= 1.0) or (result == 0.0 and not allow_zero):
+        low = "0" if allow_zero else "above 0"
+        raise ValueError(
+            f"{value!r} is not a valid fraction; write a value {low} up to 1 (e.g. 0.8) or a "
+            f"percentage up to 100 % (e.g. '80 %')"
+        )
+    return result
+
+
+def _integer(value: Any, key: str, minimum: int) -> int:
+    number = parse_quantity(value, "", what=key)
+    if number != int(number) or number < minimum:
+        raise ValueError(f"{value!r} is not a whole number ≥ {minimum}")
+    return int(number)
+
+
+def _text(value: Any, choices: tuple[str, ...]) -> str:
+    if not isinstance(value, str):
+        raise ValueError(f"expected a string, got {_kind(value)}")
+    if choices and value.lower() not in choices:
+        raise ValueError(f"{value!r} is not valid; expected {_or_list(choices)}")
+    return value.lower() if choices else value
+
+
+def _values(table: _Table, name: str, convert: Callable[[Any, str], float]) -> list[float] | None:
+    """A non-empty array, each element converted; problems name the element's index."""
+    raw = table.raw(name, True, "an array of values, e.g. ['36 V', '48 V']")
+    if raw is _MISSING:
+        return None
+    if not isinstance(raw, list) or not raw:
+        table.out.fail(table.key(name), f"expected a non-empty array of values, got {_kind(raw)}")
+        return None
+    results: list[float] = []
+    for index, value in enumerate(raw):
+        key = f"{table.key(name)}[{index}]"
+        try:
+            results.append(convert(value, key))
+        except (UnitError, ValueError, OverflowError, TypeError) as exc:
+            table.out.fail(key, str(exc).removeprefix(f"{key}: "))
+    if len(results) != len(raw):
+        return None
+    for index, value in enumerate(results):
+        for earlier in results[:index]:
+            if math.isclose(value, earlier, rel_tol=_SAME_VALUE_RTOL):
+                table.out.fail(
+                    f"{table.key(name)}[{index}]",
+                    f"duplicate point: {raw[index]!r} is the same value as an earlier entry; "
+                    "each value may appear once",
+                )
+                break
+    return results
+
+
+# --------------------------------------------------------------------------- sections
+
+
+def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
+    """The [bench] table; also returns the simulated DUT's line kind for the AC/DC check."""
+    table = top.table("bench")
+    if table is None:
+        return None, None
+    kind = table.text("kind", choices=BENCH_KINDS)
+    dut_value = table.raw("dut", kind == "sim", 'a demo DUT name (e.g. "telecom_dc") or a file')
+    scope_map = table.text("scope_map", default="generic")
+    visa_library = table.text("visa_library", default="@py")
+    timeout_s = table.quantity("timeout", "s", default=5.0)
+    resources_table = table.table("resources", required=kind == "visa")
+    limits = _read_bench_limits(table.table("limits"))
+    table.finish()
+
+    resources_map: dict[str, str] = {}
+    if resources_table is not None:
+        if kind == "sim":
+            top.out.fail(resources_table.prefix, 'only for kind = "visa"; a sim bench has its own')
+        for role in BENCH_ROLES:
+            resource = resources_table.text(role)
+            if resource is None:
+                continue
+            if not _VISA_RESOURCE.match(resource):
+                top.out.fail(
+                    resources_table.key(role),
+                    f"{resource!r} is not a VISA resource string; expected e.g. "
+                    "'TCPIP0::192.168.1.20::inst0::INSTR' or 'USB0::0x1234::0x5678::SN1::INSTR'",
+                )
+            resources_map[role] = resource
+        resources_table.finish()
+
+    sim_dut_path, sim_line_kind = None, None
+    if kind == "sim" and dut_value is not _MISSING:
+        sim_dut_path, sim_line_kind = _resolve_sim_dut(
+            top.out, table.key("dut"), dut_value, seq_dir
+        )
+    elif kind == "visa" and dut_value is not _MISSING:
+        top.out.fail(table.key("dut"), 'only for kind = "sim"; a real bench has a real DUT')
+    if isinstance(scope_map, str):
+        scope_map = _resolve_scope_map(top.out, table.key("scope_map"), scope_map, seq_dir)
+
+    if None in (kind, limits, timeout_s, scope_map, visa_library) or (
+        kind == "sim" and sim_dut_path is None
+    ):
+        return None, sim_line_kind
+    bench = Bench(
+        kind=kind,
+        limits=limits,
+        scope_map=scope_map,
+        visa_library=visa_library,
+        timeout_s=timeout_s,
+        resources=resources_map,
+        sim_dut_path=sim_dut_path,
+    )
+    return bench, sim_line_kind
+
+
+def _resolve_sim_dut(out: _Collector, key: str, value: Any, seq_dir: Path) -> tuple[Any, Any]:
+    """The DUT file of a simulated bench: a demo name or a path relative to the sequence file."""
+    from sim_instruments.flyback import DEMO_DUTS, load_dut
+
+    if not isinstance(value, str):
+        out.fail(key, f"expected a demo DUT name or a file path, got {_kind(value)}")
+        return None, None
+    path = DEMO_DUTS[value] if value in DEMO_DUTS else seq_dir / value
+    if not path.is_file():
+        out.fail(
+            key,
+            f"no demo DUT named {value!r} and no file {path}; demo DUTs: "
+            f"{', '.join(sorted(DEMO_DUTS))}, or a DUT file path relative to the sequence file",
+        )
+        return None, None
+    try:
+        design = load_dut(path)
+    except (ValueError, OSError) as exc:
+        out.fail(key, f"the DUT file cannot be used: {exc}")
+        return None, None
+    return path, design.line_kind
+
+
+def _resolve_scope_map(out: _Collector, key: str, value: str, seq_dir: Path) -> str | None:
+    """A scope command-map family shipped in instruments/command_maps, or a file path."""
+    if value.endswith(".toml") or "/" in value or "\\" in value:
+        path = seq_dir / value
+        if path.is_file():
+            return str(path)
+        out.fail(key, f"no command-map file {path}")
+        return None
+    shipped = resources.files("instruments") / "command_maps"
+    families = sorted(p.name[:-5] for p in shipped.iterdir() if p.name.endswith(".toml"))
+    if value in families:
+        return value
+    shipped_text = ", ".join(families)
+    out.fail(key, f"unknown scope family {value!r}; shipped: {shipped_text}, or a .toml file path")
+    return None
+
+
+def _read_bench_limits(table: _Table | None) -> BenchLimits | None:
+    if table is None:
+        return None
+    values = {
+        "source_max_voltage_v": table.quantity("source_max_voltage", "V"),
+        "source_max_current_a": table.quantity("source_max_current", "A"),
+        "load_max_current_a": table.quantity("load_max_current", "A"),
+        "line_step_max_v": table.quantity("line_step_max", "V"),
+        "line_step_dwell_s": table.quantity("line_step_dwell", "s", minimum=0.0, allow_equal=True),
+        "source_min_frequency_hz": table.quantity("source_min_frequency", "Hz", default=None),
+        "source_max_frequency_hz": table.quantity("source_max_frequency", "Hz", default=None),
+        "scope_max_record_length": table.integer("scope_max_record_length", default=None),
+        "probe_max_voltage_v": table.quantity("probe_max_voltage", "V", default=None),
+    }
+    table.finish()
+    if any(values[name] is None for name in _required_fields(BenchLimits)):
+        return None
+    return BenchLimits(**values)
+
+
+def _required_fields(cls: type) -> list[str]:
+    """Names of a dataclass's fields without defaults (the ones a None means 'failed')."""
+    return [f.name for f in fields(cls) if f.default is MISSING and f.default_factory is MISSING]
+
+
+def _read_dut(top: _Table) -> Dut | None:
+    table = top.table("dut")
+    if table is None:
+        return None
+    line_kind = table.text("line_kind", choices=LINE_KINDS)
+    values = {
+        "label": table.text("label"),
+        "line_is_ac": None if line_kind is None else line_kind == "ac",
+        "line_min_v": table.quantity("line_min", "V"),
+        "line_max_v": table.quantity("line_max", "V"),
+        "rated_load_a": table.quantity("rated_load", "A"),
+        "overload_margin": table.fraction("overload_margin", default=0.0, allow_zero=True),
+        "switch_rating_v": table.quantity("switch_rating", "V"),
+        "derating": table.fraction("derating", default=DEFAULT_DERATING),
+        "switching_frequency_hz": table.quantity("switching_frequency", "Hz"),
+        "leakage_inductance_h": table.quantity("leakage_inductance", "H", default=None),
+    }
+    table.finish()
+    if any(values[name] is None for name in _required_fields(Dut)):
+        return None
+    if values["line_min_v"] > values["line_max_v"]:
+        top.out.fail(
+            table.key("line_min"),
+            f"{format_si(values['line_min_v'], 'V')} is above line_max "
+            f"{format_si(values['line_max_v'], 'V')}; line_min must be ≤ line_max",
+        )
+        return None
+    return Dut(**values)
+
+
+def _read_snubber(top: _Table) -> Snubber | None:
+    table = top.table("snubber")
+    if table is None:
+        return None
+    label = table.text("label", default="")
+    resistance = table.quantity("resistance", "Ω")
+    capacitance = table.quantity("capacitance", "F")
+    budget = table.quantity("resistor_power_budget", "W")
+    table.finish()
+    if None in (label, resistance, capacitance, budget):
+        return None
+    label = label or f"RC {format_si(resistance, 'Ω')} / {format_si(capacitance, 'F')}"
+    return Snubber(label, resistance, capacitance, budget)
+
+
+def _read_grid(top: _Table, dut: Dut | None, bench: Bench | None) -> Grid | None:
+    """[grid], with every value checked against the DUT's declared range and the bench."""
+    table = top.table("grid")
+    if table is None:
+        return None
+    line_kind = table.text("line_kind", choices=LINE_KINDS)
+    line_values = _values(table, "line_values", lambda v, k: _quantity(v, "V", k, 0.0, False))
+    frequency = table.quantity("line_frequency", "Hz", default=None)
+    rated_load_a = dut.rated_load_a if dut is not None else None
+    load_values = _values(table, "load_values", lambda v, k: _load_value(v, k, rated_load_a))
+    settle_s = table.quantity("settle", "s", minimum=0.0, allow_equal=True)
+    captures = table.integer("captures_per_point")
+    table.finish()
+
+    out = top.out
+    if line_values is not None:
+        _check_line_values(out, table.key("line_values"), line_values, dut, bench)
+    if load_values is not None:
+        _check_load_values(out, table.key("load_values"), load_values, dut, bench)
+    if line_kind is not None and dut is not None and (line_kind == "ac") != dut.line_is_ac:
+        out.fail(
+            table.key("line_kind"),
+            f'the grid is "{line_kind}" but the DUT takes {_kind_word(dut.line_is_ac)} '
+            "(dut.line_kind); they must match",
+        )
+    if line_kind == "ac" and frequency is None and "line_frequency" not in table.data:
+        out.fail(table.key("line_frequency"), "missing; an AC grid needs it, e.g. '50 Hz'")
+    if line_kind == "dc" and frequency is not None:
+        out.fail(table.key("line_frequency"), 'only for line_kind = "ac"; remove it for DC')
+    if line_kind == "ac" and frequency is not None and bench is not None:
+        low, high = bench.limits.source_min_frequency_hz, bench.limits.source_max_frequency_hz
+        if (low is not None and frequency < low) or (high is not None and frequency > high):
+            out.fail(
+                table.key("line_frequency"),
+                f"{format_si(frequency, 'Hz')} is outside the source's range "
+                f"{format_si(low, 'Hz')} to {format_si(high, 'Hz')} (bench.limits)",
+            )
+    if None in (line_kind, line_values, load_values, settle_s, captures):
+        return None
+    return Grid(
+        line_is_ac=line_kind == "ac",
+        line_values_v=tuple(line_values),
+        line_frequency_hz=frequency or 0.0,
+        load_values_a=tuple(load_values),
+        settle_s=settle_s,
+        captures_per_point=captures,
+    )
+
+
+def _check_line_values(
+    out: _Collector, key: str, values_v: list[float], dut: Dut | None, bench: Bench | None
+) -> None:
+    """Each line value inside the DUT's declared range and under the source's maximum."""
+    for index, line_v in enumerate(values_v):
+        shown = format_si(line_v, "V")
+        if dut is not None and not (dut.line_min_v <= line_v <= dut.line_max_v):
+            out.fail(
+                f"{key}[{index}]",
+                f"{shown} is outside the DUT's declared line range; valid: "
+                f"{format_si(dut.line_min_v, 'V')} to {format_si(dut.line_max_v, 'V')}",
+            )
+        if bench is not None and line_v > bench.limits.source_max_voltage_v:
+            limit = format_si(bench.limits.source_max_voltage_v, "V")
+            out.fail(f"{key}[{index}]", f"{shown} is above bench.limits.source_max_voltage {limit}")
+
+
+def _check_load_values(
+    out: _Collector, key: str, values_a: list[float], dut: Dut | None, bench: Bench | None
+) -> None:
+    """Each load under the DUT's rated load × (1 + margin) and the electronic load's maximum."""
+    for index, load_a in enumerate(values_a):
+        shown = format_si(load_a, "A")
+        if dut is not None and load_a > dut.max_load_a * (1 + _SAME_VALUE_RTOL):
+            out.fail(
+                f"{key}[{index}]",
+                f"{shown} is above the DUT's rated load {format_si(dut.rated_load_a, 'A')} × "
+                f"(1 + overload_margin {dut.overload_margin:.0%}) = "
+                f"{format_si(dut.max_load_a, 'A')}",
+            )
+        if bench is not None and load_a > bench.limits.load_max_current_a:
+            limit = format_si(bench.limits.load_max_current_a, "A")
+            out.fail(f"{key}[{index}]", f"{shown} is above bench.limits.load_max_current {limit}")
+
+
+def _load_value(value: Any, key: str, rated_load_a: float | None) -> float:
+    """A load in amps, or in percent of the DUT's rated load."""
+    if isinstance(value, str) and "%" in value:
+        if rated_load_a is None:
+            raise ValueError("a percentage needs dut.rated_load, which is missing or invalid")
+        return _quantity(value, "%", key, 0.0, False) / 100.0 * rated_load_a
+    return _quantity(value, "A", key, 0.0, False)
+
+
+def _read_scope(top: _Table) -> ScopeSettings | None:
+    table = top.table("scope")
+    if table is None:
+        return None
+    values = {
+        "channel": table.integer("channel"),
+        "volts_per_div_v": table.quantity("volts_per_div", "V"),
+        "offset_v": table.quantity("offset", "V", default=0.0, minimum=None),
+        "probe_ratio": table.quantity("probe_ratio", "", default=1.0),
+        "coupling": table.text("coupling", default="dc", choices=COUPLINGS),
+        "bandwidth_limit_hz": table.quantity(
+            "bandwidth_limit", "Hz", default=0.0, minimum=0.0, allow_equal=True
+        ),
+        "time_per_div_s": table.quantity("time_per_div", "s"),
+        "record_length": table.integer("record_length", minimum=2),
+        "trigger_level_v": table.quantity("trigger_level", "V", minimum=None),
+        "trigger_slope": table.text("trigger_slope", default="rising", choices=TRIGGER_SLOPES),
+        "trigger_position": table.fraction("trigger_position", default=0.1, allow_zero=True),
+        "acquisition_timeout_s": table.quantity("acquisition_timeout", "s", default=2.0),
+        "node": table.text("node", default="primary"),
+    }
+    table.finish()
+    if any(value is None for value in values.values()):
+        return None
+    return ScopeSettings(**values)
+
+
+def _read_limits(top: _Table, dut: Dut | None, snubber: Snubber | None) -> VerdictLimits | None:
+    """[limits]: all optional. Peak defaults to rating × derating, loss to the resistor budget."""
+    table = top.table("limits", required=False)
+    if table is None:
+        table = _Table({}, "limits", top.out)
+    values = {
+        "max_peak_v": table.quantity("max_peak", "V", default=None),
+        "min_stress_margin_v": table.quantity(
+            "min_stress_margin", "V", default=None, minimum=0.0, allow_equal=True
+        ),
+        "min_damping_ratio": table.quantity("min_damping_ratio", "", default=None),
+        "max_q_factor": table.quantity("max_q", "", default=None),
+        "max_settling_time_s": table.quantity("max_settling_time", "s", default=None),
+        "max_snubber_loss_w": table.quantity("max_snubber_loss", "W", default=None),
+        "min_efficiency": table.fraction("min_efficiency", default=None),
+        "settling_band": table.fraction("settling_band", default=DEFAULT_SETTLING_BAND),
+    }
+    table.finish()
+    if values["settling_band"] is None or any(
+        values[name] is None and name in table.data for name in values
+    ):
+        return None
+    if dut is not None:
+        rating_v = dut.switch_rating_v
+        if values["max_peak_v"] is None:
+            values["max_peak_v"] = rating_v * dut.derating
+        elif values["max_peak_v"] > rating_v:
+            top.out.fail(
+                table.key("max_peak"),
+                f"{format_si(values['max_peak_v'], 'V')} is above the switch rating "
+                f"{format_si(rating_v, 'V')}; must be ≤ dut.switch_rating",
+            )
+    if values["max_snubber_loss_w"] is None and snubber is not None:
+        values["max_snubber_loss_w"] = snubber.resistor_power_budget_w
+    return VerdictLimits(**values)
+
+
+# --------------------------------------------------------------------------- cross-checks
+
+
+def _kind_word(is_ac: bool) -> str:
+    return '"ac"' if is_ac else '"dc"'
+
+
+def _check_bench(
+    out: _Collector, bench: Bench, dut: Dut | None, scope: ScopeSettings | None
+) -> None:
+    """Scope and probe limits of the bench against the settings and the DUT."""
+    limits = bench.limits
+    if (
+        scope is not None
+        and limits.scope_max_record_length is not None
+        and (scope.record_length > limits.scope_max_record_length)
+    ):
+        out.fail(
+            "scope.record_length",
+            f"{scope.record_length} is above bench.limits.scope_max_record_length "
+            f"{limits.scope_max_record_length}",
+        )
+    if (
+        dut is not None
+        and limits.probe_max_voltage_v is not None
+        and (limits.probe_max_voltage_v < dut.switch_rating_v)
+    ):
+        out.fail(
+            "bench.limits.probe_max_voltage",
+            f"{format_si(limits.probe_max_voltage_v, 'V')} is below the switch rating "
+            f"{format_si(dut.switch_rating_v, 'V')}, which the node can reach; use a probe rated "
+            "at least that high",
+        )
+
+
+def _check_hazard(out: _Collector, bench: Bench, grid: Grid, acknowledged: bool) -> None:
+    """A real bench above the ES1 limits of IEC 62368-1 needs the file's acknowledgement."""
+    if bench.is_sim or acknowledged:
+        return
+    limit_v = ES1_AC_RMS_LIMIT_V if grid.line_is_ac else ES1_DC_LIMIT_V
+    highest_v = max(grid.line_values_v)
+    if highest_v > limit_v:
+        kind = "AC rms" if grid.line_is_ac else "DC"
+        out.fail(
+            "safety.hazardous_voltage_acknowledged",
+            f"the grid reaches {format_si(highest_v, 'V')} {kind}, above the "
+            f"{format_si(limit_v, 'V')} {kind} limit of ES1 (IEC 62368-1); set it to true only "
+            "once the bench is set up for hazardous voltage",
+        )
+
+
+# --------------------------------------------------------------------------- entry points
+
+
+def load_sequence(path: str | Path) -> Sequence:
+    """Read and validate the sequence file at ``path``; raise :class:`SequenceError` if unusable."""
+    path = Path(path)
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        problem = Problem("(file)", f"cannot read: {exc.strerror}", None)
+        raise SequenceError(path, [problem]) from None
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError:
+        raise SequenceError(path, [Problem("(file)", "not UTF-8 text", None)]) from None
+    return parse_sequence(text, path, sha256=hashlib.sha256(data).hexdigest())
+
+
+def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) -> Sequence:
+    """Validate sequence ``text`` read from ``path`` (relative file names resolve beside it)."""
+    path = Path(path)
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        match = re.search(r"line (\d+)", str(exc))
+        line = int(match.group(1)) if match else None
+        raise SequenceError(path, [Problem("(syntax)", f"not valid TOML: {exc}", line)]) from None
+    out = _Collector(path, text)
+    top = _Table(data, "", out)
+    name = top.text("name", default=path.stem)
+    description = top.text("description", default="")
+    on_point_error = top.text("on_point_error", default="skip", choices=POINT_ERROR_ACTIONS)
+    bench, sim_line_kind = _read_bench(top, path.parent)
+    dut = _read_dut(top)
+    snubber = _read_snubber(top)
+    grid = _read_grid(top, dut, bench)
+    scope = _read_scope(top)
+    limits = _read_limits(top, dut, snubber)
+    safety = top.table("safety", required=False)
+    acknowledged = (
+        False if safety is None else safety.boolean("hazardous_voltage_acknowledged", default=False)
+    )
+    if safety is not None:
+        safety.finish()
+    top.finish()
+
+    if bench is not None:
+        _check_bench(out, bench, dut, scope)
+        if grid is not None and acknowledged is not None:
+            _check_hazard(out, bench, grid, acknowledged)
+    if (
+        dut is not None
+        and sim_line_kind is not None
+        and sim_line_kind != _kind_word(dut.line_is_ac).strip('"')
+    ):
+        out.fail(
+            "dut.line_kind",
+            f'the simulated DUT file (bench.dut) takes "{sim_line_kind}" but dut.line_kind is '
+            f"{_kind_word(dut.line_is_ac)}; they must match",
+        )
+    parts = (name, description, on_point_error, bench, dut, snubber, grid, scope, limits)
+    if out.problems or any(part is None for part in parts) or acknowledged is None:
+        if not out.problems:  # every None above comes with a recorded problem
+            out.fail("(file)", "incomplete sequence")
+        raise SequenceError(path, sorted(out.problems, key=lambda p: p.line or 0))
+    return Sequence(
+        path=path,
+        text=text,
+        sha256=sha256 or hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        name=name,
+        description=description,
+        bench=bench,
+        dut=dut,
+        snubber=snubber,
+        grid=grid,
+        scope=scope,
+        limits=limits,
+        on_point_error=on_point_error,
+        hazardous_voltage_acknowledged=acknowledged,
+    )

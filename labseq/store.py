@@ -1,0 +1,836 @@
+"""The SQLite store: runs, points, raw captures with their scaling, figures and events.
+
+One file holds everything a run produced, so a run can be re-analysed, reviewed or compared long
+after the bench is gone. Captures are stored as the scope sent them — raw integer codes (int8 or
+int16; float32 only for a scope that sends floats) plus the scaling that turns them into volts —
+never as float64 volts, which would cost eight times the space and add nothing.
+
+The file is opened in WAL mode with foreign keys on and ``synchronous=FULL``, so a commit that
+returned is on disk. A point's captures and its state are committed in one transaction: a crash
+leaves a point either pending with no captures or done with all of them. The schema version is
+checked on open; a file written by a newer labseq is refused without being touched.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import sqlite3
+import time
+from collections.abc import Iterable, Iterator, Mapping
+from dataclasses import dataclass, field, fields
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any, Protocol
+
+import numpy as np
+import sqlite_utils
+
+from labseq import __version__
+from labseq.errors import InputError, LabseqError
+
+#: Version of the schema below; a file with a higher version is refused.
+SCHEMA_VERSION = 1
+APPLICATION = "labseq"
+
+#: Page size for new files. Every table and index costs at least one page and each capture
+#: leaves part of a page unused, so small pages keep a store of modest runs small; 1 KiB costs
+#: 0.4 % in overflow-page pointers on long records, against 0.8 % for 512 B pages
+#: (tests/benchmarks/bench_storage.py measures the result).
+PAGE_SIZE = 1024
+
+RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed")
+POINT_STATUSES = ("pending", "done", "failed", "skipped")
+VERDICTS = ("pass", "fail", "incomplete")
+EVENT_KINDS = ("info", "scpi-error", "retry", "skip", "fault", "timing", "safety")
+CODE_DTYPES = ("int8", "int16", "float32")
+
+#: Per-capture figures, one REAL column each (the analysis' names).
+CAPTURE_FIGURES = (
+    "base_v",
+    "plateau_v",
+    "peak_v",
+    "overshoot_v",
+    "overshoot_pct",
+    "rise_time_s",
+    "edge_time_s",
+    "ring_frequency_hz",
+    "decay_rate_per_s",
+    "damping_ratio",
+    "q_factor",
+    "fit_quality",
+    "settling_time_s",
+    "snubber_loss_w",
+    "stress_margin_v",
+)
+
+
+def _sql_list(values: Iterable[str]) -> str:
+    """Constant names as an SQL list for CHECK constraints (module constants, never user values)."""
+    return ", ".join(f"'{value}'" for value in values)
+
+
+_SCHEMA = f"""
+CREATE TABLE schema_info (
+    version INTEGER NOT NULL,
+    application TEXT NOT NULL,
+    created_by TEXT NOT NULL,
+    created_at TEXT NOT NULL
+);
+CREATE TABLE runs (
+    id INTEGER PRIMARY KEY,
+    sequence_text TEXT NOT NULL,
+    sequence_sha256 TEXT NOT NULL,
+    sequence_path TEXT NOT NULL,
+    dut_label TEXT NOT NULL,
+    snubber_label TEXT NOT NULL,
+    bench_kind TEXT NOT NULL,
+    instruments TEXT NOT NULL DEFAULT '{{}}',
+    software_version TEXT NOT NULL,
+    status TEXT NOT NULL CHECK (status IN ({_sql_list(RUN_STATUSES)})),
+    started_at TEXT NOT NULL,
+    finished_at TEXT,
+    notes TEXT NOT NULL DEFAULT '',
+    pid INTEGER,
+    host TEXT
+);
+CREATE TABLE points (
+    id INTEGER PRIMARY KEY,
+    run_id INTEGER NOT NULL REFERENCES runs(id),
+    point_index INTEGER NOT NULL,
+    line_v REAL NOT NULL,
+    line_is_ac INTEGER NOT NULL,
+    line_frequency_hz REAL NOT NULL,
+    load_a REAL NOT NULL,
+    status TEXT NOT NULL DEFAULT 'pending' CHECK (status IN ({_sql_list(POINT_STATUSES)})),
+    source_voltage_v REAL,
+    source_current_a REAL,
+    load_voltage_v REAL,
+    load_current_a REAL,
+    meter_voltage_v REAL,
+    meter_current_a REAL,
+    meter_power_w REAL,
+    meter_power_factor REAL,
+    output_power_w REAL,
+    efficiency REAL,
+    verdict TEXT CHECK (verdict IS NULL OR verdict IN ({_sql_list(VERDICTS)})),
+    verdict_reasons TEXT,
+    started_at TEXT,
+    finished_at TEXT,
+    duration_s REAL,
+    UNIQUE (run_id, point_index)
+);
+CREATE TABLE captures (
+    id INTEGER PRIMARY KEY,
+    point_id INTEGER NOT NULL REFERENCES points(id),
+    run_id INTEGER NOT NULL REFERENCES runs(id),
+    capture_index INTEGER NOT NULL,
+    node TEXT NOT NULL DEFAULT 'primary',
+    channel INTEGER NOT NULL,
+    dtype TEXT NOT NULL CHECK (dtype IN ({_sql_list(CODE_DTYPES)})),
+    x_increment_s REAL NOT NULL,
+    x_origin_s REAL NOT NULL,
+    y_increment_v REAL NOT NULL,
+    y_origin_v REAL NOT NULL,
+    y_reference REAL NOT NULL,
+    code_min REAL,
+    code_max REAL,
+    points INTEGER NOT NULL,
+    captured_at TEXT NOT NULL,
+    codes BLOB NOT NULL,
+    UNIQUE (point_id, capture_index)
+);
+CREATE TABLE capture_figures (
+    capture_id INTEGER PRIMARY KEY REFERENCES captures(id),
+    {", ".join(f"{name} REAL" for name in CAPTURE_FIGURES)},
+    snubber_loss_method TEXT,
+    clipped INTEGER,
+    edge_count INTEGER,
+    error TEXT,
+    edges_json TEXT
+);
+CREATE TABLE point_figures (
+    point_id INTEGER NOT NULL REFERENCES points(id),
+    figure TEXT NOT NULL,
+    worst REAL,
+    mean REAL,
+    spread REAL,
+    n INTEGER NOT NULL,
+    PRIMARY KEY (point_id, figure)
+) WITHOUT ROWID;
+CREATE TABLE events (
+    id INTEGER PRIMARY KEY,
+    run_id INTEGER NOT NULL REFERENCES runs(id),
+    point_id INTEGER REFERENCES points(id),
+    time TEXT NOT NULL,
+    kind TEXT NOT NULL CHECK (kind IN ({_sql_list(EVENT_KINDS)})),
+    message TEXT NOT NULL,
+    data TEXT
+);
+"""
+
+_SQLITE_MAGIC = b"SQLite format 3\x00"
+
+
+class StoreError(LabseqError):
+    """The store cannot do what was asked."""
+
+
+class StoreFileError(StoreError, InputError):
+    """The file named by the user is missing, not a SQLite database, not ours, or too new."""
+
+
+class UnknownRunError(StoreError, InputError):
+    """No run with that id in the store."""
+
+
+# --------------------------------------------------------------------------- records
+
+
+class WaveformLike(Protocol):
+    """What the store needs of a capture: raw codes and the scaling to volts."""
+
+    codes: np.ndarray
+    x_increment_s: float
+    x_origin_s: float
+    y_increment_v: float
+    y_origin_v: float
+    y_reference: float
+    code_min: float | None
+    code_max: float | None
+
+
+@dataclass(frozen=True)
+class CaptureRecord:
+    """A capture to store: the waveform plus where and when it was taken."""
+
+    waveform: WaveformLike
+    channel: int = 1
+    node: str = "primary"
+    captured_at: float = field(default_factory=time.time)  # Unix time, s
+
+
+@dataclass(frozen=True)
+class PointReadings:
+    """Readbacks and meter readings of a point (None = not read)."""
+
+    source_voltage_v: float | None = None
+    source_current_a: float | None = None
+    load_voltage_v: float | None = None
+    load_current_a: float | None = None
+    meter_voltage_v: float | None = None
+    meter_current_a: float | None = None
+    meter_power_w: float | None = None
+    meter_power_factor: float | None = None
+    output_power_w: float | None = None
+    efficiency: float | None = None
+
+
+@dataclass(frozen=True)
+class RunRecord:
+    """One run as stored, with its point counts."""
+
+    id: int
+    status: str
+    started_at: str
+    finished_at: str | None
+    dut_label: str
+    snubber_label: str
+    bench_kind: str
+    sequence_path: str
+    sequence_sha256: str
+    sequence_text: str
+    instruments: dict[str, Any]
+    software_version: str
+    notes: str
+    pid: int | None
+    host: str | None
+    points_total: int
+    points_done: int
+
+
+@dataclass(frozen=True)
+class PointRecord:
+    """One point as stored."""
+
+    id: int
+    run_id: int
+    point_index: int
+    line_v: float
+    line_is_ac: bool
+    line_frequency_hz: float
+    load_a: float
+    status: str
+    source_voltage_v: float | None
+    source_current_a: float | None
+    load_voltage_v: float | None
+    load_current_a: float | None
+    meter_voltage_v: float | None
+    meter_current_a: float | None
+    meter_power_w: float | None
+    meter_power_factor: float | None
+    output_power_w: float | None
+    efficiency: float | None
+    verdict: str | None
+    verdict_reasons: list[str]
+    started_at: str | None
+    finished_at: str | None
+    duration_s: float | None
+
+
+@dataclass(frozen=True)
+class StoredCapture:
+    """A capture read back: raw codes with their scaling (IEEE 488.2 block payload as sent)."""
+
+    id: int
+    point_id: int
+    run_id: int
+    capture_index: int
+    node: str
+    channel: int
+    codes: np.ndarray
+    x_increment_s: float
+    x_origin_s: float
+    y_increment_v: float
+    y_origin_v: float
+    y_reference: float
+    code_min: float | None
+    code_max: float | None
+    captured_at: str
+
+    def volts(self) -> np.ndarray:
+        """Volts at the probe tip: (code − y_reference) × y_increment + y_origin."""
+        return (self.codes.astype(np.float64) - self.y_reference) * self.y_increment_v + (
+            self.y_origin_v
+        )
+
+    def time_s(self) -> np.ndarray:
+        """Sample times, trigger at t = 0: x_origin + i × x_increment."""
+        return self.x_origin_s + np.arange(self.codes.size) * self.x_increment_s
+
+    @property
+    def clipped(self) -> bool:
+        """True when any code sits at the bottom or top of the screen."""
+        low = self.code_min is not None and bool(np.any(self.codes <= self.code_min))
+        return low or (self.code_max is not None and bool(np.any(self.codes >= self.code_max)))
+
+
+def _now_iso(unix_s: float | None = None) -> str:
+    """UTC time as ISO 8601 text with milliseconds."""
+    moment = datetime.fromtimestamp(time.time() if unix_s is None else unix_s, UTC)
+    return moment.isoformat(timespec="milliseconds")
+
+
+def _codes_blob(codes: np.ndarray) -> tuple[bytes, str, int]:
+    """Raw codes as little-endian bytes, their dtype name and their count."""
+    array = np.asarray(codes)
+    name = array.dtype.name
+    if name not in CODE_DTYPES or array.ndim != 1:
+        raise ValueError(
+            f"capture codes must be a 1-D array of {', '.join(CODE_DTYPES)} as the scope sent "
+            f"them, got {array.ndim}-D {name}"
+        )
+    little = array.astype(array.dtype.newbyteorder("<"), copy=False)
+    return little.tobytes(), name, array.size
+
+
+def _edges_json(edges: list[Mapping[str, Any]]) -> str:
+    """Per-edge figures as compact JSON: the names once, then one row of values per edge."""
+    names = list(dict.fromkeys(name for edge in edges for name in edge))
+    rows = [[edge.get(name) for name in names] for edge in edges]
+    return json.dumps({"names": names, "rows": rows}, separators=(",", ":"))
+
+
+def _edges_from_json(text: str | None) -> list[dict[str, Any]]:
+    """Inverse of :func:`_edges_json`."""
+    if not text:
+        return []
+    table = json.loads(text)
+    return [dict(zip(table["names"], row, strict=True)) for row in table["rows"]]
+
+
+def _record(cls: type, row: Mapping[str, Any], **overrides: Any) -> Any:
+    """Build dataclass ``cls`` from a row's columns of the same names."""
+    values = {f.name: row[f.name] for f in fields(cls) if f.name not in overrides}
+    return cls(**values, **overrides)
+
+
+# --------------------------------------------------------------------------- opening
+
+
+def _inspect_existing(path: Path) -> int | None:
+    """Check an existing file without changing it: its schema version, or None if it is empty.
+
+    Raises :class:`StoreFileError` for a file that is not SQLite, not ours, or too new.
+    """
+    with path.open("rb") as handle:
+        header = handle.read(len(_SQLITE_MAGIC))
+    if header != _SQLITE_MAGIC:
+        raise StoreFileError(f"{path}: not a SQLite database; give a labseq store (.sqlite)")
+    try:
+        conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
+        try:
+            tables = [row[0] for row in conn.execute("SELECT name FROM sqlite_master")]
+            if not tables:
+                return None
+            if "schema_info" not in tables:
+                raise StoreFileError(
+                    f"{path}: a SQLite database but not a labseq store (it holds "
+                    f"{', '.join(sorted(tables)[:5])}); give another file name"
+                )
+            row = conn.execute("SELECT version, application FROM schema_info").fetchone()
+        finally:
+            conn.close()
+    except sqlite3.DatabaseError as exc:
+        raise StoreFileError(f"{path}: cannot be read as a SQLite database ({exc})") from None
+    if row is None or row[1] != APPLICATION or not isinstance(row[0], int):
+        raise StoreFileError(f"{path}: not a labseq store (its schema_info is not ours)")
+    if row[0] > SCHEMA_VERSION:
+        raise StoreFileError(
+            f"{path}: written by a newer labseq (schema version {row[0]}; this labseq "
+            f"{__version__} reads version {SCHEMA_VERSION}); upgrade labseq to open it. "
+            "The file was not changed."
+        )
+    if row[0] < 1:
+        raise StoreFileError(f"{path}: schema version {row[0]} is not a labseq version")
+    return row[0]
+
+
+class Store:
+    """A labseq SQLite store; use as a context manager.
+
+    ``Store(path)`` opens the file, creating it when missing unless ``create=False`` (then a
+    missing file is a :class:`StoreFileError`, exit status 2).
+    """
+
+    def __init__(self, path: str | Path, *, create: bool = True) -> None:
+        self.path = Path(path)
+        exists = self.path.is_file() and self.path.stat().st_size > 0
+        if not exists and not create:
+            raise StoreFileError(f"{self.path}: no such store; give --db the path of a run's file")
+        version = _inspect_existing(self.path) if exists else None
+        conn = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
+        conn.row_factory = sqlite3.Row
+        self.db = sqlite_utils.Database(conn, execute_plugins=False)
+        if version is None:
+            conn.execute(f"PRAGMA page_size = {PAGE_SIZE}")
+        conn.execute("PRAGMA journal_mode = WAL")
+        conn.execute("PRAGMA synchronous = FULL")
+        conn.execute("PRAGMA foreign_keys = ON")
+        if version is None:
+            with self.db.atomic():
+                for statement in _SCHEMA.split(";"):
+                    if statement.strip():
+                        conn.execute(" ".join(statement.split()))  # stored text kept short
+                self.db["schema_info"].insert(
+                    {
+                        "version": SCHEMA_VERSION,
+                        "application": APPLICATION,
+                        "created_by": __version__,
+                        "created_at": _now_iso(),
+                    }
+                )
+
+    def __enter__(self) -> Store:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Close the file (SQLite folds the write-ahead log back into it)."""
+        self.db.close()
+
+    # ------------------------------------------------------------------- runs
+
+    def create_run(
+        self,
+        *,
+        sequence_text: str,
+        sequence_sha256: str,
+        sequence_path: str,
+        dut_label: str,
+        snubber_label: str,
+        bench_kind: str,
+        instruments: Mapping[str, Any] | None = None,
+        notes: str = "",
+    ) -> int:
+        """Record a new run in status "running" for this process; return its id."""
+        with self.db.atomic():
+            table = self.db["runs"].insert(
+                {
+                    "sequence_text": sequence_text,
+                    "sequence_sha256": sequence_sha256,
+                    "sequence_path": sequence_path,
+                    "dut_label": dut_label,
+                    "snubber_label": snubber_label,
+                    "bench_kind": bench_kind,
+                    "instruments": json.dumps(dict(instruments or {})),
+                    "software_version": __version__,
+                    "status": "running",
+                    "started_at": _now_iso(),
+                    "notes": notes,
+                    "pid": os.getpid(),
+                    "host": socket.gethostname(),
+                }
+            )
+        return int(table.last_pk)
+
+    def set_run_status(self, run_id: int, status: str, *, notes: str | None = None) -> None:
+        """Set a run's status; any status but "running" also stamps its finish time."""
+        self._require_run(run_id)
+        updates: dict[str, Any] = {"status": status}
+        updates["finished_at"] = None if status == "running" else _now_iso()
+        if notes is not None:
+            updates["notes"] = notes
+        with self.db.atomic():
+            self.db["runs"].update(run_id, updates)
+
+    def runs(self) -> list[RunRecord]:
+        """All runs, oldest first, with their point counts."""
+        return [self._run_record(row) for row in self.db.query(_RUNS_QUERY + " ORDER BY r.id")]
+
+    def run(self, run_id: int) -> RunRecord:
+        """One run; :class:`UnknownRunError` if there is none with that id."""
+        rows = list(self.db.query(_RUNS_QUERY + " WHERE r.id = ?", [run_id]))
+        if not rows:
+            raise self._unknown_run(run_id)
+        return self._run_record(rows[0])
+
+    def mark_abandoned_runs(self) -> list[int]:
+        """Mark "interrupted" the runs left "running" by a process of this host that is gone."""
+        host = socket.gethostname()
+        abandoned = [
+            run.id
+            for run in self.runs()
+            if run.status == "running" and run.host == host and not _process_alive(run.pid)
+        ]
+        for run_id in abandoned:
+            self.set_run_status(run_id, "interrupted")
+        return abandoned
+
+    # ------------------------------------------------------------------- points
+
+    def add_points(
+        self,
+        run_id: int,
+        points: Iterable[tuple[float, float]],
+        *,
+        line_is_ac: bool,
+        line_frequency_hz: float = 0.0,
+    ) -> list[int]:
+        """Add the run's grid, in order, as pending points; return their ids."""
+        self._require_run(run_id)
+        ids = []
+        with self.db.atomic():
+            start = self._next_index("points", "point_index", "run_id", run_id)
+            for offset, (line_v, load_a) in enumerate(points):
+                table = self.db["points"].insert(
+                    {
+                        "run_id": run_id,
+                        "point_index": start + offset,
+                        "line_v": float(line_v),
+                        "line_is_ac": int(line_is_ac),
+                        "line_frequency_hz": float(line_frequency_hz),
+                        "load_a": float(load_a),
+                        "status": "pending",
+                    }
+                )
+                ids.append(int(table.last_pk))
+        return ids
+
+    def points(self, run_id: int, *, status: str | None = None) -> list[PointRecord]:
+        """The run's points in grid order, optionally only those with ``status``."""
+        self._require_run(run_id)
+        where, params = "run_id = ?", [run_id]
+        if status is not None:
+            where, params = where + " AND status = ?", [run_id, status]
+        rows = self.db["points"].rows_where(where, params, order_by="point_index")
+        return [self._point_record(row) for row in rows]
+
+    def pending_points(self, run_id: int) -> list[PointRecord]:
+        """Points still to do (for a first pass or a resumed run)."""
+        return self.points(run_id, status="pending")
+
+    def point(self, point_id: int) -> PointRecord:
+        """One point by id."""
+        rows = list(self.db["points"].rows_where("id = ?", [point_id]))
+        if not rows:
+            raise StoreError(f"no point with id {point_id}")
+        return self._point_record(rows[0])
+
+    def commit_point(
+        self,
+        point_id: int,
+        *,
+        captures: Iterable[CaptureRecord] = (),
+        readings: PointReadings | None = None,
+        status: str = "done",
+        started_at: float | None = None,
+    ) -> list[int]:
+        """Store a point's captures and readings and set its status, all in ONE transaction.
+
+        Either everything is stored or (on any error) nothing is. ``started_at`` (Unix time, s)
+        is when the point began; the finish time is now. Returns the new capture ids.
+        """
+        with self.db.atomic():
+            ids = [self._insert_capture(point_id, capture) for capture in captures]
+            self._update_point(point_id, status, readings, started_at)
+        return ids
+
+    def add_capture(
+        self,
+        point_id: int,
+        capture: CaptureRecord,
+        *,
+        point_status: str | None = None,
+        readings: PointReadings | None = None,
+        started_at: float | None = None,
+    ) -> int:
+        """Store one capture in its own transaction; with ``point_status`` (given with the last
+        capture) the point's state is set in that same transaction. Returns the capture id."""
+        with self.db.atomic():
+            capture_id = self._insert_capture(point_id, capture)
+            if point_status is not None:
+                self._update_point(point_id, point_status, readings, started_at)
+        return capture_id
+
+    def set_point_verdict(self, point_id: int, verdict: str, reasons: Iterable[str]) -> None:
+        """Record a point's verdict and the reasons behind it."""
+        with self.db.atomic():
+            self.db["points"].update(
+                point_id, {"verdict": verdict, "verdict_reasons": json.dumps(list(reasons))}
+            )
+
+    def set_point_figures(
+        self, point_id: int, figures: Mapping[str, Mapping[str, float | int | None]]
+    ) -> None:
+        """Replace a point's aggregated figures: figure name → {worst, mean, spread, n}."""
+        rows = [
+            {
+                "point_id": point_id,
+                "figure": name,
+                "worst": values.get("worst"),
+                "mean": values.get("mean"),
+                "spread": values.get("spread"),
+                "n": int(values.get("n") or 0),
+            }
+            for name, values in figures.items()
+        ]
+        with self.db.atomic():
+            self.db.execute("DELETE FROM point_figures WHERE point_id = ?", [point_id])
+            if rows:
+                self.db["point_figures"].insert_all(rows)
+
+    def point_figures(self, run_id: int) -> dict[int, dict[str, dict[str, Any]]]:
+        """Aggregated figures of every point of a run: point id → figure → {worst, mean, ...}."""
+        result: dict[int, dict[str, dict[str, Any]]] = {}
+        query = (
+            "SELECT f.* FROM point_figures f JOIN points p ON p.id = f.point_id "
+            "WHERE p.run_id = ? ORDER BY p.point_index, f.figure"
+        )
+        for row in self.db.query(query, [run_id]):
+            values = {key: row[key] for key in ("worst", "mean", "spread", "n")}
+            result.setdefault(row["point_id"], {})[row["figure"]] = values
+        return result
+
+    # ------------------------------------------------------------------- captures
+
+    def captures(self, point_id: int, *, with_codes: bool = True) -> list[StoredCapture]:
+        """A point's captures in order; ``with_codes=False`` leaves the BLOBs unread."""
+        return list(self._iter_captures("c.point_id = ?", [point_id], with_codes))
+
+    def iter_captures(self, run_id: int, *, with_codes: bool = True) -> Iterator[StoredCapture]:
+        """A run's captures in point and capture order, read one at a time."""
+        self._require_run(run_id)
+        return self._iter_captures("c.run_id = ?", [run_id], with_codes)
+
+    def set_capture_figures(
+        self,
+        capture_id: int,
+        figures: Mapping[str, Any],
+        *,
+        edges: Iterable[Mapping[str, Any]] = (),
+        error: str | None = None,
+    ) -> None:
+        """Store one capture's figures (those of its worst edge), its edges and any analysis
+        error. ``figures`` uses the analysis' names; unknown names are a programming error."""
+        allowed = {*CAPTURE_FIGURES, "snubber_loss_method", "clipped"}
+        unknown = sorted(set(figures) - allowed)
+        if unknown:
+            raise ValueError(f"unknown capture figures {unknown}; known: {sorted(allowed)}")
+        edges = list(edges)
+        record: dict[str, Any] = {"capture_id": capture_id, **figures}
+        if "clipped" in record and record["clipped"] is not None:
+            record["clipped"] = int(bool(record["clipped"]))
+        edges_json = _edges_json(edges) if edges else None
+        record.update(edge_count=len(edges), error=error, edges_json=edges_json)
+        with self.db.atomic():
+            self.db["capture_figures"].insert(record, replace=True)
+
+    def capture_figures(self, capture_id: int) -> dict[str, Any] | None:
+        """The stored figures of one capture (edges decoded), or None before analysis."""
+        rows = list(self.db["capture_figures"].rows_where("capture_id = ?", [capture_id]))
+        if not rows:
+            return None
+        result = dict(rows[0])
+        result["edges"] = _edges_from_json(result.pop("edges_json"))
+        return result
+
+    # ------------------------------------------------------------------- events
+
+    def log_event(
+        self,
+        run_id: int,
+        kind: str,
+        message: str,
+        *,
+        point_id: int | None = None,
+        data: Mapping[str, Any] | None = None,
+    ) -> int:
+        """Record something that happened during a run (its own transaction); return its id."""
+        with self.db.atomic():
+            table = self.db["events"].insert(
+                {
+                    "run_id": run_id,
+                    "point_id": point_id,
+                    "time": _now_iso(),
+                    "kind": kind,
+                    "message": message,
+                    "data": None if data is None else json.dumps(dict(data), separators=(",", ":")),
+                }
+            )
+        return int(table.last_pk)
+
+    def events(self, run_id: int) -> list[dict[str, Any]]:
+        """A run's events in order, ``data`` decoded."""
+        rows = self.db["events"].rows_where("run_id = ?", [run_id], order_by="id")
+        return [
+            {**row, "data": None if row["data"] is None else json.loads(row["data"])}
+            for row in rows
+        ]
+
+    # ------------------------------------------------------------------- maintenance
+
+    def integrity_check(self) -> str:
+        """SQLite's own check of the file: "ok" when sound."""
+        return "; ".join(row[0] for row in self.db.execute("PRAGMA integrity_check").fetchall())
+
+    def checkpoint(self) -> None:
+        """Fold the write-ahead log into the main file and empty it."""
+        self.db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+
+    # ------------------------------------------------------------------- internals
+
+    def _insert_capture(self, point_id: int, capture: CaptureRecord) -> int:
+        waveform = capture.waveform
+        blob, dtype, count = _codes_blob(waveform.codes)
+        rows = list(self.db.query("SELECT run_id FROM points WHERE id = ?", [point_id]))
+        if not rows:
+            raise StoreError(f"no point with id {point_id}")
+        table = self.db["captures"].insert(
+            {
+                "point_id": point_id,
+                "run_id": rows[0]["run_id"],
+                "capture_index": self._next_index(
+                    "captures", "capture_index", "point_id", point_id
+                ),
+                "node": capture.node,
+                "channel": int(capture.channel),
+                "dtype": dtype,
+                "x_increment_s": float(waveform.x_increment_s),
+                "x_origin_s": float(waveform.x_origin_s),
+                "y_increment_v": float(waveform.y_increment_v),
+                "y_origin_v": float(waveform.y_origin_v),
+                "y_reference": float(waveform.y_reference),
+                "code_min": waveform.code_min,
+                "code_max": waveform.code_max,
+                "points": count,
+                "captured_at": _now_iso(capture.captured_at),
+                "codes": blob,
+            }
+        )
+        return int(table.last_pk)
+
+    def _update_point(
+        self,
+        point_id: int,
+        status: str,
+        readings: PointReadings | None,
+        started_at: float | None,
+    ) -> None:
+        finished = time.time()
+        updates: dict[str, Any] = {"status": status, "finished_at": _now_iso(finished)}
+        if started_at is not None:
+            updates.update(started_at=_now_iso(started_at), duration_s=finished - started_at)
+        if readings is not None:
+            updates.update({f.name: getattr(readings, f.name) for f in fields(PointReadings)})
+        cursor = self.db.execute(
+            "UPDATE points SET "
+            + ", ".join(f"{name} = ?" for name in updates)  # names from this module only
+            + " WHERE id = ?",
+            [*updates.values(), point_id],
+        )
+        if cursor.rowcount != 1:
+            raise StoreError(f"no point with id {point_id}")
+
+    def _next_index(self, table: str, column: str, parent: str, parent_id: int) -> int:
+        # table and column names are this module's constants; the id is a parameter
+        query = f"SELECT COALESCE(MAX({column}) + 1, 0) FROM {table} WHERE {parent} = ?"
+        return int(self.db.execute(query, [parent_id]).fetchone()[0])
+
+    def _iter_captures(
+        self, where: str, params: list[Any], with_codes: bool
+    ) -> Iterator[StoredCapture]:
+        columns = [f.name for f in fields(StoredCapture) if f.name != "codes"]
+        query = (
+            f"SELECT {', '.join('c.' + name for name in columns)}, c.dtype"
+            + (", c.codes" if with_codes else "")
+            + " FROM captures c JOIN points p ON p.id = c.point_id"
+            + f" WHERE {where} ORDER BY p.point_index, c.capture_index"
+        )
+        for row in self.db.execute(query, params):
+            dtype = np.dtype(row["dtype"]).newbyteorder("<")
+            codes = np.frombuffer(row["codes"], dtype=dtype) if with_codes else np.empty(0, dtype)
+            yield _record(StoredCapture, row, codes=codes)
+
+    def _require_run(self, run_id: int) -> None:
+        if not list(self.db.query("SELECT 1 FROM runs WHERE id = ?", [run_id])):
+            raise self._unknown_run(run_id)
+
+    def _unknown_run(self, run_id: int) -> UnknownRunError:
+        ids = [str(row["id"]) for row in self.db.query("SELECT id FROM runs ORDER BY id")]
+        known = f"runs in this store: {', '.join(ids)}" if ids else "this store holds no runs"
+        return UnknownRunError(f"{self.path}: no run {run_id}; {known}")
+
+    @staticmethod
+    def _run_record(row: Mapping[str, Any]) -> RunRecord:
+        return _record(RunRecord, row, instruments=json.loads(row["instruments"]))
+
+    @staticmethod
+    def _point_record(row: Mapping[str, Any]) -> PointRecord:
+        reasons = json.loads(row["verdict_reasons"]) if row["verdict_reasons"] else []
+        return _record(
+            PointRecord, row, line_is_ac=bool(row["line_is_ac"]), verdict_reasons=reasons
+        )
+
+
+_RUNS_QUERY = """
+SELECT r.*,
+    (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id) AS points_total,
+    (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id AND p.status = 'done') AS points_done
+FROM runs r"""
+
+
+def _process_alive(pid: int | None) -> bool:
+    """True when a process with ``pid`` exists on this host."""
+    if pid is None:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, owned by another user
+        pass
+    return True

@@ -1,0 +1,143 @@
+"""Fault injection for the simulated bench, chosen when the bench starts.
+
+A fault spec is ``ROLE:KIND@WHEN``; several are separated by commas, for example
+``scope:no-trigger@point=3,meter:malformed@call=12``.
+
+* ``ROLE``: ``source``, ``load``, ``meter`` or ``scope``.
+* ``KIND``:
+
+  - ``no-reply``: the next query from that moment on is executed but never answered;
+  - ``drop``: the server closes that client's connection (new connections are still accepted);
+  - ``scpi-error``: the next message carrying a setting command is refused and −300
+    "Device-specific error" is queued, as a real instrument does when its hardware refuses;
+  - ``no-trigger`` (scope only): the next ``:SINGle`` acquisition never completes;
+  - ``malformed``: the next query reply is garbage (``9.9.9E+``, or a block whose header is not
+    IEEE 488.2).
+
+* ``WHEN``: ``call=N``, the N-th message the role receives (1-based); or ``point=N``, the first
+  message to the role after the bench's N-th load current setpoint (the N-th operating point).
+
+Each fault fires once, and every firing is recorded with its time.
+"""
+
+from __future__ import annotations
+
+import re
+import threading
+import time
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+
+from sim_instruments.server import Interceptor, ParsedMessage
+
+ROLES = ("source", "load", "meter", "scope")
+KINDS = ("no-reply", "drop", "scpi-error", "no-trigger", "malformed")
+MOMENTS = ("call", "point")
+#: Which messages each kind acts on once its moment has come.
+_TARGETS: dict[str, Callable[[ParsedMessage], bool]] = {
+    "no-reply": lambda message: message.has_query,
+    "malformed": lambda message: message.has_query,
+    "drop": lambda message: True,
+    "scpi-error": lambda message: message.has_setting,
+    "no-trigger": lambda message: message.has_header("SINGle"),
+}
+
+_SPEC = re.compile(r"(?P<role>[a-z]+):(?P<kind>[a-z-]+)@(?P<moment>[a-z]+)=(?P<count>\d+)")
+_FORMS = "ROLE:KIND@call=N or ROLE:KIND@point=N, comma-separated"
+
+
+class FaultSpecError(ValueError):
+    """A fault spec that cannot be read; the message names it and lists what is valid."""
+
+
+@dataclass(frozen=True)
+class FaultSpec:
+    """One planned fault: ``role``, ``kind``, and its moment (``call`` or ``point``, ``count``)."""
+
+    role: str
+    kind: str
+    moment: str
+    count: int
+
+    @property
+    def when(self) -> str:
+        return f"{self.moment}={self.count}"
+
+    def __str__(self) -> str:
+        return f"{self.role}:{self.kind}@{self.when}"
+
+
+@dataclass(frozen=True)
+class FiredFault:
+    """A fault that fired: which, on which message number of its role, and when (epoch s)."""
+
+    role: str
+    kind: str
+    when: str
+    message_number: int
+    time_s: float
+
+
+def parse_fault_specs(spec: str | Iterable[str]) -> list[FaultSpec]:
+    """Read fault specs from a comma-separated string or an iterable of single specs."""
+    items = spec.split(",") if isinstance(spec, str) else list(spec)
+    faults = []
+    for item in items:
+        text = item.strip()
+        if not text:
+            continue
+        found = _SPEC.fullmatch(text.lower())
+        if found is None:
+            raise FaultSpecError(f"fault spec {text!r}: expected {_FORMS}")
+        role, kind, moment = found["role"], found["kind"], found["moment"]
+        count = int(found["count"])
+        if role not in ROLES:
+            raise FaultSpecError(f"fault spec {text!r}: role {role!r}; valid: {', '.join(ROLES)}")
+        if kind not in KINDS:
+            raise FaultSpecError(f"fault spec {text!r}: kind {kind!r}; valid: {', '.join(KINDS)}")
+        if moment not in MOMENTS:
+            raise FaultSpecError(f"fault spec {text!r}: moment {moment!r}; expected {_FORMS}")
+        if count < 1:
+            raise FaultSpecError(f"fault spec {text!r}: {moment} counts from 1")
+        if kind == "no-trigger" and role != "scope":
+            raise FaultSpecError(f"fault spec {text!r}: no-trigger applies to the scope only")
+        faults.append(FaultSpec(role, kind, moment, count))
+    return faults
+
+
+class FaultPlan:
+    """The faults of one bench: counts messages per role and decides when each fault fires.
+
+    ``point_count`` returns how many load current setpoints the bench has received so far.
+    """
+
+    def __init__(self, specs: Iterable[FaultSpec], point_count: Callable[[], int]) -> None:
+        self._pending = list(specs)
+        self._point_count = point_count
+        self._message_counts = dict.fromkeys(ROLES, 0)
+        self._lock = threading.Lock()
+        self.fired: list[FiredFault] = []
+
+    def interceptor(self, role: str) -> Interceptor:
+        """The hook the server of ``role`` calls before each message."""
+        return lambda message: self.on_message(role, message)
+
+    def on_message(self, role: str, message: ParsedMessage) -> str | None:
+        """Count the message; return the kind of the fault that fires on it, if one does."""
+        with self._lock:
+            self._message_counts[role] += 1
+            number = self._message_counts[role]
+            for spec in self._pending:
+                if spec.role != role or not self._moment_reached(spec, number):
+                    continue
+                if not _TARGETS[spec.kind](message):
+                    continue
+                self._pending.remove(spec)
+                self.fired.append(FiredFault(role, spec.kind, spec.when, number, time.time()))
+                return spec.kind
+        return None
+
+    def _moment_reached(self, spec: FaultSpec, message_number: int) -> bool:
+        if spec.moment == "call":
+            return message_number >= spec.count
+        return self._point_count() >= spec.count

@@ -1,0 +1,400 @@
+"""Physical model of the simulated DUT: a flyback power stage seen from the bench.
+
+The instruments of the simulated bench share one :class:`FlybackModel`: the line source sets the
+bus, the electronic load sets the load current, the power meter reads :meth:`line_reading` and
+the oscilloscope samples :meth:`switch_node_v` at an :meth:`operating_point`.
+
+Operating point (a textbook flyback power stage, e.g. Pressman, *Switching Power Supply Design*):
+input power Pin = Pout + losses, with the losses (RC damper, RCD clamp, leakage-loop damping,
+capacitive turn-on and the design's other losses) taken from the integrated turn-off transient of
+:mod:`sim_instruments.flyback_transient`, so Pin and the transient are iterated together. DCM
+when the energy ½·Lm·Ipk²·fsw that delivers Pin fits in the period (on-time plus demagnetisation
+time Lm·Ipk/Vr), CCM otherwise with the ideal duty D = Vr/(Vin + Vr).
+"""
+
+from __future__ import annotations
+
+import math
+from collections import OrderedDict
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import brentq
+
+from sim_instruments.flyback_design import (
+    DEMO_DUTS,
+    DutFileError,
+    FlybackDesign,
+    load_dut,
+    resolve_dut,
+)
+from sim_instruments.flyback_transient import NodeNetwork, PeriodResult
+
+__all__ = [
+    "DEMO_DUTS",
+    "DutFileError",
+    "FlybackDesign",
+    "FlybackModel",
+    "LineReading",
+    "OperatingPoint",
+    "load_dut",
+    "resolve_dut",
+]
+
+#: Forward drop of one bridge-rectifier diode (AC line), common practice, no published source.
+BRIDGE_DIODE_DROP_V = 0.9
+#: Steady state: input-power residual (relative) and clamp-voltage correction (V) accepted.
+POWER_RTOL = 3e-4
+CLAMP_VTOL = 0.1
+MAX_ITERATIONS = 30
+#: Operating points (with their recorded waveforms) kept per model.
+CACHE_SIZE = 256
+
+
+@dataclass(frozen=True)
+class OperatingPoint:
+    """The converter's steady state at one bus voltage and load."""
+
+    bulk_voltage_v: float
+    load_a: float
+    output_voltage_v: float
+    mode: str  # "DCM" or "CCM"
+    duty: float
+    peak_current_a: float
+    reflected_voltage_v: float
+    output_power_w: float
+    snubber_loss_w: float
+    clamp_loss_w: float
+    input_power_w: float
+    efficiency: float
+    # settled clamp capacitor voltage (absolute) if fitted: the steady voltage that dissipates the
+    # clamp loss in the clamp resistor, i.e. the capacitor's level averaged over its small ripple
+    clamp_voltage_v: float | None
+    damping_loss_w: float = 0.0  # leakage-loop series resistance
+    switching_loss_w: float = 0.0  # node capacitance discharged by the switch at turn-on
+    other_loss_w: float = 0.0  # conduction, core and rectifier losses (design fraction of Pout)
+    demag_time_s: float | None = None  # end of secondary conduction in DCM
+
+
+@dataclass(frozen=True)
+class LineReading:
+    """What a power meter on the line input reads (AC: rms values over the line cycle)."""
+
+    voltage_v: float
+    current_a: float
+    power_w: float
+    power_factor: float
+
+
+@dataclass(frozen=True)
+class _Primary:
+    """Primary-side switching quantities for one input power."""
+
+    mode: str
+    peak_current_a: float
+    duty: float
+    off_time_s: float
+
+
+class FlybackModel:
+    """The flyback power stage of one :class:`FlybackDesign`, with its results cached."""
+
+    def __init__(self, design: FlybackDesign) -> None:
+        self.design = design
+        self.period_s = 1.0 / design.switching_frequency_hz
+        self._points: OrderedDict[tuple[float, float], tuple[OperatingPoint, np.ndarray, float]]
+        self._points = OrderedDict()
+        # converged (x, Jacobian) per load and bus voltage: starting points for nearby buses
+        self._solved: dict[float, dict[float, tuple[np.ndarray, np.ndarray]]] = {}
+
+    # --- line side ------------------------------------------------------------------------------
+
+    def bulk_voltage_v(
+        self,
+        line_v: float,
+        line_is_ac: bool,
+        line_frequency_hz: float,
+        load_a: float,
+        line_phase_rad: float,
+    ) -> float:
+        """Bus voltage at a point of the line cycle (phase 0 = line zero crossing).
+
+        DC: the line voltage. AC: the capacitor-input rectifier's bus, which follows the
+        rectified line (peak √2·Vrms less two bridge drops) while the bridge conducts and
+        otherwise discharges at the converter's input power: C·v·dv/dt = -Pin.
+        """
+        if not line_is_ac:
+            return max(float(line_v), 0.0)
+        peak_v, start_rad, power_w = self._rectifier(line_v, line_frequency_hz, load_a)
+        if power_w == 0.0 or peak_v == 0.0:
+            return peak_v
+        omega = 2.0 * math.pi * line_frequency_hz
+        psi = math.fmod(line_phase_rad, math.pi)
+        psi = psi + math.pi if psi < 0.0 else psi
+        if start_rad <= psi <= math.pi / 2.0:
+            return peak_v * math.sin(psi)
+        since_peak_s = math.fmod(psi - math.pi / 2.0 + math.pi, math.pi) / omega
+        return self._discharged_v(peak_v, power_w, since_peak_s)
+
+    def _discharged_v(self, peak_v: float, power_w: float, since_peak_s: float) -> float:
+        """Bulk capacitor voltage a time after the peak, discharging at constant power."""
+        return math.sqrt(
+            max(peak_v**2 - 2.0 * power_w * since_peak_s / self.design.bulk_capacitance_f, 0.0)
+        )
+
+    def _rectifier(
+        self, line_v: float, line_frequency_hz: float, load_a: float
+    ) -> tuple[float, float, float]:
+        """(peak bus V, phase where the bridge starts conducting, converter input power)."""
+        peak_v = max(math.sqrt(2.0) * line_v - 2.0 * BRIDGE_DIODE_DROP_V, 0.0)
+        if peak_v == 0.0 or load_a <= 0.0:
+            return peak_v, math.pi / 2.0, 0.0
+        power_w = self.operating_point(peak_v, load_a).input_power_w
+        omega = 2.0 * math.pi * line_frequency_hz
+
+        def gap(psi: float) -> float:
+            since_peak_s = (psi + math.pi / 2.0) / omega
+            return peak_v * math.sin(psi) - self._discharged_v(peak_v, power_w, since_peak_s)
+
+        start_rad = brentq(gap, 0.0, math.pi / 2.0) if gap(0.0) < 0.0 else 0.0
+        return peak_v, start_rad, power_w
+
+    def line_reading(
+        self, line_v: float, line_is_ac: bool, line_frequency_hz: float, load_a: float
+    ) -> LineReading:
+        """Power-meter reading on the line input, averaged over the line cycle.
+
+        AC: the bridge conducts from its start phase to the peak; the line current there is
+        C·dv/dt plus the converter's draw Pin/v, zero elsewhere, which gives the capacitor-input
+        rectifier's poor power factor. This ideal pulse (no line impedance) is a common-practice
+        estimate, no published source; a real line's impedance widens the pulses and raises the
+        power factor somewhat.
+        """
+        if load_a <= 0.0 or line_v <= 0.0:
+            return LineReading(float(max(line_v, 0.0)), 0.0, 0.0, 1.0 if not line_is_ac else 0.0)
+        if not line_is_ac:
+            power_w = self.operating_point(line_v, load_a).input_power_w
+            return LineReading(float(line_v), power_w / line_v, power_w, 1.0)
+        peak_v, start_rad, converter_w = self._rectifier(line_v, line_frequency_hz, load_a)
+        omega = 2.0 * math.pi * line_frequency_hz
+        psi = np.linspace(start_rad, math.pi / 2.0, 2001)
+        bus_v = peak_v * np.sin(psi)
+        bulk_a = self.design.bulk_capacitance_f * peak_v * omega * np.cos(psi)
+        line_a = bulk_a + converter_w / np.maximum(bus_v, 1e-9)
+        # rms over a half cycle: the current flows only in [start, π/2] of each half period
+        mean_square = np.trapezoid(line_a**2, psi) / math.pi
+        mean_current = np.trapezoid(line_a, psi) / math.pi
+        current_a = math.sqrt(mean_square)
+        power_w = converter_w + 2.0 * BRIDGE_DIODE_DROP_V * mean_current
+        apparent = line_v * current_a
+        return LineReading(float(line_v), current_a, power_w, min(power_w / apparent, 1.0))
+
+    # --- power stage ----------------------------------------------------------------------------
+
+    def _primary(self, bulk_v: float, input_power_w: float) -> _Primary:
+        """DCM or CCM, peak current, duty and off-time delivering ``input_power_w``."""
+        d = self.design
+        lm, vr, period = d.magnetizing_inductance_h, d.reflected_voltage_v, self.period_s
+        lp = lm + d.leakage_inductance_h
+        peak_a = math.sqrt(2.0 * input_power_w * period / lm)
+        on_s = lp * peak_a / bulk_v
+        if on_s + lm * peak_a / vr <= period:
+            return _Primary("DCM", peak_a, on_s / period, period - on_s)
+        duty = vr / (bulk_v + vr)
+        mean_on_a = input_power_w / (bulk_v * duty)
+        ripple_a = bulk_v * duty * period / lm
+        return _Primary("CCM", mean_on_a + ripple_a / 2.0, duty, period * (1.0 - duty))
+
+    def operating_point(self, bulk_voltage_v: float, load_a: float) -> OperatingPoint:
+        """Steady state at ``bulk_voltage_v`` and ``load_a`` (cached with its waveform)."""
+        return self._solve(float(bulk_voltage_v), float(load_a))[0]
+
+    def switch_node_v(self, op: OperatingPoint, t_s: np.ndarray) -> np.ndarray:
+        """Drain-source voltage at times ``t_s`` (periodic in 1/fsw, t = 0 at turn-off)."""
+        _, node_v, dt = self._solve(op.bulk_voltage_v, op.load_a)
+        t = np.asarray(t_s, dtype=float)
+        position = np.mod(t, self.period_s) / dt
+        index = np.minimum(position.astype(np.intp), node_v.size - 2)
+        frac = position - index
+        return node_v[index] + frac * (node_v[index + 1] - node_v[index])
+
+    def _solve(self, bulk_v: float, load_a: float) -> tuple[OperatingPoint, np.ndarray, float]:
+        key = (bulk_v, load_a)
+        if key in self._points:
+            self._points.move_to_end(key)
+            return self._points[key]
+        if not (math.isfinite(bulk_v) and bulk_v >= 0.0):
+            raise ValueError(f"bus voltage must be ≥ 0 V, got {bulk_v!r}")
+        if not (math.isfinite(load_a) and load_a >= 0.0):
+            raise ValueError(f"load current must be ≥ 0 A, got {load_a!r}")
+        result = (
+            self._idle(bulk_v, load_a)
+            if load_a == 0.0 or bulk_v == 0.0
+            else self._run(bulk_v, load_a)
+        )
+        self._points[key] = result
+        if len(self._points) > CACHE_SIZE:
+            self._points.popitem(last=False)
+        return result
+
+    def _idle(self, bulk_v: float, load_a: float) -> tuple[OperatingPoint, np.ndarray, float]:
+        """No switching (no load or no bus): the node sits at the bus voltage."""
+        d = self.design
+        op = OperatingPoint(
+            bulk_voltage_v=bulk_v,
+            load_a=load_a,
+            output_voltage_v=0.0 if bulk_v == 0.0 else d.output_voltage_v,
+            mode="DCM",
+            duty=0.0,
+            peak_current_a=0.0,
+            reflected_voltage_v=d.reflected_voltage_v,
+            output_power_w=0.0,
+            snubber_loss_w=0.0,
+            clamp_loss_w=0.0,
+            input_power_w=0.0,
+            efficiency=0.0,
+            clamp_voltage_v=bulk_v if d.has_clamp else None,
+        )
+        return op, np.full(2, bulk_v), self.period_s
+
+    def _run(self, bulk_v: float, load_a: float) -> tuple[OperatingPoint, np.ndarray, float]:
+        """Solve input power and clamp voltage for a periodic steady state, then record it.
+
+        Unknowns x = (Pin[, clamp capacitor voltage at turn-off]); residuals F(x) from one
+        integrated period: the input power the losses imply minus Pin, and the clamp capacitor's
+        drift over the period (zero when the energy its diode dumps per cycle equals what its
+        resistor dissipates). Newton steps with a finite-difference Jacobian kept up to date by
+        Broyden's update; a new bus voltage at a load already solved starts from the neighbours'
+        solution and Jacobian, which usually leaves one integrated period to confirm it.
+        """
+        d = self.design
+        network = NodeNetwork(d, bulk_v)
+        output_w = d.output_voltage_v * load_a
+        fixed_w = output_w * (1.0 + d.other_loss_fraction)
+        x, jacobian = self._initial_guess(bulk_v, load_a, fixed_w)
+        floor_v = bulk_v + d.reflected_voltage_v + 1e-3
+        for _ in range(MAX_ITERATIONS):
+            residual, primary, period = self._residual(network, x, fixed_w, record=True)
+            if jacobian is None:
+                jacobian = self._jacobian(network, x, residual, fixed_w)
+            step = -np.linalg.solve(jacobian, residual)
+            power_ok = abs(residual[0]) <= POWER_RTOL * x[0]
+            if power_ok and (x.size == 1 or abs(step[1]) <= CLAMP_VTOL):
+                break
+            new_x = x + step
+            new_x[0] = max(new_x[0], fixed_w)
+            if x.size == 2:
+                new_x[1] = max(new_x[1], floor_v)
+            new_residual = self._residual(network, new_x, fixed_w, record=False)[0]
+            jacobian = _broyden(jacobian, new_x - x, new_residual - residual)
+            x = new_x
+        else:
+            raise RuntimeError(f"flyback steady state did not converge at {bulk_v} V, {load_a} A")
+        self._solved.setdefault(load_a, {})[bulk_v] = (x.copy(), jacobian)
+        other_w = output_w * d.other_loss_fraction
+        op = _operating_point(d, bulk_v, load_a, primary, period, other_w)
+        return op, period.node_v, period.grid_dt_s
+
+    def _residual(
+        self, network: NodeNetwork, x: np.ndarray, fixed_w: float, *, record: bool
+    ) -> tuple[np.ndarray, _Primary, PeriodResult]:
+        """Steady-state residuals at x = (Pin[, clamp V]) from one integrated period."""
+        d = self.design
+        primary = self._primary(network.bulk_v, float(x[0]))
+        clamp_v = float(x[1]) if x.size == 2 else network.bulk_v
+        period = network.simulate(
+            primary.peak_current_a, primary.off_time_s, self.period_s, clamp_v, record=record
+        )
+        losses_w = d.switching_frequency_hz * (
+            period.snubber_energy_j
+            + period.clamp_energy_j
+            + period.damping_energy_j
+            + period.switching_energy_j
+        )
+        residual = [fixed_w + losses_w - x[0]]
+        if x.size == 2:
+            residual.append(period.clamp_end_v - clamp_v)
+        return np.array(residual), primary, period
+
+    def _jacobian(
+        self, network: NodeNetwork, x: np.ndarray, residual: np.ndarray, fixed_w: float
+    ) -> np.ndarray:
+        """Forward-difference Jacobian of the steady-state residuals."""
+        steps = np.array([1e-3 * x[0], 0.5][: x.size])
+        jacobian = np.empty((x.size, x.size))
+        for k in range(x.size):
+            shifted = x.copy()
+            shifted[k] += steps[k]
+            shifted_residual = self._residual(network, shifted, fixed_w, record=False)[0]
+            jacobian[:, k] = (shifted_residual - residual) / steps[k]
+        return jacobian
+
+    def _initial_guess(
+        self, bulk_v: float, load_a: float, fixed_w: float
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Start from solved points at the same load (interpolated in bus voltage), else afresh.
+
+        The clamp voltage is interpolated as its excess over the bus, which varies slowly.
+        """
+        d = self.design
+        solved = self._solved.get(load_a, {})
+        if not solved:
+            x = [fixed_w * 1.05] + ([bulk_v + d.clamp_voltage_v] if d.has_clamp else [])
+            return np.array(x), None
+        nearest = sorted(solved, key=lambda v: abs(v - bulk_v))[:2]
+        as_excess = np.array([0.0, 1.0])[: len(solved[nearest[0]][0])]
+        points = [(v, solved[v][0] - as_excess * v) for v in nearest]
+        if len(points) == 1 or points[0][0] == points[1][0]:
+            guess = points[0][1]
+        else:
+            (v0, x0), (v1, x1) = points
+            guess = x0 + (x1 - x0) * (bulk_v - v0) / (v1 - v0)
+        guess = guess + as_excess * bulk_v
+        guess[0] = max(guess[0], fixed_w)
+        return guess, solved[nearest[0]][1].copy()
+
+
+def _broyden(jacobian: np.ndarray, dx: np.ndarray, dfx: np.ndarray) -> np.ndarray:
+    """Broyden's ("good") rank-one update of a Jacobian after the step dx changed F by dfx."""
+    norm = float(dx @ dx)
+    if norm == 0.0:
+        return jacobian
+    return jacobian + np.outer(dfx - jacobian @ dx, dx) / norm
+
+
+def _operating_point(
+    design: FlybackDesign,
+    bulk_v: float,
+    load_a: float,
+    primary: _Primary,
+    period: PeriodResult,
+    other_w: float,
+) -> OperatingPoint:
+    fsw = design.switching_frequency_hz
+    output_w = design.output_voltage_v * load_a
+    snubber_w = fsw * period.snubber_energy_j
+    clamp_w = fsw * period.clamp_energy_j
+    damping_w = fsw * period.damping_energy_j
+    switching_w = fsw * period.switching_energy_j
+    input_w = output_w + other_w + snubber_w + clamp_w + damping_w + switching_w
+    return OperatingPoint(
+        bulk_voltage_v=bulk_v,
+        load_a=load_a,
+        output_voltage_v=design.output_voltage_v,
+        mode=primary.mode,
+        duty=primary.duty,
+        peak_current_a=primary.peak_current_a,
+        reflected_voltage_v=design.reflected_voltage_v,
+        output_power_w=output_w,
+        snubber_loss_w=snubber_w,
+        clamp_loss_w=clamp_w,
+        input_power_w=input_w,
+        efficiency=output_w / input_w,
+        clamp_voltage_v=bulk_v + math.sqrt(clamp_w * design.clamp_resistance_ohm)
+        if design.has_clamp
+        else None,
+        damping_loss_w=damping_w,
+        switching_loss_w=switching_w,
+        other_loss_w=other_w,
+        demag_time_s=period.demag_time_s,
+    )

@@ -1,0 +1,323 @@
+"""The flyback DUT description: what the physics needs, read from a TOML DUT file.
+
+A DUT file groups quantities by part of the converter. Quantities may be written in engineering
+notation (``"4.7n"``, ``"220pF"``, ``"75 V"``) or as plain SI numbers::
+
+    label = "..."
+    [line]        kind ("dc"/"ac"), min, max, frequency (AC), bulk_capacitance, bleed_time_constant
+    [transformer] magnetizing_inductance, leakage_inductance, turns_ratio
+    [output]      voltage, rectifier_drop, rated_load
+    [switch]      frequency, rating, coss_c0, coss_vj, stray_capacitance
+    [losses]      damping_resistance, other_loss_fraction
+    [snubber]     resistance, capacitance          (capacitance 0 = no damper fitted)
+    [clamp]       voltage, resistance, capacitance (whole table optional: RCD clamp)
+
+The clamp ``voltage`` is the design's nominal clamp voltage above the bus; the simulated clamp
+capacitor settles wherever R, C and the energy balance put it, starting from that value.
+
+Every error names the file, the key and what would be valid.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import tomllib
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any
+
+from labseq.units import UnitError, parse_quantity
+
+DUT_DIR = Path(__file__).resolve().parent / "duts"
+
+#: The demo DUTs shipped with the simulated bench (invented scenarios).
+DEMO_DUTS: dict[str, Path] = {
+    "telecom_dc": DUT_DIR / "telecom_dc_flyback.toml",
+    "offline_ac": DUT_DIR / "offline_ac_flyback.toml",
+}
+
+#: Line frequencies a mains-fed DUT may declare.
+VALID_LINE_FREQUENCIES_HZ = (50.0, 60.0)
+
+
+class DutFileError(ValueError):
+    """A DUT file that cannot be used; the message names the file, the key and what is valid."""
+
+
+@dataclass(frozen=True)
+class FlybackDesign:
+    """Everything the flyback physics needs, in SI units. Built by :func:`load_dut`."""
+
+    label: str
+    line_kind: str
+    line_min_v: float
+    line_max_v: float
+    line_frequency_hz: float
+    bulk_capacitance_f: float
+    bus_bleed_time_constant_s: float
+    magnetizing_inductance_h: float
+    leakage_inductance_h: float
+    turns_ratio: float
+    output_voltage_v: float
+    rectifier_drop_v: float
+    rated_load_a: float
+    switching_frequency_hz: float
+    switch_rating_v: float
+    coss_c0_f: float
+    coss_vj_v: float
+    stray_capacitance_f: float
+    damping_resistance_ohm: float
+    snubber_resistance_ohm: float
+    snubber_capacitance_f: float
+    clamp_voltage_v: float | None  # nominal clamp voltage above the bus; None = no clamp
+    clamp_resistance_ohm: float | None
+    clamp_capacitance_f: float | None
+    other_loss_fraction: float
+
+    @property
+    def has_snubber(self) -> bool:
+        """True when an RC damper is fitted across the switch."""
+        return self.snubber_capacitance_f > 0.0
+
+    @property
+    def has_clamp(self) -> bool:
+        """True when an RCD clamp is fitted across the primary."""
+        return self.clamp_voltage_v is not None
+
+    @property
+    def reflected_voltage_v(self) -> float:
+        """Output plus rectifier drop reflected to the primary: Vr = n·(Vout + Vf)."""
+        return self.turns_ratio * (self.output_voltage_v + self.rectifier_drop_v)
+
+    def coss_f(self, drain_v: float) -> float:
+        """Switch output capacitance Coss(V) = C0 / sqrt(1 + V/Vj) (0 for C0 = 0)."""
+        if self.coss_c0_f == 0.0:
+            return 0.0
+        return self.coss_c0_f / math.sqrt(1.0 + max(drain_v, 0.0) / self.coss_vj_v)
+
+    def with_snubber(self, resistance_ohm: float, capacitance_f: float) -> FlybackDesign:
+        """The same DUT with another RC damper (capacitance 0 removes it)."""
+        _check_snubber(resistance_ohm, capacitance_f, "with_snubber")
+        return replace(
+            self,
+            snubber_resistance_ohm=float(resistance_ohm),
+            snubber_capacitance_f=float(capacitance_f),
+        )
+
+
+def _check_snubber(resistance_ohm: float, capacitance_f: float, where: str) -> None:
+    """An RC damper needs C ≥ 0 and, when fitted, R > 0 (a bare capacitor has no damping)."""
+    if not (math.isfinite(capacitance_f) and capacitance_f >= 0.0):
+        raise DutFileError(f"{where}: snubber capacitance must be ≥ 0 F, got {capacitance_f!r}")
+    if capacitance_f > 0.0 and not (math.isfinite(resistance_ohm) and resistance_ohm > 0.0):
+        raise DutFileError(
+            f"{where}: snubber resistance must be > 0 Ω when a capacitance is fitted, "
+            f"got {resistance_ohm!r}"
+        )
+
+
+# --- DUT file schema -----------------------------------------------------------------------------
+
+Check = Callable[[float], str | None]  # returns what is valid when the value is not, else None
+
+
+def _positive(value: float) -> str | None:
+    return None if value > 0.0 else "a value > 0"
+
+
+def _non_negative(value: float) -> str | None:
+    return None if value >= 0.0 else "a value ≥ 0"
+
+
+def _fraction(value: float) -> str | None:
+    return None if 0.0 <= value < 1.0 else "a fraction from 0 to below 1 (e.g. 0.06)"
+
+
+def _line_frequency(value: float) -> str | None:
+    return None if value in VALID_LINE_FREQUENCIES_HZ else "50 Hz or 60 Hz"
+
+
+@dataclass(frozen=True)
+class _Key:
+    """One quantity of a DUT file table: its unit, its check and whether it may be left out."""
+
+    unit: str
+    check: Check
+    required: bool = True
+    default: float | None = None
+
+
+_SCHEMA: dict[str, dict[str, _Key]] = {
+    "line": {
+        "min": _Key("V", _positive),
+        "max": _Key("V", _positive),
+        "frequency": _Key("Hz", _line_frequency, required=False),
+        "bulk_capacitance": _Key("F", _positive),
+        "bleed_time_constant": _Key("s", _positive),
+    },
+    "transformer": {
+        "magnetizing_inductance": _Key("H", _positive),
+        "leakage_inductance": _Key("H", _positive),
+        "turns_ratio": _Key("", _positive),
+    },
+    "output": {
+        "voltage": _Key("V", _positive),
+        "rectifier_drop": _Key("V", _non_negative),
+        "rated_load": _Key("A", _positive),
+    },
+    "switch": {
+        "frequency": _Key("Hz", _positive),
+        "rating": _Key("V", _positive),
+        "coss_c0": _Key("F", _non_negative),
+        "coss_vj": _Key("V", _positive),
+        "stray_capacitance": _Key("F", _non_negative),
+    },
+    "losses": {
+        "damping_resistance": _Key("Ω", _positive),
+        "other_loss_fraction": _Key("", _fraction, required=False, default=0.0),
+    },
+    "snubber": {
+        "resistance": _Key("Ω", _non_negative),
+        "capacitance": _Key("F", _non_negative),
+    },
+    "clamp": {
+        "voltage": _Key("V", _positive),
+        "resistance": _Key("Ω", _positive),
+        "capacitance": _Key("F", _positive),
+    },
+}
+_OPTIONAL_TABLES = {"clamp"}
+_TOP_LEVEL = {"label", *_SCHEMA}
+_LINE_KINDS = ("dc", "ac")
+
+
+def _unknown(path: Path, where: str, name: str, valid: list[str]) -> DutFileError:
+    """Error for an unknown key, with the closest valid spelling when there is one."""
+    close = difflib.get_close_matches(name, valid, n=1)
+    hint = f" (did you mean {close[0]!r}?)" if close else ""
+    return DutFileError(
+        f"{path}: unknown key {where}{name!r}{hint}; valid keys: {', '.join(sorted(valid))}"
+    )
+
+
+def _read_table(path: Path, data: dict[str, Any], table: str) -> dict[str, float]:
+    """Read and check one table's quantities; return {key: SI value}."""
+    raw = data.get(table)
+    if not isinstance(raw, dict):
+        raise DutFileError(f"{path}: [{table}] must be a table of quantities, got {raw!r}")
+    schema = _SCHEMA[table]
+    allowed = list(schema) + (["kind"] if table == "line" else [])
+    for name in raw:
+        if name not in allowed:
+            raise _unknown(path, f"[{table}] ", name, allowed)
+    values: dict[str, float] = {}
+    for name, key in schema.items():
+        where = f"{path}: [{table}] {name}"
+        if name not in raw:
+            if key.required:
+                raise DutFileError(f"{where} is missing; give a quantity in {key.unit or 'units'}")
+            if key.default is not None:
+                values[name] = key.default
+            continue
+        try:
+            value = parse_quantity(raw[name], key.unit, what=where)
+        except UnitError as exc:
+            raise DutFileError(str(exc)) from None
+        problem = key.check(value)
+        if problem:
+            raise DutFileError(f"{where} = {raw[name]!r} is not valid; expected {problem}")
+        values[name] = value
+    return values
+
+
+def load_dut(path: str | Path) -> FlybackDesign:
+    """Read a DUT file into a :class:`FlybackDesign`; raise :class:`DutFileError` on any fault."""
+    path = Path(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise DutFileError(f"{path}: no such DUT file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise DutFileError(f"{path}: cannot read the DUT file ({exc})") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise DutFileError(f"{path}: not valid TOML ({exc})") from None
+
+    for name in data:
+        if name not in _TOP_LEVEL:
+            raise _unknown(path, "", name, sorted(_TOP_LEVEL))
+    for table in _SCHEMA:
+        if table not in data and table not in _OPTIONAL_TABLES:
+            raise DutFileError(f"{path}: table [{table}] is missing")
+    label = data.get("label")
+    if not isinstance(label, str) or not label.strip():
+        raise DutFileError(f"{path}: label must be a non-empty text, got {label!r}")
+
+    kind = data["line"].get("kind") if isinstance(data["line"], dict) else None
+    if kind not in _LINE_KINDS:
+        raise DutFileError(f"{path}: [line] kind = {kind!r} is not valid; expected 'dc' or 'ac'")
+    line = _read_table(path, data, "line")
+    if line["max"] < line["min"]:
+        raise DutFileError(f"{path}: [line] max ({line['max']} V) is below min ({line['min']} V)")
+    if kind == "ac" and "frequency" not in line:
+        raise DutFileError(f"{path}: [line] frequency is missing; an AC line needs 50 Hz or 60 Hz")
+    if kind == "dc" and "frequency" in line:
+        raise DutFileError(f"{path}: [line] frequency is for kind = 'ac' only; remove it")
+    transformer = _read_table(path, data, "transformer")
+    output = _read_table(path, data, "output")
+    switch = _read_table(path, data, "switch")
+    if switch["coss_c0"] == 0.0 and switch["stray_capacitance"] == 0.0:
+        raise DutFileError(
+            f"{path}: [switch] coss_c0 and stray_capacitance are both 0; the switch node needs "
+            f"some capacitance (a value > 0 in either)"
+        )
+    losses = _read_table(path, data, "losses")
+    snubber = _read_table(path, data, "snubber")
+    if snubber["capacitance"] > 0.0 and snubber["resistance"] == 0.0:
+        raise DutFileError(
+            f"{path}: [snubber] resistance = 0 is not valid with a capacitance fitted; expected "
+            f"a value > 0 (or capacitance = 0 for no damper)"
+        )
+    clamp = _read_table(path, data, "clamp") if "clamp" in data else None
+
+    return FlybackDesign(
+        label=label.strip(),
+        line_kind=kind,
+        line_min_v=line["min"],
+        line_max_v=line["max"],
+        line_frequency_hz=line.get("frequency", 0.0),
+        bulk_capacitance_f=line["bulk_capacitance"],
+        bus_bleed_time_constant_s=line["bleed_time_constant"],
+        magnetizing_inductance_h=transformer["magnetizing_inductance"],
+        leakage_inductance_h=transformer["leakage_inductance"],
+        turns_ratio=transformer["turns_ratio"],
+        output_voltage_v=output["voltage"],
+        rectifier_drop_v=output["rectifier_drop"],
+        rated_load_a=output["rated_load"],
+        switching_frequency_hz=switch["frequency"],
+        switch_rating_v=switch["rating"],
+        coss_c0_f=switch["coss_c0"],
+        coss_vj_v=switch["coss_vj"],
+        stray_capacitance_f=switch["stray_capacitance"],
+        damping_resistance_ohm=losses["damping_resistance"],
+        snubber_resistance_ohm=snubber["resistance"],
+        snubber_capacitance_f=snubber["capacitance"],
+        clamp_voltage_v=clamp["voltage"] if clamp else None,
+        clamp_resistance_ohm=clamp["resistance"] if clamp else None,
+        clamp_capacitance_f=clamp["capacitance"] if clamp else None,
+        other_loss_fraction=losses["other_loss_fraction"],
+    )
+
+
+def resolve_dut(name_or_path: str) -> Path:
+    """Return the DUT file for a demo name (see :data:`DEMO_DUTS`) or an existing file path."""
+    if name_or_path in DEMO_DUTS:
+        return DEMO_DUTS[name_or_path]
+    path = Path(name_or_path)
+    if path.is_file():
+        return path
+    raise DutFileError(
+        f"DUT {name_or_path!r}: neither a demo DUT ({', '.join(sorted(DEMO_DUTS))}) "
+        f"nor an existing DUT file"
+    )

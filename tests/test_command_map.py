@@ -1,0 +1,145 @@
+"""Scope command maps: loading by family or path, and every validation error naming its key."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from instruments.command_map import (
+    COMMAND_PLACEHOLDERS,
+    MAPS_DIR,
+    available_families,
+    load_command_map,
+)
+from instruments.errors import CommandMapError
+
+GENERIC_TEXT = (MAPS_DIR / "generic.toml").read_text()
+
+
+def write_map(tmp_path: Path, text: str) -> Path:
+    path = tmp_path / "family.toml"
+    path.write_text(text)
+    return path
+
+
+def edited(old: str, new: str) -> str:
+    assert old in GENERIC_TEXT, old
+    return GENERIC_TEXT.replace(old, new, 1)
+
+
+def test_generic_map_loads_by_family_name():
+    command_map = load_command_map("generic")
+    assert "generic" in available_families()
+    assert command_map.family == "generic"
+    assert command_map.data_format == "int8"
+    assert command_map.scaling_fields[:3] == ("points", "x_increment", "x_origin")
+    assert set(COMMAND_PLACEHOLDERS) <= set(command_map.commands)
+    assert command_map.command("channel_scale", channel=2, value="0.5") == ":CHANnel2:SCALe 0.5"
+    # The map's own rule: a setting's query is its header followed by "?".
+    assert command_map.query("channel_scale", channel=3) == ":CHANnel3:SCALe?"
+    assert command_map.query("trigger_source") == ":TRIGger:SOURce?"
+    assert command_map.word("slope", "falling") == "NEGative"
+
+
+def test_map_loads_by_path_with_overrides(tmp_path):
+    text = edited('family = "generic"', 'family = "bench-b"')
+    text += (
+        '\n[words]\nslope = { rising = "RISE" }\n'
+        "[limits]\nmax_volts_per_div = 50\nmax_record_length = 20000\n"
+    )
+    text = text.replace(
+        'channel_probe = ":CHANnel{channel}:PROBe {value}"',
+        'channel_probe = ":CHANnel{channel}:PROBe {value}"\n'
+        'channel_probe_query = ":CHANnel{channel}:PROBe:RATio?"',
+    )
+    command_map = load_command_map(write_map(tmp_path, text))
+    assert command_map.family == "bench-b"
+    assert command_map.word("slope", "rising") == "RISE"
+    assert command_map.word("slope", "falling") == "NEGative"  # default kept
+    assert command_map.limits.max_volts_per_div == 50
+    assert command_map.limits.max_record_length == 20000
+    assert command_map.query("channel_probe", channel=1) == ":CHANnel1:PROBe:RATio?"
+
+
+@pytest.mark.parametrize(
+    ("old", "new", "fragment"),
+    [
+        ("channels = 4", "chanels = 4", "unknown key 'chanels'; did you mean 'channels'"),
+        (
+            'single = ":SINGle"',
+            'singel = ":SINGle"',
+            "unknown key commands.'singel'; did you mean 'single'",
+        ),
+        (
+            'stop = ":STOP"\n',
+            "",
+            "missing command commands.stop",
+        ),
+        (
+            'timebase_scale = ":TIMebase:SCALe {value}"',
+            'timebase_scale = ":TIMebase:SCALe {volts}"',
+            r"unknown placeholder \{volts\}",
+        ),
+        (
+            'channel_scale = ":CHANnel{channel}:SCALe {value}"',
+            'channel_scale = ":CHANnel1:SCALe {value}"',
+            r"lacks \{channel\}",
+        ),
+        (
+            'single = ":SINGle"',
+            'single = ":SINGle;*RST"',
+            "contains ';'",
+        ),
+        ('data_format = "int8"', 'data_format = "int12"', "int8, int16, float32"),
+        ('byte_order = "big"', 'byte_order = "network"', "big, little"),
+        ("channels = 4", 'channels = "four"', "'channels' must be int"),
+        ("code_min = -128", "code_min = 200", "code_min .* must be below code_max"),
+        (
+            '"y_origin", "y_reference"]',
+            '"y_reference"]',
+            "scaling_fields lacks y_origin",
+        ),
+        (
+            '"y_origin", "y_reference"]',
+            '"y_origen", "y_reference"]',
+            "unknown field 'y_origen'; did you mean 'y_origin'",
+        ),
+        (
+            '"y_origin", "y_reference"]',
+            '"y_origin", "y_origin"]',
+            "lists 'y_origin' twice",
+        ),
+        ('description = "', 'family = "again"\ndescription = "', "not valid TOML"),
+    ],
+)
+def test_invalid_maps_are_refused_naming_file_and_key(tmp_path, old, new, fragment):
+    path = write_map(tmp_path, edited(old, new))
+    with pytest.raises(CommandMapError, match=fragment) as caught:
+        load_command_map(path)
+    assert str(path) in str(caught.value)
+
+
+def test_unknown_word_and_limit_keys_are_refused(tmp_path):
+    path = write_map(tmp_path, GENERIC_TEXT + '\n[words]\nslope = { upward = "UP" }\n')
+    with pytest.raises(CommandMapError, match="words.slope.'upward'"):
+        load_command_map(path)
+    path = write_map(tmp_path, GENERIC_TEXT + "\n[limits]\nmax_volt_per_div = 5\n")
+    with pytest.raises(CommandMapError, match="did you mean 'max_volts_per_div'"):
+        load_command_map(path)
+    path = write_map(tmp_path, GENERIC_TEXT + "\n[limits]\nmin_volts_per_div = 5.0\n"
+                     "max_volts_per_div = 1.0\n")
+    with pytest.raises(CommandMapError, match="min_volts_per_div .* exceeds"):
+        load_command_map(path)
+
+
+def test_ignored_scaling_fields_may_repeat(tmp_path):
+    text = edited('"y_origin", "y_reference"]', '"_", "y_origin", "_"]')
+    assert load_command_map(write_map(tmp_path, text)).scaling_fields.count("_") == 2
+
+
+def test_unknown_family_lists_shipped_maps(tmp_path):
+    with pytest.raises(CommandMapError, match="unknown scope family 'nosuch'.*generic"):
+        load_command_map("nosuch")
+    with pytest.raises(CommandMapError, match="not found"):
+        load_command_map(tmp_path / "absent.toml")

@@ -1,0 +1,130 @@
+"""Snubber design equations against their published forms and the network's own eigenvalues."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from labseq.analysis import (
+    DesignInputError,
+    added_capacitance_method,
+    capacitance_for_loss_f,
+    characteristic_impedance_ohm,
+    cv2f_loss_w,
+    parasitic_capacitance_f,
+    propose_snubber,
+    snubber_damping_ratio,
+)
+
+
+def ring_frequency_hz(l_h: float, c_f: float) -> float:
+    """f = 1/(2π√(LC)) (Severns, "Design of Snubbers for Power Circuits")."""
+    return 1 / (2 * math.pi * math.sqrt(l_h * c_f))
+
+
+def test_parasitic_capacitance_inverts_the_resonance_formula() -> None:
+    # Severns: f = 1/(2π√(L·Cpar)) solved for Cpar.
+    assert parasitic_capacitance_f(ring_frequency_hz(330e-9, 150e-12), 330e-9) == pytest.approx(
+        150e-12
+    )
+
+
+def test_added_capacitance_method_recovers_l_and_cpar() -> None:
+    l_h, c_par, c_add = 180e-9, 120e-12, 220e-12
+    f1, f2 = ring_frequency_hz(l_h, c_par), ring_frequency_hz(l_h, c_par + c_add)
+    # Added-capacitance method as application notes state it: Cpar = Cadd/((f1/f2)² − 1),
+    # L = 1/((2πf1)²·Cpar); the rings come from f = 1/(2π√(LC)).
+    c_found, l_found = added_capacitance_method(f1, f2, c_add)
+    assert c_found == pytest.approx(c_par, rel=1e-12)
+    assert l_found == pytest.approx(l_h, rel=1e-12)
+
+
+def test_characteristic_impedance_trade_example() -> None:
+    c_par = parasitic_capacitance_f(25e6, 200e-9)
+    # R = √(L/C) = 2π·f·L: 25 MHz with 200 nH gives ≈ 31.4 Ω (common practice, no published source).
+    assert characteristic_impedance_ohm(200e-9, c_par) == pytest.approx(31.4, abs=0.05)
+    assert characteristic_impedance_ohm(200e-9, c_par) == pytest.approx(2 * math.pi * 25e6 * 200e-9)
+
+
+def test_capacitance_for_a_loss_budget_and_its_loss() -> None:
+    # Severns: P = Cs·V²·fsw, hence Cs = P/(V²·fsw).
+    cs = capacitance_for_loss_f(0.5, 400.0, 100e3)
+    assert cs == pytest.approx(0.5 / (400.0**2 * 100e3))
+    assert cv2f_loss_w(cs, 400.0, 100e3) == pytest.approx(0.5)
+
+
+def network_damping(l_h: float, cp_f: float, r_ohm: float, cs_f: float) -> float:
+    """ζ of the dominant pair from the state matrix of L ∥ Cpar ∥ (R + Cs) (numpy eigvals)."""
+    a = np.array(
+        [
+            [0.0, -1 / l_h, 0.0],
+            [1 / cp_f, -1 / (r_ohm * cp_f), 1 / (r_ohm * cp_f)],
+            [0.0, 1 / (r_ohm * cs_f), -1 / (r_ohm * cs_f)],
+        ]
+    )
+    eig = np.linalg.eigvals(a)
+    pair = eig[eig.imag > 0]
+    return float(-pair[0].real / abs(pair[0]))
+
+
+@pytest.mark.parametrize("ratio", [0.5, 1.0, 2.0, 3.0, 4.0])
+def test_damping_from_the_polynomial_matches_the_state_matrix(ratio: float) -> None:
+    l_h, cp = 200e-9, 200e-12
+    r = math.sqrt(l_h / cp)
+    # Independent route: eigenvalues of the network's state matrix (numpy) vs the roots of the
+    # characteristic polynomial in the code.
+    assert snubber_damping_ratio(l_h, cp, r, ratio * cp) == pytest.approx(
+        network_damping(l_h, cp, r, ratio * cp), rel=1e-9
+    )
+
+
+def test_large_snubber_capacitor_gives_the_parallel_rlc_damping() -> None:
+    l_h, cp = 200e-9, 200e-12
+    r = math.sqrt(l_h / cp)
+    # Parallel RLC: ζ = (1/2R)·√(L/C) = 0.5 at R = √(L/C), i.e. Q ≈ 1 (Severns, RC snubber).
+    assert snubber_damping_ratio(l_h, cp, r, 1e4 * cp) == pytest.approx(0.5, abs=1e-3)
+    # More Cs damps more, up to the conventional 3–4 × Cpar (common practice, no published source).
+    assert snubber_damping_ratio(l_h, cp, r, cp) < snubber_damping_ratio(l_h, cp, r, 3 * cp)
+
+
+def test_a_small_resistor_budget_forces_cs_below_cpar_and_warns() -> None:
+    # A 1206 snubber resistor is usually held to 50–100 mW (common practice, no published source):
+    # at 400 V and 100 kHz that allows only Cs = 6.25 pF against ~200 pF of Cpar.
+    proposal = propose_snubber(
+        ring_freq_hz=25e6, leakage_h=200e-9, volts=400.0, fsw_hz=100e3, loss_budget_w=0.1
+    )
+    assert proposal.cs_f == pytest.approx(6.25e-12)
+    assert proposal.loss_w == pytest.approx(0.1)
+    assert any("clamp" in warning for warning in proposal.warnings)
+
+
+def test_proposal_from_a_list_of_measured_frequencies() -> None:
+    l_h, c_par, c_add = 150e-9, 100e-12, 100e-12
+    f1, f2 = ring_frequency_hz(l_h, c_par), ring_frequency_hz(l_h, c_par + c_add)
+    proposal = propose_snubber(
+        ring_freq_hz=[f1 * 0.99, f1, f1 * 1.02], added_cap_f=c_add, ring_freq_added_hz=f2
+    )
+    assert proposal.ring_freq_hz == pytest.approx(f1)  # median of the measurements
+    assert proposal.c_par_f == pytest.approx(c_par)
+    assert proposal.l_leak_h == pytest.approx(l_h)
+    assert proposal.cs_f == pytest.approx(3 * c_par)  # conventional 3 × Cpar (common practice)
+    assert proposal.loss_w is None  # no volts / fsw given
+    assert proposal.warnings == []
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"ring_freq_hz": 20e6, "added_cap_f": 1e-10, "ring_freq_added_hz": 25e6}, "must be below"),
+        ({"ring_freq_hz": 20e6, "added_cap_f": 1e-10}, "go together"),
+        ({"ring_freq_hz": -20e6, "leakage_h": 1e-7}, "positive"),
+        ({"leakage_h": 1e-7}, "ring_freq_hz is needed"),
+        ({"ring_freq_hz": 20e6, "leakage_h": 1e-7, "loss_budget_w": 0.1}, "need volts and fsw_hz"),
+        ({"ring_freq_hz": 2e7, "leakage_h": 1e-7, "cs_f": 1e-10, "loss_budget_w": 0.1}, "either"),
+    ],
+)
+def test_inconsistent_inputs_are_refused(kwargs: dict[str, float], message: str) -> None:
+    with pytest.raises(DesignInputError, match=message):
+        propose_snubber(**kwargs)

@@ -1,0 +1,403 @@
+"""The SQLite store: raw codes round-trip byte for byte, a point commits in one transaction,
+files that are not ours or too new are refused untouched, and exports hold what was stored."""
+
+from __future__ import annotations
+
+import contextlib
+import csv
+import io
+import json
+import sqlite3
+import subprocess
+import sys
+import textwrap
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from labseq.cli import main
+from labseq.store import (
+    SCHEMA_VERSION,
+    CaptureRecord,
+    PointReadings,
+    Store,
+    StoreError,
+    StoreFileError,
+    UnknownRunError,
+)
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+@dataclass
+class Capture:
+    """A scope record as a driver hands it over: raw codes plus scaling."""
+
+    codes: np.ndarray
+    x_increment_s: float = 1e-9
+    x_origin_s: float = -2e-6
+    y_increment_v: float = 250.0 / 256
+    y_origin_v: float = 100.0
+    y_reference: float = 0.0
+    code_min: float | None = -128
+    code_max: float | None = 127
+
+
+def ringing_codes(samples: int = 2000, seed: int = 0) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    t_s = np.arange(samples) * 1e-9
+    volts = 60.0 * np.exp(-t_s / 200e-9) * np.sin(2 * np.pi * 20e6 * t_s) + rng.normal(
+        0, 1, samples
+    )
+    return np.clip(np.round(volts / (250.0 / 256)), -128, 127).astype(np.int8)
+
+
+def new_run(store: Store, points: int = 4) -> tuple[int, list[int]]:
+    run_id = store.create_run(
+        sequence_text='name = "t"\n',
+        sequence_sha256="ab" * 32,
+        sequence_path="t.toml",
+        dut_label="DUT",
+        snubber_label="RC",
+        bench_kind="sim",
+        instruments={"scope": "SIM,SCOPE,0,1"},
+    )
+    grid = [(36.0 + 12 * (i // 2), 0.5 * (1 + i % 2)) for i in range(points)]
+    return run_id, store.add_points(run_id, grid, line_is_ac=False)
+
+
+def run_cli(*args: str) -> tuple[int, str, str]:
+    out, err = io.StringIO(), io.StringIO()
+    code = 0
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        try:
+            main(list(args))
+        except SystemExit as exc:
+            code = int(exc.code or 0)
+    return code, out.getvalue(), err.getvalue()
+
+
+@pytest.fixture
+def db(tmp_path: Path) -> Path:
+    return tmp_path / "store.sqlite"
+
+
+# --------------------------------------------------------------------------- captures
+
+
+@pytest.mark.parametrize(
+    "codes",
+    [
+        ringing_codes(),
+        (ringing_codes().astype(np.int16) * 256 + 17).astype(">i2"),  # big-endian as sent
+        np.linspace(-1, 1, 500, dtype=np.float32),
+    ],
+    ids=["int8", "int16-big-endian", "float32"],
+)
+def test_capture_round_trip(db: Path, codes: np.ndarray) -> None:
+    with Store(db) as store:
+        run_id, points = new_run(store)
+        [capture_id] = store.commit_point(points[0], captures=[CaptureRecord(Capture(codes), 2)])
+    with Store(db, create=False) as store:
+        [stored] = store.captures(points[0])
+    assert stored.id == capture_id and stored.channel == 2 and stored.node == "primary"
+    assert stored.codes.dtype.name == codes.dtype.name  # the dtype as sent, never float64
+    assert stored.codes.tobytes() == codes.astype(codes.dtype.newbyteorder("<")).tobytes()
+    assert np.array_equal(stored.codes, codes)
+    # Scaling convention of the scope's waveform preamble: volts = (code − ref) × inc + origin,
+    # t = origin + i × increment (common practice, no published source).
+    expected_v = (codes.astype(float) - 0.0) * (250.0 / 256) + 100.0
+    assert np.array_equal(stored.volts(), expected_v)
+    assert stored.time_s()[0] == -2e-6 and stored.time_s()[1] == pytest.approx(-2e-6 + 1e-9)
+
+
+def test_float64_codes_refused(db: Path) -> None:
+    with Store(db) as store:
+        _, points = new_run(store)
+        with pytest.raises(ValueError, match="float64"):
+            store.commit_point(points[0], captures=[CaptureRecord(Capture(np.zeros(10)))])
+        assert store.captures(points[0]) == []
+
+
+def test_clipped_capture_flagged(db: Path) -> None:
+    codes = ringing_codes()
+    codes[100] = 127
+    with Store(db) as store:
+        _, points = new_run(store)
+        store.commit_point(points[0], captures=[CaptureRecord(Capture(codes))])
+        assert store.captures(points[0])[0].clipped
+        codes[100] = 0
+        codes[codes == -128] = -127
+        store.commit_point(points[1], captures=[CaptureRecord(Capture(codes))])
+        assert not store.captures(points[1])[0].clipped
+
+
+# --------------------------------------------------------------------------- transactions
+
+
+def test_commit_point_is_one_transaction(db: Path) -> None:
+    good = CaptureRecord(Capture(ringing_codes()))
+    bad = CaptureRecord(Capture(np.zeros(10)))  # float64: refused after the first is written
+    with Store(db) as store:
+        _, points = new_run(store)
+        with pytest.raises(ValueError):
+            store.commit_point(points[0], captures=[good, bad], readings=PointReadings(1.0))
+        # A point state the schema refuses, after both captures went in.
+        with pytest.raises(sqlite3.IntegrityError):
+            store.commit_point(points[0], captures=[good, good], status="half-done")
+        assert store.captures(points[0]) == []
+        point = store.point(points[0])
+        assert point.status == "pending" and point.source_voltage_v is None
+        assert store.integrity_check() == "ok"
+
+
+def test_process_killed_mid_commit_leaves_nothing_half_written(db: Path) -> None:
+    with Store(db) as store:
+        _, points = new_run(store)
+    script = textwrap.dedent(
+        f"""
+        import os, numpy as np
+        from labseq.store import Store, CaptureRecord
+        from types import SimpleNamespace
+        codes = np.arange(-128, 128, dtype=np.int8)
+        wf = SimpleNamespace(codes=codes, x_increment_s=1e-9, x_origin_s=0.0, y_increment_v=1.0,
+                             y_origin_v=0.0, y_reference=0.0, code_min=-128, code_max=127)
+        store = Store({str(db)!r})
+        Store._update_point = lambda *args: os._exit(3)  # dies after the captures are written
+        store.commit_point({points[0]}, captures=[CaptureRecord(wf), CaptureRecord(wf)])
+        """
+    )
+    result = subprocess.run([sys.executable, "-c", script], cwd=ROOT, timeout=60)
+    assert result.returncode == 3
+    with Store(db) as store:
+        assert store.captures(points[0]) == []
+        assert [p.id for p in store.pending_points(store.runs()[0].id)] == points
+        assert store.integrity_check() == "ok"
+
+
+def test_add_capture_sets_point_state_with_the_last(db: Path) -> None:
+    with Store(db) as store:
+        run_id, points = new_run(store)
+        record = CaptureRecord(Capture(ringing_codes()))
+        store.add_capture(points[0], record)
+        assert store.point(points[0]).status == "pending"
+        readings = PointReadings(meter_power_w=31.5, efficiency=0.87)
+        store.add_capture(points[0], record, point_status="done", readings=readings)
+        point = store.point(points[0])
+        assert point.status == "done" and point.meter_power_w == 31.5
+        assert [c.capture_index for c in store.captures(points[0])] == [0, 1]
+        assert [p.id for p in store.pending_points(run_id)] == points[1:]
+        assert store.run(run_id).points_done == 1
+
+
+def test_references_checked(db: Path) -> None:
+    with Store(db) as store:
+        with pytest.raises(UnknownRunError):
+            store.add_points(99, [(1.0, 1.0)], line_is_ac=False)
+        with pytest.raises(StoreError):
+            store.commit_point(12345, captures=[CaptureRecord(Capture(ringing_codes()))])
+        with pytest.raises(sqlite3.IntegrityError):  # foreign keys are on
+            store.log_event(77, "info", "no such run")
+
+
+# --------------------------------------------------------------------------- figures, events
+
+
+def test_figures_and_events_round_trip(db: Path) -> None:
+    with Store(db) as store:
+        run_id, points = new_run(store)
+        [capture_id] = store.commit_point(
+            points[0], captures=[CaptureRecord(Capture(ringing_codes()))]
+        )
+        edges = [{"peak_v": 151.2, "edge_time_s": 1e-7}, {"peak_v": 149.0, "edge_time_s": 5.1e-6}]
+        figures = {"peak_v": 151.2, "damping_ratio": 0.12, "snubber_loss_method": "waveform"}
+        store.set_capture_figures(capture_id, {**figures, "clipped": False}, edges=edges)
+        stored = store.capture_figures(capture_id)
+        assert {k: stored[k] for k in figures} == figures
+        assert stored["edges"] == edges and stored["edge_count"] == 2 and stored["clipped"] == 0
+        with pytest.raises(ValueError, match="peak"):
+            store.set_capture_figures(capture_id, {"peak": 1.0})
+        store.set_point_figures(
+            points[0], {"peak_v": {"worst": 151.2, "mean": 150.0, "spread": 0.8, "n": 3}}
+        )
+        assert store.point_figures(run_id)[points[0]]["peak_v"]["worst"] == 151.2
+        store.set_point_verdict(points[0], "fail", ["peak 151 V > 120 V"])
+        assert store.point(points[0]).verdict_reasons == ["peak 151 V > 120 V"]
+        store.log_event(run_id, "retry", "scope timeout", point_id=points[0], data={"try": 2})
+        [event] = store.events(run_id)
+        assert event["kind"] == "retry" and event["data"] == {"try": 2}
+        with pytest.raises(sqlite3.IntegrityError):
+            store.log_event(run_id, "gossip", "not a known kind")
+
+
+def test_runs_status_and_abandoned(db: Path) -> None:
+    script = textwrap.dedent(
+        f"""
+        from labseq.store import Store
+        with Store({str(db)!r}) as store:
+            store.create_run(sequence_text="", sequence_sha256="", sequence_path="x",
+                             dut_label="d", snubber_label="s", bench_kind="sim")
+        """
+    )
+    subprocess.run([sys.executable, "-c", script], cwd=ROOT, timeout=60, check=True)
+    with Store(db) as store:
+        mine, _ = new_run(store)
+        assert store.mark_abandoned_runs() == [1]  # its process has exited
+        assert store.run(1).status == "interrupted" and store.run(1).finished_at
+        assert store.run(mine).status == "running"  # this process is alive
+        store.set_run_status(mine, "finished")
+        assert [run.status for run in store.runs()] == ["interrupted", "finished"]
+
+
+def test_iter_captures_reads_one_at_a_time(db: Path) -> None:
+    with Store(db) as store:
+        run_id, points = new_run(store)
+        for point_id in points:
+            store.commit_point(
+                point_id, captures=[CaptureRecord(Capture(ringing_codes(seed=point_id)))] * 2
+            )
+        iterator = store.iter_captures(run_id)
+        first = next(iterator)
+        assert first.point_id == points[0] and first.capture_index == 0
+        assert len(list(iterator)) == 2 * len(points) - 1
+        headers = store.captures(points[1], with_codes=False)
+        assert [h.codes.size for h in headers] == [0, 0]
+
+
+# --------------------------------------------------------------------------- opening files
+
+
+def test_newer_schema_refused_and_file_unchanged(db: Path) -> None:
+    with Store(db) as store:
+        new_run(store)
+    conn = sqlite3.connect(db)
+    conn.execute("UPDATE schema_info SET version = ?", [SCHEMA_VERSION + 1])
+    conn.commit()
+    conn.close()
+    before = db.read_bytes()
+    with pytest.raises(StoreFileError, match="newer labseq") as info:
+        Store(db)
+    assert "not changed" in str(info.value)
+    assert db.read_bytes() == before
+    code, _, err = run_cli("runs", "--db", str(db))
+    assert code == 2 and "newer labseq" in err
+    assert db.read_bytes() == before
+
+
+def test_foreign_files_refused_unchanged(tmp_path: Path) -> None:
+    text_file = tmp_path / "notes.sqlite"
+    text_file.write_text("hello, not a database\n")
+    with pytest.raises(StoreFileError, match="not a SQLite database"):
+        Store(text_file)
+    assert text_file.read_text() == "hello, not a database\n"
+
+    other = tmp_path / "other.sqlite"
+    conn = sqlite3.connect(other)
+    conn.execute("CREATE TABLE recipes (name TEXT)")
+    conn.commit()
+    conn.close()
+    before = other.read_bytes()
+    with pytest.raises(StoreFileError, match="not a labseq store"):
+        Store(other)
+    assert other.read_bytes() == before
+
+
+def test_missing_store_not_created_when_reading(db: Path) -> None:
+    with pytest.raises(StoreFileError, match="no such store"):
+        Store(db, create=False)
+    assert not db.exists()
+
+
+def test_file_settings(db: Path) -> None:
+    with Store(db) as store:
+        new_run(store)
+        assert store.db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+        assert store.db.execute("PRAGMA foreign_keys").fetchone()[0] == 1
+        assert store.integrity_check() == "ok"
+
+
+# --------------------------------------------------------------------------- CLI
+
+
+@pytest.fixture
+def filled_db(db: Path) -> tuple[Path, int, list[int]]:
+    with Store(db) as store:
+        run_id, points = new_run(store, points=3)
+        for index, point_id in enumerate(points[:2]):
+            records = [CaptureRecord(Capture(ringing_codes(seed=10 * index + k))) for k in range(2)]
+            readings = PointReadings(source_voltage_v=36.1, meter_power_w=20.0 + index)
+            store.commit_point(point_id, captures=records, readings=readings)
+            store.set_point_figures(
+                point_id, {"peak_v": {"worst": 140.0 + index, "mean": 139.0, "spread": 0.5, "n": 2}}
+            )
+            store.set_point_verdict(point_id, "pass", [])
+        store.commit_point(points[2], status="skipped")
+    return db, run_id, points
+
+
+def test_cli_runs(filled_db: tuple[Path, int, list[int]]) -> None:
+    db, run_id, _ = filled_db
+    code, out, err = run_cli("runs", "--db", str(db), "--json")
+    assert code == 0, err
+    [row] = json.loads(out)
+    assert row["id"] == run_id and row["points_done"] == 2 and row["points_total"] == 3
+    assert row["status"] == "running" and row["dut_label"] == "DUT"
+    code, out, _ = run_cli("runs", "--db", str(db))
+    assert code == 0 and "2/3" in out and "DUT / RC" in out
+
+
+def test_cli_export_npz(filled_db: tuple[Path, int, list[int]], tmp_path: Path) -> None:
+    db, run_id, points = filled_db
+    out_dir = tmp_path / "out"
+    code, _, err = run_cli("export", str(run_id), "--db", str(db), "--out", str(out_dir))
+    assert code == 0, err
+    with (out_dir / "points.csv").open(newline="") as handle:
+        rows = list(csv.DictReader(handle))
+    assert [row["status"] for row in rows] == ["done", "done", "skipped"]
+    assert float(rows[1]["meter_power_w"]) == 21.0 and rows[0]["source_voltage_v"] == "36.1"
+    assert float(rows[1]["peak_v_worst"]) == 141.0 and rows[2]["peak_v_worst"] == ""
+    assert rows[0]["verdict"] == "pass"
+    with Store(db) as store, np.load(out_dir / "captures.npz") as archive:
+        stored = store.captures(points[1])
+        assert len(archive["scaling"]) == 4
+        assert archive["p001_c01_codes"].tobytes() == stored[1].codes.tobytes()
+        assert archive["p001_c01_codes"].dtype == np.int8
+        assert np.array_equal(archive["p001_c01_volts"], stored[1].volts())
+        row = archive["scaling"][3]
+        assert row["name"] == "p001_c01" and row["y_increment_v"] == stored[1].y_increment_v
+    assert (out_dir / "sequence.toml").read_text() == 'name = "t"\n'
+
+
+def test_cli_export_csv(filled_db: tuple[Path, int, list[int]], tmp_path: Path) -> None:
+    db, run_id, points = filled_db
+    out_dir = tmp_path / "out"
+    code, _, err = run_cli(
+        "export", str(run_id), "--db", str(db), "--out", str(out_dir), "--captures", "csv"
+    )
+    assert code == 0, err
+    files = sorted((out_dir / "captures").glob("*.csv"))
+    assert [f.name for f in files] == [
+        "p000_c00.csv",
+        "p000_c01.csv",
+        "p001_c00.csv",
+        "p001_c01.csv",
+    ]
+    assert files[0].read_text().splitlines()[0] == "time_s,volts"
+    table = np.loadtxt(files[0], delimiter=",", skiprows=1)
+    with Store(db) as store:
+        stored = store.captures(points[0])[0]
+    np.testing.assert_allclose(table[:, 0], stored.time_s(), rtol=1e-8)
+    np.testing.assert_allclose(table[:, 1], stored.volts(), rtol=1e-8)
+
+
+def test_cli_unknown_run_and_missing_db(
+    filled_db: tuple[Path, int, list[int]], tmp_path: Path
+) -> None:
+    db, _, _ = filled_db
+    code, _, err = run_cli("export", "42", "--db", str(db), "--out", str(tmp_path / "x"))
+    assert code == 2 and "no run 42" in err and "runs in this store: 1" in err
+    assert not (tmp_path / "x").exists()
+    code, _, err = run_cli("runs", "--db", str(tmp_path / "absent.sqlite"))
+    assert code == 2 and "no such store" in err and "Traceback" not in err
