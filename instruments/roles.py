@@ -342,8 +342,7 @@ class Oscilloscope(ScpiInstrument):
             command("waveform_byte_order", value=self.map.word("byte_order", byte_order)),
         )
         scaling = self._scaling()
-        payload = self.query_block(command("waveform_data_query"))
-        codes = decode_payload(payload, data_format, byte_order)
+        codes = self.read_codes()
         points = scaling.get("points")
         if points is not None and points != codes.size:
             raise ReplyFormatError(
@@ -359,6 +358,15 @@ class Oscilloscope(ScpiInstrument):
             code_min=self.map.code_min,
             code_max=self.map.code_max,
         )
+
+    def read_codes(self) -> np.ndarray:
+        """Query the waveform data block of the selected source and decode it.
+
+        The source, format and byte order must already be selected (:meth:`fetch_waveform`
+        does that); this is the bulk transfer alone.
+        """
+        payload = self.query_block(self.map.command("waveform_data_query"))
+        return decode_payload(payload, self.map.data_format, self.map.byte_order)
 
     def _scaling(self) -> dict[str, Any]:
         """Read the scaling reply and name its fields as the map lists them."""

@@ -31,6 +31,8 @@ from instruments.errors import (
 DEFAULT_TIMEOUT_S = 5.0
 #: Bytes asked of the VISA layer per read while receiving a block payload.
 BLOCK_CHUNK_BYTES = 1 << 20
+#: Silence that ends an indefinite (#0) block on a transport without END, such as a socket.
+QUIET_AFTER_INDEFINITE_BLOCK_MS = 50.0
 #: Bound on error-queue reads: an instrument that never answers "0,..." cannot hang us.
 MAX_QUEUED_ERRORS = 64
 
@@ -396,13 +398,14 @@ class ScpiInstrument:
         """Read a ``#0`` payload: messages up to each newline until the reply has no more.
 
         Over a socket there is no END signal, so the payload is everything up to the last
-        newline the instrument sends before it goes quiet.
+        newline the instrument sends before it goes quiet for
+        :data:`QUIET_AFTER_INDEFINITE_BLOCK_MS`.
         """
         resource = self.resource
         resource.read_termination = termination or "\n"
         received = bytearray(resource.read_raw())
         saved_timeout = resource.timeout
-        resource.timeout = min(saved_timeout, 50.0)
+        resource.timeout = min(saved_timeout or math.inf, QUIET_AFTER_INDEFINITE_BLOCK_MS)
         try:
             while True:
                 try:

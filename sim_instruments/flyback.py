@@ -86,6 +86,10 @@ class LineReading:
     power_factor: float
 
 
+#: An operating point with its node voltage over one period: (op, grid times s, node V).
+_Solution = tuple[OperatingPoint, np.ndarray, np.ndarray]
+
+
 @dataclass(frozen=True)
 class _Primary:
     """Primary-side switching quantities for one input power."""
@@ -102,8 +106,10 @@ class FlybackModel:
     def __init__(self, design: FlybackDesign) -> None:
         self.design = design
         self.period_s = 1.0 / design.switching_frequency_hz
-        self._points: OrderedDict[tuple[float, float], tuple[OperatingPoint, np.ndarray, float]]
+        self._points: OrderedDict[tuple[float, float], _Solution]
         self._points = OrderedDict()
+        # rectifier solutions per (line V, line Hz, load A); small, one per grid point
+        self._rectified: dict[tuple[float, float, float], tuple[float, float, float]] = {}
         # converged (x, Jacobian) per load and bus voltage: starting points for nearby buses
         self._solved: dict[float, dict[float, tuple[np.ndarray, np.ndarray]]] = {}
 
@@ -146,6 +152,14 @@ class FlybackModel:
         self, line_v: float, line_frequency_hz: float, load_a: float
     ) -> tuple[float, float, float]:
         """(peak bus V, phase where the bridge starts conducting, converter input power)."""
+        key = (float(line_v), float(line_frequency_hz), float(load_a))
+        if key not in self._rectified:
+            self._rectified[key] = self._solve_rectifier(*key)
+        return self._rectified[key]
+
+    def _solve_rectifier(
+        self, line_v: float, line_frequency_hz: float, load_a: float
+    ) -> tuple[float, float, float]:
         peak_v = max(math.sqrt(2.0) * line_v - 2.0 * BRIDGE_DIODE_DROP_V, 0.0)
         if peak_v == 0.0 or load_a <= 0.0:
             return peak_v, math.pi / 2.0, 0.0
@@ -184,8 +198,8 @@ class FlybackModel:
         # rms over a half cycle: the current flows only in [start, π/2] of each half period
         mean_square = np.trapezoid(line_a**2, psi) / math.pi
         mean_current = np.trapezoid(line_a, psi) / math.pi
-        current_a = math.sqrt(mean_square)
-        power_w = converter_w + 2.0 * BRIDGE_DIODE_DROP_V * mean_current
+        current_a = math.sqrt(float(mean_square))
+        power_w = converter_w + 2.0 * BRIDGE_DIODE_DROP_V * float(mean_current)
         apparent = line_v * current_a
         return LineReading(float(line_v), current_a, power_w, min(power_w / apparent, 1.0))
 
@@ -211,14 +225,10 @@ class FlybackModel:
 
     def switch_node_v(self, op: OperatingPoint, t_s: np.ndarray) -> np.ndarray:
         """Drain-source voltage at times ``t_s`` (periodic in 1/fsw, t = 0 at turn-off)."""
-        _, node_v, dt = self._solve(op.bulk_voltage_v, op.load_a)
-        t = np.asarray(t_s, dtype=float)
-        position = np.mod(t, self.period_s) / dt
-        index = np.minimum(position.astype(np.intp), node_v.size - 2)
-        frac = position - index
-        return node_v[index] + frac * (node_v[index + 1] - node_v[index])
+        _, grid_s, node_v = self._solve(op.bulk_voltage_v, op.load_a)
+        return np.interp(np.mod(np.asarray(t_s, dtype=float), self.period_s), grid_s, node_v)
 
-    def _solve(self, bulk_v: float, load_a: float) -> tuple[OperatingPoint, np.ndarray, float]:
+    def _solve(self, bulk_v: float, load_a: float) -> _Solution:
         key = (bulk_v, load_a)
         if key in self._points:
             self._points.move_to_end(key)
@@ -237,7 +247,7 @@ class FlybackModel:
             self._points.popitem(last=False)
         return result
 
-    def _idle(self, bulk_v: float, load_a: float) -> tuple[OperatingPoint, np.ndarray, float]:
+    def _idle(self, bulk_v: float, load_a: float) -> _Solution:
         """No switching (no load or no bus): the node sits at the bus voltage."""
         d = self.design
         op = OperatingPoint(
@@ -255,9 +265,9 @@ class FlybackModel:
             efficiency=0.0,
             clamp_voltage_v=bulk_v if d.has_clamp else None,
         )
-        return op, np.full(2, bulk_v), self.period_s
+        return op, np.array([0.0, self.period_s]), np.full(2, bulk_v)
 
-    def _run(self, bulk_v: float, load_a: float) -> tuple[OperatingPoint, np.ndarray, float]:
+    def _run(self, bulk_v: float, load_a: float) -> _Solution:
         """Solve input power and clamp voltage for a periodic steady state, then record it.
 
         Unknowns x = (Pin[, clamp capacitor voltage at turn-off]); residuals F(x) from one
@@ -272,11 +282,13 @@ class FlybackModel:
         output_w = d.output_voltage_v * load_a
         fixed_w = output_w * (1.0 + d.other_loss_fraction)
         x, jacobian = self._initial_guess(bulk_v, load_a, fixed_w)
-        floor_v = bulk_v + d.reflected_voltage_v + 1e-3
+        # the clamp capacitor never discharges below the bus its resistor returns to; at light
+        # load it may sit under Vin + Vr, where its diode takes magnetising energy too
+        floor_v = bulk_v + 1.0
+        residual, primary, period = self._residual(network, x, fixed_w, record=True)
+        if jacobian is None:
+            jacobian = self._jacobian(network, x, residual, fixed_w)
         for _ in range(MAX_ITERATIONS):
-            residual, primary, period = self._residual(network, x, fixed_w, record=True)
-            if jacobian is None:
-                jacobian = self._jacobian(network, x, residual, fixed_w)
             step = -np.linalg.solve(jacobian, residual)
             power_ok = abs(residual[0]) <= POWER_RTOL * x[0]
             if power_ok and (x.size == 1 or abs(step[1]) <= CLAMP_VTOL):
@@ -285,15 +297,15 @@ class FlybackModel:
             new_x[0] = max(new_x[0], fixed_w)
             if x.size == 2:
                 new_x[1] = max(new_x[1], floor_v)
-            new_residual = self._residual(network, new_x, fixed_w, record=False)[0]
+            new_residual, primary, period = self._residual(network, new_x, fixed_w, record=True)
             jacobian = _broyden(jacobian, new_x - x, new_residual - residual)
-            x = new_x
+            x, residual = new_x, new_residual
         else:
             raise RuntimeError(f"flyback steady state did not converge at {bulk_v} V, {load_a} A")
         self._solved.setdefault(load_a, {})[bulk_v] = (x.copy(), jacobian)
         other_w = output_w * d.other_loss_fraction
         op = _operating_point(d, bulk_v, load_a, primary, period, other_w)
-        return op, period.node_v, period.grid_dt_s
+        return op, np.arange(period.node_v.size) * period.grid_dt_s, period.node_v
 
     def _residual(
         self, network: NodeNetwork, x: np.ndarray, fixed_w: float, *, record: bool

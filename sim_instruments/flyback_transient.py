@@ -170,6 +170,17 @@ class NodeNetwork:
     def _snubber_current(self, y: np.ndarray) -> float:
         return (y[_V] - y[_VCS]) / self.rs if self.has_snubber else 0.0
 
+    def _clamp_diode_current(self, _t: float, y: np.ndarray) -> float:
+        """Clamp diode current while it conducts, scaled by (C(v) + Ccl) (only its sign is used).
+
+        The diode feeds the clamp capacitor and its resistor: with the node tied to the capacitor,
+        i_d·(C + Ccl) = (i - i_snub)·Ccl + C·i_R. It stops when this falls through zero, which
+        leaves the node and the capacitor moving apart, so the diode does not chatter.
+        """
+        i_rcl = (y[_VCL] - self.bulk_v) / self.rcl
+        node_c = self.node_capacitance_f(y[_V])
+        return (y[_I] - self._snubber_current(y)) * self.ccl + node_c * i_rcl
+
     def _events(self, mode: _Mode) -> list[tuple[Callable[..., float], str]]:
         """Terminal events of ``mode``: (function, name of the diode change it signals)."""
         vin, vr, lm, lp, rd = self.bulk_v, self.vr, self.lm, self.lp, self.rd
@@ -187,7 +198,7 @@ class NodeNetwork:
         if mode.body_on:
             event(lambda _t, y: y[_I] - self._snubber_current(y), 1, "body_off")
         elif mode.clamp_on:
-            event(lambda _t, y: y[_I] - self._snubber_current(y), -1, "clamp_off")
+            event(lambda t, y: self._clamp_diode_current(t, y), -1, "clamp_off")
         else:
             event(lambda _t, y: y[_V], -1, "body_on")
             if self.has_clamp:

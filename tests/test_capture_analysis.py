@@ -105,7 +105,8 @@ def test_accuracy_across_noise_and_sample_rate_at_8_bits() -> None:
     print("\n   f_MHz  zeta  fs_GS/s  noise_V   f_err_%   zeta_err   peak_err_V")
     for f, zeta, fs, noise, f_err, z_err, peak_err in rows:
         print(
-            f"{f / 1e6:8.0f} {zeta:5.2f} {fs / 1e9:8.0f} {noise:8.1f} {f_err:9.3f} {z_err:10.4f} {peak_err:11.2f}"
+            f"{f / 1e6:8.0f} {zeta:5.2f} {fs / 1e9:8.0f} {noise:8.1f} "
+            f"{f_err:9.3f} {z_err:10.4f} {peak_err:11.2f}"
         )
     f_errs, z_errs, peak_errs = (np.array([r[k] for r in rows]) for k in (4, 5, 6))
     light = np.array([r[1] for r in rows]) <= 0.1

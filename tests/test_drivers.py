@@ -19,6 +19,7 @@ import pytest
 from instruments.block import encode_block
 from instruments.command_map import load_command_map
 from instruments.errors import (
+    BlockFormatError,
     ConnectionLost,
     InstrumentError,
     InstrumentTimeout,
@@ -150,9 +151,11 @@ def test_timeout_names_instrument_resource_and_command(scripted):
 
 def test_non_numeric_reply(scripted):
     server = scripted(lambda command: "OVERLOAD")
-    with ScpiInstrument.open(server.resource_name, name="meter") as box:
-        with pytest.raises(ReplyFormatError, match="'OVERLOAD'.*not a number"):
-            box.query_float("MEAS:VOLT?")
+    with (
+        ScpiInstrument.open(server.resource_name, name="meter") as box,
+        pytest.raises(ReplyFormatError, match="'OVERLOAD'.*not a number"),
+    ):
+        box.query_float("MEAS:VOLT?")
 
 
 def test_dropped_connection(scripted):
@@ -287,8 +290,9 @@ def test_new_family_needs_only_a_map(scripted, kestrel_map, definite):
     assert sent[sent.index("TRIG:SRC C1"):sent.index("TRIG:SRC C1") + 4] == [
         "TRIG:SRC C1", "TRIG:LVL 1.5", "TRIG:EDGE UP", "TRIG:DELAY 0.25",
     ]
-    assert ["WAVE:SRC C1", "WAVE:WIDTH WORD", "WAVE:ORDER LSBF", "WAVE:PRE?", "WAVE:FETCH?"] == [
-        command for command in sent if command.startswith("WAVE")
+    waveform_commands = [command for command in sent if command.startswith("WAVE")]
+    assert waveform_commands == [
+        "WAVE:SRC C1", "WAVE:WIDTH WORD", "WAVE:ORDER LSBF", "WAVE:PRE?", "WAVE:FETCH?",
     ]
     # Every configuration step is checked: the next query after it is an error-queue read
     # (SCPI-1999 vol. 2 19.7).
@@ -341,10 +345,12 @@ def test_malformed_block_reply_is_refused(scripted, kestrel_map):
         return b"#9000000006\x00\x01\x00\x02\x00\x03XYZ\n" if command == "WAVE:FETCH?" else None
 
     server = scripted(bad_block)
-    with Oscilloscope.open(server.resource_name, command_map=kestrel_map, timeout_s=1) as scope:
-        # IEEE 488.2 8.7.9: the block ends at its announced length; "XYZ" is not a terminator.
-        with pytest.raises(InstrumentError, match="continues with b'X'"):
-            scope.fetch_waveform(1)
+    # IEEE 488.2 8.7.9: the block ends at its announced length; "XYZ" is not a terminator.
+    with (
+        Oscilloscope.open(server.resource_name, command_map=kestrel_map, timeout_s=1) as scope,
+        pytest.raises(BlockFormatError, match="continues with b'X'"),
+    ):
+        scope.fetch_waveform(1)
 
 
 # -- the simulated bench, end to end through pyvisa-py -------------------------------------

@@ -219,11 +219,19 @@ def _clip_mask(
 
 
 def _first_departure(u: np.ndarray, start: int, stop: int, centre: float, half_width: float) -> int:
-    """First index in [start, stop) where |u − centre| exceeds ``half_width``; ``stop`` if none."""
-    if start >= stop:
-        return stop
-    outside = np.flatnonzero(np.abs(u[start:stop] - centre) > half_width)
-    return start + int(outside[0]) if outside.size else stop
+    """First index in [start, stop) where |u − centre| exceeds ``half_width``; ``stop`` if none.
+
+    Searched in chunks that double in length, so an early departure costs little on a long
+    high state.
+    """
+    chunk = 4096
+    while start < stop:
+        end = min(stop, start + chunk)
+        outside = np.flatnonzero(np.abs(u[start:end] - centre) > half_width)
+        if outside.size:
+            return start + int(outside[0])
+        start, chunk = end, 2 * chunk
+    return stop
 
 
 def _fit_window(

@@ -68,12 +68,6 @@ class RingFit:
         """Q = 1 / (2ζ)."""
         return 1.0 / (2.0 * self.damping_ratio)
 
-    def envelope_v(self, t_s: np.ndarray | float) -> np.ndarray:
-        """Envelope magnitude |A|·exp(-σ·τ) at ``t_s``."""
-        return abs(self.amplitude_v) * np.exp(
-            -self.decay_rate_per_s * (np.asarray(t_s) - self.t_start_s)
-        )
-
     def time_envelope_below_s(self, level_v: float) -> float:
         """Instant after which the envelope stays below ``level_v`` (at least ``t_start_s``)."""
         if level_v <= 0:

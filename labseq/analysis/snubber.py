@@ -65,14 +65,15 @@ def branch_resistor_power_w(
 def period_means_w(
     power_w: np.ndarray, sample_interval_s: float, t_starts_s: np.ndarray, period_s: float
 ) -> np.ndarray:
-    """Mean of ``power_w`` over [t, t + period_s] for each t in ``t_starts_s``.
+    """Mean of ``power_w`` over one period from each start time (times from the first sample).
 
-    Times count from the first sample. One trapezoidal running integral serves every window; the
-    window ends are interpolated linearly on it.
+    Each window is the whole number of samples nearest to the period, integrated by the
+    trapezoidal rule; the rounding changes the window by at most half a sample.
     """
     p = np.asarray(power_w, dtype=float)
-    cumulative = np.concatenate([[0.0], np.cumsum(0.5 * (p[1:] + p[:-1]))]) * sample_interval_s
-    starts = np.asarray(t_starts_s, dtype=float)
-    index_s = np.arange(cumulative.size) * sample_interval_s
-    ends = np.interp(np.concatenate([starts, starts + period_s]), index_s, cumulative)
-    return (ends[starts.size :] - ends[: starts.size]) / period_s
+    samples = max(1, round(period_s / sample_interval_s))
+    starts = np.clip(np.round(np.asarray(t_starts_s) / sample_interval_s).astype(int), 0, None)
+    starts = np.minimum(starts, p.size - 1 - samples)
+    return np.array(
+        [np.trapezoid(p[a : a + samples + 1]) / samples for a in starts.tolist()], dtype=float
+    )
