@@ -63,9 +63,7 @@ def length_digit_count(prefix: bytes) -> int:
         )
     digit = prefix[1]
     if not 0x30 <= digit <= 0x39:
-        raise BlockFormatError(
-            f"block header digit count is not a digit: {bytes(prefix[:2])!r}"
-        )
+        raise BlockFormatError(f"block header digit count is not a digit: {bytes(prefix[:2])!r}")
     return digit - 0x30
 
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
+from contextlib import suppress
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -75,11 +76,8 @@ class Bench:
     def reopen(self, role: str) -> ScpiInstrument:
         """Close ``role``'s session without talking to it and open a fresh one (after a drop or a
         command that never answered); clears its error queue."""
-        old = self.drivers[role]
-        try:
-            old.resource.close()
-        except Exception:  # noqa: BLE001 - the old session is dead; we only let go of it
-            pass
+        with suppress(Exception):  # the old session is dead; we only let go of it
+            self.drivers[role].resource.close()
         driver = self._openers[role]()
         self.drivers[role] = driver
         driver.clear()
@@ -89,10 +87,8 @@ class Bench:
         """Close every session (without switching anything: :func:`make_safe` does that first),
         then stop the simulated bench if there is one."""
         for driver in self.drivers.values():
-            try:
+            with suppress(Exception):  # best effort: make_safe has already switched off
                 driver.resource.close()
-            except Exception:  # noqa: BLE001 - closing is best effort after make_safe
-                pass
         if self.sim is not None:
             self.sim.stop()
 
@@ -125,7 +121,7 @@ def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -
         sim, resources = _sim_resources(sequence, sim_faults, sim_seed)
     else:
         if sim_faults:
-            raise InputError("fault injection needs the simulated bench (bench.kind = \"sim\")")
+            raise InputError('fault injection needs the simulated bench (bench.kind = "sim")')
         resources = dict(spec.resources)
     limits = spec.limits
     command_map = load_command_map(spec.scope_map)

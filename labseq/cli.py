@@ -17,7 +17,17 @@ from labseq import __version__
 from labseq.errors import LabseqError
 
 #: Modules under ``labseq.commands`` that each add one command to the group.
-COMMAND_MODULES: tuple[str, ...] = ("sim", "analyze", "design", "check", "runs", "export")
+COMMAND_MODULES: tuple[str, ...] = (
+    "sim",
+    "check",
+    "run",
+    "resume",
+    "runs",
+    "export",
+    "analyze",
+    "analyze_run",
+    "design",
+)
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})

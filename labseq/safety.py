@@ -9,7 +9,7 @@ from __future__ import annotations
 import signal
 import threading
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import AbstractContextManager, contextmanager
 
 #: ES1 steady-state limits of IEC 62368-1 (from memory).
 ES1_DC_V = 60.0
@@ -48,18 +48,30 @@ class Interrupted(BaseException):
 
 
 @contextmanager
-def signals_raise_interrupted() -> Iterator[None]:
-    """Within the block, SIGINT and SIGTERM raise :class:`Interrupted` in the main thread."""
+def _signal_handler(handler: object) -> Iterator[None]:
+    """Within the block, SIGINT and SIGTERM go to ``handler`` (main thread only: elsewhere
+    Python cannot set handlers, and signals reach only the main thread anyway)."""
     if threading.current_thread() is not threading.main_thread():
         yield
         return
-
-    def handler(signum: int, _frame: object) -> None:
-        raise Interrupted(signal.Signals(signum).name)
-
     previous = {sig: signal.signal(sig, handler) for sig in (signal.SIGINT, signal.SIGTERM)}
     try:
         yield
     finally:
         for sig, old in previous.items():
             signal.signal(sig, old)
+
+
+def _raise_interrupted(signum: int, _frame: object) -> None:
+    raise Interrupted(signal.Signals(signum).name)
+
+
+def signals_raise_interrupted() -> AbstractContextManager[None]:
+    """Within the block, SIGINT and SIGTERM raise :class:`Interrupted`."""
+    return _signal_handler(_raise_interrupted)
+
+
+def signals_ignored() -> AbstractContextManager[None]:
+    """Within the block (making the bench safe), SIGINT and SIGTERM are ignored, so a second
+    Ctrl-C cannot cut the shutdown short; each instrument call is bounded by its timeout."""
+    return _signal_handler(signal.SIG_IGN)

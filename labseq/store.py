@@ -5,10 +5,13 @@ after the bench is gone. Captures are stored as the scope sent them — raw inte
 int16; float32 only for a scope that sends floats) plus the scaling that turns them into volts —
 never as float64 volts, which would cost eight times the space and add nothing.
 
-The file is opened in WAL mode with foreign keys on and ``synchronous=FULL``, so a commit that
-returned is on disk. A point's captures and its state are committed in one transaction: a crash
-leaves a point either pending with no captures or done with all of them. The schema version is
-checked on open; a file written by a newer labseq is refused without being touched.
+The file is opened in WAL mode with foreign keys on and ``synchronous=NORMAL``: a commit that
+returned survives the death of the process (SIGKILL included), and the file stays consistent
+through a power cut, which may lose only the last few commits (SQLite's documented guarantee for
+WAL with NORMAL; FULL would add a disk sync per capture). A capture is committed on its own, and a
+point's readings and "done" state with its last capture, so a crash leaves every committed capture
+intact and the point pending until it is complete. The schema version is checked on open; a file
+written by a newer labseq is refused without being touched.
 """
 
 from __future__ import annotations
@@ -19,6 +22,7 @@ import socket
 import sqlite3
 import time
 from collections.abc import Iterable, Iterator, Mapping
+from contextlib import AbstractContextManager
 from dataclasses import dataclass, field, fields
 from datetime import UTC, datetime
 from pathlib import Path
@@ -416,7 +420,7 @@ class Store:
         if version is None:
             conn.execute(f"PRAGMA page_size = {PAGE_SIZE}")
         conn.execute("PRAGMA journal_mode = WAL")
-        conn.execute("PRAGMA synchronous = FULL")
+        conn.execute("PRAGMA synchronous = NORMAL")
         conn.execute("PRAGMA foreign_keys = ON")
         if version is None:
             with self.db.atomic():
@@ -486,6 +490,31 @@ class Store:
             updates["notes"] = notes
         with self.db.atomic():
             self.db["runs"].update(run_id, updates)
+
+    def set_run_instruments(self, run_id: int, instruments: Mapping[str, Any]) -> None:
+        """Record the identities of the instruments the run is using (on start and on resume)."""
+        self._require_run(run_id)
+        with self.db.atomic():
+            self.db["runs"].update(run_id, {"instruments": json.dumps(dict(instruments))})
+
+    def transaction(self) -> AbstractContextManager[Any]:
+        """A block whose writes commit together (nested blocks become savepoints): one disk
+        sync instead of one per write."""
+        return self.db.atomic()
+
+    def claim_run(self, run_id: int) -> None:
+        """Mark a run "running" again, owned by this process (to resume it)."""
+        self._require_run(run_id)
+        with self.db.atomic():
+            self.db["runs"].update(
+                run_id,
+                {
+                    "status": "running",
+                    "finished_at": None,
+                    "pid": os.getpid(),
+                    "host": socket.gethostname(),
+                },
+            )
 
     def runs(self) -> list[RunRecord]:
         """All runs, oldest first, with their point counts."""

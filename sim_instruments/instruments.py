@@ -77,6 +77,8 @@ class BenchState:
     load_current_a: float = 0.0
     load_input_on: bool = False
     load_setpoints: int = 0
+    #: (source voltage, output on) after every change of either: what the DUT saw, in order.
+    line_history: list[tuple[float, bool]] = field(default_factory=list)
     lock: threading.RLock = field(default_factory=threading.RLock, repr=False)
 
     @property
@@ -100,6 +102,7 @@ class BenchState:
                 self.bus_voltage_at_off_v = self.bus_voltage_v()
                 self.source_off_time_s = time.monotonic()
             self.source_output_on = on
+            self.line_history.append((self.source_voltage_v, on))
 
     def set_load_current(self, current_a: float) -> None:
         with self.lock:
@@ -229,6 +232,8 @@ class SimSource(SimInstrument):
         def set_value(name: str, value: object) -> None:
             with state.lock:
                 setattr(state, name, value)
+                if name == "source_voltage_v":
+                    state.line_history.append((state.source_voltage_v, state.source_output_on))
 
         def output_current_a() -> float:
             reading = state.line_reading()

@@ -127,8 +127,9 @@ def test_unknown_word_and_limit_keys_are_refused(tmp_path):
     path = write_map(tmp_path, GENERIC_TEXT + "\n[limits]\nmax_volt_per_div = 5\n")
     with pytest.raises(CommandMapError, match="did you mean 'max_volts_per_div'"):
         load_command_map(path)
-    path = write_map(tmp_path, GENERIC_TEXT + "\n[limits]\nmin_volts_per_div = 5.0\n"
-                     "max_volts_per_div = 1.0\n")
+    path = write_map(
+        tmp_path, GENERIC_TEXT + "\n[limits]\nmin_volts_per_div = 5.0\nmax_volts_per_div = 1.0\n"
+    )
     with pytest.raises(CommandMapError, match="min_volts_per_div .* exceeds"):
         load_command_map(path)
 

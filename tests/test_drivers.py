@@ -58,7 +58,10 @@ class ScriptedServer:
         return f"TCPIP::127.0.0.1::{self.port}::SOCKET"
 
     def _serve(self) -> None:
-        connection, _ = self.listener.accept()
+        try:
+            connection, _ = self.listener.accept()
+        except OSError:  # closed at teardown before a client came
+            return
         self.connection = connection
         with connection, connection.makefile("rb") as lines:
             for line in lines:

@@ -2,8 +2,12 @@
 
 The model is ``v(t) = c + exp(-σ·τ)·(a·cos(ωd·τ) + b·sin(ωd·τ))`` with ``τ = t - t_start``. Its
 start comes from the matrix pencil method, which finds the poles of a sum of damped exponentials
-directly from the samples; least squares then refines all five parameters. Counting peaks or zero
-crossings is avoided: both are biased by noise, quantisation and the offset.
+directly from the samples; a variable-projection Levenberg–Marquardt refinement then iterates on the
+two nonlinear parameters (σ, ωd) only, with (a, b, c) solved by linear least squares at each step.
+Counting peaks or zero crossings is avoided: both are biased by noise, quantisation and the offset.
+
+The refinement is written with numpy on the short, decimated window: a general-purpose solver's
+fixed cost per call would dominate an analysis that fits one ring per switching edge.
 """
 
 from __future__ import annotations
@@ -12,7 +16,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import least_squares
 
 #: Poles kept by the matrix pencil: the ring pair, the offset and room for a slower trend and noise.
 PENCIL_MODEL_ORDER = 6
@@ -22,6 +25,13 @@ PENCIL_MAX_SAMPLES = 96
 MIN_RELATIVE_AMPLITUDE = 0.02
 #: Fewest samples a window may hold for a five-parameter fit.
 MIN_FIT_SAMPLES = 12
+#: Refinement stops when a step changes σ and ωd by less than this (relative), or after
+#: ``REFINE_MAX_ITERATIONS``; from a matrix-pencil start it usually needs three to six.
+REFINE_STEP_TOLERANCE = 1e-9
+REFINE_MAX_ITERATIONS = 40
+#: Levenberg–Marquardt damping: start, and the factors applied after a good and a rejected step.
+LM_INITIAL_DAMPING = 1e-3
+LM_DECREASE, LM_INCREASE, LM_MAX_DAMPING = 1 / 3, 4.0, 1e12
 
 
 class RingFitError(ValueError):
@@ -125,7 +135,8 @@ def matrix_pencil_poles(
     rows = np.lib.stride_tricks.sliding_window_view(y, pencil + 1)
     _, _, vh = np.linalg.svd(rows, full_matrices=False)
     v = vh[:model_order].conj().T
-    z = np.linalg.eigvals(np.linalg.pinv(v[:-1]) @ v[1:])
+    v1 = v[:-1]
+    z = np.linalg.eigvals(np.linalg.solve(v1.T @ v1, v1.T @ v[1:]))  # V1⁺·V2, V1 full rank
     vandermonde = z[np.newaxis, :] ** np.arange(n)[:, np.newaxis]
     h, *_ = np.linalg.lstsq(vandermonde, y.astype(complex), rcond=None)
     return z, h
@@ -158,6 +169,75 @@ def _model_columns(tau: np.ndarray, decay: float, omega: float) -> np.ndarray:
     )
 
 
+@dataclass(frozen=True)
+class _Projection:
+    """The best linear part at one (σ, ωd), with the weighted residual and its Jacobian."""
+
+    decay: float
+    omega: float
+    linear: np.ndarray  # (a, b, c)
+    residual: np.ndarray  # weighted (model − data)
+    jacobian: np.ndarray  # d residual / d(σ, ωd), Kaufman's form
+    cost: float  # residual · residual
+
+
+def _project(
+    tau: np.ndarray, y_w: np.ndarray, w: np.ndarray, decay: float, omega: float
+) -> _Projection:
+    """Solve (a, b, c) by least squares at fixed (σ, ωd) and linearise the residual there.
+
+    Variable projection (Golub & Pereyra 1973) with Kaufman's Jacobian (Kaufman 1975): with Q an
+    orthonormal basis of the weighted columns Φ and c their coefficients, the residual is
+    −(I − QQᵀ)·y and its derivative with respect to a nonlinear parameter θ is taken as
+    (I − QQᵀ)·(∂Φ/∂θ)·c, dropping a term that vanishes with the residual.
+    """
+    envelope = np.exp(-decay * tau)
+    env_cos, env_sin = envelope * np.cos(omega * tau), envelope * np.sin(omega * tau)
+    q, r = np.linalg.qr(np.stack([env_cos * w, env_sin * w, w], 1))
+    q_y = q.T @ y_w
+    linear = np.linalg.solve(r, q_y)
+    a, b = linear[0], linear[1]
+    residual = q @ q_y - y_w
+    derivatives = np.stack(
+        [-tau * (a * env_cos + b * env_sin) * w, tau * (b * env_cos - a * env_sin) * w], 1
+    )
+    jacobian = derivatives - q @ (q.T @ derivatives)
+    return _Projection(decay, omega, linear, residual, jacobian, float(residual @ residual))
+
+
+def _refine(
+    tau: np.ndarray, y_w: np.ndarray, w: np.ndarray, decay: float, omega: float
+) -> _Projection:
+    """Least-squares (σ, ωd, a, b, c) from a start (σ, ωd): Levenberg–Marquardt on (σ, ωd).
+
+    The step solves (JᵀJ + λ·diag(JᵀJ))·δ = −Jᵀr (Marquardt 1963; the diagonal scaling as in
+    Moré 1978); λ shrinks after a step that lowers the cost and grows until one does.
+    """
+    best = _project(tau, y_w, w, decay, omega)
+    damping = LM_INITIAL_DAMPING
+    for _ in range(REFINE_MAX_ITERATIONS):
+        normal = best.jacobian.T @ best.jacobian
+        gradient = best.jacobian.T @ best.residual
+        while True:
+            step = np.linalg.solve(normal + damping * np.diag(np.diag(normal)), -gradient)
+            try:
+                trial = _project(tau, y_w, w, best.decay + step[0], best.omega + step[1])
+            except np.linalg.LinAlgError:  # a degenerate basis: treat as a rejected step
+                trial = None
+            if trial is not None and trial.cost <= best.cost:  # False for a NaN cost
+                break
+            damping *= LM_INCREASE
+            if damping > LM_MAX_DAMPING:
+                return best
+        damping *= LM_DECREASE
+        best = trial
+        if abs(step[0]) <= REFINE_STEP_TOLERANCE * (abs(best.decay) + abs(best.omega)) and abs(
+            step[1]
+        ) <= REFINE_STEP_TOLERANCE * abs(best.omega):
+            break
+    return best
+
+
 def fit_ring(
     volts: np.ndarray,
     sample_interval_s: float,
@@ -175,7 +255,7 @@ def fit_ring(
     sample_interval_s : spacing of ``volts`` (after any decimation by the caller).
     t_start_s : time of ``volts[0]``.
     weights : optional 0–1 weight per sample (0 excludes a sample, e.g. a clipped one).
-    refine : False returns the matrix-pencil start without least-squares refinement.
+    refine : False returns the matrix-pencil start (with its least-squares a, b, c) unrefined.
     start : an earlier fit of the same ring (e.g. on a shorter window) whose decay rate and
         frequency replace the matrix-pencil start.
 
@@ -191,9 +271,9 @@ def fit_ring(
     Notes
     -----
     The start is the dominant oscillatory pole of the matrix pencil (Hua & Sarkar 1990) on at most
-    ``PENCIL_MAX_SAMPLES`` samples; (a, b, c) for that pole come from linear least squares
-    (the variable-projection idea of Golub & Pereyra 1973); all five parameters are then refined
-    by Levenberg–Marquardt (``scipy.optimize.least_squares``, Moré 1978) with an analytic Jacobian.
+    ``PENCIL_MAX_SAMPLES`` samples. The refinement is variable projection (Golub & Pereyra 1973,
+    Kaufman 1975): (a, b, c) are solved by linear least squares for each (σ, ωd), and only
+    (σ, ωd) are iterated, by Levenberg–Marquardt (Marquardt 1963, Moré 1978).
     Time is scaled to the window length and voltage to the window's spread so that the problem is
     well conditioned whatever the units.
     """
@@ -219,37 +299,16 @@ def fit_ring(
         decay0 = start.decay_rate_per_s * seconds_per_unit
         omega0 = start.angular_frequency_rad_s * seconds_per_unit
 
-    columns = _model_columns(tau, decay0, omega0)
-    linear, *_ = np.linalg.lstsq(columns * w[:, None], y * w, rcond=None)
-    params = np.array([*linear, decay0, omega0])
-
     if refine:
-
-        def residual(p: np.ndarray) -> np.ndarray:
-            return (_model_columns(tau, p[3], p[4]) @ p[:3] - y) * w
-
-        def jacobian(p: np.ndarray) -> np.ndarray:
-            a, b, _, decay, omega = p
-            env = np.exp(-decay * tau)
-            cos, sin = np.cos(omega * tau), np.sin(omega * tau)
-            ring = env * (a * cos + b * sin)
-            return (
-                np.stack(
-                    [
-                        env * cos,
-                        env * sin,
-                        np.ones(n),
-                        -tau * ring,
-                        tau * env * (b * cos - a * sin),
-                    ],
-                    1,
-                )
-                * w[:, None]
-            )
-
-        result = least_squares(residual, params, jac=jacobian, method="lm", xtol=1e-10)
-        if result.success and np.all(np.isfinite(result.x)):
-            params = result.x
+        try:
+            fit = _refine(tau, y * w, w, decay0, omega0)
+        except np.linalg.LinAlgError:
+            raise RingFitError("the start values give a degenerate model basis") from None
+        params = np.array([*fit.linear, fit.decay, fit.omega])
+    else:
+        columns = _model_columns(tau, decay0, omega0)
+        linear, *_ = np.linalg.lstsq(columns * w[:, None], y * w, rcond=None)
+        params = np.array([*linear, decay0, omega0])
 
     a, b, c, decay, omega = (float(v) for v in params)
     if omega < 0:

@@ -1,0 +1,43 @@
+"""``labseq analyze-run RUN``: re-analyse a stored run and judge it again, without the bench."""
+
+from __future__ import annotations
+
+from collections import Counter
+from pathlib import Path
+
+import click
+
+from labseq.commands._store import db_option, resolve_run
+from labseq.runner import analyse_run
+from labseq.sequence import load_sequence, parse_sequence
+from labseq.store import Store
+
+
+@click.command("analyze-run")
+@click.argument("run", metavar="RUN")
+@db_option
+@click.option(
+    "--sequence",
+    "sequence_path",
+    type=click.Path(path_type=Path),
+    help="Judge against this sequence file's limits instead of those the run was made with.",
+)
+def command(run: str, db_path: Path, sequence_path: Path | None) -> None:
+    """Analyse every stored capture of RUN again from its raw codes and re-judge its points.
+
+    Use it after changing limits (give the new file with --sequence) or after an analysis
+    update; nothing is re-captured.
+    """
+    with Store(db_path, create=False) as store:
+        run_id = resolve_run(store, run)
+        record = store.run(run_id)
+        sequence = (
+            load_sequence(sequence_path)
+            if sequence_path
+            else parse_sequence(record.sequence_text, record.sequence_path)
+        )
+        count = analyse_run(store, sequence, run_id, only_missing=False)
+        verdicts = Counter(p.verdict or "not judged" for p in store.points(run_id))
+        store.log_event(run_id, "info", f"re-analysed {count} captures", data=dict(verdicts))
+    summary = ", ".join(f"{n} {v}" for v, n in sorted(verdicts.items()))
+    click.echo(f"run {run_id}: re-analysed {count} captures; points: {summary}")

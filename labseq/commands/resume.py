@@ -1,0 +1,32 @@
+"""``labseq resume RUN``: finish an interrupted run with the points it still lacks."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from labseq.commands._store import db_option, resolve_run
+from labseq.commands.run import report_outcome
+from labseq.progress import Progress
+from labseq.runner import execute, resumable_sequence
+from labseq.store import Store
+
+
+@click.command("resume")
+@click.argument("run", metavar="RUN")
+@db_option
+@click.option("--quiet", is_flag=True, help="No progress display; errors still go to stderr.")
+def command(run: str, db_path: Path, quiet: bool) -> None:
+    """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
+
+    The bench is first made safe, then only the points not yet done are measured; captures
+    already stored are kept and never taken again. The run's own stored sequence is used.
+    """
+    progress = Progress(quiet=quiet)
+    with Store(db_path, create=False) as store:
+        run_id = resolve_run(store, run)
+        sequence = resumable_sequence(store, run_id)
+        store.log_event(run_id, "info", "run resumed")
+        outcome = execute(sequence, store, run_id, progress=progress)
+    report_outcome(outcome, db_path, progress)

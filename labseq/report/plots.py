@@ -1,0 +1,251 @@
+"""Figures of a report: heat maps over line × load, change maps, capture overlays.
+
+Colours are colour-blind safe: cividis for value maps (monotonic in lightness and readable with
+any common colour-vision deficiency), the ColorBrewer PuOr diverging map for changes, and the
+Okabe–Ito palette (Color Universal Design, 2002) for lines. Every map cell also carries its value
+in words when the grid is small enough to read, so nothing depends on colour alone.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.pyplot as plt  # noqa: E402 (the backend is chosen first)
+import numpy as np  # noqa: E402
+from matplotlib.colors import Normalize, TwoSlopeNorm  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+
+from labseq.analysis import RingFit  # noqa: E402
+from labseq.units import format_si  # noqa: E402
+
+#: Okabe & Ito palette, in the order lines are drawn.
+OKABE_ITO = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000")
+BASELINE_COLOUR = "#0072B2"  # blue
+CANDIDATE_COLOUR = "#D55E00"  # vermillion
+FIT_COLOUR = "#000000"
+LIMIT_COLOUR = "#CC79A7"  # reddish purple
+VALUE_MAP = "cividis"
+CHANGE_MAP = "PuOr"
+MISSING_CELL = "#d9d9d9"
+#: Grids with more cells than this are drawn without per-cell text (it would not be legible).
+MAX_ANNOTATED_CELLS = 100
+#: Axis ticks shown at most (evenly thinned beyond).
+MAX_TICKS = 12
+DPI = 100
+
+
+@dataclass(frozen=True)
+class Trace:
+    """One capture as drawn: samples, the fitted rings of its edges, and what went wrong."""
+
+    label: str
+    time_s: np.ndarray
+    volts: np.ndarray
+    fits: tuple[RingFit, ...]
+    edge_time_s: float | None  # the worst edge's mid-reference instant
+    problem: str | None = None
+
+
+def png_bytes(fig: Figure) -> bytes:
+    """Render ``fig`` as PNG and close it."""
+    buffer = io.BytesIO()
+    try:
+        fig.savefig(buffer, format="png", dpi=DPI)
+    finally:
+        plt.close(fig)
+    return buffer.getvalue()
+
+
+def _tick_positions(count: int) -> list[int]:
+    step = max(1, math.ceil(count / MAX_TICKS))
+    return list(range(0, count, step))
+
+
+def _axes_labels(ax: plt.Axes, lines_text: Sequence[str], loads_text: Sequence[str]) -> None:
+    """Line values down the side and load values along the bottom, at the cell centres."""
+    rows, columns = _tick_positions(len(lines_text)), _tick_positions(len(loads_text))
+    ax.set_yticks([r + 0.5 for r in rows], [lines_text[i] for i in rows])
+    ax.set_xticks([c + 0.5 for c in columns], [loads_text[i] for i in columns])
+    ax.set_ylabel("line")
+    ax.set_xlabel("load")
+    if len(columns) > 6:
+        ax.tick_params(axis="x", labelrotation=45)
+
+
+def _text_colour(cmap: matplotlib.colors.Colormap, fraction: float) -> str:
+    """Black on light cells, white on dark ones (relative luminance, ITU-R BT.709 weights)."""
+    red, green, blue, _ = cmap(fraction)
+    return "black" if 0.2126 * red + 0.7152 * green + 0.0722 * blue > 0.45 else "white"
+
+
+def heat_map(
+    values: np.ndarray,
+    lines_text: Sequence[str],
+    loads_text: Sequence[str],
+    *,
+    title: str,
+    colour_label: str,
+    cell_text: Callable[[int, int], str] | None = None,
+    colour_values: np.ndarray | None = None,
+    cmap_name: str = VALUE_MAP,
+    centre: float | None = None,
+    limits: tuple[float, float] | None = None,
+    colour_format: Callable[[float], str] | None = None,
+) -> Figure:
+    """A line (rows) × load (columns) map of ``values``.
+
+    ``colour_values`` (default ``values``) sets the colours; ``cell_text(row, column)`` writes
+    each cell's words on small grids; NaN cells are grey and read "—". ``centre`` makes the
+    scale diverge around that value; ``limits`` fixes the scale (to share it between maps).
+    """
+    shown = values if colour_values is None else colour_values
+    cmap = plt.get_cmap(cmap_name).with_extremes(bad=MISSING_CELL)
+    finite = shown[np.isfinite(shown)]
+    if limits is not None:
+        low, high = limits
+    elif finite.size:
+        low, high = float(finite.min()), float(finite.max())
+    else:
+        low, high = 0.0, 1.0
+    if centre is not None:
+        reach = max(abs(low - centre), abs(high - centre)) or 1.0
+        norm: Normalize = TwoSlopeNorm(centre, centre - reach, centre + reach)
+    else:
+        norm = Normalize(low, high if high > low else low + (abs(low) or 1.0))
+    rows, columns = shown.shape
+    width = min(10.0, 3.2 + 0.9 * columns)
+    height = min(8.0, 2.0 + 0.55 * rows)
+    fig, ax = plt.subplots(figsize=(max(width, 5.2), max(height, 3.2)), layout="constrained")
+    mesh = ax.pcolormesh(
+        np.ma.masked_invalid(shown), cmap=cmap, norm=norm, edgecolors="white", linewidth=0.5
+    )
+    ax.set_xlim(0, columns)
+    ax.set_ylim(0, rows)
+    _axes_labels(ax, lines_text, loads_text)
+    ax.set_title(title)
+    bar = fig.colorbar(mesh, ax=ax, label=colour_label)
+    if colour_format is not None:
+        bar.formatter = matplotlib.ticker.FuncFormatter(lambda v, _: colour_format(v))
+        bar.update_ticks()
+    if cell_text is not None and rows * columns <= MAX_ANNOTATED_CELLS:
+        for row in range(rows):
+            for column in range(columns):
+                colour_value = shown[row, column]
+                colour = (
+                    _text_colour(cmap, float(norm(colour_value)))
+                    if np.isfinite(colour_value)
+                    else "black"
+                )
+                ax.text(
+                    column + 0.5,
+                    row + 0.5,
+                    cell_text(row, column),
+                    ha="center",
+                    va="center",
+                    fontsize=8,
+                    color=colour,
+                )
+    return fig
+
+
+def _fit_window_s(traces: Sequence[Trace]) -> tuple[float, float] | None:
+    """A time window around the worst edge that holds its ring: from a little before the edge
+    to about five decay time constants after it (3 to 30 ring periods)."""
+    for trace in traces:
+        for fit in trace.fits:
+            period_s = 1.0 / fit.frequency_hz
+            decay_s = 5.0 / fit.decay_rate_per_s if fit.decay_rate_per_s > 0 else math.inf
+            span_s = min(max(decay_s, 3 * period_s), 30 * period_s)
+            start_s = trace.edge_time_s if trace.edge_time_s is not None else fit.t_start_s
+            if fit.t_start_s >= start_s - span_s:
+                return start_s - 0.15 * span_s, fit.t_start_s + span_s
+    return None
+
+
+def _time_scale(span_s: float) -> tuple[float, str]:
+    return (1e9, "ns") if span_s < 2e-6 else (1e6, "µs")
+
+
+def overlay(
+    groups: Sequence[tuple[str, Sequence[Trace], Sequence[str]]],
+    *,
+    title: str,
+    limit_v: float | None = None,
+    limit_label: str = "",
+) -> Figure:
+    """Captures overlaid around their worst edge, with their fitted rings dashed.
+
+    ``groups`` are (name, traces, colours); a run report draws one group with one colour per
+    capture, a compare draws the baseline and the candidate in one colour each.
+    """
+    every = [trace for _, traces, _ in groups for trace in traces]
+    window = _fit_window_s(every)
+    if window is None and every:
+        window = (
+            min(float(t.time_s[0]) for t in every),
+            max(float(t.time_s[-1]) for t in every),
+        )
+    start_s, stop_s = window or (0.0, 1.0)
+    scale, unit = _time_scale(stop_s - start_s)
+    fig, ax = plt.subplots(figsize=(10, 4.2), layout="constrained")
+    fit_drawn = False
+    for name, traces, colours in groups:
+        for index, trace in enumerate(traces):
+            colour = colours[index % len(colours)]
+            inside = (trace.time_s >= start_s) & (trace.time_s <= stop_s)
+            ax.plot(
+                trace.time_s[inside] * scale,
+                trace.volts[inside],
+                color=colour,
+                lw=0.9,
+                alpha=0.85,
+                label=f"{name} {trace.label}".strip(),
+            )
+            for fit in trace.fits:
+                t_fit = np.linspace(max(fit.t_start_s, start_s), stop_s, 600)
+                if t_fit[0] >= stop_s:
+                    continue
+                ax.plot(
+                    t_fit * scale,
+                    fit.evaluate(t_fit),
+                    color=FIT_COLOUR if len(groups) == 1 else colour,
+                    lw=1.1,
+                    ls="--",
+                    label=None if fit_drawn and len(groups) == 1 else f"fitted ring {name}".strip(),
+                )
+                fit_drawn = True
+                if len(groups) > 1:
+                    break
+    if limit_v is not None:
+        ax.axhline(limit_v, color=LIMIT_COLOUR, ls=":", lw=1.5, label=limit_label)
+    problems = sorted({t.problem for t in every if t.problem})
+    if problems:
+        ax.text(
+            0.01,
+            0.02,
+            "; ".join(problems)[:160],
+            transform=ax.transAxes,
+            fontsize=8,
+            va="bottom",
+        )
+    ax.set_xlabel(f"time from trigger ({unit})")
+    ax.set_ylabel("switch node (V)")
+    ax.set_title(title)
+    ax.grid(True, color="#e0e0e0", lw=0.6)
+    handles, labels = ax.get_legend_handles_labels()
+    if handles:
+        unique = dict(zip(labels, handles, strict=True))
+        ax.legend(unique.values(), unique.keys(), loc="upper right", fontsize=8)
+    return fig
+
+
+def axis_texts(values: Sequence[float], unit: str, suffix: str = "") -> list[str]:
+    """Tick labels in engineering notation: ``36 V``, ``2.2 A``."""
+    return [format_si(value, unit) + suffix for value in values]

@@ -1,0 +1,281 @@
+"""The report of one run: verdict and limits, verdict grid, heat maps, worst points, identities,
+the sequence as run and the safety note — in the order a reviewer reads them."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from labseq.commands.export import write_points_csv
+from labseq.report import plots
+from labseq.report.html import Markup, Page, esc, table, verdict_cell
+from labseq.report.traces import point_traces
+from labseq.review import (
+    FIGURE_TITLES,
+    PointReview,
+    RunReview,
+    figure_unit,
+    format_figure,
+    limit_rows,
+    line_text,
+)
+from labseq.store import Store
+from labseq.units import format_si
+
+#: Rows of the "did not pass" table at most; points.csv has them all.
+MAX_LISTED_POINTS = 200
+
+
+@dataclass(frozen=True)
+class ReportFiles:
+    """What a report wrote."""
+
+    html: Path
+    csv: Path | None
+    images: list[Path]
+
+
+def grid_axes(review: RunReview) -> tuple[list[str], list[str]]:
+    """Axis labels of the run's grid: line values (with AC/DC) and load values."""
+    is_ac = bool(review.points) and review.points[0].point.line_is_ac
+    lines = [line_text(value, is_ac) for value in review.line_values_v]
+    return lines, plots.axis_texts(review.load_values_a, "A")
+
+
+def verdict_grid_table(review: RunReview) -> str:
+    """Line × load table of verdict words."""
+    lines, loads = grid_axes(review)
+    dense = " dense" if len(loads) > 16 else ""
+    head = "<th>line \\ load</th>" + "".join(f"<th>{esc(load)}</th>" for load in loads)
+    rows = []
+    for line, verdicts in zip(lines, review.verdict_grid(), strict=True):
+        cells = "".join(verdict_cell(verdict) for verdict in verdicts)
+        rows.append(f"<tr><th>{esc(line)}</th>{cells}</tr>")
+    return (
+        f'<table class="grid{dense}"><thead><tr>{head}</tr></thead>'
+        f"<tbody>{''.join(rows)}</tbody></table>"
+    )
+
+
+def _cell_texts(values: np.ndarray, describe: Callable[[float], str]) -> Callable[[int, int], str]:
+    def text(row: int, column: int) -> str:
+        value = values[row, column]
+        return describe(float(value)) if math.isfinite(value) else "—"
+
+    return text
+
+
+def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
+    """(file name, caption, PNG) of each heat map the run's figures allow."""
+    lines, loads = grid_axes(review)
+    maps: list[tuple[str, str, bytes]] = []
+    peak = review.grid("peak_v")
+    rating_v = review.derated_rating_v
+    if np.isfinite(peak).any():
+        if rating_v:
+            share = 100 * peak / rating_v
+            texts = _cell_texts(peak, lambda v: f"{format_si(v, 'V')}\n{100 * v / rating_v:.0f} %")
+            fig = plots.heat_map(
+                peak,
+                lines,
+                loads,
+                colour_values=share,
+                title=f"Peak stress against the derated rating ({format_si(rating_v, 'V')})",
+                colour_label="peak / derated rating (%)",
+                cell_text=texts,
+            )
+            caption = "Peak switch-node voltage; 100 % is the switch rating × derating."
+        else:
+            fig = plots.heat_map(
+                peak,
+                lines,
+                loads,
+                title="Peak stress",
+                colour_label="peak (V)",
+                cell_text=_cell_texts(peak, lambda v: format_si(v, "V")),
+            )
+            caption = "Peak switch-node voltage (no rating known: the sequence did not validate)."
+        maps.append(("map_peak", caption, plots.png_bytes(fig)))
+    damping = "damping_ratio" if np.isfinite(review.grid("damping_ratio")).any() else "q_factor"
+    for figure, name in (
+        (damping, "map_damping"),
+        ("settling_time_s", "map_settling"),
+        ("snubber_loss_w", "map_snubber_loss"),
+        ("efficiency", "map_efficiency"),
+    ):
+        values = review.grid(figure)
+        if not np.isfinite(values).any():
+            continue
+        shown = 100 * values if figure == "efficiency" else values
+        unit = "%" if figure == "efficiency" else figure_unit(figure)
+        fig = plots.heat_map(
+            values,
+            lines,
+            loads,
+            colour_values=shown,
+            title=FIGURE_TITLES[figure].capitalize() + " (worst over the captures)",
+            colour_label=f"{FIGURE_TITLES[figure]}" + (f" ({unit})" if unit else ""),
+            cell_text=_cell_texts(values, lambda v, f=figure: format_figure(f, v)),
+            colour_format=None if figure == "efficiency" else _colour_format(figure),
+        )
+        caption = f"{FIGURE_TITLES[figure].capitalize()} at each line and load point."
+        maps.append((name, caption, plots.png_bytes(fig)))
+    return maps
+
+
+def _colour_format(figure: str) -> Callable[[float], str]:
+    return lambda value: format_figure(figure, value)
+
+
+def _worst_rows(review: RunReview) -> list[list[str]]:
+    limits = review.sequence.limits if review.sequence else None
+    limit_of = {
+        "peak_v": ("≤", limits.max_peak_v if limits else None),
+        "stress_margin_v": ("≥", limits.min_stress_margin_v if limits else None),
+        "damping_ratio": ("≥", limits.min_damping_ratio if limits else None),
+        "q_factor": ("≤", limits.max_q_factor if limits else None),
+        "settling_time_s": ("≤", limits.max_settling_time_s if limits else None),
+        "snubber_loss_w": ("≤", limits.max_snubber_loss_w if limits else None),
+        "efficiency": ("≥", limits.min_efficiency if limits else None),
+    }
+    rows = []
+    for figure, worst in review.worst.items():
+        relation, limit = limit_of.get(figure, ("", None))
+        rows.append(
+            [
+                FIGURE_TITLES[figure],
+                format_figure(figure, worst.value),
+                review.label(worst.point),
+                f"{relation} {format_figure(figure, limit)}" if limit is not None else "—",
+                verdict_cell(worst.point.verdict),
+            ]
+        )
+    return rows
+
+
+def _worst_overlays(page: Page, store: Store, review: RunReview) -> None:
+    """One overlay per distinct worst point, naming the figures it is worst in."""
+    by_point: dict[int, tuple[PointReview, list[str]]] = {}
+    for figure, worst in review.worst.items():
+        entry = by_point.setdefault(worst.point.point.id, (worst.point, []))
+        entry[1].append(FIGURE_TITLES[figure])
+    rating_v = review.derated_rating_v
+    for point, figures in by_point.values():
+        traces = point_traces(store, point.point.id, review.sequence)
+        label = review.label(point)
+        heading = f"{label} — worst {', '.join(figures)}"
+        page.add(f'<h3 id="point-{point.point.point_index}">{esc(heading)}</h3>')
+        if not traces:
+            page.paragraph("No captures stored for this point.", "note")
+            continue
+        fig = plots.overlay(
+            [("", traces, plots.OKABE_ITO)],
+            title=f"{label}: {len(traces)} capture(s), fitted ring dashed",
+            limit_v=rating_v,
+            limit_label=f"derated rating {format_si(rating_v, 'V')}" if rating_v else "",
+        )
+        caption = f"Captures at {label} overlaid around the worst edge, with the fitted ring."
+        page.add(
+            page.image(f"overlay_p{point.point.point_index:04d}", plots.png_bytes(fig), caption)
+        )
+
+
+def _identity_rows(review: RunReview) -> list[list[str]]:
+    run = review.run
+    rows = [
+        ["run", str(run.id)],
+        ["status", run.status],
+        ["started (UTC)", run.started_at],
+        ["finished (UTC)", run.finished_at or "—"],
+        ["DUT", run.dut_label],
+        ["snubber", run.snubber_label],
+        ["bench", run.bench_kind],
+    ]
+    rows += [[f"{role} identity", str(identity)] for role, identity in run.instruments.items()]
+    rows += [
+        ["labseq version", run.software_version],
+        ["sequence file", run.sequence_path],
+        ["sequence SHA-256", run.sequence_sha256],
+        ["host", run.host or "—"],
+        ["notes", run.notes or "—"],
+    ]
+    return rows
+
+
+def _not_passed_rows(review: RunReview) -> tuple[list[list[str]], int]:
+    listed = [p for p in review.points if p.verdict != "pass"]
+    rows = [
+        [
+            review.label(p),
+            verdict_cell(p.verdict),
+            "; ".join(p.point.verdict_reasons) or p.point.status,
+        ]
+        for p in listed[:MAX_LISTED_POINTS]
+    ]
+    return rows, len(listed)
+
+
+def build_run_report(store: Store, review: RunReview, out_dir: Path) -> ReportFiles:
+    """Write ``report.html``, its PNGs and ``points.csv`` for a reviewed run into ``out_dir``."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    run = review.run
+    page = Page(out_dir, f"labseq run {run.id}: {run.dut_label}")
+    page.add(f"<h1>Run {run.id}: {esc(run.dut_label)}</h1>")
+    page.add(f'<p class="sub">Snubber: {esc(run.snubber_label)} · status {esc(run.status)}</p>')
+
+    page.section("verdict", "Verdict")
+    counts = review.verdict_counts
+    page.add(
+        f'<p><span class="badge v-{esc(review.verdict)}">{esc(review.verdict)}</span> '
+        f"{len(review.points)} points: {counts['pass']} pass, {counts['fail']} fail, "
+        f"{counts['incomplete']} incomplete. The run fails if any point fails, and is "
+        "incomplete if any point is incomplete and none fails.</p>"
+    )
+    page.add("<h3>Limits the points were judged against</h3>")
+    limits = limit_rows(review)
+    if limits:
+        page.add(table(["limit", "value"], limits, numeric=[1]))
+    else:
+        page.paragraph(
+            f"The stored sequence no longer validates, so its limits cannot be shown: "
+            f"{review.sequence_problem}",
+            "note",
+        )
+
+    page.section("grid", "Verdict at each point (line × load)")
+    page.add(verdict_grid_table(review))
+    rows, total = _not_passed_rows(review)
+    if rows:
+        page.add(f"<h3>Points that did not pass ({total})</h3>")
+        page.add(table(["point", "verdict", "why"], rows))
+        if total > len(rows):
+            page.paragraph(f"… and {total - len(rows)} more: see points.csv.", "note")
+
+    page.section("maps", "Heat maps over line × load")
+    figures = [page.image(name, png, caption) for name, caption, png in run_maps(review)]
+    page.add('<div class="maps">' + "".join(figures) + "</div>" if figures else "")
+    if not figures:
+        page.paragraph("No figures stored for this run yet.", "note")
+
+    page.section("worst", "Worst point for each figure")
+    if review.worst:
+        header = ["figure", "worst value", "at", "limit", "verdict there"]
+        page.add(table(header, _worst_rows(review), numeric=[1]))
+        _worst_overlays(page, store, review)
+    else:
+        page.paragraph("No figures stored for this run yet.", "note")
+
+    page.section("identity", "DUT, snubber, bench and software")
+    page.add(table(["what", "value"], _identity_rows(review)))
+
+    page.section("sequence", "Sequence file as run")
+    page.add(Markup(f"<pre>{esc(run.sequence_text)}</pre>"))
+    page.safety()
+
+    csv_path = out_dir / "points.csv"
+    write_points_csv(store, run.id, csv_path)
+    return ReportFiles(page.write(), csv_path, page.images)

@@ -1,0 +1,772 @@
+"""Corner review and regression compare of stored runs: worst points, grids, changes.
+
+Everything here works on the figures a run stored per point (worst, mean and spread over the
+point's captures), never on the raw captures, so a review of a large run costs one read of its
+point rows. The only input is a :class:`labseq.store.Store`; nothing is written.
+
+Compare rule
+------------
+Points of the two runs are matched by setpoints: same line kind, and line and load each within
+``rel_tol`` (0.5 % by default) of the larger of the two values. For each matched point and
+figure the worst values (those the limits judge) are compared. The change Δ = candidate −
+baseline counts only when it exceeds the captures' own scatter,
+
+    |Δ| > max(k·√(s_b² + s_c²), floor),
+
+with s_b and s_c the sample standard deviations over each point's captures (0 for a single
+capture), k = 2, and ``floor`` a small per-figure amount below which a change is taken as
+quantisation (:data:`NOISE_FLOORS`). A change beyond the threshold is "better" or "worse" by the
+figure's direction: lower peak, overshoot, Q, settling time and snubber loss are better; higher
+damping ratio, stress margin and efficiency are better. A point regressed when any gated figure
+got worse or its verdict went from pass to fail.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from labseq.analysis.capture import FIGURE_UNITS
+from labseq.errors import InputError
+from labseq.sequence import Sequence as SequenceFile
+from labseq.sequence import parse_sequence
+from labseq.store import PointRecord, RunRecord, Store
+from labseq.units import format_si
+
+#: Figures a review reports, in the order a reviewer reads them, with their direction:
+#: +1 when a higher value is better, −1 when a lower value is better.
+FIGURE_DIRECTIONS: dict[str, int] = {
+    "peak_v": -1,
+    "stress_margin_v": +1,
+    "overshoot_v": -1,
+    "overshoot_pct": -1,
+    "damping_ratio": +1,
+    "q_factor": -1,
+    "settling_time_s": -1,
+    "snubber_loss_w": -1,
+    "efficiency": +1,
+}
+
+#: Plain names for tables and sentences.
+FIGURE_TITLES: dict[str, str] = {
+    "peak_v": "peak stress",
+    "stress_margin_v": "stress margin",
+    "overshoot_v": "overshoot",
+    "overshoot_pct": "overshoot (% of step)",
+    "damping_ratio": "damping ratio",
+    "q_factor": "Q",
+    "settling_time_s": "settling time",
+    "snubber_loss_w": "snubber loss",
+    "efficiency": "efficiency",
+    "ring_frequency_hz": "ring frequency",
+}
+
+#: Smallest change taken as real, per figure: about one 8-bit code on a 250 V screen for volts,
+#: two samples at 1 GS/s for times, and what the figures' printed precision resolves otherwise
+#: (common practice, no published source).
+NOISE_FLOORS: dict[str, float] = {
+    "peak_v": 1.0,
+    "stress_margin_v": 1.0,
+    "overshoot_v": 1.0,
+    "overshoot_pct": 0.5,
+    "damping_ratio": 0.005,
+    "q_factor": 0.05,
+    "settling_time_s": 2e-9,
+    "snubber_loss_w": 1e-3,
+    "efficiency": 1e-3,
+}
+
+#: Coverage factor k of the significance rule.
+DEFAULT_COVERAGE = 2.0
+#: Setpoints within this fraction of each other are the same point.
+DEFAULT_MATCH_TOLERANCE = 0.005
+
+VERDICT_ORDER = ("fail", "incomplete", "pass")
+MINUS = "\u2212"
+
+
+# --------------------------------------------------------------------------- text helpers
+
+
+def figure_unit(figure: str) -> str:
+    """Unit symbol of a figure ("" for ratios; efficiency is shown in %)."""
+    return FIGURE_UNITS.get(figure, "")
+
+
+def format_figure(figure: str, value: float | None) -> str:
+    """A figure in engineering notation: ``112 V``, ``0.31``, ``91.2 %``."""
+    if value is None or not math.isfinite(value):
+        return "—"
+    if figure == "efficiency":
+        return f"{100 * value:.3g} %"
+    if figure == "overshoot_pct":
+        return f"{value:.3g} %"
+    unit = figure_unit(figure)
+    return format_si(value, unit) if unit else f"{value:.3g}"
+
+
+def format_change(figure: str, delta: float | None) -> str:
+    """A signed change: ``+41 mW``, ``−38 V``, ``−0.2 pt`` (efficiency in percentage points)."""
+    if delta is None or not math.isfinite(delta):
+        return "—"
+    sign = "+" if delta > 0 else MINUS if delta < 0 else "±"
+    if figure == "efficiency":
+        return f"{sign}{abs(100 * delta):.2g} pt"
+    if figure == "overshoot_pct":
+        return f"{sign}{abs(delta):.2g} pt"
+    unit = figure_unit(figure)
+    return sign + (format_si(abs(delta), unit) if unit else f"{abs(delta):.2g}")
+
+
+def line_text(line_v: float, line_is_ac: bool) -> str:
+    """``75 V`` for DC, ``230 V AC`` for AC."""
+    return format_si(line_v, "V") + (" AC" if line_is_ac else "")
+
+
+def point_label(point: PointRecord, rated_load_a: float | None = None) -> str:
+    """``75 V / 2.2 A (100 %)``: line and load, with the load as a share of rated when known."""
+    text = f"{line_text(point.line_v, point.line_is_ac)} / {format_si(point.load_a, 'A')}"
+    if rated_load_a:
+        text += f" ({100 * point.load_a / rated_load_a:.3g} %)"
+    return text
+
+
+# --------------------------------------------------------------------------- one run
+
+
+@dataclass(frozen=True)
+class FigureStats:
+    """A figure of one point over its captures: worst, mean, sample standard deviation, count."""
+
+    worst: float | None
+    mean: float | None
+    spread: float | None
+    n: int
+
+    @property
+    def value(self) -> float | None:
+        """The value limits judge and compares use: the worst, else the mean."""
+        return self.worst if self.worst is not None else self.mean
+
+
+@dataclass(frozen=True)
+class PointReview:
+    """One stored point with its per-point figures."""
+
+    point: PointRecord
+    figures: dict[str, FigureStats]
+
+    def value(self, figure: str) -> float | None:
+        """The point's value of ``figure`` (None when not determined)."""
+        stats = self.figures.get(figure)
+        return None if stats is None else stats.value
+
+    @property
+    def verdict(self) -> str:
+        """pass / fail / incomplete; a point never judged (pending, skipped) is incomplete."""
+        return self.point.verdict or "incomplete"
+
+
+@dataclass(frozen=True)
+class WorstPoint:
+    """The point with the worst value of one figure."""
+
+    figure: str
+    point: PointReview
+    value: float
+
+
+@dataclass(frozen=True)
+class RunReview:
+    """A stored run seen as a reviewer sees it."""
+
+    run: RunRecord
+    sequence: SequenceFile | None  # None when the stored sequence text no longer validates
+    sequence_problem: str | None
+    points: list[PointReview]
+    verdict: str
+    verdict_counts: dict[str, int]
+    worst: dict[str, WorstPoint]
+    line_values_v: tuple[float, ...]
+    load_values_a: tuple[float, ...]
+
+    @property
+    def rated_load_a(self) -> float | None:
+        """The DUT's rated load, when the sequence is known."""
+        return self.sequence.dut.rated_load_a if self.sequence else None
+
+    @property
+    def derated_rating_v(self) -> float | None:
+        """Switch rating × derating: what the peak may use."""
+        if self.sequence is None:
+            return None
+        return self.sequence.dut.switch_rating_v * self.sequence.dut.derating
+
+    def label(self, point: PointReview) -> str:
+        """The point's setpoints as text."""
+        return point_label(point.point, self.rated_load_a)
+
+    def grid(self, figure: str) -> np.ndarray:
+        """Values of ``figure`` over line (rows) × load (columns); NaN where absent."""
+        return grid_values(self.points, self.line_values_v, self.load_values_a, figure)
+
+    def verdict_grid(self) -> list[list[str | None]]:
+        """Verdict words over line (rows) × load (columns); None where the grid has no point."""
+        cells: list[list[str | None]] = [
+            [None] * len(self.load_values_a) for _ in self.line_values_v
+        ]
+        for (row, column), point in zip(self._cells(), self.points, strict=True):
+            cells[row][column] = point.verdict
+        return cells
+
+    def _cells(self) -> list[tuple[int, int]]:
+        return grid_cells(self.points, self.line_values_v, self.load_values_a)
+
+
+def grid_cells(
+    points: Sequence[PointReview], lines_v: Sequence[float], loads_a: Sequence[float]
+) -> list[tuple[int, int]]:
+    """(row, column) of each point in the line × load grid given by sorted axis values."""
+    rows = np.searchsorted(np.asarray(lines_v), [p.point.line_v for p in points])
+    columns = np.searchsorted(np.asarray(loads_a), [p.point.load_a for p in points])
+    return list(zip(rows.tolist(), columns.tolist(), strict=True))
+
+
+def grid_values(
+    points: Sequence[PointReview],
+    lines_v: Sequence[float],
+    loads_a: Sequence[float],
+    figure: str,
+) -> np.ndarray:
+    """Values of ``figure`` over line × load; NaN where no point or no value."""
+    values = np.full((len(lines_v), len(loads_a)), np.nan)
+    for (row, column), point in zip(grid_cells(points, lines_v, loads_a), points, strict=True):
+        value = point.value(figure)
+        if value is not None:
+            values[row, column] = value
+    return values
+
+
+def run_verdict(verdicts: Iterable[str]) -> str:
+    """Fail if any point fails; else incomplete if any is incomplete (or there are none); else
+    pass."""
+    seen = set(verdicts)
+    if "fail" in seen:
+        return "fail"
+    if "incomplete" in seen or not seen:
+        return "incomplete"
+    return "pass"
+
+
+def worst_points(points: Sequence[PointReview]) -> dict[str, WorstPoint]:
+    """For each figure of :data:`FIGURE_DIRECTIONS`, the point with the worst value."""
+    result: dict[str, WorstPoint] = {}
+    for figure, direction in FIGURE_DIRECTIONS.items():
+        candidates = [(p.value(figure), p) for p in points if p.value(figure) is not None]
+        if not candidates:
+            continue
+        pick = min if direction > 0 else max
+        value, point = pick(candidates, key=lambda pair: pair[0])
+        result[figure] = WorstPoint(figure, point, value)
+    return result
+
+
+def _point_reviews(store: Store, run_id: int) -> list[PointReview]:
+    figures = store.point_figures(run_id)
+    reviews = []
+    for point in store.points(run_id):
+        stats = {
+            name: FigureStats(v["worst"], v["mean"], v["spread"], int(v["n"] or 0))
+            for name, v in figures.get(point.id, {}).items()
+        }
+        if "efficiency" not in stats and point.efficiency is not None:
+            stats["efficiency"] = FigureStats(point.efficiency, point.efficiency, None, 1)
+        reviews.append(PointReview(point, stats))
+    return reviews
+
+
+def stored_sequence(run: RunRecord) -> tuple[SequenceFile | None, str | None]:
+    """The run's sequence as stored, validated again; (None, why) when it no longer validates
+    (e.g. a DUT file it named has moved)."""
+    try:
+        return parse_sequence(run.sequence_text, run.sequence_path), None
+    except InputError as exc:
+        return None, str(exc)
+
+
+def review_run(store: Store, run_id: int) -> RunReview:
+    """Read run ``run_id`` and its points and work out its verdict, grid and worst points."""
+    run = store.run(run_id)
+    points = _point_reviews(store, run_id)
+    sequence, problem = stored_sequence(run)
+    counts = {word: 0 for word in VERDICT_ORDER}
+    for point in points:
+        counts[point.verdict] += 1
+    return RunReview(
+        run=run,
+        sequence=sequence,
+        sequence_problem=problem,
+        points=points,
+        verdict=run_verdict(p.verdict for p in points),
+        verdict_counts=counts,
+        worst=worst_points(points),
+        line_values_v=tuple(sorted({p.point.line_v for p in points})),
+        load_values_a=tuple(sorted({p.point.load_a for p in points})),
+    )
+
+
+def resolve_run_id(store: Store, text: str, *, what: str = "RUN") -> int:
+    """A run id from the command line: a number, or ``latest`` for the newest run."""
+    if text.strip().lower() == "latest":
+        runs = store.runs()
+        if not runs:
+            raise InputError(f"{store.path}: {what} latest: this store holds no runs")
+        return runs[-1].id
+    try:
+        return int(text)
+    except ValueError:
+        raise InputError(f"{what} {text!r}: give a run id (a number) or 'latest'") from None
+
+
+def limit_rows(review: RunReview) -> list[tuple[str, str]]:
+    """The limits the run was judged against as (what, value) rows, in reading order."""
+    sequence = review.sequence
+    if sequence is None:
+        return []
+    limits, dut = sequence.limits, sequence.dut
+    rows = []
+    if limits.max_peak_v is not None:
+        rows.append(("peak stress ≤", format_si(limits.max_peak_v, "V")))
+    rows.append(
+        (
+            "switch rating × derating",
+            f"{format_si(dut.switch_rating_v, 'V')} × {dut.derating:g} = "
+            f"{format_si(dut.switch_rating_v * dut.derating, 'V')}",
+        )
+    )
+    for name, relation, figure in (
+        ("min_stress_margin_v", "≥", "stress_margin_v"),
+        ("min_damping_ratio", "≥", "damping_ratio"),
+        ("max_q_factor", "≤", "q_factor"),
+        ("max_settling_time_s", "≤", "settling_time_s"),
+        ("max_snubber_loss_w", "≤", "snubber_loss_w"),
+        ("min_efficiency", "≥", "efficiency"),
+    ):
+        value = getattr(limits, name)
+        if value is not None:
+            rows.append((f"{FIGURE_TITLES[figure]} {relation}", format_figure(figure, value)))
+    rows.append(("settling band", f"±{100 * limits.settling_band:.3g} % of the step"))
+    return rows
+
+
+def run_summary(review: RunReview) -> dict[str, Any]:
+    """The review as plain data for JSON: verdict, limits, one row per point, worst points."""
+    sequence = review.sequence
+    return {
+        "run": review.run.id,
+        "status": review.run.status,
+        "verdict": review.verdict,
+        "verdict_counts": review.verdict_counts,
+        "dut": review.run.dut_label,
+        "snubber": review.run.snubber_label,
+        "software_version": review.run.software_version,
+        "limits": (
+            None
+            if sequence is None
+            else {
+                **{k: v for k, v in vars(sequence.limits).items()},
+                "switch_rating_v": sequence.dut.switch_rating_v,
+                "derating": sequence.dut.derating,
+            }
+        ),
+        "sequence_problem": review.sequence_problem,
+        "points": [
+            {
+                "point_index": p.point.point_index,
+                "line_v": p.point.line_v,
+                "line_is_ac": p.point.line_is_ac,
+                "load_a": p.point.load_a,
+                "status": p.point.status,
+                "verdict": p.verdict,
+                "verdict_reasons": p.point.verdict_reasons,
+                "figures": {name: vars(stats) for name, stats in p.figures.items()},
+            }
+            for p in review.points
+        ],
+        "worst": {
+            figure: {
+                "point_index": worst.point.point.point_index,
+                "line_v": worst.point.point.line_v,
+                "load_a": worst.point.point.load_a,
+                "value": worst.value,
+            }
+            for figure, worst in review.worst.items()
+        },
+    }
+
+
+# --------------------------------------------------------------------------- compare
+
+
+@dataclass(frozen=True)
+class FigureChange:
+    """One figure at one matched point: baseline, candidate, change and what it means."""
+
+    figure: str
+    baseline: FigureStats | None
+    candidate: FigureStats | None
+    delta: float | None
+    threshold: float | None
+    flag: str  # better, worse, unchanged, missing in baseline, missing in candidate
+
+    @property
+    def significance(self) -> float:
+        """|Δ| in units of its threshold (0 when not comparable)."""
+        if self.delta is None or not self.threshold:
+            return 0.0
+        return abs(self.delta) / self.threshold
+
+
+@dataclass(frozen=True)
+class PointChange:
+    """A point of either run, matched or not, with its figure changes and verdicts."""
+
+    baseline: PointReview | None
+    candidate: PointReview | None
+    changes: dict[str, FigureChange] = field(default_factory=dict)
+
+    @property
+    def matched(self) -> bool:
+        return self.baseline is not None and self.candidate is not None
+
+    @property
+    def either(self) -> PointReview:
+        """The candidate's point, else the baseline's (for its setpoints)."""
+        point = self.candidate or self.baseline
+        assert point is not None  # a change always has at least one side
+        return point
+
+    @property
+    def verdict_went_to_fail(self) -> bool:
+        return self.matched and self.baseline.verdict == "pass" and self.candidate.verdict == "fail"
+
+    @property
+    def flag(self) -> str:
+        """worse / better / unchanged / missing in baseline / missing in candidate."""
+        if self.candidate is None:
+            return "missing in candidate"
+        if self.baseline is None:
+            return "missing in baseline"
+        flags = {change.flag for change in self.changes.values()}
+        if self.verdict_went_to_fail or "worse" in flags:
+            return "worse"
+        return "better" if "better" in flags else "unchanged"
+
+    def worse(self, gated: Iterable[str]) -> list[FigureChange]:
+        """Gated figures that got worse beyond their threshold, most significant first."""
+        gated = set(gated)
+        found = [c for c in self.changes.values() if c.flag == "worse" and c.figure in gated]
+        return sorted(found, key=lambda c: -c.significance)
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """The compare of a candidate run against a baseline run."""
+
+    baseline: RunReview
+    candidate: RunReview
+    points: list[PointChange]
+    gated: tuple[str, ...]
+    coverage: float
+    rel_tol: float
+
+    @property
+    def regressions(self) -> list[PointChange]:
+        """Matched points that got worse (gated figures) or went pass → fail, worst first."""
+        found = [
+            p for p in self.points if p.matched and (p.verdict_went_to_fail or p.worse(self.gated))
+        ]
+
+        def severity(change: PointChange) -> tuple[bool, float]:
+            worse = change.worse(self.gated)
+            return (change.verdict_went_to_fail, worse[0].significance if worse else 0.0)
+
+        return sorted(found, key=severity, reverse=True)
+
+    @property
+    def regressed(self) -> bool:
+        return bool(self.regressions)
+
+    @property
+    def missing(self) -> list[PointChange]:
+        return [p for p in self.points if not p.matched]
+
+    def label(self, change: PointChange) -> str:
+        rated = self.candidate.rated_load_a or self.baseline.rated_load_a
+        return point_label(change.either.point, rated)
+
+    def describe_regression(self, change: PointChange) -> str:
+        """What got worse at one point, in one line."""
+        parts = []
+        if change.verdict_went_to_fail:
+            parts.append("verdict pass → fail")
+        for figure_change in change.worse(self.gated):
+            parts.append(_change_text(figure_change))
+        return f"{self.label(change)}: " + ", ".join(parts)
+
+    def summary(self) -> str:
+        """The change the way an engineer says it, e.g. "peak stress −38 V at the worst
+        corner, damping ratio up from 0.06 to 0.31, snubber loss +41 mW at 75 V / 2.2 A"."""
+        return summary_sentence(self)
+
+
+def _change_text(change: FigureChange) -> str:
+    b = change.baseline.value if change.baseline else None
+    c = change.candidate.value if change.candidate else None
+    return (
+        f"{FIGURE_TITLES[change.figure]} {format_change(change.figure, change.delta)} "
+        f"({format_figure(change.figure, b)} → {format_figure(change.figure, c)})"
+    )
+
+
+def _same_setpoint(a: float, b: float, rel_tol: float) -> bool:
+    return abs(a - b) <= rel_tol * max(abs(a), abs(b)) or a == b
+
+
+def match_points(
+    baseline: Sequence[PointReview],
+    candidate: Sequence[PointReview],
+    rel_tol: float = DEFAULT_MATCH_TOLERANCE,
+) -> list[tuple[PointReview | None, PointReview | None]]:
+    """Pair points with the same line kind and line and load within ``rel_tol``; each point
+    pairs at most once, with its nearest partner. Unpaired points come back with None."""
+    # Sorting by setpoint keeps the search near each point: O(n log n) for grids of any size.
+    order = sorted(range(len(candidate)), key=lambda i: candidate[i].point.line_v)
+    lines = np.array([candidate[i].point.line_v for i in order])
+    free = set(range(len(candidate)))
+    pairs: list[tuple[PointReview | None, PointReview | None]] = []
+    for b in baseline:
+        line_v, load_a = b.point.line_v, b.point.load_a
+        reach = 2 * rel_tol * abs(line_v)  # a superset of the window; the exact test is below
+        lo = np.searchsorted(lines, line_v - reach, side="left")
+        hi = np.searchsorted(lines, line_v + reach, side="right")
+        best, best_distance = None, math.inf
+        for slot in range(int(lo), int(hi)):
+            index = order[slot]
+            c = candidate[index].point
+            if index not in free or c.line_is_ac != b.point.line_is_ac:
+                continue
+            if _same_setpoint(c.line_v, line_v, rel_tol) and _same_setpoint(
+                c.load_a, load_a, rel_tol
+            ):
+                distance = abs(c.line_v - line_v) / max(abs(line_v), 1e-12) + abs(
+                    c.load_a - load_a
+                ) / max(abs(load_a), 1e-12)
+                if distance < best_distance:
+                    best, best_distance = index, distance
+        if best is None:
+            pairs.append((b, None))
+        else:
+            free.discard(best)
+            pairs.append((b, candidate[best]))
+    pairs.extend((None, candidate[i]) for i in sorted(free))
+    return pairs
+
+
+def compare_figure(
+    figure: str,
+    baseline: FigureStats | None,
+    candidate: FigureStats | None,
+    *,
+    coverage: float = DEFAULT_COVERAGE,
+    floors: Mapping[str, float] = NOISE_FLOORS,
+) -> FigureChange:
+    """Compare one figure of a matched point by the rule in this module's notes."""
+    b = baseline.value if baseline else None
+    c = candidate.value if candidate else None
+    if b is None or c is None:
+        flag = "missing in baseline" if b is None else "missing in candidate"
+        return FigureChange(figure, baseline, candidate, None, None, flag)
+    spread_b = baseline.spread or 0.0
+    spread_c = candidate.spread or 0.0
+    threshold = max(coverage * math.hypot(spread_b, spread_c), floors.get(figure, 0.0))
+    delta = c - b
+    if abs(delta) <= threshold:
+        flag = "unchanged"
+    else:
+        flag = "better" if delta * FIGURE_DIRECTIONS[figure] > 0 else "worse"
+    return FigureChange(figure, baseline, candidate, delta, threshold, flag)
+
+
+def compare_runs(
+    baseline: RunReview,
+    candidate: RunReview,
+    *,
+    rel_tol: float = DEFAULT_MATCH_TOLERANCE,
+    coverage: float = DEFAULT_COVERAGE,
+    gated: Iterable[str] = tuple(FIGURE_DIRECTIONS),
+) -> Comparison:
+    """Match the points of two reviewed runs and compare every figure of every matched point.
+
+    ``gated`` names the figures whose worsening counts as a regression (all by default); the
+    others are still compared and reported.
+    """
+    gated = tuple(gated)
+    unknown = sorted(set(gated) - set(FIGURE_DIRECTIONS))
+    if unknown:
+        raise InputError(
+            f"unknown figure(s) {', '.join(unknown)}; known: {', '.join(FIGURE_DIRECTIONS)}"
+        )
+    if not (0 < rel_tol < 0.5):
+        raise InputError(f"match tolerance {rel_tol!r}: give a fraction between 0 and 0.5")
+    if not (coverage > 0 and math.isfinite(coverage)):
+        raise InputError(f"coverage factor {coverage!r}: give a positive number such as 2")
+    changes = []
+    for b, c in match_points(baseline.points, candidate.points, rel_tol):
+        figures = {}
+        if b is not None and c is not None:
+            for figure in FIGURE_DIRECTIONS:
+                if figure in b.figures or figure in c.figures:
+                    figures[figure] = compare_figure(
+                        figure, b.figures.get(figure), c.figures.get(figure), coverage=coverage
+                    )
+        changes.append(PointChange(b, c, figures))
+    return Comparison(baseline, candidate, changes, gated, coverage, rel_tol)
+
+
+def _run_level(comparison: Comparison, figure: str) -> FigureChange | None:
+    """The run-level change of a figure: worst over matched points in each run, judged with the
+    spreads of the two points that hold those worst values."""
+    matched = [p for p in comparison.points if p.matched]
+    b = worst_points([p.baseline for p in matched]).get(figure)
+    c = worst_points([p.candidate for p in matched]).get(figure)
+    if b is None or c is None:
+        return None
+    return compare_figure(
+        figure, b.point.figures[figure], c.point.figures[figure], coverage=comparison.coverage
+    )
+
+
+def summary_sentence(comparison: Comparison) -> str:
+    """One sentence on what changed, most important first."""
+    parts: list[str] = []
+    peak = _run_level(comparison, "peak_v")
+    if peak is not None:
+        if peak.flag == "unchanged":
+            parts.append(f"peak stress unchanged at the worst corner ({_values_text(peak)})")
+        else:
+            parts.append(
+                f"peak stress {format_change('peak_v', peak.delta)} at the worst corner "
+                f"({_values_text(peak)})"
+            )
+    for figure in ("damping_ratio", "settling_time_s"):
+        level = _run_level(comparison, figure)
+        if level is None:
+            continue
+        b, c = level.baseline.value, level.candidate.value
+        title = FIGURE_TITLES[figure]
+        if level.flag == "unchanged":
+            parts.append(f"{title} unchanged ({format_figure(figure, c)} at worst)")
+        else:
+            word = "up" if level.delta > 0 else "down"
+            parts.append(
+                f"{title} {word} from {format_figure(figure, b)} to {format_figure(figure, c)}"
+            )
+    loss = _largest_change(comparison, "snubber_loss_w")
+    if loss is not None:
+        point, change = loss
+        if change.flag == "unchanged":
+            parts.append("snubber loss unchanged")
+        else:
+            delta = format_change("snubber_loss_w", change.delta)
+            parts.append(f"snubber loss {delta} at {comparison.label(point)}")
+    efficiency = [
+        p.changes["efficiency"].delta
+        for p in comparison.points
+        if "efficiency" in p.changes and p.changes["efficiency"].delta is not None
+    ]
+    if efficiency:
+        mean_delta = float(np.mean(efficiency))
+        if abs(mean_delta) < NOISE_FLOORS["efficiency"]:
+            parts.append("efficiency unchanged")
+        else:
+            parts.append(f"efficiency {format_change('efficiency', mean_delta)} on average")
+    before = comparison.baseline.verdict_counts
+    after = comparison.candidate.verdict_counts
+    parts.append(
+        f"failing points {before['fail']} → {after['fail']}, "
+        f"run verdict {comparison.baseline.verdict} → {comparison.candidate.verdict}"
+    )
+    missing_b = sum(1 for p in comparison.points if p.baseline is None)
+    missing_c = sum(1 for p in comparison.points if p.candidate is None)
+    if missing_c:
+        parts.append(f"{missing_c} baseline point(s) missing in the candidate")
+    if missing_b:
+        parts.append(f"{missing_b} candidate point(s) not in the baseline")
+    return ", ".join(parts)
+
+
+def _values_text(change: FigureChange) -> str:
+    b = change.baseline.value if change.baseline else None
+    c = change.candidate.value if change.candidate else None
+    return f"{format_figure(change.figure, b)} → {format_figure(change.figure, c)}"
+
+
+def _largest_change(comparison: Comparison, figure: str) -> tuple[PointChange, FigureChange] | None:
+    found = [
+        (p, p.changes[figure])
+        for p in comparison.points
+        if figure in p.changes and p.changes[figure].delta is not None
+    ]
+    if not found:
+        return None
+    return max(found, key=lambda pair: abs(pair[1].delta))
+
+
+def comparison_summary(comparison: Comparison) -> dict[str, Any]:
+    """The compare as plain data for JSON."""
+    worst = comparison.regressions[0] if comparison.regressions else None
+
+    def side(review: PointReview | None) -> dict[str, Any] | None:
+        if review is None:
+            return None
+        return {"point_index": review.point.point_index, "verdict": review.verdict}
+
+    return {
+        "baseline": comparison.baseline.run.id,
+        "candidate": comparison.candidate.run.id,
+        "regressed": comparison.regressed,
+        "summary": comparison.summary(),
+        "rule": {
+            "coverage_k": comparison.coverage,
+            "match_tolerance": comparison.rel_tol,
+            "noise_floors": NOISE_FLOORS,
+            "gated_figures": list(comparison.gated),
+        },
+        "worst_regression": None if worst is None else comparison.describe_regression(worst),
+        "points": [
+            {
+                "line_v": p.either.point.line_v,
+                "line_is_ac": p.either.point.line_is_ac,
+                "load_a": p.either.point.load_a,
+                "flag": p.flag,
+                "baseline": side(p.baseline),
+                "candidate": side(p.candidate),
+                "figures": {
+                    name: {
+                        "baseline": change.baseline.value if change.baseline else None,
+                        "candidate": change.candidate.value if change.candidate else None,
+                        "change": change.delta,
+                        "threshold": change.threshold,
+                        "flag": change.flag,
+                    }
+                    for name, change in p.changes.items()
+                },
+            }
+            for p in comparison.points
+        ],
+    }

@@ -1,0 +1,512 @@
+"""The unattended line × load sweep: order of operations, point errors, safe shutdown, resume.
+
+Order at the bench, as a technician would do it by hand: put the bench safe (a run killed earlier
+may have left outputs on), set the source's current limit, load off, source to the first line
+value, output on; within each line value step the load through its values (so line changes are
+few), settle, arm the scope and capture N times, read the meter, store; between line values ramp
+the source in steps no larger than the declared line step. Every exit — finished, point error with
+``abort``, SIGINT/SIGTERM, any exception — ends in :func:`labseq.bench.make_safe`.
+
+Each capture is committed on its own as soon as it is fetched; the point's readings and "done"
+state are committed with its last capture, so a run killed at any instant (even by SIGKILL) loses
+no capture, and :func:`resume_run` takes only what is missing. Analysis runs on a worker thread
+while the next capture is acquired, so it does not slow the sweep down.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+from instruments import Waveform
+from instruments.errors import InstrumentError, ScpiError
+from labseq.analysis import CaptureFigures, NoEdgeError, SnubberBranch, aggregate, analyze_capture
+from labseq.analysis import judge as judge_point
+from labseq.bench import Bench, SafeReport, make_safe, open_bench
+from labseq.errors import LabseqError
+from labseq.progress import Progress
+from labseq.safety import (
+    CAUTIONS,
+    Interrupted,
+    exceeds_es1,
+    signals_ignored,
+    signals_raise_interrupted,
+)
+from labseq.sequence import Sequence, parse_sequence
+from labseq.store import CaptureRecord, PointReadings, PointRecord, Store
+
+#: How often the scope is asked whether its single acquisition is in.
+ACQUISITION_POLL_S = 0.005
+
+
+class PointAbort(LabseqError):
+    """A point failed and the sequence says ``on_point_error = "abort"``."""
+
+
+class RunStateError(LabseqError):
+    """The run cannot be resumed (finished, or still running in another process)."""
+
+    exit_code = 2
+
+
+@dataclass
+class Timings:
+    """Wall time by activity, for the runner-overhead benchmark and the run's event log."""
+
+    seconds: dict[str, float] = field(default_factory=dict)
+
+    def add(self, activity: str, seconds: float) -> None:
+        self.seconds[activity] = self.seconds.get(activity, 0.0) + seconds
+
+    @contextmanager
+    def charge(self, activity: str) -> Iterator[None]:
+        """Charge the wall time of the block to ``activity``."""
+        start = time.perf_counter()
+        try:
+            yield
+        finally:
+            self.add(activity, time.perf_counter() - start)
+
+
+@dataclass(frozen=True)
+class RunOutcome:
+    """How a run ended."""
+
+    run_id: int
+    status: str  # finished | aborted | interrupted | failed
+    points_done: int
+    points_total: int
+    safe: SafeReport | None
+    timings: Timings
+    wall_s: float
+
+    @property
+    def exit_code(self) -> int:
+        """0 when every point is done, 130 after a signal, else 1."""
+        if self.status == "interrupted":
+            return 130
+        return 0 if self.status == "finished" and self.points_done == self.points_total else 1
+
+
+def analyse_waveform(sequence: Sequence, waveform: Waveform) -> CaptureFigures:
+    """Figures of one capture as the sequence asks for them (pure: no bench, no store)."""
+    snubber = sequence.snubber
+    branch = (
+        SnubberBranch(
+            snubber.resistance_ohm, snubber.capacitance_f, sequence.dut.switching_frequency_hz
+        )
+        if snubber.capacitance_f > 0 and snubber.resistance_ohm > 0
+        else None
+    )
+    return analyze_capture(
+        waveform.volts(),
+        waveform.x_increment_s,
+        waveform.x_origin_s,
+        polarity=sequence.scope.polarity,
+        settling_band=sequence.limits.settling_band,
+        clipped=waveform.clipped,
+        snubber=branch,
+        rating_v=sequence.dut.switch_rating_v,
+        derating=sequence.dut.derating,
+    )
+
+
+def analyse_or_error(sequence: Sequence, waveform: Waveform) -> CaptureFigures | Exception:
+    """:func:`analyse_waveform`, with a record it cannot analyse (no edge, too short) returned
+    as the error to store beside the capture."""
+    try:
+        return analyse_waveform(sequence, waveform)
+    except (NoEdgeError, ValueError) as error:
+        return error
+
+
+def store_figures(store: Store, capture_id: int, result: CaptureFigures | Exception) -> dict:
+    """Store one capture's analysis (or why it failed); return the worst edge's figures."""
+    if isinstance(result, Exception):
+        store.set_capture_figures(capture_id, {}, error=str(result))
+        return {}
+    worst = result.worst.as_dict()
+    worst["clipped"] = result.clipped
+    store.set_capture_figures(capture_id, worst, edges=[edge.as_dict() for edge in result.edges])
+    return worst
+
+
+def judge_stored_point(store: Store, sequence: Sequence, point: PointRecord) -> str:
+    """Aggregate a point's stored capture figures, judge it, store both; return the verdict."""
+    figures = []
+    for capture in store.captures(point.id, with_codes=False):
+        stored = store.capture_figures(capture.id)
+        if stored and not stored.get("error"):
+            figures.append({k: v for k, v in stored.items() if k not in ("edges", "error")})
+    summary = aggregate(figures)
+    store.set_point_figures(
+        point.id,
+        {
+            name: {"worst": s.worst, "mean": s.mean, "spread": s.spread, "n": s.count}
+            for name, s in summary.figures.items()
+        },
+    )
+    verdict = judge_point(summary, sequence.verdict_limits(), point.efficiency)
+    store.set_point_verdict(point.id, verdict.status, verdict.reasons)
+    return verdict.status
+
+
+def analyse_run(store: Store, sequence: Sequence, run_id: int, *, only_missing: bool) -> int:
+    """(Re-)analyse a run's stored captures from their raw codes and judge its done points
+    against ``sequence``'s limits, without touching the bench; return the captures analysed.
+
+    ``only_missing`` limits the work to captures that have no figures yet (after a run was
+    killed between storing a capture and storing its figures)."""
+    analysed = 0
+    for capture in store.iter_captures(run_id):
+        if only_missing and store.capture_figures(capture.id) is not None:
+            continue
+        store_figures(store, capture.id, analyse_or_error(sequence, capture))  # type: ignore[arg-type]
+        analysed += 1
+    for point in store.points(run_id, status="done"):
+        if not only_missing or point.verdict is None:
+            judge_stored_point(store, sequence, point)
+    return analysed
+
+
+class Sweep:
+    """Walks the pending points of one run on an opened bench."""
+
+    def __init__(
+        self,
+        sequence: Sequence,
+        store: Store,
+        run_id: int,
+        bench: Bench,
+        progress: Progress,
+        timings: Timings,
+    ) -> None:
+        self.sequence = sequence
+        self.store = store
+        self.run_id = run_id
+        self.bench = bench
+        self.progress = progress
+        self.timings = timings
+        self.line_v: float | None = None  # the line value the source is at, None = output off
+        self.analysis = ThreadPoolExecutor(max_workers=1, thread_name_prefix="analysis")
+        self.pending_figures: list[tuple[int, int, Future]] = []  # (point, capture, analysis)
+        self.points_to_judge: set[int] = set()
+
+    # -- bench actions; instrument calls are charged to "instrument" time -------------------
+
+    def log(self, kind: str, message: str, point_id: int | None = None, **data: object) -> None:
+        self.store.log_event(self.run_id, kind, message, point_id=point_id, data=data or None)
+
+    def prepare(self) -> None:
+        """Load off, source off, current limit, scope set-up."""
+        bench, scope = self.bench, self.sequence.scope
+        with self.timings.charge("instrument"):
+            bench.load.set_input(False)
+            bench.source.set_output(False)
+            bench.source.set_current_limit(self.sequence.bench.limits.source_max_current_a)
+            bench.scope.configure_channel(
+                scope.channel,
+                scope.volts_per_div_v,
+                scope.offset_v,
+                scope.coupling,
+                scope.bandwidth_limit_hz,
+                scope.probe_ratio,
+            )
+            bench.scope.configure_timebase(scope.time_per_div_s, scope.record_length)
+            bench.scope.configure_trigger(
+                scope.channel, scope.trigger_level_v, scope.trigger_slope, scope.trigger_position
+            )
+
+    def _set_line(self, line_v: float) -> None:
+        grid = self.sequence.grid
+        with self.timings.charge("instrument"):
+            if grid.line_is_ac:
+                self.bench.source.set_ac(line_v, grid.line_frequency_hz)
+            else:
+                self.bench.source.set_dc(line_v)
+
+    def go_to_line(self, line_v: float) -> None:
+        """First line value: set it, then output on. Later ones: ramp in declared steps."""
+        if self.line_v is None:
+            self._set_line(line_v)
+            with self.timings.charge("instrument"):
+                self.bench.source.set_output(True)
+            self.log("info", f"source on at {line_v:g} V")
+        else:
+            limits = self.sequence.bench.limits
+            for step_v in limits.ramp_v(self.line_v, line_v):
+                self._set_line(step_v)
+                self._wait("ramp", limits.line_step_dwell_s)
+        self.line_v = line_v
+
+    def _wait(self, activity: str, seconds: float) -> None:
+        with self.timings.charge(activity):
+            time.sleep(seconds)
+
+    def acquire(self) -> Waveform:
+        """One single-shot capture of the switch node."""
+        scope, settings = self.bench.scope, self.sequence.scope
+        with self.timings.charge("instrument"):
+            scope.single()
+            scope.wait_acquisition(settings.acquisition_timeout_s, ACQUISITION_POLL_S)
+            return scope.fetch_waveform(settings.channel)
+
+    def read_point(self) -> PointReadings:
+        """Meter on the line input, load and source readbacks; efficiency = Pout / Pin."""
+        bench = self.bench
+        with self.timings.charge("instrument"):
+            meter = bench.meter.measure()
+            load_v, load_a = bench.load.measure_voltage_v(), bench.load.measure_current_a()
+            source_v, source_a = bench.source.measure_voltage_v(), bench.source.measure_current_a()
+        output_w = load_v * load_a
+        return PointReadings(
+            source_voltage_v=source_v,
+            source_current_a=source_a,
+            load_voltage_v=load_v,
+            load_current_a=load_a,
+            meter_voltage_v=meter.voltage_v,
+            meter_current_a=meter.current_a,
+            meter_power_w=meter.power_w,
+            meter_power_factor=meter.power_factor,
+            output_power_w=output_w,
+            efficiency=output_w / meter.power_w if meter.power_w > 0 else None,
+        )
+
+    # -- one point ------------------------------------------------------------------------
+
+    def measure_point(self, point: PointRecord, index: int, total: int) -> None:
+        """Establish the point, take the captures it still lacks, read the meter, store."""
+        seq = self.sequence
+        started = time.time()
+        self.go_to_line(point.line_v)
+        with self.timings.charge("instrument"):
+            self.bench.load.set_current(point.load_a)
+            self.bench.load.set_input(True)
+        self._wait("settle", seq.grid.settle_s)
+        already = len(self.store.captures(point.id, with_codes=False))
+        wanted = seq.grid.captures_per_point
+        for number in range(already + 1, wanted + 1):
+            self.progress.point(index, total, point.line_v, point.load_a, number, wanted)
+            waveform = self.acquire()
+            last = number == wanted
+            readings = self.read_point() if last else None
+            record = CaptureRecord(waveform, channel=seq.scope.channel, node=seq.scope.node)
+            with self.timings.charge("store"):
+                capture_id = self.store.add_capture(
+                    point.id,
+                    record,
+                    point_status="done" if last else None,
+                    readings=readings,
+                    started_at=started,
+                )
+            future = self.analysis.submit(analyse_or_error, seq, waveform)
+            self.pending_figures.append((point.id, capture_id, future))
+        if already >= wanted:  # every capture was in; only the readings were missing
+            self.store.commit_point(point.id, readings=self.read_point(), started_at=started)
+        with self.store.transaction():
+            self.finish_figures(wait=False)
+            self.log("timing", f"point {index}/{total}: {time.time() - started:.2f} s", point.id)
+
+    def finish_figures(self, *, wait: bool) -> None:
+        """Store the figures of finished analyses (of all, with ``wait``), then judge each done
+        point none of whose captures is still being analysed."""
+        still_running = []
+        for point_id, capture_id, future in self.pending_figures:
+            if not wait and not future.done():
+                still_running.append((point_id, capture_id, future))
+                continue
+            with self.timings.charge("analysis-wait"):
+                result = future.result()
+            with self.timings.charge("store"):
+                store_figures(self.store, capture_id, result)
+            self.points_to_judge.add(point_id)
+        self.pending_figures = still_running
+        busy = {point_id for point_id, _, _ in still_running}
+        for point_id in sorted(self.points_to_judge - busy):
+            point = self.store.point(point_id)
+            if point.status == "done":
+                with self.timings.charge("store"):
+                    judge_stored_point(self.store, self.sequence, point)
+                self.points_to_judge.discard(point_id)
+
+    # -- the whole sweep ------------------------------------------------------------------
+
+    def run(self) -> None:
+        """Measure every point not yet done, in grid order, honouring ``on_point_error``."""
+        analyse_run(self.store, self.sequence, self.run_id, only_missing=True)
+        points = [p for p in self.store.points(self.run_id) if p.status != "done"]
+        total = len(self.store.points(self.run_id))
+        self.progress.start(total, done=total - len(points))
+        self.prepare()
+        for point in points:
+            index = point.point_index + 1
+            try:
+                self.measure_point(point, index, total)
+            except InstrumentError as error:
+                self.point_failed(point, error)
+            self.progress.advance()
+        with self.store.transaction():
+            self.finish_figures(wait=True)
+
+    def point_failed(self, point: PointRecord, error: InstrumentError) -> None:
+        """Log the error; abort, or mark the point failed, recover the bench and go on."""
+        kind = "scpi-error" if isinstance(error, ScpiError) else "fault"
+        data = {"code": error.code} if isinstance(error, ScpiError) else {}
+        self.log(kind, f"{point.line_v:g} V / {point.load_a:g} A: {error}", point.id, **data)
+        if self.sequence.on_point_error == "abort":
+            raise PointAbort(
+                f"point {point.point_index + 1} failed (on_point_error = abort): {error}"
+            )
+        self.store.commit_point(point.id, status="failed")
+        self.log("skip", f"point {point.point_index + 1} skipped after the error", point.id)
+        self.recover()
+
+    def recover(self) -> None:
+        """After a fault: reopen every instrument that does not answer, stop the scope, clear
+        error queues. The source keeps its setpoint; the next point re-establishes the load."""
+        for role, driver in list(self.bench.drivers.items()):
+            try:
+                driver.clear()
+                driver.identify()
+            except InstrumentError as error:
+                self.log("retry", f"reconnecting {role}: {error}")
+                self.bench.reopen(role)
+        try:
+            self.bench.scope.write(self.bench.scope.map.command("stop"))
+        except InstrumentError as error:
+            self.log("retry", f"could not stop the scope: {error}")
+
+    def close(self) -> None:
+        self.analysis.shutdown(wait=True)
+
+
+def _shutdown(bench: Bench, store: Store, run_id: int, progress: Progress) -> SafeReport:
+    """Make the bench safe and record how it went; signals are ignored meanwhile."""
+    with signals_ignored():
+        report = make_safe(
+            bench,
+            lambda message: store.log_event(run_id, "safety", message),
+            wait_for_bus=not bench.simulated,
+        )
+        state = "safe" if report.safe else "NOT CONFIRMED SAFE"
+        bus = "" if report.bus_v is None else f", bus {report.bus_v:.1f} V"
+        summary = (
+            f"bench {state}: load {'off' if report.load_off else 'NOT confirmed off'}, "
+            f"source {'off' if report.source_off else 'NOT confirmed off'}{bus}"
+        )
+        store.log_event(run_id, "safety", summary)
+        progress.message(summary, error=not report.safe)
+        bench.close()
+    return report
+
+
+def execute(
+    sequence: Sequence, store: Store, run_id: int, *, progress: Progress, sim_faults: str = ""
+) -> RunOutcome:
+    """Sweep the run's missing points on the sequence's bench and leave the bench safe.
+
+    Raises what made the run fail (after making the bench safe and recording it); a point
+    abort or a signal is an outcome, not an error.
+    """
+    timings = Timings()
+    start = time.perf_counter()
+    status = "failed"
+    report: SafeReport | None = None
+    error: BaseException | None = None
+    bench = sweep = None
+    try:
+        with signals_raise_interrupted():
+            with timings.charge("instrument"):
+                bench = open_bench(sequence, sim_faults=sim_faults)
+                store.set_run_instruments(run_id, bench.identities())
+                if not bench.simulated and any(
+                    exceeds_es1(v, sequence.grid.line_is_ac) for v in sequence.grid.line_values_v
+                ):
+                    progress.message(CAUTIONS, error=True)
+                # A run killed earlier may have left the outputs on: start from a safe bench.
+                make_safe(bench, lambda m: store.log_event(run_id, "safety", m), wait_for_bus=False)
+            sweep = Sweep(sequence, store, run_id, bench, progress, timings)
+            sweep.run()
+            status = "finished"
+    except Interrupted as signal_error:
+        status = "interrupted"
+        store.log_event(run_id, "safety", f"run {signal_error}")
+    except PointAbort as abort:
+        status, error = "aborted", abort
+    except BaseException as failure:  # noqa: BLE001 - recorded, the bench made safe, re-raised
+        status, error = "failed", failure
+        store.log_event(run_id, "fault", f"run failed: {type(failure).__name__}: {failure}")
+    finally:
+        if sweep is not None:
+            sweep.close()
+        if bench is not None:
+            with timings.charge("instrument"):
+                report = _shutdown(bench, store, run_id, progress)
+        store.set_run_status(run_id, status)
+        progress.stop()
+    if status == "failed":
+        raise error  # type: ignore[misc]
+    if error is not None:
+        progress.message(str(error), error=True)
+    wall_s = time.perf_counter() - start
+    timings.add("total", wall_s)
+    store.log_event(run_id, "timing", "run timings", data=timings.seconds)
+    record = store.run(run_id)
+    return RunOutcome(
+        run_id, status, record.points_done, record.points_total, report, timings, wall_s
+    )
+
+
+def start_run(sequence: Sequence, store: Store, *, label: str = "") -> int:
+    """Record a new run of ``sequence`` with its grid as pending points; return the run id."""
+    run_id = store.create_run(
+        sequence_text=sequence.text,
+        sequence_sha256=sequence.sha256,
+        sequence_path=str(sequence.path),
+        dut_label=sequence.dut.label,
+        snubber_label=sequence.snubber.label,
+        bench_kind=sequence.bench.kind,
+        notes=label,
+    )
+    store.add_points(
+        run_id,
+        sequence.points(),
+        line_is_ac=sequence.grid.line_is_ac,
+        line_frequency_hz=sequence.grid.line_frequency_hz,
+    )
+    return run_id
+
+
+def run_sequence(
+    sequence: Sequence,
+    store: Store,
+    *,
+    quiet: bool = True,
+    label: str = "",
+    sim_faults: str = "",
+) -> int:
+    """Run ``sequence`` start to finish; return the run id (see :func:`execute` for details)."""
+    run_id = start_run(sequence, store, label=label)
+    execute(sequence, store, run_id, progress=Progress(quiet=quiet), sim_faults=sim_faults)
+    return run_id
+
+
+def resumable_sequence(store: Store, run_id: int) -> Sequence:
+    """The sequence of a run that may be resumed: not finished, not alive in another process."""
+    store.mark_abandoned_runs()
+    record = store.run(run_id)
+    if record.status == "running":
+        raise RunStateError(
+            f"run {run_id} is still running (process {record.pid} on {record.host}); "
+            "stop it first, or wait for it to finish"
+        )
+    if record.points_done == record.points_total:
+        raise RunStateError(f"run {run_id} is complete: all {record.points_total} points are done")
+    sequence = parse_sequence(
+        record.sequence_text, record.sequence_path, sha256=record.sequence_sha256
+    )
+    store.claim_run(run_id)
+    return sequence
