@@ -27,6 +27,8 @@ COMMAND_MODULES: tuple[str, ...] = (
     "analyze",
     "analyze_run",
     "design",
+    "report",
+    "compare",
 )
 
 

@@ -506,17 +506,78 @@ class Comparison:
         return [p for p in self.points if not p.matched]
 
     def label(self, change: PointChange) -> str:
+        """The setpoints of a change as text (the candidate's when both runs have the point)."""
         rated = self.candidate.rated_load_a or self.baseline.rated_load_a
         return point_label(change.either.point, rated)
+
+    @property
+    def line_values_v(self) -> tuple[float, ...]:
+        """Line values of the compare grid (the candidate's setpoint where both runs have one)."""
+        return tuple(sorted({p.either.point.line_v for p in self.points}))
+
+    @property
+    def load_values_a(self) -> tuple[float, ...]:
+        """Load values of the compare grid."""
+        return tuple(sorted({p.either.point.load_a for p in self.points}))
+
+    def grid(self, figure: str, side: str) -> np.ndarray:
+        """Line × load map of ``figure`` for ``side``: "baseline", "candidate" or "change"."""
+        reviews: list[PointReview] = [p.either for p in self.points]
+        values = np.full((len(self.line_values_v), len(self.load_values_a)), np.nan)
+        cells = grid_cells(reviews, self.line_values_v, self.load_values_a)
+        for (row, column), change in zip(cells, self.points, strict=True):
+            if side == "change":
+                found = change.changes.get(figure)
+                value = found.delta if found else None
+            else:
+                review = change.baseline if side == "baseline" else change.candidate
+                value = review.value(figure) if review else None
+            if value is not None:
+                values[row, column] = value
+        return values
+
+    def flag_grid(self, figure: str) -> list[list[str | None]]:
+        """Line × load map of the flag of ``figure`` (or the point's, when unmatched)."""
+        reviews: list[PointReview] = [p.either for p in self.points]
+        flags: list[list[str | None]] = [
+            [None] * len(self.load_values_a) for _ in self.line_values_v
+        ]
+        cells = grid_cells(reviews, self.line_values_v, self.load_values_a)
+        for (row, column), change in zip(cells, self.points, strict=True):
+            found = change.changes.get(figure)
+            flags[row][column] = found.flag if found else change.flag
+        return flags
+
+    def most_moved(self, count: int) -> list[PointChange]:
+        """The matched points whose figures moved most, in units of their thresholds."""
+        matched = [p for p in self.points if p.matched and p.changes]
+
+        def moved(change: PointChange) -> float:
+            return max(c.significance for c in change.changes.values())
+
+        return sorted(matched, key=moved, reverse=True)[:count]
 
     def describe_regression(self, change: PointChange) -> str:
         """What got worse at one point, in one line."""
         parts = []
         if change.verdict_went_to_fail:
             parts.append("verdict pass → fail")
-        for figure_change in change.worse(self.gated):
-            parts.append(_change_text(figure_change))
+        worse = change.worse(self.gated)
+        parts.extend(_change_text(figure_change) for figure_change in worse[:3])
+        if len(worse) > 3:
+            parts.append(f"and {len(worse) - 3} more figure(s)")
         return f"{self.label(change)}: " + ", ".join(parts)
+
+    def describe_point(self, change: PointChange) -> str:
+        """A point's outcome in one line: its flag and its most significant changes."""
+        if not change.matched:
+            return f"{change.flag:<20} {self.label(change)}"
+        moved = [c for c in change.changes.values() if c.flag in ("worse", "better")]
+        moved.sort(key=lambda c: (c.flag != "worse", -c.significance))
+        words = [_change_text(c) for c in moved[:3]]
+        if change.verdict_went_to_fail:
+            words.insert(0, "verdict pass → fail")
+        return f"{change.flag:<20} {self.label(change)}: " + (", ".join(words) or "no change")
 
     def summary(self) -> str:
         """The change the way an engineer says it, e.g. "peak stress −38 V at the worst

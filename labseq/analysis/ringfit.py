@@ -125,7 +125,9 @@ def matrix_pencil_poles(
     Y. Hua and T. K. Sarkar, "Matrix pencil method for estimating parameters of exponentially
     damped/undamped sinusoids in noise", IEEE Trans. ASSP 38(5), 1990: a Hankel matrix of the
     samples with pencil parameter L ≈ N/3 is decomposed by SVD, the M dominant right singular
-    vectors give the shifted pair (V1, V2), and the poles are the eigenvalues of V1⁺·V2.
+    vectors give the shifted pair (V1, V2), and the poles are the eigenvalues of V1⁺·V2. The
+    right singular vectors are taken here as the eigenvectors of the (L+1)² Gram matrix YᵀY,
+    which holds the same dominant subspace at a fraction of the cost of the Hankel matrix's SVD.
     """
     y = np.asarray(samples, dtype=float)
     n = y.size
@@ -133,8 +135,8 @@ def matrix_pencil_poles(
     if n - pencil < model_order:
         raise RingFitError(f"{n} samples are too few for a pencil of order {model_order}")
     rows = np.lib.stride_tricks.sliding_window_view(y, pencil + 1)
-    _, _, vh = np.linalg.svd(rows, full_matrices=False)
-    v = vh[:model_order].conj().T
+    _, eigenvectors = np.linalg.eigh(rows.T @ rows)  # eigenvalues in ascending order
+    v = eigenvectors[:, -model_order:]
     v1 = v[:-1]
     z = np.linalg.eigvals(np.linalg.solve(v1.T @ v1, v1.T @ v[1:]))  # V1⁺·V2, V1 full rank
     vandermonde = z[np.newaxis, :] ** np.arange(n)[:, np.newaxis]
@@ -161,67 +163,75 @@ def _dominant_oscillation(z: np.ndarray, h: np.ndarray) -> tuple[float, float]:
     return max(float(decay[best]), 1e-6), float(omega[best])
 
 
-def _model_columns(tau: np.ndarray, decay: float, omega: float) -> np.ndarray:
-    """Columns of the model that is linear in (a, b, c) for fixed (σ, ωd)."""
-    envelope = np.exp(-decay * tau)
-    return np.stack(
-        [envelope * np.cos(omega * tau), envelope * np.sin(omega * tau), np.ones_like(tau)], 1
-    )
-
-
 @dataclass(frozen=True)
 class _Projection:
-    """The best linear part at one (σ, ωd), with the weighted residual and its Jacobian."""
+    """The best linear part at one (σ, ωd) and the Gauss–Newton system for (σ, ωd) there."""
 
     decay: float
     omega: float
     linear: np.ndarray  # (a, b, c)
-    residual: np.ndarray  # weighted (model − data)
-    jacobian: np.ndarray  # d residual / d(σ, ωd), Kaufman's form
-    cost: float  # residual · residual
+    cost: float  # sum of squared weighted residuals
+    normal: np.ndarray  # JᵀJ, 2×2
+    gradient: np.ndarray  # Jᵀr, 2
 
 
-def _project(
-    tau: np.ndarray, y_w: np.ndarray, w: np.ndarray, decay: float, omega: float
-) -> _Projection:
-    """Solve (a, b, c) by least squares at fixed (σ, ωd) and linearise the residual there.
+class _VarPro:
+    """Variable projection of the ring model on one window (Golub & Pereyra 1973).
 
-    Variable projection (Golub & Pereyra 1973) with Kaufman's Jacobian (Kaufman 1975): with Q an
-    orthonormal basis of the weighted columns Φ and c their coefficients, the residual is
-    −(I − QQᵀ)·y and its derivative with respect to a nonlinear parameter θ is taken as
-    (I − QQᵀ)·(∂Φ/∂θ)·c, dropping a term that vanishes with the residual.
+    For fixed (σ, ωd) the weighted basis rows B = w·(e·cos, e·sin, 1), e = exp(−στ), give the
+    linear coefficients c = G⁻¹·B·y with G = B·Bᵀ, and the residual r = Bᵀc − y = −P·y, where P
+    projects onto the complement of the basis. Kaufman's Jacobian (Kaufman 1975) is
+    J = P·(∂Bᵀ/∂θ)·c; both of its columns are combinations of U = τ·w·e·cos and V = τ·w·e·sin:
+    Jσ = −(a·PU + b·PV) and Jω = b·PU − a·PV. So JᵀJ, Jᵀr and the cost follow from the inner
+    products of (y, U, V) after projection, PMᵀ·PM = MᵀM − (BM)ᵀ·G⁻¹·(BM): one 6×6 Gram matrix of
+    the rows (B, y, U, V) per step, with no n × 2 Jacobian formed.
     """
-    envelope = np.exp(-decay * tau)
-    env_cos, env_sin = envelope * np.cos(omega * tau), envelope * np.sin(omega * tau)
-    q, r = np.linalg.qr(np.stack([env_cos * w, env_sin * w, w], 1))
-    q_y = q.T @ y_w
-    linear = np.linalg.solve(r, q_y)
-    a, b = linear[0], linear[1]
-    residual = q @ q_y - y_w
-    derivatives = np.stack(
-        [-tau * (a * env_cos + b * env_sin) * w, tau * (b * env_cos - a * env_sin) * w], 1
-    )
-    jacobian = derivatives - q @ (q.T @ derivatives)
-    return _Projection(decay, omega, linear, residual, jacobian, float(residual @ residual))
+
+    def __init__(self, tau: np.ndarray, y: np.ndarray, w: np.ndarray) -> None:
+        self.tau = tau
+        self.w = w
+        self.rows = np.empty((6, tau.size))
+        self.rows[2] = w
+        self.rows[3] = y * w
+
+    def project(self, decay: float, omega: float) -> _Projection:
+        """Linear coefficients, cost and Gauss–Newton system at (σ, ωd)."""
+        rows, tau = self.rows, self.tau
+        envelope_w = np.exp(-decay * tau) * self.w
+        phase = omega * tau
+        np.multiply(envelope_w, np.cos(phase), out=rows[0])
+        np.multiply(envelope_w, np.sin(phase), out=rows[1])
+        np.multiply(rows[0], tau, out=rows[4])
+        np.multiply(rows[1], tau, out=rows[5])
+        gram = rows @ rows.T
+        solved = np.linalg.solve(gram[:3, :3], gram[:3, 3:])  # G⁻¹·B·(y, U, V)
+        projected = gram[3:, 3:] - gram[:3, 3:].T @ solved  # (PM)ᵀ·PM for M = (y, U, V)
+        a, b = solved[0, 0], solved[1, 0]
+        mix = np.array([[-a, b], [-b, -a]])  # J = P·(U, V)·mix
+        return _Projection(
+            decay=decay,
+            omega=omega,
+            linear=solved[:, 0].copy(),
+            cost=float(projected[0, 0]),
+            normal=mix.T @ projected[1:, 1:] @ mix,
+            gradient=-(mix.T @ projected[1:, 0]),
+        )
 
 
-def _refine(
-    tau: np.ndarray, y_w: np.ndarray, w: np.ndarray, decay: float, omega: float
-) -> _Projection:
+def _refine(varpro: _VarPro, decay: float, omega: float) -> _Projection:
     """Least-squares (σ, ωd, a, b, c) from a start (σ, ωd): Levenberg–Marquardt on (σ, ωd).
 
     The step solves (JᵀJ + λ·diag(JᵀJ))·δ = −Jᵀr (Marquardt 1963; the diagonal scaling as in
     Moré 1978); λ shrinks after a step that lowers the cost and grows until one does.
     """
-    best = _project(tau, y_w, w, decay, omega)
+    best = varpro.project(decay, omega)
     damping = LM_INITIAL_DAMPING
     for _ in range(REFINE_MAX_ITERATIONS):
-        normal = best.jacobian.T @ best.jacobian
-        gradient = best.jacobian.T @ best.residual
         while True:
-            step = np.linalg.solve(normal + damping * np.diag(np.diag(normal)), -gradient)
+            lhs = best.normal + damping * np.diag(np.diag(best.normal))
             try:
-                trial = _project(tau, y_w, w, best.decay + step[0], best.omega + step[1])
+                step = np.linalg.solve(lhs, -best.gradient)
+                trial = varpro.project(best.decay + step[0], best.omega + step[1])
             except np.linalg.LinAlgError:  # a degenerate basis: treat as a rejected step
                 trial = None
             if trial is not None and trial.cost <= best.cost:  # False for a NaN cost
@@ -231,9 +241,9 @@ def _refine(
                 return best
         damping *= LM_DECREASE
         best = trial
-        if abs(step[0]) <= REFINE_STEP_TOLERANCE * (abs(best.decay) + abs(best.omega)) and abs(
-            step[1]
-        ) <= REFINE_STEP_TOLERANCE * abs(best.omega):
+        if abs(step[1]) <= REFINE_STEP_TOLERANCE * abs(best.omega) and abs(
+            step[0]
+        ) <= REFINE_STEP_TOLERANCE * (abs(best.decay) + abs(best.omega)):
             break
     return best
 
@@ -299,26 +309,20 @@ def fit_ring(
         decay0 = start.decay_rate_per_s * seconds_per_unit
         omega0 = start.angular_frequency_rad_s * seconds_per_unit
 
-    if refine:
-        try:
-            fit = _refine(tau, y * w, w, decay0, omega0)
-        except np.linalg.LinAlgError:
-            raise RingFitError("the start values give a degenerate model basis") from None
-        params = np.array([*fit.linear, fit.decay, fit.omega])
-    else:
-        columns = _model_columns(tau, decay0, omega0)
-        linear, *_ = np.linalg.lstsq(columns * w[:, None], y * w, rcond=None)
-        params = np.array([*linear, decay0, omega0])
-
-    a, b, c, decay, omega = (float(v) for v in params)
+    varpro = _VarPro(tau, y, w)
+    try:
+        fit = _refine(varpro, decay0, omega0) if refine else varpro.project(decay0, omega0)
+    except np.linalg.LinAlgError:
+        raise RingFitError("the start values give a degenerate model basis") from None
+    a, b, c = (float(v) for v in fit.linear)
+    decay, omega = fit.decay, fit.omega
     if omega < 0:
         omega, b = -omega, -b
     if not (decay > 0 and 0 < omega < math.pi * duration):
         raise RingFitError("the fitted ring is not a decaying oscillation")
-    fitted = _model_columns(tau, decay, omega) @ np.array([a, b, c])
-    ss_res = float(np.sum(w * (y - fitted) ** 2))
-    y_mean = float(np.sum(w * y) / np.sum(w))
-    ss_tot = float(np.sum(w * (y - y_mean) ** 2)) or 1.0
+    w2 = w * w
+    y_mean = float(w2 @ y) / float(np.sum(w2))
+    ss_tot = float(w2 @ (y - y_mean) ** 2) or 1.0
     return RingFit(
         t_start_s=t_start_s,
         amplitude_v=math.hypot(a, b) * scale,
@@ -326,5 +330,5 @@ def fit_ring(
         decay_rate_per_s=decay / seconds_per_unit,
         angular_frequency_rad_s=omega / seconds_per_unit,
         offset_v=c * scale + centre,
-        fit_quality=min(1.0, max(0.0, 1.0 - ss_res / ss_tot)),
+        fit_quality=min(1.0, max(0.0, 1.0 - fit.cost / ss_tot)),
     )

@@ -61,7 +61,9 @@ def verdict_grid_table(review: RunReview) -> str:
     )
 
 
-def _cell_texts(values: np.ndarray, describe: Callable[[float], str]) -> Callable[[int, int], str]:
+def cell_texts(values: np.ndarray, describe: Callable[[float], str]) -> Callable[[int, int], str]:
+    """Cell text of a map: ``describe(value)``, or "—" where there is no value."""
+
     def text(row: int, column: int) -> str:
         value = values[row, column]
         return describe(float(value)) if math.isfinite(value) else "—"
@@ -78,7 +80,7 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
     if np.isfinite(peak).any():
         if rating_v:
             share = 100 * peak / rating_v
-            texts = _cell_texts(peak, lambda v: f"{format_si(v, 'V')}\n{100 * v / rating_v:.0f} %")
+            texts = cell_texts(peak, lambda v: f"{format_si(v, 'V')}\n{100 * v / rating_v:.0f} %")
             fig = plots.heat_map(
                 peak,
                 lines,
@@ -96,7 +98,7 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
                 loads,
                 title="Peak stress",
                 colour_label="peak (V)",
-                cell_text=_cell_texts(peak, lambda v: format_si(v, "V")),
+                cell_text=cell_texts(peak, lambda v: format_si(v, "V")),
             )
             caption = "Peak switch-node voltage (no rating known: the sequence did not validate)."
         maps.append(("map_peak", caption, plots.png_bytes(fig)))
@@ -119,7 +121,7 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
             colour_values=shown,
             title=FIGURE_TITLES[figure].capitalize() + " (worst over the captures)",
             colour_label=f"{FIGURE_TITLES[figure]}" + (f" ({unit})" if unit else ""),
-            cell_text=_cell_texts(values, lambda v, f=figure: format_figure(f, v)),
+            cell_text=cell_texts(values, lambda v, f=figure: format_figure(f, v)),
             colour_format=None if figure == "efficiency" else _colour_format(figure),
         )
         caption = f"{FIGURE_TITLES[figure].capitalize()} at each line and load point."

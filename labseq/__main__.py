@@ -1,0 +1,5 @@
+"""``python -m labseq``: the same as the ``labseq`` command."""
+
+from labseq.cli import main
+
+main()

@@ -1,0 +1,277 @@
+"""The report of a regression compare: outcome and summary, the two runs, changed points,
+side-by-side and change maps, overlays where the points moved most, and the sequence diff."""
+
+from __future__ import annotations
+
+import difflib
+import math
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+from labseq.report import plots
+from labseq.report.html import Markup, Page, cell, esc, table
+from labseq.report.run_report import ReportFiles, cell_texts
+from labseq.report.traces import point_traces
+from labseq.review import (
+    FIGURE_DIRECTIONS,
+    FIGURE_TITLES,
+    NOISE_FLOORS,
+    Comparison,
+    FigureChange,
+    PointChange,
+    RunReview,
+    figure_unit,
+    format_change,
+    format_figure,
+    line_text,
+)
+from labseq.store import Store
+
+#: Figures with maps and table columns, in reading order.
+MAPPED_FIGURES = ("peak_v", "damping_ratio", "settling_time_s", "snubber_loss_w", "efficiency")
+#: Points listed in the change table at most (changed ones first).
+MAX_LISTED_POINTS = 200
+#: Points given an overlay.
+OVERLAY_POINTS = 3
+
+_FLAG_CLASS = {
+    "better": "c-better",
+    "worse": "c-worse",
+    "unchanged": "",
+    "missing in baseline": "c-missing",
+    "missing in candidate": "c-missing",
+}
+
+
+def _change_cell(change: FigureChange | None) -> Markup | str:
+    if change is None:
+        return "—"
+    b = change.baseline.value if change.baseline else None
+    c = change.candidate.value if change.candidate else None
+    text = f"{format_figure(change.figure, b)} → {format_figure(change.figure, c)}"
+    if change.delta is not None:
+        text += f" ({format_change(change.figure, change.delta)}, {change.flag})"
+    else:
+        text += f" ({change.flag})"
+    return cell(text, _FLAG_CLASS[change.flag])
+
+
+def _verdicts(change: PointChange) -> str:
+    b = change.baseline.verdict if change.baseline else "—"
+    c = change.candidate.verdict if change.candidate else "—"
+    return f"{b} → {c}"
+
+
+def _change_rows(comparison: Comparison) -> tuple[list[list[Markup | str]], int]:
+    order = {"worse": 0, "missing in candidate": 1, "missing in baseline": 2, "better": 3}
+    listed = sorted(comparison.points, key=lambda p: order.get(p.flag, 4))
+    rows = [
+        [
+            comparison.label(p),
+            cell(p.flag, _FLAG_CLASS[p.flag]),
+            _verdicts(p),
+            *(_change_cell(p.changes.get(figure)) for figure in MAPPED_FIGURES),
+        ]
+        for p in listed[:MAX_LISTED_POINTS]
+    ]
+    return rows, len(listed)
+
+
+def _run_rows(baseline: RunReview, candidate: RunReview) -> list[list[str]]:
+    def both(value: Callable[[RunReview], object]) -> list[str]:
+        return [str(value(baseline)), str(value(candidate))]
+
+    def counts(review: RunReview) -> str:
+        c = review.verdict_counts
+        return f"{c['pass']} pass, {c['fail']} fail, {c['incomplete']} incomplete"
+
+    return [
+        ["run", *both(lambda r: r.run.id)],
+        ["verdict", *both(lambda r: r.verdict)],
+        ["points", *both(counts)],
+        ["DUT", *both(lambda r: r.run.dut_label)],
+        ["snubber", *both(lambda r: r.run.snubber_label)],
+        ["status", *both(lambda r: r.run.status)],
+        ["started (UTC)", *both(lambda r: r.run.started_at)],
+        ["labseq version", *both(lambda r: r.run.software_version)],
+        ["sequence file", *both(lambda r: r.run.sequence_path)],
+        ["sequence SHA-256", *both(lambda r: r.run.sequence_sha256)],
+    ]
+
+
+def _axes(comparison: Comparison) -> tuple[list[str], list[str]]:
+    is_ac = comparison.points[0].either.point.line_is_ac if comparison.points else False
+    lines = [line_text(value, is_ac) for value in comparison.line_values_v]
+    return lines, plots.axis_texts(comparison.load_values_a, "A")
+
+
+def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
+    """Baseline and candidate side by side on one scale, then the change map."""
+    baseline = comparison.grid(figure, "baseline")
+    candidate = comparison.grid(figure, "candidate")
+    if not (np.isfinite(baseline).any() or np.isfinite(candidate).any()):
+        return
+    lines, loads = _axes(comparison)
+    scale = 100.0 if figure == "efficiency" else 1.0
+    both = np.concatenate([baseline[np.isfinite(baseline)], candidate[np.isfinite(candidate)]])
+    limits = (float(both.min()) * scale, float(both.max()) * scale)
+    unit = "%" if figure == "efficiency" else figure_unit(figure)
+    title = FIGURE_TITLES[figure]
+    colour_label = title + (f" ({unit})" if unit else "")
+    images = []
+    for side, values in (("baseline", baseline), ("candidate", candidate)):
+        run_id = getattr(comparison, side).run.id
+        fig = plots.heat_map(
+            values,
+            lines,
+            loads,
+            colour_values=values * scale,
+            title=f"{title.capitalize()}: {side} (run {run_id})",
+            colour_label=colour_label,
+            cell_text=cell_texts(values, lambda v: format_figure(figure, v)),
+            limits=limits,
+        )
+        caption = f"{title.capitalize()} of the {side} run, on the same scale as the other run."
+        images.append(page.image(f"map_{figure}_{side}", plots.png_bytes(fig), caption))
+    page.add('<div class="maps">' + "".join(images) + "</div>")
+
+    delta = comparison.grid(figure, "change")
+    if not np.isfinite(delta).any():
+        return
+    flags = comparison.flag_grid(figure)
+    direction = "higher" if FIGURE_DIRECTIONS[figure] > 0 else "lower"
+
+    def change_text(row: int, column: int) -> str:
+        value = delta[row, column]
+        flag = flags[row][column] or ""
+        return f"{format_change(figure, float(value))}\n{flag}" if math.isfinite(value) else flag
+
+    fig = plots.heat_map(
+        delta,
+        lines,
+        loads,
+        colour_values=delta * FIGURE_DIRECTIONS[figure] * scale,
+        cmap_name=plots.CHANGE_MAP,
+        centre=0.0,
+        title=f"{title.capitalize()}: change, candidate − baseline ({direction} is better)",
+        colour_label=f"improvement ({unit or 'ratio'}); purple better, orange worse",
+        cell_text=change_text,
+    )
+    caption = f"Change of {title} at each point, with its verdict against the captures' own spread."
+    page.add(
+        '<div class="maps">'
+        + page.image(f"change_{figure}", plots.png_bytes(fig), caption)
+        + "</div>"
+    )
+
+
+def _overlays(
+    page: Page, comparison: Comparison, baseline_store: Store, candidate_store: Store
+) -> None:
+    rating = comparison.candidate.derated_rating_v or comparison.baseline.derated_rating_v
+    for index, change in enumerate(comparison.most_moved(OVERLAY_POINTS)):
+        label = comparison.label(change)
+        moved = sorted(change.changes.values(), key=lambda c: -c.significance)[:3]
+        words = ", ".join(
+            f"{FIGURE_TITLES[c.figure]} {format_change(c.figure, c.delta)}" for c in moved
+        )
+        page.add(f"<h3>{esc(label)}: {esc(words)}</h3>")
+        groups = [
+            (
+                f"baseline (run {comparison.baseline.run.id})",
+                point_traces(
+                    baseline_store, change.baseline.point.id, comparison.baseline.sequence
+                ),
+                [plots.BASELINE_COLOUR],
+            ),
+            (
+                f"candidate (run {comparison.candidate.run.id})",
+                point_traces(
+                    candidate_store, change.candidate.point.id, comparison.candidate.sequence
+                ),
+                [plots.CANDIDATE_COLOUR],
+            ),
+        ]
+        if not any(traces for _, traces, _ in groups):
+            page.paragraph("No captures stored for this point in either run.", "note")
+            continue
+        fig = plots.overlay(
+            groups,
+            title=f"{label}: baseline and candidate captures, fitted rings dashed",
+            limit_v=rating,
+            limit_label="derated rating" if rating else "",
+        )
+        caption = f"Baseline (blue) and candidate (vermillion) captures at {label}."
+        page.add(page.image(f"overlay_{index + 1}", plots.png_bytes(fig), caption))
+
+
+def _rule_text(comparison: Comparison) -> str:
+    floors = ", ".join(
+        f"{FIGURE_TITLES[name]} {format_change(name, value).removeprefix('+')}"
+        for name, value in NOISE_FLOORS.items()
+    )
+    return (
+        f"Points match when line and load agree within {100 * comparison.rel_tol:.3g} %. A "
+        f"figure's change Δ (of the worst values over each point's captures) counts only when "
+        f"|Δ| > max(k·√(s_b² + s_c²), floor), with s the captures' standard deviations, "
+        f"k = {comparison.coverage:g} and floors {floors}. Figures that gate the outcome: "
+        f"{', '.join(FIGURE_TITLES[name] for name in comparison.gated) or 'none'}."
+    )
+
+
+def build_compare_report(
+    comparison: Comparison, baseline_store: Store, candidate_store: Store, out_dir: Path
+) -> ReportFiles:
+    """Write the compare's ``report.html`` and its PNGs into ``out_dir``."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    b, c = comparison.baseline, comparison.candidate
+    page = Page(out_dir, f"labseq compare: run {b.run.id} → run {c.run.id}")
+    page.add(f"<h1>Compare: run {b.run.id} (baseline) → run {c.run.id} (candidate)</h1>")
+    page.add(
+        f'<p class="sub">{esc(b.run.snubber_label)} → {esc(c.run.snubber_label)} · '
+        f"{esc(c.run.dut_label)}</p>"
+    )
+
+    page.section("verdict", "Outcome")
+    regressions = comparison.regressions
+    word, css = ("regressed", "v-fail") if regressions else ("no regression", "v-pass")
+    page.add(f'<p><span class="badge {css}">{esc(word)}</span></p>')
+    page.paragraph(comparison.summary() + ".")
+    if regressions:
+        page.paragraph(
+            f"{len(regressions)} point(s) got worse; the worst: "
+            + comparison.describe_regression(regressions[0])
+            + "."
+        )
+    page.paragraph(_rule_text(comparison), "note")
+
+    page.section("runs", "The two runs")
+    page.add(table(["", "baseline", "candidate"], _run_rows(b, c)))
+
+    page.section("changes", "Changes at each point")
+    rows, total = _change_rows(comparison)
+    header = ["point", "result", "verdict", *(FIGURE_TITLES[f] for f in MAPPED_FIGURES)]
+    page.add(table(header, rows))
+    if total > len(rows):
+        page.paragraph(f"… and {total - len(rows)} more points: see compare --json.", "note")
+
+    page.section("maps", "Side-by-side and change maps")
+    for figure in MAPPED_FIGURES:
+        _figure_maps(page, comparison, figure)
+
+    page.section("overlays", "Captures where the points moved most")
+    _overlays(page, comparison, baseline_store, candidate_store)
+
+    page.section("sequence", "Sequence changes (baseline → candidate)")
+    diff = difflib.unified_diff(
+        b.run.sequence_text.splitlines(),
+        c.run.sequence_text.splitlines(),
+        f"run {b.run.id}: {b.run.sequence_path}",
+        f"run {c.run.id}: {c.run.sequence_path}",
+        lineterm="",
+    )
+    page.add(f"<pre>{esc(chr(10).join(diff) or 'The two sequence files are identical.')}</pre>")
+    page.safety()
+    return ReportFiles(page.write(), None, page.images)

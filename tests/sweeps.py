@@ -1,0 +1,61 @@
+"""Helpers for tests that run sweeps: small sequence files made from the shipped demo."""
+
+from __future__ import annotations
+
+import re
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO_DC = ROOT / "sequences" / "demo_dc_flyback.toml"
+LABSEQ = [sys.executable, "-m", "labseq"]
+
+
+def _set(text: str, key: str, value: str) -> str:
+    """Replace the value of the first ``key = ...`` line (comments after it are dropped)."""
+    pattern = re.compile(rf"^{re.escape(key)}\s*=.*$", re.MULTILINE)
+    if not pattern.search(text):
+        raise KeyError(key)
+    return pattern.sub(lambda _: f"{key} = {value}", text, count=1)
+
+
+def demo_sequence(
+    tmp_path: Path,
+    *,
+    lines: list[str] | None = None,
+    loads: list[str] | None = None,
+    captures: int | None = None,
+    resources: dict[str, str] | None = None,
+    on_point_error: str | None = None,
+    timeout: str = "1 s",
+    acquisition_timeout: str = "1 s",
+    name: str = "sweep.toml",
+) -> Path:
+    """A copy of the DC demo sequence with a smaller grid, written into ``tmp_path``.
+
+    With ``resources`` the bench becomes ``kind = "visa"`` on those resource strings (a simulated
+    bench started by the test), as a real bench would be, so the hazardous-voltage
+    acknowledgement is set (the demo's lines reach 75 V DC, above ES1's 60 V).
+    """
+    text = DEMO_DC.read_text()
+    if lines is not None:
+        text = _set(text, "line_values", "[" + ", ".join(f'"{v}"' for v in lines) + "]")
+    if loads is not None:
+        text = _set(text, "load_values", "[" + ", ".join(f'"{v}"' for v in loads) + "]")
+    if captures is not None:
+        text = _set(text, "captures_per_point", str(captures))
+    if on_point_error is not None:
+        text = _set(text, "on_point_error", f'"{on_point_error}"')
+    text = _set(text, "acquisition_timeout", f'"{acquisition_timeout}"')
+    if resources is not None:
+        text = _set(text, "kind", '"visa"')
+        text = re.sub(r"^dut = .*$", "", text, count=1, flags=re.MULTILINE)
+        table = "\n".join(f'{role} = "{resource}"' for role, resource in resources.items())
+        text = text.replace(
+            "[bench.limits]",
+            f'timeout = "{timeout}"\n\n[bench.resources]\n{table}\n\n[bench.limits]',
+        )
+        text += "\n[safety]\nhazardous_voltage_acknowledged = true\n"
+    path = tmp_path / name
+    path.write_text(text)
+    return path
