@@ -14,8 +14,14 @@ $(STAMP): pyproject.toml | $(BIN)/python
 	$(BIN)/python -m pip install -q -e '.[test]'
 	touch $(STAMP)
 
+# The main job on the simulated bench: sweep the DC demo flyback, store it, list it, export it.
+DEMO := demo-output
 demo: $(STAMP)
-	$(BIN)/labseq demo
+	@mkdir -p $(DEMO)
+	$(BIN)/labseq run sequences/demo_dc_flyback.toml --db $(DEMO)/labseq.sqlite --label "make demo"
+	$(BIN)/labseq runs --db $(DEMO)/labseq.sqlite
+	$(BIN)/labseq export latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/export
+	@echo "Results: $(DEMO)/labseq.sqlite (every raw capture) and $(DEMO)/export/points.csv"
 
 test: $(STAMP) ngspice
 	$(BIN)/ruff check .

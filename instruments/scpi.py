@@ -155,6 +155,11 @@ class ScpiInstrument:
             ) from None
         except pyvisa.errors.InvalidSession:
             raise ConnectionLost(f"{self.label}: session closed before {command!r}") from None
+        except UnicodeDecodeError as error:  # binary bytes where a text reply was expected
+            raise ReplyFormatError(
+                f"{self.label}: reply to {command!r} is not text ({error.reason} at byte "
+                f"{error.start}); the session may hold the rest of an earlier reply"
+            ) from None
 
     def _tune_transport(self) -> None:
         """Turn off Nagle's algorithm on socket resources.

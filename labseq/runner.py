@@ -383,9 +383,20 @@ class Sweep:
         self.analysis.shutdown(wait=True)
 
 
-def _shutdown(bench: Bench, store: Store, run_id: int, progress: Progress) -> SafeReport:
-    """Make the bench safe and record how it went; signals are ignored meanwhile."""
+def _shutdown(
+    bench: Bench, store: Store, run_id: int, progress: Progress, *, clean: bool
+) -> SafeReport:
+    """Make the bench safe and record how it went; signals are ignored meanwhile.
+
+    After an unclean ending (a signal or an error may have cut a reply in half) every session is
+    opened afresh first, so no stale reply can be read as the answer to an off command."""
     with signals_ignored():
+        if not clean:
+            for role in list(bench.drivers):
+                try:
+                    bench.reopen(role)
+                except InstrumentError as error:
+                    store.log_event(run_id, "safety", f"could not reconnect {role}: {error}")
         report = make_safe(
             bench,
             lambda message: store.log_event(run_id, "safety", message),
@@ -421,7 +432,13 @@ def execute(
         with signals_raise_interrupted():
             with timings.charge("instrument"):
                 bench = open_bench(sequence, sim_faults=sim_faults)
-                store.set_run_instruments(run_id, bench.identities())
+                identities = bench.identities()
+                store.set_run_instruments(run_id, identities)
+                for role, identity in identities.items():
+                    progress.message(
+                        f"{role:>6}: {identity['manufacturer']} {identity['model']} "
+                        f"(serial {identity['serial']}) at {identity['resource']}"
+                    )
                 if not bench.simulated and any(
                     exceeds_es1(v, sequence.grid.line_is_ac) for v in sequence.grid.line_values_v
                 ):
@@ -444,7 +461,7 @@ def execute(
             sweep.close()
         if bench is not None:
             with timings.charge("instrument"):
-                report = _shutdown(bench, store, run_id, progress)
+                report = _shutdown(bench, store, run_id, progress, clean=status == "finished")
         store.set_run_status(run_id, status)
         progress.stop()
     if status == "failed":

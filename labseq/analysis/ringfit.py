@@ -6,8 +6,10 @@ directly from the samples; a variable-projection Levenberg–Marquardt refinemen
 two nonlinear parameters (σ, ωd) only, with (a, b, c) solved by linear least squares at each step.
 Counting peaks or zero crossings is avoided: both are biased by noise, quantisation and the offset.
 
-The refinement is written with numpy on the short, decimated window: a general-purpose solver's
-fixed cost per call would dominate an analysis that fits one ring per switching edge.
+A record with many switching edges needs one fit per edge, and a general-purpose solver's fixed
+cost per call would dominate; :func:`fit_rings` therefore fits many windows at once, with the matrix
+pencil and every refinement step vectorised across the windows (shorter windows are padded with
+zero-weight samples). :func:`fit_ring` is the single-window form.
 """
 
 from __future__ import annotations
@@ -26,9 +28,13 @@ MIN_RELATIVE_AMPLITUDE = 0.02
 #: Fewest samples a window may hold for a five-parameter fit.
 MIN_FIT_SAMPLES = 12
 #: Refinement stops when a step changes σ and ωd by less than this (relative), or after
-#: ``REFINE_MAX_ITERATIONS``; from a matrix-pencil start it usually needs three to six.
+#: ``REFINE_MAX_STEPS`` trial steps; from a matrix-pencil start it usually needs four to six.
 REFINE_STEP_TOLERANCE = 1e-9
-REFINE_MAX_ITERATIONS = 40
+REFINE_MAX_STEPS = 60
+#: Smallest normalised Gram determinant det(G)/Π diag(G) of the (e·cos, e·sin, 1) basis: below it
+#: the basis is degenerate (e.g. less than a fraction of a period in the window) and a step there
+#: is rejected.
+MIN_BASIS_INDEPENDENCE = 1e-10
 #: Levenberg–Marquardt damping: start, and the factors applied after a good and a rejected step.
 LM_INITIAL_DAMPING = 1e-3
 LM_DECREASE, LM_INCREASE, LM_MAX_DAMPING = 1 / 3, 4.0, 1e12
@@ -112,140 +118,340 @@ def matrix_pencil_poles(
 
     Parameters
     ----------
-    samples : 1-D array of uniformly spaced samples.
-    model_order : number of exponentials M kept after the SVD truncation.
+    samples : uniformly spaced samples, shape (n,) or a stack of equal-length windows (..., n).
+    model_order : number of exponentials M kept after the rank truncation.
 
     Returns
     -------
-    z : discrete-time poles (``z = exp(s·Δt)``), shape (M,).
-    h : complex amplitudes such that ``samples[n] ≈ Σ h_k·z_k**n``.
+    z : discrete-time poles (``z = exp(s·Δt)``), shape (..., M).
+    h : complex amplitudes such that ``samples[..., n] ≈ Σ h_k·z_k**n``, shape (..., M).
 
     Notes
     -----
     Y. Hua and T. K. Sarkar, "Matrix pencil method for estimating parameters of exponentially
-    damped/undamped sinusoids in noise", IEEE Trans. ASSP 38(5), 1990: a Hankel matrix of the
+    damped/undamped sinusoids in noise", IEEE Trans. ASSP 38(5), 1990: a Hankel matrix Y of the
     samples with pencil parameter L ≈ N/3 is decomposed by SVD, the M dominant right singular
     vectors give the shifted pair (V1, V2), and the poles are the eigenvalues of V1⁺·V2. The
     right singular vectors are taken here as the eigenvectors of the (L+1)² Gram matrix YᵀY,
-    which holds the same dominant subspace at a fraction of the cost of the Hankel matrix's SVD.
+    which span the same dominant subspace at a fraction of the cost of the SVD of Y.
     """
     y = np.asarray(samples, dtype=float)
-    n = y.size
+    n = y.shape[-1]
     pencil = max(model_order + 1, n // 3)
     if n - pencil < model_order:
         raise RingFitError(f"{n} samples are too few for a pencil of order {model_order}")
-    rows = np.lib.stride_tricks.sliding_window_view(y, pencil + 1)
-    _, eigenvectors = np.linalg.eigh(rows.T @ rows)  # eigenvalues in ascending order
-    v = eigenvectors[:, -model_order:]
-    v1 = v[:-1]
-    z = np.linalg.eigvals(np.linalg.solve(v1.T @ v1, v1.T @ v[1:]))  # V1⁺·V2, V1 full rank
-    vandermonde = z[np.newaxis, :] ** np.arange(n)[:, np.newaxis]
-    h, *_ = np.linalg.lstsq(vandermonde, y.astype(complex), rcond=None)
-    return z, h
+    rows = np.lib.stride_tricks.sliding_window_view(y, pencil + 1, axis=-1)
+    _, eigenvectors = np.linalg.eigh(np.swapaxes(rows, -1, -2) @ rows)  # ascending eigenvalues
+    v = eigenvectors[..., -model_order:]
+    z = np.linalg.eigvals(np.linalg.pinv(v[..., :-1, :]) @ v[..., 1:, :]).astype(complex)
+    vandermonde = z[..., np.newaxis, :] ** np.arange(n)[:, np.newaxis]
+    h = np.linalg.pinv(vandermonde) @ y[..., np.newaxis].astype(complex)
+    return z, h[..., 0]
 
 
-def _dominant_oscillation(z: np.ndarray, h: np.ndarray) -> tuple[float, float]:
-    """(σ, ωd) per sample of the largest-amplitude decaying oscillatory pole, in rad/sample.
+def _dominant_oscillation(z: np.ndarray, h: np.ndarray) -> list[tuple[float, float] | RingFitError]:
+    """(σ, ωd) per sample of each window's largest-amplitude decaying oscillatory pole.
 
-    ``h`` is relative to the window's peak-to-peak spread; a pair below
-    ``MIN_RELATIVE_AMPLITUDE`` of it is noise or a numerical artefact, not a ring.
+    ``z`` and ``h`` are (windows, M); ``h`` is relative to each window's peak-to-peak spread,
+    and a pair below ``MIN_RELATIVE_AMPLITUDE`` of it is noise or a numerical artefact, not a ring.
     """
-    with np.errstate(divide="ignore"):  # a pole at 0 is a decay of +inf, not oscillatory
+    with np.errstate(divide="ignore", invalid="ignore"):  # a pole at 0: decay +inf, no ring
         s = np.log(z)
     decay, omega = -s.real, s.imag
     usable = (omega > 0.02) & (omega < 0.9 * math.pi) & (decay > -0.05)
-    if not np.any(usable):
-        raise RingFitError("no decaying oscillation among the matrix pencil poles")
     amplitude = np.where(usable, 2 * np.abs(h), -np.inf)
-    best = int(np.argmax(amplitude))
-    if amplitude[best] < MIN_RELATIVE_AMPLITUDE:
-        raise RingFitError("no oscillation stands out of the window's noise and trend")
-    return max(float(decay[best]), 1e-6), float(omega[best])
+    best = np.argmax(amplitude, axis=-1)
+    rows = np.arange(z.shape[0])
+    starts: list[tuple[float, float] | RingFitError] = []
+    for has_ring, peak, decay_k, omega_k in zip(
+        usable.any(axis=-1),
+        amplitude[rows, best],
+        decay[rows, best],
+        omega[rows, best],
+        strict=True,
+    ):
+        if not has_ring:
+            starts.append(RingFitError("no decaying oscillation among the matrix pencil poles"))
+        elif peak < MIN_RELATIVE_AMPLITUDE:
+            starts.append(RingFitError("no oscillation stands out of the window's noise and trend"))
+        else:
+            starts.append((max(float(decay_k), 1e-6), float(omega_k)))
+    return starts
 
 
-@dataclass(frozen=True)
-class _Projection:
-    """The best linear part at one (σ, ωd) and the Gauss–Newton system for (σ, ωd) there."""
+def _pencil_starts(windows: list[np.ndarray]) -> list[tuple[float, float] | RingFitError]:
+    """(σ, ωd) starts in units of each window's length, from the matrix pencil.
 
-    decay: float
-    omega: float
-    linear: np.ndarray  # (a, b, c)
-    cost: float  # sum of squared weighted residuals
-    normal: np.ndarray  # JᵀJ, 2×2
-    gradient: np.ndarray  # Jᵀr, 2
+    Each window is decimated to at most ``PENCIL_MAX_SAMPLES``; windows of equal decimated length
+    go through the pencil together.
+    """
+    strides = [max(1, math.ceil(y.size / PENCIL_MAX_SAMPLES)) for y in windows]
+    groups: dict[int, list[int]] = {}
+    for k, (y, stride) in enumerate(zip(windows, strides, strict=True)):
+        groups.setdefault(-(-y.size // stride), []).append(k)
+    starts: list[tuple[float, float] | RingFitError] = [RingFitError("")] * len(windows)
+    for members in groups.values():
+        stack = np.stack([windows[k][:: strides[k]] for k in members])
+        try:
+            found = _dominant_oscillation(*matrix_pencil_poles(stack))
+        except RingFitError as exc:
+            found = [exc] * len(members)
+        for k, start in zip(members, found, strict=True):
+            if isinstance(start, tuple):
+                scale = windows[k].size / strides[k]  # per decimated sample → per window length
+                start = (start[0] * scale, start[1] * scale)
+            starts[k] = start
+    return starts
+
+
+@dataclass
+class _Projections:
+    """Best linear parts at one (σ, ωd) per window, and the Gauss–Newton system there."""
+
+    ok: np.ndarray  # False where the basis is degenerate
+    linear: np.ndarray  # (windows, 3): a, b, c
+    cost: np.ndarray  # sum of squared weighted residuals
+    normal: np.ndarray  # (windows, 2, 2): JᵀJ
+    gradient: np.ndarray  # (windows, 2): Jᵀr
 
 
 class _VarPro:
-    """Variable projection of the ring model on one window (Golub & Pereyra 1973).
+    """Variable projection of the ring model on a stack of windows (Golub & Pereyra 1973).
 
     For fixed (σ, ωd) the weighted basis rows B = w·(e·cos, e·sin, 1), e = exp(−στ), give the
     linear coefficients c = G⁻¹·B·y with G = B·Bᵀ, and the residual r = Bᵀc − y = −P·y, where P
-    projects onto the complement of the basis. Kaufman's Jacobian (Kaufman 1975) is
-    J = P·(∂Bᵀ/∂θ)·c; both of its columns are combinations of U = τ·w·e·cos and V = τ·w·e·sin:
+    projects onto the complement of the basis. Kaufman's Jacobian (L. Kaufman, "A variable
+    projection method for solving separable nonlinear least squares problems", BIT 15, 1975) is
+    J = P·(∂Bᵀ/∂θ)·c; both its columns combine U = τ·w·e·cos and V = τ·w·e·sin:
     Jσ = −(a·PU + b·PV) and Jω = b·PU − a·PV. So JᵀJ, Jᵀr and the cost follow from the inner
-    products of (y, U, V) after projection, PMᵀ·PM = MᵀM − (BM)ᵀ·G⁻¹·(BM): one 6×6 Gram matrix of
-    the rows (B, y, U, V) per step, with no n × 2 Jacobian formed.
+    products after projection, (PM)ᵀ·PM = MᵀM − (BM)ᵀ·G⁻¹·(BM) for M = (y, U, V): one 6×6 Gram
+    matrix of the rows (B, y, U, V) per window and step, and no n × 2 Jacobian.
     """
 
-    def __init__(self, tau: np.ndarray, y: np.ndarray, w: np.ndarray) -> None:
-        self.tau = tau
-        self.w = w
-        self.rows = np.empty((6, tau.size))
-        self.rows[2] = w
-        self.rows[3] = y * w
+    def __init__(self, ys: list[np.ndarray], ws: list[np.ndarray]) -> None:
+        longest = max(y.size for y in ys)
+        self.tau = np.zeros((len(ys), longest))
+        self.w = np.zeros((len(ys), longest))
+        self.y_w = np.zeros((len(ys), longest))
+        for k, (y, w) in enumerate(zip(ys, ws, strict=True)):
+            self.tau[k, : y.size] = np.arange(y.size) / y.size
+            self.w[k, : y.size] = w
+            self.y_w[k, : y.size] = y * w
 
-    def project(self, decay: float, omega: float) -> _Projection:
-        """Linear coefficients, cost and Gauss–Newton system at (σ, ωd)."""
-        rows, tau = self.rows, self.tau
-        envelope_w = np.exp(-decay * tau) * self.w
-        phase = omega * tau
-        np.multiply(envelope_w, np.cos(phase), out=rows[0])
-        np.multiply(envelope_w, np.sin(phase), out=rows[1])
-        np.multiply(rows[0], tau, out=rows[4])
-        np.multiply(rows[1], tau, out=rows[5])
-        gram = rows @ rows.T
-        solved = np.linalg.solve(gram[:3, :3], gram[:3, 3:])  # G⁻¹·B·(y, U, V)
-        projected = gram[3:, 3:] - gram[:3, 3:].T @ solved  # (PM)ᵀ·PM for M = (y, U, V)
-        a, b = solved[0, 0], solved[1, 0]
-        mix = np.array([[-a, b], [-b, -a]])  # J = P·(U, V)·mix
-        return _Projection(
-            decay=decay,
-            omega=omega,
-            linear=solved[:, 0].copy(),
-            cost=float(projected[0, 0]),
-            normal=mix.T @ projected[1:, 1:] @ mix,
-            gradient=-(mix.T @ projected[1:, 0]),
+    def _basis(self, index: np.ndarray, decay: np.ndarray, omega: np.ndarray) -> np.ndarray:
+        """Rows (w·e·cos, w·e·sin, w, w·y, τ·w·e·cos, τ·w·e·sin) of the windows ``index``."""
+        tau = self.tau[index]
+        rows = np.empty((index.size, 6, tau.shape[1]))
+        rows[:, 2] = self.w[index]
+        rows[:, 3] = self.y_w[index]
+        with np.errstate(over="ignore", invalid="ignore"):  # a wild trial step: rejected below
+            envelope_w = np.exp(-decay[:, None] * tau) * rows[:, 2]
+            phase = omega[:, None] * tau
+            np.multiply(envelope_w, np.cos(phase), out=rows[:, 0])
+            np.multiply(envelope_w, np.sin(phase), out=rows[:, 1])
+            np.multiply(rows[:, 0], tau, out=rows[:, 4])
+            np.multiply(rows[:, 1], tau, out=rows[:, 5])
+        return rows
+
+    def project(self, index: np.ndarray, decay: np.ndarray, omega: np.ndarray) -> _Projections:
+        """Linear coefficients, cost and Gauss–Newton system of the windows ``index``."""
+        rows = self._basis(index, decay, omega)
+        with np.errstate(over="ignore", invalid="ignore"):
+            gram = rows @ np.swapaxes(rows, 1, 2)
+            basis_gram = gram[:, :3, :3]
+            scale = np.prod(np.diagonal(basis_gram, axis1=1, axis2=2), axis=1)
+            ok = np.isfinite(gram).all(axis=(1, 2))
+            ok[ok] = np.linalg.det(basis_gram[ok]) > MIN_BASIS_INDEPENDENCE * scale[ok]
+        solved = np.zeros((index.size, 3, 3))
+        solved[ok] = np.linalg.solve(basis_gram[ok], gram[ok, :3, 3:])  # G⁻¹·B·(y, U, V)
+        projected = gram[:, 3:, 3:] - np.swapaxes(gram[:, :3, 3:], 1, 2) @ solved
+        a, b = solved[:, 0, 0], solved[:, 1, 0]
+        mix = np.stack([np.stack([-a, b], -1), np.stack([-b, -a], -1)], -2)  # J = P·(U, V)·mix
+        mix_t = np.swapaxes(mix, 1, 2)
+        return _Projections(
+            ok=ok,
+            linear=solved[:, :, 0],
+            cost=np.where(ok, projected[:, 0, 0], np.inf),
+            normal=mix_t @ projected[:, 1:, 1:] @ mix,
+            gradient=-(mix_t @ projected[:, 1:, :1])[:, :, 0],
         )
 
+    def residual_cost(self, decay: np.ndarray, omega: np.ndarray, linear: np.ndarray) -> np.ndarray:
+        """Sum of squared weighted residuals, computed from the residuals themselves."""
+        rows = self._basis(np.arange(decay.size), decay, omega)
+        model = np.einsum("kj,kjn->kn", linear, rows[:, :3])
+        return np.sum((model - rows[:, 3]) ** 2, axis=1)
 
-def _refine(varpro: _VarPro, decay: float, omega: float) -> _Projection:
-    """Least-squares (σ, ωd, a, b, c) from a start (σ, ωd): Levenberg–Marquardt on (σ, ωd).
+    def refine(self, decay: np.ndarray, omega: np.ndarray) -> _Projections:
+        """Least-squares fits from starts (σ, ωd): Levenberg–Marquardt on (σ, ωd) per window.
 
-    The step solves (JᵀJ + λ·diag(JᵀJ))·δ = −Jᵀr (Marquardt 1963; the diagonal scaling as in
-    Moré 1978); λ shrinks after a step that lowers the cost and grows until one does.
-    """
-    best = varpro.project(decay, omega)
-    damping = LM_INITIAL_DAMPING
-    for _ in range(REFINE_MAX_ITERATIONS):
-        while True:
-            lhs = best.normal + damping * np.diag(np.diag(best.normal))
-            try:
-                step = np.linalg.solve(lhs, -best.gradient)
-                trial = varpro.project(best.decay + step[0], best.omega + step[1])
-            except np.linalg.LinAlgError:  # a degenerate basis: treat as a rejected step
-                trial = None
-            if trial is not None and trial.cost <= best.cost:  # False for a NaN cost
+        The step solves (JᵀJ + λ·diag(JᵀJ))·δ = −Jᵀr (Marquardt 1963, with the diagonal scaling
+        of Moré 1978); each window's λ shrinks after a step that lowers its cost and grows after
+        one that does not. Windows drop out of the batch as they converge. ``decay`` and
+        ``omega`` are updated in place.
+        """
+        best = self.project(np.arange(decay.size), decay, omega)
+        damping = np.full(decay.size, LM_INITIAL_DAMPING)
+        active = best.ok.copy()
+        for _ in range(REFINE_MAX_STEPS):
+            index = np.flatnonzero(active)
+            if index.size == 0:
                 break
-            damping *= LM_INCREASE
-            if damping > LM_MAX_DAMPING:
-                return best
-        damping *= LM_DECREASE
-        best = trial
-        if abs(step[1]) <= REFINE_STEP_TOLERANCE * abs(best.omega) and abs(
-            step[0]
-        ) <= REFINE_STEP_TOLERANCE * (abs(best.decay) + abs(best.omega)):
-            break
-    return best
+            normal, gradient = best.normal[index], best.gradient[index]
+            p = normal[:, 0, 0] * (1 + damping[index])
+            r = normal[:, 1, 1] * (1 + damping[index])
+            q = normal[:, 0, 1]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                det = p * r - q * q
+                step_decay = -(r * gradient[:, 0] - q * gradient[:, 1]) / det
+                step_omega = -(p * gradient[:, 1] - q * gradient[:, 0]) / det
+            trial = self.project(index, decay[index] + step_decay, omega[index] + step_omega)
+            accept = trial.cost <= best.cost[index]  # False for NaN and for a degenerate basis
+            taken = index[accept]
+            decay[taken] += step_decay[accept]
+            omega[taken] += step_omega[accept]
+            for name in ("ok", "linear", "cost", "normal", "gradient"):
+                getattr(best, name)[taken] = getattr(trial, name)[accept]
+            damping[index] *= np.where(accept, LM_DECREASE, LM_INCREASE)
+            converged = (
+                accept
+                & (np.abs(step_omega) <= REFINE_STEP_TOLERANCE * np.abs(omega[index]))
+                & (
+                    np.abs(step_decay)
+                    <= REFINE_STEP_TOLERANCE * (np.abs(decay[index]) + np.abs(omega[index]))
+                )
+            )
+            active[index[converged | (damping[index] > LM_MAX_DAMPING)]] = False
+        return best
+
+
+@dataclass(frozen=True)
+class RingWindow:
+    """One window for :func:`fit_rings`: uniformly spaced samples starting at ``t_start_s``.
+
+    ``weights`` (0–1 per sample, 0 excludes a sample, e.g. a clipped one) and ``start`` (an
+    earlier fit of the same ring whose decay and frequency replace the matrix-pencil start) are
+    optional.
+    """
+
+    volts: np.ndarray
+    sample_interval_s: float
+    t_start_s: float = 0.0
+    weights: np.ndarray | None = None
+    start: RingFit | None = None
+
+
+def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit | RingFitError]:
+    """Fit ``c + exp(-στ)·(a·cos ωdτ + b·sin ωdτ)`` to each window, vectorised across windows.
+
+    Parameters
+    ----------
+    windows : the windows to fit (see :class:`RingWindow`).
+    refine : False returns the start (with its least-squares a, b, c) unrefined.
+
+    Returns
+    -------
+    One entry per window: its RingFit, or the RingFitError that says why it has none (too short,
+    no decaying oscillation).
+
+    Notes
+    -----
+    The start is the dominant oscillatory pole of the matrix pencil (Hua & Sarkar 1990) on at most
+    ``PENCIL_MAX_SAMPLES`` samples. The refinement is variable projection (Golub & Pereyra 1973,
+    Kaufman 1975): (a, b, c) are solved by linear least squares for each (σ, ωd), and only
+    (σ, ωd) are iterated, by Levenberg–Marquardt (Marquardt 1963, Moré 1978). Time is scaled to
+    the window length and voltage to the window's spread so that the problem is well conditioned
+    whatever the units.
+    """
+    results: list[RingFit | RingFitError] = [RingFitError("")] * len(windows)
+    members: list[int] = []
+    ys: list[np.ndarray] = []
+    ws: list[np.ndarray] = []
+    levels: list[tuple[float, float]] = []  # (centre, scale) of each window's volts
+    for k, window in enumerate(windows):
+        y_raw = np.asarray(window.volts, dtype=float)
+        if y_raw.size < MIN_FIT_SAMPLES:
+            results[k] = RingFitError(
+                f"a window of {y_raw.size} samples is too short for a ring fit"
+            )
+            continue
+        centre = float(np.mean(y_raw))
+        scale = float(np.ptp(y_raw)) or 1.0
+        members.append(k)
+        ys.append((y_raw - centre) / scale)
+        ws.append(
+            np.ones(y_raw.size) if window.weights is None else np.asarray(window.weights, float)
+        )
+        levels.append((centre, scale))
+
+    need_pencil = [j for j, k in enumerate(members) if windows[k].start is None]
+    pencil = dict(zip(need_pencil, _pencil_starts([ys[j] for j in need_pencil]), strict=True))
+    starts = []
+    for j, k in enumerate(members):
+        start = windows[k].start
+        if start is None:
+            starts.append(pencil[j])
+        else:
+            per_unit = ys[j].size * windows[k].sample_interval_s
+            starts.append(
+                (start.decay_rate_per_s * per_unit, start.angular_frequency_rad_s * per_unit)
+            )
+    for j, start in enumerate(starts):
+        if isinstance(start, RingFitError):
+            results[members[j]] = start
+    fitted = [j for j, start in enumerate(starts) if not isinstance(start, RingFitError)]
+    if not fitted:
+        return results
+
+    varpro = _VarPro([ys[j] for j in fitted], [ws[j] for j in fitted])
+    decay = np.array([starts[j][0] for j in fitted])
+    omega = np.array([starts[j][1] for j in fitted])
+    if refine:
+        fit = varpro.refine(decay, omega)
+    else:
+        fit = varpro.project(np.arange(decay.size), decay, omega)
+    cost = varpro.residual_cost(decay, omega, fit.linear)
+    for i, j in enumerate(fitted):
+        window = windows[members[j]]
+        results[members[j]] = _ring_fit(
+            window,
+            ys[j],
+            ws[j],
+            levels[j],
+            (float(decay[i]), float(omega[i]), *(float(x) for x in fit.linear[i])),
+            float(cost[i]) if fit.ok[i] else math.nan,
+        )
+    return results
+
+
+def _ring_fit(
+    window: RingWindow,
+    y: np.ndarray,
+    w: np.ndarray,
+    level: tuple[float, float],
+    params: tuple[float, float, float, float, float],
+    cost: float,
+) -> RingFit | RingFitError:
+    """The RingFit in SI units from the parameters in window units, or why it is not a ring."""
+    decay, omega, a, b, c = params
+    if omega < 0:
+        omega, b = -omega, -b
+    if not (math.isfinite(cost) and decay > 0 and 0 < omega < math.pi * y.size):
+        return RingFitError("the fitted ring is not a decaying oscillation")
+    w2 = w * w
+    y_mean = float(w2 @ y) / float(np.sum(w2))
+    ss_tot = float(w2 @ (y - y_mean) ** 2) or 1.0
+    seconds_per_unit = y.size * window.sample_interval_s
+    centre, scale = level
+    return RingFit(
+        t_start_s=window.t_start_s,
+        amplitude_v=math.hypot(a, b) * scale,
+        phase_rad=math.atan2(-b, a),
+        decay_rate_per_s=decay / seconds_per_unit,
+        angular_frequency_rad_s=omega / seconds_per_unit,
+        offset_v=c * scale + centre,
+        fit_quality=min(1.0, max(0.0, 1.0 - cost / ss_tot)),
+    )
 
 
 def fit_ring(
@@ -257,7 +463,7 @@ def fit_ring(
     refine: bool = True,
     start: RingFit | None = None,
 ) -> RingFit:
-    """Fit ``c + exp(-στ)·(a·cos ωdτ + b·sin ωdτ)`` to a window starting at ``t_start_s``.
+    """Fit ``c + exp(-στ)·(a·cos ωdτ + b·sin ωdτ)`` to one window starting at ``t_start_s``.
 
     Parameters
     ----------
@@ -280,55 +486,10 @@ def fit_ring(
 
     Notes
     -----
-    The start is the dominant oscillatory pole of the matrix pencil (Hua & Sarkar 1990) on at most
-    ``PENCIL_MAX_SAMPLES`` samples. The refinement is variable projection (Golub & Pereyra 1973,
-    Kaufman 1975): (a, b, c) are solved by linear least squares for each (σ, ωd), and only
-    (σ, ωd) are iterated, by Levenberg–Marquardt (Marquardt 1963, Moré 1978).
-    Time is scaled to the window length and voltage to the window's spread so that the problem is
-    well conditioned whatever the units.
+    The single-window form of :func:`fit_rings`, which describes the method.
     """
-    y_raw = np.asarray(volts, dtype=float)
-    n = y_raw.size
-    if n < MIN_FIT_SAMPLES:
-        raise RingFitError(f"a window of {n} samples is too short for a ring fit")
-    w = np.ones(n) if weights is None else np.asarray(weights, dtype=float)
-    centre = float(np.mean(y_raw))
-    scale = float(np.ptp(y_raw)) or 1.0
-    y = (y_raw - centre) / scale
-    duration = float(n)  # model time unit: the window length, in samples
-    tau = np.arange(n) / duration
-
-    seconds_per_unit = duration * sample_interval_s
-    if start is None:
-        stride = max(1, math.ceil(n / PENCIL_MAX_SAMPLES))
-        z, h = matrix_pencil_poles(y[::stride])
-        decay_per_sample, omega_per_sample = _dominant_oscillation(z, h)
-        decay0 = decay_per_sample / stride * duration
-        omega0 = omega_per_sample / stride * duration
-    else:
-        decay0 = start.decay_rate_per_s * seconds_per_unit
-        omega0 = start.angular_frequency_rad_s * seconds_per_unit
-
-    varpro = _VarPro(tau, y, w)
-    try:
-        fit = _refine(varpro, decay0, omega0) if refine else varpro.project(decay0, omega0)
-    except np.linalg.LinAlgError:
-        raise RingFitError("the start values give a degenerate model basis") from None
-    a, b, c = (float(v) for v in fit.linear)
-    decay, omega = fit.decay, fit.omega
-    if omega < 0:
-        omega, b = -omega, -b
-    if not (decay > 0 and 0 < omega < math.pi * duration):
-        raise RingFitError("the fitted ring is not a decaying oscillation")
-    w2 = w * w
-    y_mean = float(w2 @ y) / float(np.sum(w2))
-    ss_tot = float(w2 @ (y - y_mean) ** 2) or 1.0
-    return RingFit(
-        t_start_s=t_start_s,
-        amplitude_v=math.hypot(a, b) * scale,
-        phase_rad=math.atan2(-b, a),
-        decay_rate_per_s=decay / seconds_per_unit,
-        angular_frequency_rad_s=omega / seconds_per_unit,
-        offset_v=c * scale + centre,
-        fit_quality=min(1.0, max(0.0, 1.0 - fit.cost / ss_tot)),
-    )
+    window = RingWindow(volts, sample_interval_s, t_start_s, weights, start)
+    result = fit_rings([window], refine=refine)[0]
+    if isinstance(result, RingFitError):
+        raise result
+    return result

@@ -14,7 +14,7 @@ from pathlib import Path
 
 import click
 
-from labseq.commands.runs import DEFAULT_DB
+from labseq.commands._store import DEFAULT_DB
 from labseq.errors import InputError
 from labseq.review import (
     DEFAULT_COVERAGE,

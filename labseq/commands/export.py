@@ -19,7 +19,7 @@ from pathlib import Path
 import click
 import numpy as np
 
-from labseq.commands.runs import DEFAULT_DB
+from labseq.commands._store import db_option, resolve_run
 from labseq.store import PointRecord, Store, StoredCapture
 
 _POINT_COLUMNS = [f.name for f in fields(PointRecord) if f.name not in ("id", "run_id")]
@@ -125,15 +125,8 @@ def write_captures_csv(store: Store, run_id: int, directory: Path) -> int:
 
 
 @click.command("export")
-@click.argument("run_id", metavar="RUN", type=int)
-@click.option(
-    "--db",
-    "db_path",
-    type=click.Path(path_type=Path),
-    default=DEFAULT_DB,
-    show_default=True,
-    help="The store to read.",
-)
+@click.argument("run", metavar="RUN")
+@db_option
 @click.option(
     "--out",
     "out_dir",
@@ -149,16 +142,17 @@ def write_captures_csv(store: Store, run_id: int, directory: Path) -> int:
     show_default=True,
     help="One .npz with all captures, or one CSV per capture.",
 )
-def command(run_id: int, db_path: Path, out_dir: Path | None, captures_format: str) -> None:
-    """Export run RUN: points.csv plus the captures (as NPZ or CSV)."""
-    out_dir = out_dir or Path(f"run-{run_id}")
+def command(run: str, db_path: Path, out_dir: Path | None, captures_format: str) -> None:
+    """Export run RUN (an id, or 'latest'): points.csv plus the captures (as NPZ or CSV)."""
     with Store(db_path, create=False) as store:
-        run = store.run(run_id)
+        run_id = resolve_run(store, run)
+        out_dir = out_dir or Path(f"run-{run_id}")
+        record = store.run(run_id)
         out_dir.mkdir(parents=True, exist_ok=True)
         points = write_points_csv(store, run_id, out_dir / "points.csv")
-        (out_dir / "sequence.toml").write_text(run.sequence_text, encoding="utf-8")
+        (out_dir / "sequence.toml").write_text(record.sequence_text, encoding="utf-8")
         (out_dir / "run.json").write_text(
-            json.dumps({k: v for k, v in asdict(run).items() if k != "sequence_text"}, indent=2),
+            json.dumps({k: v for k, v in asdict(record).items() if k != "sequence_text"}, indent=2),
             encoding="utf-8",
         )
         if captures_format == "npz":

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import click
 
-from labseq.commands.runs import DEFAULT_DB
+from labseq.commands._store import DEFAULT_DB
 from labseq.errors import InputError
 from labseq.review import resolve_run_id, review_run, run_summary
 from labseq.store import Store

@@ -8,20 +8,12 @@ from pathlib import Path
 
 import click
 
+from labseq.commands._store import db_option
 from labseq.store import Store
-
-DEFAULT_DB = "labseq.sqlite"
 
 
 @click.command("runs")
-@click.option(
-    "--db",
-    "db_path",
-    type=click.Path(path_type=Path),
-    default=DEFAULT_DB,
-    show_default=True,
-    help="The store to read.",
-)
+@db_option
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON array instead of a table.")
 def command(db_path: Path, as_json: bool) -> None:
     """List the runs in the store: id, start, status, DUT and snubber, points done/total."""

@@ -132,8 +132,11 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
             colour_label=colour_label,
             cell_text=cell_texts(values, lambda v: format_figure(figure, v)),
             limits=limits,
+            cmap_name=plots.value_map(FIGURE_DIRECTIONS[figure]),
         )
-        caption = f"{title.capitalize()} of the {side} run, on the same scale as the other run."
+        caption = (
+            f"{title.capitalize()} of the {side} run; both runs share the scale, brighter is worse."
+        )
         images.append(page.image(f"map_{figure}_{side}", plots.png_bytes(fig), caption))
     page.add('<div class="maps">' + "".join(images) + "</div>")
 
@@ -156,10 +159,13 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
         cmap_name=plots.CHANGE_MAP,
         centre=0.0,
         title=f"{title.capitalize()}: change, candidate − baseline ({direction} is better)",
-        colour_label=f"improvement ({unit or 'ratio'}); purple better, orange worse",
+        colour_label=f"improvement ({unit})" if unit else "improvement",
         cell_text=change_text,
     )
-    caption = f"Change of {title} at each point, with its verdict against the captures' own spread."
+    caption = (
+        f"Change of {title} at each point and whether it is beyond the captures' own spread; "
+        "purple is better, orange worse."
+    )
     page.add(
         '<div class="maps">'
         + page.image(f"change_{figure}", plots.png_bytes(fig), caption)

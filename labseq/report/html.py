@@ -32,7 +32,9 @@ h2 { font-size: 1.2em; margin-top: 1.8em; border-bottom: 1px solid #ccc; padding
 h3 { font-size: 1.0em; margin-bottom: 0.3em; }
 p.sub { color: #555; margin-top: 0; }
 table { border-collapse: collapse; margin: 0.5em 0 1em; font-size: 0.9em; }
-th, td { border: 1px solid #c8c8c8; padding: 0.2em 0.55em; text-align: left; vertical-align: top; }
+th, td { border: 1px solid #c8c8c8; padding: 0.2em 0.55em; text-align: left; vertical-align: top;
+  overflow-wrap: anywhere; }
+td:first-child { white-space: nowrap; }
 th { background: #f1f1f1; font-weight: 600; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 table.grid td { text-align: center; min-width: 3.2em; }

@@ -39,6 +39,8 @@ MAX_ANNOTATED_CELLS = 100
 #: Axis ticks shown at most (evenly thinned beyond).
 MAX_TICKS = 12
 DPI = 100
+#: Time shown after an edge whose ring could not be fitted.
+NO_FIT_SPAN_S = 1e-6
 
 
 @dataclass(frozen=True)
@@ -51,6 +53,12 @@ class Trace:
     fits: tuple[RingFit, ...]
     edge_time_s: float | None  # the worst edge's mid-reference instant
     problem: str | None = None
+
+
+def value_map(direction: int) -> str:
+    """Colour map of a figure: brighter is always worse (cividis, reversed when higher is
+    better)."""
+    return VALUE_MAP if direction < 0 else VALUE_MAP + "_r"
 
 
 def png_bytes(fig: Figure) -> bytes:
@@ -155,18 +163,26 @@ def heat_map(
     return fig
 
 
-def _fit_window_s(traces: Sequence[Trace]) -> tuple[float, float] | None:
-    """A time window around the worst edge that holds its ring: from a little before the edge
-    to about five decay time constants after it (3 to 30 ring periods)."""
+def _window_s(traces: Sequence[Trace]) -> tuple[float, float]:
+    """A time window around the first trace's worst edge that holds its ring: from a little
+    before the edge to about five decay time constants after it (3 to 30 ring periods); 1 µs
+    when no ring was fitted; the whole record when no edge was found."""
     for trace in traces:
-        for fit in trace.fits:
+        if trace.edge_time_s is None:
+            continue
+        span_s = NO_FIT_SPAN_S
+        later = [fit for fit in trace.fits if fit.t_start_s >= trace.edge_time_s]
+        if later:
+            fit = min(later, key=lambda f: f.t_start_s)
             period_s = 1.0 / fit.frequency_hz
             decay_s = 5.0 / fit.decay_rate_per_s if fit.decay_rate_per_s > 0 else math.inf
-            span_s = min(max(decay_s, 3 * period_s), 30 * period_s)
-            start_s = trace.edge_time_s if trace.edge_time_s is not None else fit.t_start_s
-            if fit.t_start_s >= start_s - span_s:
-                return start_s - 0.15 * span_s, fit.t_start_s + span_s
-    return None
+            span_s = (
+                fit.t_start_s - trace.edge_time_s + min(max(decay_s, 3 * period_s), 30 * period_s)
+            )
+        return trace.edge_time_s - 0.15 * span_s, trace.edge_time_s + span_s
+    if traces:
+        return min(float(t.time_s[0]) for t in traces), max(float(t.time_s[-1]) for t in traces)
+    return 0.0, 1.0
 
 
 def _time_scale(span_s: float) -> tuple[float, str]:
@@ -186,16 +202,10 @@ def overlay(
     capture, a compare draws the baseline and the candidate in one colour each.
     """
     every = [trace for _, traces, _ in groups for trace in traces]
-    window = _fit_window_s(every)
-    if window is None and every:
-        window = (
-            min(float(t.time_s[0]) for t in every),
-            max(float(t.time_s[-1]) for t in every),
-        )
-    start_s, stop_s = window or (0.0, 1.0)
+    start_s, stop_s = _window_s(every)
     scale, unit = _time_scale(stop_s - start_s)
     fig, ax = plt.subplots(figsize=(10, 4.2), layout="constrained")
-    fit_drawn = False
+    one_group = len(groups) == 1
     for name, traces, colours in groups:
         for index, trace in enumerate(traces):
             colour = colours[index % len(colours)]
@@ -206,23 +216,20 @@ def overlay(
                 color=colour,
                 lw=0.9,
                 alpha=0.85,
-                label=f"{name} {trace.label}".strip(),
+                label=trace.label if one_group else name,
             )
             for fit in trace.fits:
-                t_fit = np.linspace(max(fit.t_start_s, start_s), stop_s, 600)
-                if t_fit[0] >= stop_s:
-                    continue
+                if not start_s <= fit.t_start_s < stop_s:
+                    continue  # a ring of another edge of the record
+                t_fit = np.linspace(fit.t_start_s, stop_s, 600)
                 ax.plot(
                     t_fit * scale,
                     fit.evaluate(t_fit),
-                    color=FIT_COLOUR if len(groups) == 1 else colour,
+                    color=FIT_COLOUR if one_group else colour,
                     lw=1.1,
                     ls="--",
-                    label=None if fit_drawn and len(groups) == 1 else f"fitted ring {name}".strip(),
+                    label="fitted ring" + ("" if one_group else f", {name}"),
                 )
-                fit_drawn = True
-                if len(groups) > 1:
-                    break
     if limit_v is not None:
         ax.axhline(limit_v, color=LIMIT_COLOUR, ls=":", lw=1.5, label=limit_label)
     problems = sorted({t.problem for t in every if t.problem})
@@ -242,7 +249,7 @@ def overlay(
     handles, labels = ax.get_legend_handles_labels()
     if handles:
         unique = dict(zip(labels, handles, strict=True))
-        ax.legend(unique.values(), unique.keys(), loc="upper right", fontsize=8)
+        ax.legend(unique.values(), unique.keys(), loc="lower right", fontsize=8)
     return fig
 
 

@@ -15,6 +15,7 @@ from labseq.report import plots
 from labseq.report.html import Markup, Page, esc, table, verdict_cell
 from labseq.report.traces import point_traces
 from labseq.review import (
+    FIGURE_DIRECTIONS,
     FIGURE_TITLES,
     PointReview,
     RunReview,
@@ -119,12 +120,14 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
             lines,
             loads,
             colour_values=shown,
-            title=FIGURE_TITLES[figure].capitalize() + " (worst over the captures)",
+            title=FIGURE_TITLES[figure].capitalize()
+            + ("" if figure == "efficiency" else " (worst over the captures)"),
+            cmap_name=plots.value_map(FIGURE_DIRECTIONS[figure]),
             colour_label=f"{FIGURE_TITLES[figure]}" + (f" ({unit})" if unit else ""),
             cell_text=cell_texts(values, lambda v, f=figure: format_figure(f, v)),
             colour_format=None if figure == "efficiency" else _colour_format(figure),
         )
-        caption = f"{FIGURE_TITLES[figure].capitalize()} at each line and load point."
+        caption = f"{FIGURE_TITLES[figure].capitalize()} at each point; brighter is worse."
         maps.append((name, caption, plots.png_bytes(fig)))
     return maps
 

@@ -48,8 +48,7 @@ def trace_of(capture: StoredCapture, sequence: Sequence | None) -> Trace:
         )
     except (NoEdgeError, ValueError) as exc:
         return Trace(label, time_s, volts, (), None, f"{label}: {exc}")
-    worst_fit = figures.ring_fits[figures.worst_index] if figures.ring_fits else None
-    fits = (worst_fit,) if worst_fit is not None else ()
+    fits = tuple(fit for fit in figures.ring_fits if fit is not None)
     problem = None if fits else f"{label}: no ring fitted"
     return Trace(label, time_s, volts, fits, figures.worst.edge_time_s, problem)
 
