@@ -378,7 +378,7 @@ def run_summary(review: RunReview) -> dict[str, Any]:
             None
             if sequence is None
             else {
-                **{k: v for k, v in vars(sequence.limits).items()},
+                **vars(sequence.limits),
                 "switch_rating_v": sequence.dut.switch_rating_v,
                 "derating": sequence.dut.derating,
             }
@@ -438,6 +438,7 @@ class PointChange:
     baseline: PointReview | None
     candidate: PointReview | None
     changes: dict[str, FigureChange] = field(default_factory=dict)
+    gated: frozenset[str] = frozenset(FIGURE_DIRECTIONS)  # figures whose worsening counts
 
     @property
     def matched(self) -> bool:
@@ -456,13 +457,14 @@ class PointChange:
 
     @property
     def flag(self) -> str:
-        """worse / better / unchanged / missing in baseline / missing in candidate."""
+        """worse (a gated figure, or the verdict pass → fail) / better / unchanged / missing in
+        baseline / missing in candidate."""
         if self.candidate is None:
             return "missing in candidate"
         if self.baseline is None:
             return "missing in baseline"
         flags = {change.flag for change in self.changes.values()}
-        if self.verdict_went_to_fail or "worse" in flags:
+        if self.verdict_went_to_fail or self.worse(self.gated):
             return "worse"
         return "better" if "better" in flags else "unchanged"
 
@@ -573,7 +575,9 @@ class Comparison:
         if not change.matched:
             return f"{change.flag:<20} {self.label(change)}"
         moved = [c for c in change.changes.values() if c.flag in ("worse", "better")]
-        moved.sort(key=lambda c: (c.flag != "worse", -c.significance))
+        moved.sort(
+            key=lambda c: (not (c.flag == "worse" and c.figure in change.gated), -c.significance)
+        )
         words = [_change_text(c) for c in moved[:3]]
         if change.verdict_went_to_fail:
             words.insert(0, "verdict pass → fail")
@@ -695,7 +699,7 @@ def compare_runs(
                     figures[figure] = compare_figure(
                         figure, b.figures.get(figure), c.figures.get(figure), coverage=coverage
                     )
-        changes.append(PointChange(b, c, figures))
+        changes.append(PointChange(b, c, figures, frozenset(gated)))
     return Comparison(baseline, candidate, changes, gated, coverage, rel_tol)
 
 

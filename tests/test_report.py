@@ -113,7 +113,9 @@ def make_run(
             for k in range(captures)
         ]
         efficiency = 0.9 - 0.01 * load_a
-        store.commit_point(point_id, captures=records, readings=PointReadings(efficiency=efficiency))
+        store.commit_point(
+            point_id, captures=records, readings=PointReadings(efficiency=efficiency)
+        )
         store.set_point_figures(point_id, figures)
         peak_v = figures["peak_v"]["worst"]
         if (line_v, load_a) == incomplete_at:

@@ -38,7 +38,7 @@ from labseq.analysis.levels import (
     reference_level,
     state_changes,
 )
-from labseq.analysis.ringfit import RingFit, RingFitError, fit_ring
+from labseq.analysis.ringfit import RingFit, RingWindow, fit_rings
 from labseq.analysis.snubber import (
     SnubberBranch,
     branch_resistor_power_w,
@@ -59,6 +59,9 @@ FIT_MIN_PERIODS = 3.0
 FIT_MAX_PERIODS = 20.0
 #: Departure from the plateau (fraction of the step) that ends the fit window and plateau stretch.
 DEPARTURE_FRACTION = 0.1
+#: Samples of the quiet plateau stretch that its histogram uses (a regular subsample: the
+#: stretch holds only the level, noise and the decayed ring, so a few thousand samples suffice).
+PLATEAU_HISTOGRAM_SAMPLES = 4096
 #: The ring counts as decayed once its envelope is below this fraction of the step.
 DECAYED_FRACTION = 0.05
 #: A transition slower than this many times the fastest one in the record is a resonant swing
@@ -160,6 +163,7 @@ class _Record:
     flagged: bool
     base: float
     top: float
+    any_clipped: bool  # some sample is in ``clip``
 
 
 def _check_inputs(
@@ -234,47 +238,50 @@ def _first_departure(u: np.ndarray, start: int, stop: int, centre: float, half_w
     return stop
 
 
-def _fit_window(
-    rec: _Record, start: int, samples: int, *, rough: RingFit | None = None
-) -> RingFit | None:
-    """Fit the ring on ``samples`` samples from ``start``, decimated to ``FIT_MAX_SAMPLES``.
+@dataclass(frozen=True)
+class _Span:
+    """One turn-off edge's stretch of the record: from the end of the previous low state
+    (``search_from``) through the first sample in the high state (``first_high``) and the peak
+    to the last sample before the node leaves the high state (``high_end``)."""
 
-    Without ``rough`` this is the matrix-pencil start only; with it, the least-squares fit
-    started from ``rough``.
-    """
+    search_from: int
+    first_high: int
+    peak: int
+    high_end: int
+
+
+def _window(rec: _Record, start: int, samples: int, rough: RingFit | None = None) -> RingWindow:
+    """The fit window of ``samples`` samples from ``start``, decimated to ``FIT_MAX_SAMPLES``."""
     stride = max(1, -(-samples // FIT_MAX_SAMPLES))
     window = slice(start, start + samples, stride)
-    try:
-        return fit_ring(
-            rec.u[window],
-            rec.dt * stride,
-            rec.t0 + start * rec.dt,
-            weights=(~rec.clip[window]).astype(float),
-            refine=rough is not None,
-            start=rough,
-        )
-    except RingFitError:
-        return None
+    return RingWindow(
+        rec.u[window],
+        rec.dt * stride,
+        rec.t0 + start * rec.dt,
+        weights=None if not rec.any_clipped else (~rec.clip[window]).astype(float),
+        start=rough,
+    )
 
 
-def _fit_dominant_ring(rec: _Record, peak: int, first_high: int, high_end: int) -> RingFit | None:
-    """Two-pass fit of the first ring after the peak (see the module notes).
+def _rough_window(rec: _Record, span: _Span) -> tuple[int, int] | None:
+    """(start, samples) of the rough pass, or None when too little of the ring is in the record.
 
-    The rough pass (matrix pencil only) spans sixteen times the delay from the 90 % crossing to
-    the peak, which is at least a quarter ring period; its frequency and decay then size the
-    final window.
+    The rough window spans sixteen times the delay from the 90 % crossing to the peak, which is
+    at least a quarter ring period, and starts after the last clipped sample near the peak.
     """
-    start = peak
-    rough_samples = min(max(16 * max(peak - first_high, 2), 48), high_end - start)
-    clipped_after = np.flatnonzero(rec.clip[start : start + rough_samples])
-    if clipped_after.size:
-        start += int(clipped_after[-1]) + 1
-    rough_samples = min(rough_samples, high_end - start)
-    if rough_samples < 24:
-        return None
-    rough = _fit_window(rec, start, rough_samples)
-    if rough is None:
-        return None
+    start = span.peak
+    rough_samples = min(max(16 * max(span.peak - span.first_high, 2), 48), span.high_end - start)
+    if rec.any_clipped:
+        clipped_after = np.flatnonzero(rec.clip[start : start + rough_samples])
+        if clipped_after.size:
+            start += int(clipped_after[-1]) + 1
+    rough_samples = min(rough_samples, span.high_end - start)
+    return (start, rough_samples) if rough_samples >= 24 else None
+
+
+def _final_samples(rec: _Record, rough: RingFit, start: int, high_end: int) -> int:
+    """Length of the final window: about ``FIT_TIME_CONSTANTS`` decay time constants (bounded in
+    ring periods), ending early where the node departs from the plateau after the ring."""
     period_samples = 2 * math.pi / rough.angular_frequency_rad_s / rec.dt
     span_samples = min(
         max(FIT_TIME_CONSTANTS / rough.decay_rate_per_s / rec.dt, FIT_MIN_PERIODS * period_samples),
@@ -284,7 +291,30 @@ def _fit_dominant_ring(rec: _Record, peak: int, first_high: int, high_end: int) 
     decayed = rough.time_envelope_below_s(0.5 * DEPARTURE_FRACTION * step)
     quiet = max(start, math.ceil((decayed - rec.t0) / rec.dt))
     stop = _first_departure(rec.u, quiet, high_end, rough.offset_v, DEPARTURE_FRACTION * step)
-    return _fit_window(rec, start, int(min(span_samples, stop - start)), rough=rough) or rough
+    return int(min(span_samples, stop - start))
+
+
+def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | None]:
+    """Two-pass fit of the first ring after each edge's peak (see the module notes).
+
+    The rough pass (matrix pencil only) sizes each final window; both passes fit every edge of
+    the record in one vectorised call (:func:`labseq.analysis.ringfit.fit_rings`).
+    """
+    rough_windows = {k: w for k, span in enumerate(spans) if (w := _rough_window(rec, span))}
+    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()], refine=False)
+    found = {
+        k: fit for k, fit in zip(rough_windows, roughs, strict=True) if isinstance(fit, RingFit)
+    }
+    final_windows = {}
+    for k, rough in found.items():
+        start = rough_windows[k][0]
+        samples = _final_samples(rec, rough, start, spans[k].high_end)
+        final_windows[k] = _window(rec, start, samples, rough)
+    finals = fit_rings(list(final_windows.values()))
+    for k, fit in zip(final_windows, finals, strict=True):
+        if isinstance(fit, RingFit):
+            found[k] = fit
+    return [found.get(k) for k in range(len(spans))]
 
 
 def _plateau(rec: _Record, fit: RingFit | None, peak: int, high_end: int) -> float:
@@ -297,23 +327,16 @@ def _plateau(rec: _Record, fit: RingFit | None, peak: int, high_end: int) -> flo
     stop = _first_departure(rec.u, quiet, high_end, fit.offset_v, DEPARTURE_FRACTION * abs(step))
     period_samples = 2 * math.pi / fit.angular_frequency_rad_s / rec.dt
     if stop - quiet >= max(32, 2 * period_samples):
-        return histogram_mode(rec.u[quiet:stop])
+        return histogram_mode(rec.u[quiet:stop], max_samples=PLATEAU_HISTOGRAM_SAMPLES)
     return fit.offset_v
 
 
 def _edge(
-    rec: _Record,
-    search_from: int,
-    first_high: int,
-    high_end: int,
-    settling_band: float,
-) -> tuple[dict[str, float | bool | None], RingFit | None] | None:
-    """Figures of the edge that reaches the high state at ``first_high`` (None: not measurable)."""
+    rec: _Record, span: _Span, fit: RingFit | None, settling_band: float
+) -> dict[str, float | bool | None] | None:
+    """Figures of the edge in ``span`` with its fitted ring (None: not measurable)."""
     u, dt, t0 = rec.u, rec.dt, rec.t0
-    peak = first_high + int(np.argmax(u[first_high : high_end + 1]))
-    if peak >= u.size - 1:
-        return None  # the record ends before the peak
-    fit = _fit_dominant_ring(rec, peak, first_high, high_end)
+    search_from, peak, high_end = span.search_from, span.peak, span.high_end
     plateau = _plateau(rec, fit, peak, high_end)
     step = plateau - rec.base
     if step <= 0:
@@ -345,9 +368,10 @@ def _edge(
         "q_factor": fit.q_factor if fit else None,
         "fit_quality": fit.fit_quality if fit else None,
         "settling_time_s": (entry - t50) * dt if entry is not None else None,
-        "clipped": rec.flagged or bool(np.any(rec.clip[search_from : high_end + 1])),
+        "clipped": rec.flagged
+        or (rec.any_clipped and bool(np.any(rec.clip[search_from : high_end + 1]))),
     }
-    return figures, fit
+    return figures
 
 
 def _snubber_losses(
@@ -427,12 +451,11 @@ def analyze_capture(
     changes = state_changes(
         u, reference_level(base, top, LOW_REFERENCE), reference_level(base, top, HIGH_REFERENCE)
     )
-    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top)
+    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top, bool(np.any(clip)))
 
     durations = changes.rise_to - changes.rise_from
     fast = durations <= SLOW_SWING_FACTOR * max(2, durations.min(initial=u.size))
-    edges: list[dict[str, float | bool | None]] = []
-    fits: list[RingFit | None] = []
+    spans = []
     for rise_from, first_high in zip(changes.rise_from[fast], changes.rise_to[fast], strict=True):
         next_fall = np.searchsorted(changes.fall_from, first_high)
         high_end = (
@@ -440,10 +463,16 @@ def analyze_capture(
         )
         previous_low = np.searchsorted(changes.fall_to, rise_from, side="right") - 1
         search_from = int(changes.fall_to[previous_low]) if previous_low >= 0 else 0
-        found = _edge(rec, search_from, int(first_high), high_end, settling_band)
-        if found is not None:
-            edges.append(found[0])
-            fits.append(found[1])
+        peak = int(first_high) + int(np.argmax(u[first_high : high_end + 1]))
+        if peak < u.size - 1:  # else the record ends before the peak
+            spans.append(_Span(search_from, int(first_high), peak, high_end))
+    edges: list[dict[str, float | bool | None]] = []
+    fits: list[RingFit | None] = []
+    for span, fit in zip(spans, _fit_dominant_rings(rec, spans), strict=True):
+        figures = _edge(rec, span, fit, settling_band)
+        if figures is not None:
+            edges.append(figures)
+            fits.append(fit)
     if not edges:
         raise NoEdgeError(
             f"no {what} turn-off edge: looked for a transition from below 10 % to above 90 % of "

@@ -25,9 +25,9 @@ MID_REFERENCE = 0.5
 HIGH_REFERENCE = 0.9
 
 
-def _subsample(volts: np.ndarray) -> np.ndarray:
-    """A regular subsample of at most ``HISTOGRAM_MAX_SAMPLES`` samples."""
-    stride = max(1, -(-volts.size // HISTOGRAM_MAX_SAMPLES))
+def _subsample(volts: np.ndarray, max_samples: int = HISTOGRAM_MAX_SAMPLES) -> np.ndarray:
+    """A regular subsample of at most ``max_samples`` samples."""
+    stride = max(1, -(-volts.size // max_samples))
     return volts[::stride]
 
 
@@ -35,17 +35,21 @@ def _mode_of(samples: np.ndarray, lo: float, hi: float, bins: int) -> float:
     """Mode of ``samples`` in [lo, hi]: mean of the samples in the fullest bin and its neighbours.
 
     Averaging the fullest bin with its two neighbours removes the bin-width quantisation of a bare
-    bin centre while keeping the estimate local to the mode.
+    bin centre while keeping the estimate local to the mode. Bins are equal-width, half-open
+    except the last (as ``numpy.histogram`` counts them), computed with ``numpy.bincount``.
     """
-    counts, edges = np.histogram(samples, bins=bins, range=(lo, hi))
-    peak = int(np.argmax(counts))
-    near = samples[(samples >= edges[max(0, peak - 1)]) & (samples <= edges[min(bins, peak + 2)])]
-    return float(np.mean(near))
+    index = ((samples - lo) * (bins / (hi - lo))).astype(np.intp)
+    np.clip(index, 0, bins - 1, out=index)
+    peak = int(np.argmax(np.bincount(index, minlength=bins)))
+    return float(np.mean(samples[(index >= peak - 1) & (index <= peak + 1)]))
 
 
-def histogram_mode(samples: np.ndarray, bins: int = HISTOGRAM_BINS) -> float:
-    """Most frequent level of ``samples`` (histogram mode refined by the neighbouring bins)."""
-    x = _subsample(np.asarray(samples, dtype=float))
+def histogram_mode(
+    samples: np.ndarray, bins: int = HISTOGRAM_BINS, max_samples: int = HISTOGRAM_MAX_SAMPLES
+) -> float:
+    """Most frequent level of ``samples`` (histogram mode refined by the neighbouring bins),
+    from a regular subsample of at most ``max_samples`` of them."""
+    x = _subsample(np.asarray(samples, dtype=float), max_samples)
     lo, hi = float(np.min(x)), float(np.max(x))
     if hi == lo:
         return lo
@@ -101,24 +105,34 @@ class StateChanges:
     fall_to: np.ndarray
 
 
+def _runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """First and last index of every run of True in a boolean array."""
+    toggles = np.flatnonzero(mask[1:] != mask[:-1]) + 1
+    bounds = np.concatenate(([0] if mask[0] else [], toggles, [mask.size] if mask[-1] else []))
+    bounds = bounds.astype(np.intp)
+    return bounds[0::2], bounds[1::2] - 1
+
+
 def state_changes(volts: np.ndarray, low_ref_v: float, high_ref_v: float) -> StateChanges:
     """Find every change between the states with hysteresis between two reference levels.
 
     A sample at or below ``low_ref_v`` is in the low state, one at or above ``high_ref_v`` in the
     high state; samples in between keep the previous state, so ringing that stays between the
-    references is not a transition. Vectorised: only the indices of state-defining samples are
-    compared.
+    references is not a transition. Vectorised on runs: the record is reduced to its runs of
+    low-state and of high-state samples, in order, and a change is a low run followed by a high
+    run (rising) or the reverse (falling).
     """
     v = np.asarray(volts)
-    code = (v >= high_ref_v).view(np.int8) - (v <= low_ref_v).view(np.int8)
-    defined = np.flatnonzero(code)
-    states = code[defined]
-    change = np.flatnonzero(states[1:] != states[:-1])
-    rising = change[states[change + 1] > 0]
-    falling = change[states[change + 1] < 0]
-    return StateChanges(
-        defined[rising], defined[rising + 1], defined[falling], defined[falling + 1]
-    )
+    high_starts, high_ends = _runs(v >= high_ref_v)
+    low_starts, low_ends = _runs(v <= low_ref_v)
+    starts = np.concatenate((high_starts, low_starts))
+    order = np.argsort(starts, kind="stable")
+    starts, ends = starts[order], np.concatenate((high_ends, low_ends))[order]
+    high = (order < high_starts.size).view(np.int8)
+    change = np.flatnonzero(high[1:] != high[:-1])
+    rising = change[high[change + 1] > 0]
+    falling = change[high[change + 1] == 0]
+    return StateChanges(ends[rising], starts[rising + 1], ends[falling], starts[falling + 1])
 
 
 def last_upward_crossing(volts: np.ndarray, level_v: float, start: int, stop: int) -> float | None:
@@ -126,15 +140,22 @@ def last_upward_crossing(volts: np.ndarray, level_v: float, start: int, stop: in
 
     The instant is interpolated linearly between the two samples that straddle the level, as
     IEEE Std 181-2011, 5.3.3 does for reference-level instants. None when there is no crossing.
+    Searched backwards from ``stop`` in chunks that double in length, since the crossing of
+    interest is usually close to it.
     """
-    segment = np.asarray(volts[start:stop], dtype=float)
-    below = segment < level_v
-    ups = np.flatnonzero(below[:-1] & ~below[1:])
-    if ups.size == 0:
-        return None
-    i = int(ups[-1])
-    v0, v1 = segment[i], segment[i + 1]
-    return start + i + (level_v - v0) / (v1 - v0)
+    chunk = 256
+    end = stop
+    while end - start >= 2:
+        begin = max(start, end - chunk)
+        segment = np.asarray(volts[begin:end], dtype=float)
+        below = segment < level_v
+        ups = np.flatnonzero(below[:-1] & ~below[1:])
+        if ups.size:
+            i = int(ups[-1])
+            v0, v1 = segment[i], segment[i + 1]
+            return begin + i + (level_v - v0) / (v1 - v0)
+        end, chunk = begin + 1, 2 * chunk  # overlap one sample: a crossing may straddle chunks
+    return None
 
 
 def last_band_entry(

@@ -118,6 +118,11 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
     both = np.concatenate([baseline[np.isfinite(baseline)], candidate[np.isfinite(candidate)]])
     limits = (float(both.min()) * scale, float(both.max()) * scale)
     unit = "%" if figure == "efficiency" else figure_unit(figure)
+
+    def formatted(describe: Callable[[str, float], str]) -> Callable[[float], str] | None:
+        """Colour-bar ticks in engineering notation (efficiency is already in %)."""
+        return None if figure == "efficiency" else lambda value: describe(figure, value)
+
     title = FIGURE_TITLES[figure]
     colour_label = title + (f" ({unit})" if unit else "")
     images = []
@@ -133,6 +138,7 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
             cell_text=cell_texts(values, lambda v: format_figure(figure, v)),
             limits=limits,
             cmap_name=plots.value_map(FIGURE_DIRECTIONS[figure]),
+            colour_format=formatted(format_figure),
         )
         caption = (
             f"{title.capitalize()} of the {side} run; both runs share the scale, brighter is worse."
@@ -161,6 +167,7 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
         title=f"{title.capitalize()}: change, candidate − baseline ({direction} is better)",
         colour_label=f"improvement ({unit})" if unit else "improvement",
         cell_text=change_text,
+        colour_format=formatted(format_change),
     )
     caption = (
         f"Change of {title} at each point and whether it is beyond the captures' own spread; "

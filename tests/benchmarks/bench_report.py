@@ -1,0 +1,131 @@
+"""Report speed on a large run: 10 000 points (a 100 × 100 line × load grid) with stored figures
+and verdicts, and raw captures at a few points only. The report must come from the stored
+figures, so its cost per point should stay a small multiple of just reading the point rows.
+
+Printed: points per second of the whole report (review, maps, tables, overlays, points.csv) and
+its ratio to the baseline measured in the same run — reading the run's point rows from SQLite.
+"""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from labseq.report import build_run_report
+from labseq.review import FIGURE_DIRECTIONS, review_run
+from labseq.store import CaptureRecord, Store
+
+SEQUENCE = Path(__file__).resolve().parents[2] / "sequences" / "demo_dc_flyback.toml"
+LINES = 100
+LOADS = 100
+CAPTURED_POINTS = 4
+
+
+class Capture:
+    """A short 8-bit switch-node record with one ringing turn-off edge."""
+
+    def __init__(self, seed: int) -> None:
+        rng = np.random.default_rng(seed)
+        self.x_increment_s, self.x_origin_s = 1e-9, -0.5e-6
+        t_s = self.x_origin_s + np.arange(2500) * self.x_increment_s
+        ring = 30 * np.exp(-2e6 * t_s) * np.sin(2 * np.pi * 20e6 * t_s)
+        volts = np.where(t_s < 0, 0.0, 100 + ring) + rng.normal(0, 0.3, t_s.size)
+        self.y_increment_v, self.y_origin_v, self.y_reference = 250 / 256, 100.0, 0.0
+        self.codes = np.clip(np.round((volts - 100) / self.y_increment_v), -128, 127).astype(
+            np.int8
+        )
+        self.code_min, self.code_max = -128, 127
+
+
+def build_store(path: Path) -> int:
+    """A finished run of LINES × LOADS points written with executemany; return its id."""
+    rng = np.random.default_rng(3)
+    with Store(path) as store:
+        run_id = store.create_run(
+            sequence_text=SEQUENCE.read_text(encoding="utf-8"),
+            sequence_sha256="0" * 64,
+            sequence_path=str(SEQUENCE),
+            dut_label="Telecom 36-75 V DC flyback, 12 V 2.2 A",
+            snubber_label="RC 100 ohm / 220 pF (stock)",
+            bench_kind="sim",
+        )
+        lines_v = np.linspace(36, 75, LINES)
+        loads_a = np.linspace(0.1, 2.2, LOADS)
+        rows = []
+        figures = []
+        for index in range(LINES * LOADS):
+            line_v, load_a = float(lines_v[index // LOADS]), float(loads_a[index % LOADS])
+            peak_v = line_v + 25 + 20 * load_a + rng.normal(0, 1)
+            verdict = "fail" if peak_v > 120 else "pass"
+            rows.append((run_id, index, line_v, load_a, 0.9 - 0.01 * load_a, verdict))
+            values = {
+                "peak_v": peak_v,
+                "stress_margin_v": 120 - peak_v,
+                "overshoot_v": peak_v - line_v - 25,
+                "overshoot_pct": 100 * (peak_v - line_v - 25) / (line_v + 25),
+                "damping_ratio": 0.3 - 0.01 * load_a,
+                "q_factor": 0.5 / (0.3 - 0.01 * load_a),
+                "settling_time_s": 1e-7 + 1e-8 * load_a,
+                "snubber_loss_w": 2e-3 * (line_v + 25),
+                "ring_frequency_hz": 20e6,
+            }
+            figures.append(values)
+        with store.db.atomic():
+            store.db.conn.executemany(
+                "INSERT INTO points (run_id, point_index, line_v, line_is_ac, line_frequency_hz, "
+                "load_a, status, efficiency, verdict, verdict_reasons) "
+                "VALUES (?, ?, ?, 0, 0, ?, 'done', ?, ?, '[]')",
+                rows,
+            )
+            ids = [
+                row[0]
+                for row in store.db.conn.execute(
+                    "SELECT id FROM points WHERE run_id = ? ORDER BY point_index", [run_id]
+                )
+            ]
+            store.db.conn.executemany(
+                "INSERT INTO point_figures (point_id, figure, worst, mean, spread, n) "
+                "VALUES (?, ?, ?, ?, ?, 3)",
+                [
+                    (point_id, name, value, value, abs(value) * 0.01)
+                    for point_id, values in zip(ids, figures, strict=True)
+                    for name, value in values.items()
+                ],
+            )
+        # Raw captures only where the report draws them: the worst points.
+        review = review_run(store, run_id)
+        worst_ids = {worst.point.point.id for worst in review.worst.values()}
+        for seed, point_id in enumerate(sorted(worst_ids)[:CAPTURED_POINTS]):
+            store.commit_point(point_id, captures=[CaptureRecord(Capture(seed))])
+        store.set_run_status(run_id, "finished")
+    return run_id
+
+
+@pytest.mark.benchmark
+def test_report_of_ten_thousand_points(tmp_path: Path) -> None:
+    db = tmp_path / "large.sqlite"
+    started = time.perf_counter()
+    run_id = build_store(db)
+    build_s = time.perf_counter() - started
+    points = LINES * LOADS
+    with Store(db, create=False) as store:
+        started = time.perf_counter()
+        assert len(store.points(run_id)) == points
+        read_s = time.perf_counter() - started
+
+        started = time.perf_counter()
+        review = review_run(store, run_id)
+        files = build_run_report(store, review, tmp_path / "report")
+        report_s = time.perf_counter() - started
+    assert set(review.worst) == set(FIGURE_DIRECTIONS)
+    assert files.html.stat().st_size > 0 and files.csv is not None
+    size_mb = files.html.stat().st_size / 1e6
+    print(
+        f"\nreport of {points} points: {report_s:.2f} s = {points / report_s:,.0f} points/s; "
+        f"baseline (read the point rows): {read_s:.3f} s = {points / read_s:,.0f} points/s; "
+        f"ratio {report_s / read_s:.1f}× the baseline; report.html {size_mb:.1f} MB; "
+        f"store built in {build_s:.1f} s"
+    )
