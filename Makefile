@@ -14,14 +14,21 @@ $(STAMP): pyproject.toml | $(BIN)/python
 	$(BIN)/python -m pip install -q -e '.[test]'
 	touch $(STAMP)
 
-# The main job on the simulated bench: sweep the DC demo flyback, store it, list it, export it.
+# The main job on the simulated bench: sweep the DC demo flyback, store it, report it; then a
+# regression: the same flyback with a mis-sized and a matched RC damper, compared.
 DEMO := demo-output
 demo: $(STAMP)
 	@mkdir -p $(DEMO)
 	$(BIN)/labseq run sequences/demo_dc_flyback.toml --db $(DEMO)/labseq.sqlite --label "make demo"
 	$(BIN)/labseq runs --db $(DEMO)/labseq.sqlite
 	$(BIN)/labseq export latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/export
-	@echo "Results: $(DEMO)/labseq.sqlite (every raw capture) and $(DEMO)/export/points.csv"
+	$(BIN)/labseq report latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/report
+	rm -f $(DEMO)/regression.sqlite $(DEMO)/regression.sqlite-*
+	$(BIN)/labseq run sequences/demo_regression/baseline.toml --db $(DEMO)/regression.sqlite --quiet
+	$(BIN)/labseq run sequences/demo_regression/candidate.toml --db $(DEMO)/regression.sqlite --quiet
+	$(BIN)/labseq compare 1 2 --db $(DEMO)/regression.sqlite --report $(DEMO)/compare
+	@echo "Results in $(DEMO)/: labseq.sqlite (every raw capture), report/report.html,"
+	@echo "export/points.csv, and the regression comparison in compare/report.html"
 
 test: $(STAMP) ngspice
 	$(BIN)/ruff check .

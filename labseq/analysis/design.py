@@ -12,6 +12,17 @@ section) are
   Q of about 1;
 * the resistor dissipates Cs·V²·fsw, so a loss budget P at V and fsw allows Cs = P / (V²·fsw).
 
+When the RC damper's resistor would burn more than an RCD clamp, the clamp is sized instead
+(Fairchild Semiconductor application note AN-4147, "Design Guidelines for RCD Snubber of Flyback
+Converters"; the formulas below are recalled from memory of that note, not copied from it): with
+the clamp capacitor's voltage Vclamp above the bus, reflected voltage Vr, leakage inductance Llk,
+peak primary current Ipk and switching frequency fsw,
+
+* P = ½·Llk·Ipk²·fsw·Vclamp/(Vclamp − Vr): the leakage energy, enlarged because the reflected
+  voltage keeps driving current into the clamp while the leakage current falls;
+* R = Vclamp²/P, the resistor that dissipates P at Vclamp;
+* C = Vclamp/(ΔV·R·fsw) for a ripple ΔV on the clamp capacitor.
+
 Messages of :class:`DesignInputError` name the offending inputs by their keyword names so that a
 caller can map them to its own option names.
 """
@@ -226,3 +237,115 @@ def propose_snubber(
         cs_source=cs_source,
         warnings=warnings,
     )
+
+
+def rcd_clamp_loss_w(
+    leakage_h: float,
+    peak_current_a: float,
+    fsw_hz: float,
+    clamp_voltage_v: float,
+    reflected_voltage_v: float,
+) -> float:
+    """Clamp dissipation P = ½·Llk·Ipk²·fsw·Vclamp/(Vclamp − Vr) (AN-4147, from memory).
+
+    While the clamp diode conducts, the clamp holds the leakage inductance at Vclamp − Vr, so its
+    current falls linearly from Ipk in Llk·Ipk/(Vclamp − Vr); the clamp absorbs Vclamp times that
+    current, ½·Llk·Ipk²·Vclamp/(Vclamp − Vr) per cycle: the leakage energy plus what the
+    reflected voltage delivers meanwhile.
+    """
+    if not clamp_voltage_v > reflected_voltage_v:
+        raise DesignInputError(
+            f"clamp_voltage_v ({clamp_voltage_v:g} V) must be above reflected_voltage_v "
+            f"({reflected_voltage_v:g} V): at or below the reflected voltage the clamp would "
+            "conduct the output's energy, not just the leakage energy"
+        )
+    return (
+        0.5
+        * leakage_h
+        * peak_current_a**2
+        * fsw_hz
+        * clamp_voltage_v
+        / (clamp_voltage_v - reflected_voltage_v)
+    )
+
+
+@dataclass(frozen=True)
+class ClampProposal:
+    """An RCD clamp sized by :func:`propose_clamp`; SI units."""
+
+    clamp_voltage_v: float
+    clamp_ripple_v: float
+    clamp_loss_w: float
+    clamp_r_ohm: float
+    clamp_c_f: float
+
+    def as_dict(self) -> dict[str, float]:
+        """Plain dict of SI numbers for JSON."""
+        return asdict(self)
+
+
+def propose_clamp(
+    *,
+    leakage_h: float | None,
+    peak_current_a: float | None,
+    fsw_hz: float | None,
+    reflected_voltage_v: float | None,
+    clamp_voltage_v: float | None,
+    clamp_ripple_v: float | None,
+) -> ClampProposal:
+    """Size an RCD clamp: loss P, resistor R = Vclamp²/P, capacitor C = Vclamp/(ΔV·R·fsw).
+
+    Parameters
+    ----------
+    leakage_h : leakage inductance Llk.
+    peak_current_a : peak primary current Ipk at the worst operating point.
+    fsw_hz : switching frequency.
+    reflected_voltage_v : Vr = n·(Vout + Vf).
+    clamp_voltage_v : chosen clamp capacitor voltage above the bus, Vclamp > Vr.
+    clamp_ripple_v : chosen ripple ΔV of the clamp capacitor voltage.
+
+    Raises
+    ------
+    DesignInputError
+        When an input is missing or not positive, or Vclamp ≤ Vr.
+
+    Notes
+    -----
+    Fairchild AN-4147, "Design Guidelines for RCD Snubber of Flyback Converters" (formulas
+    recalled from memory, see :func:`rcd_clamp_loss_w`).
+    """
+    inputs = {
+        "leakage_h": leakage_h,
+        "peak_current_a": peak_current_a,
+        "fsw_hz": fsw_hz,
+        "reflected_voltage_v": reflected_voltage_v,
+        "clamp_voltage_v": clamp_voltage_v,
+        "clamp_ripple_v": clamp_ripple_v,
+    }
+    missing = [name for name, value in inputs.items() if value is None]
+    if missing:
+        raise DesignInputError(f"the clamp sizing needs {', '.join(missing)}")
+    for name, value in inputs.items():
+        _positive(name, value)
+    if not clamp_ripple_v < clamp_voltage_v:
+        raise DesignInputError(
+            f"clamp_ripple_v ({clamp_ripple_v:g} V) must be a small part of clamp_voltage_v "
+            f"({clamp_voltage_v:g} V), e.g. 5-10 % of it"
+        )
+    loss_w = rcd_clamp_loss_w(
+        leakage_h, peak_current_a, fsw_hz, clamp_voltage_v, reflected_voltage_v
+    )
+    r_ohm = clamp_voltage_v**2 / loss_w
+    return ClampProposal(
+        clamp_voltage_v=clamp_voltage_v,
+        clamp_ripple_v=clamp_ripple_v,
+        clamp_loss_w=loss_w,
+        clamp_r_ohm=r_ohm,
+        clamp_c_f=clamp_voltage_v / (clamp_ripple_v * r_ohm * fsw_hz),
+    )
+
+
+def cheaper_tool(rc_loss_w: float, clamp_loss_w: float) -> str:
+    """Which of the two dissipates less: ``"rc damper"`` or ``"rcd clamp"`` (a tie: the damper,
+    which also damps the ring)."""
+    return "rcd clamp" if clamp_loss_w < rc_loss_w else "rc damper"

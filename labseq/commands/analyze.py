@@ -17,8 +17,9 @@ from labseq.analysis import (
     SnubberBranch,
     analyze_capture,
 )
+from labseq.commands._options import option_fraction_or_quantity, option_quantity
 from labseq.errors import InputError
-from labseq.units import UnitError, format_si, parse_quantity
+from labseq.units import format_si
 from labseq.waveform_files import Waveform, read_waveform
 
 #: Okabe & Ito colour-blind-safe palette (Color Universal Design, 2002).
@@ -34,23 +35,9 @@ LOWER_BOUND_WHEN_CLIPPED = {"peak_v", "overshoot_v", "overshoot_pct"}
 UPPER_BOUND_WHEN_CLIPPED = {"stress_margin_v"}
 
 
-def option_quantity(value: str | None, unit: str, option: str) -> float | None:
-    """Read an option given in engineering notation (``25MHz``, ``470p``); InputError if not."""
-    if value is None:
-        return None
-    try:
-        return parse_quantity(value, unit, what=option)
-    except UnitError as exc:
-        raise InputError(str(exc)) from None
-
-
 def _settling_band(text: str) -> float:
     """``5%`` or ``0.05`` → 0.05."""
-    stripped = text.strip()
-    if stripped.endswith("%"):
-        band = option_quantity(stripped, "%", "--settling-band") / 100.0
-    else:
-        band = option_quantity(stripped, "", "--settling-band")
+    band = option_fraction_or_quantity(text, "", "--settling-band")
     if not 0 < band < 1:
         raise InputError(
             f"--settling-band {text!r}: give a percentage of the step such as '5%' or a fraction "
