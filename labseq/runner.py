@@ -18,7 +18,7 @@ from __future__ import annotations
 import time
 from collections.abc import Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
-from contextlib import contextmanager
+from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass, field
 
 from instruments import Waveform
@@ -27,6 +27,7 @@ from labseq.analysis import CaptureFigures, NoEdgeError, SnubberBranch, aggregat
 from labseq.analysis import judge as judge_point
 from labseq.bench import Bench, SafeReport, make_safe, open_bench
 from labseq.errors import LabseqError
+from labseq.locks import run_locks
 from labseq.progress import Progress
 from labseq.safety import (
     CAUTIONS,
@@ -497,6 +498,13 @@ def start_run(sequence: Sequence, store: Store, *, label: str = "") -> int:
     return run_id
 
 
+def bench_locks(sequence: Sequence, store: Store) -> AbstractContextManager[None]:
+    """Exclusive use of the store and of every real instrument the sequence names, so a second
+    labseq process cannot interleave commands on the bench or write the same store."""
+    resources = [] if sequence.bench.is_sim else list(sequence.bench.resources.values())
+    return run_locks(store.path, resources)
+
+
 def run_sequence(
     sequence: Sequence,
     store: Store,
@@ -506,13 +514,21 @@ def run_sequence(
     sim_faults: str = "",
 ) -> int:
     """Run ``sequence`` start to finish; return the run id (see :func:`execute` for details)."""
-    run_id = start_run(sequence, store, label=label)
-    execute(sequence, store, run_id, progress=Progress(quiet=quiet), sim_faults=sim_faults)
+    with bench_locks(sequence, store):
+        run_id = start_run(sequence, store, label=label)
+        execute(sequence, store, run_id, progress=Progress(quiet=quiet), sim_faults=sim_faults)
     return run_id
 
 
-def resumable_sequence(store: Store, run_id: int) -> Sequence:
-    """The sequence of a run that may be resumed: not finished, not alive in another process."""
+def stored_sequence(store: Store, run_id: int) -> Sequence:
+    """The sequence a run was made with, validated again from the text stored with it."""
+    record = store.run(run_id)
+    return parse_sequence(record.sequence_text, record.sequence_path, sha256=record.sequence_sha256)
+
+
+def claim_for_resume(store: Store, run_id: int) -> None:
+    """Make this process the owner of a run that may be resumed: not complete, and not still
+    running in another live process (a run whose process died is marked interrupted first)."""
     store.mark_abandoned_runs()
     record = store.run(run_id)
     if record.status == "running":
@@ -522,8 +538,4 @@ def resumable_sequence(store: Store, run_id: int) -> Sequence:
         )
     if record.points_done == record.points_total:
         raise RunStateError(f"run {run_id} is complete: all {record.points_total} points are done")
-    sequence = parse_sequence(
-        record.sequence_text, record.sequence_path, sha256=record.sequence_sha256
-    )
     store.claim_run(run_id)
-    return sequence

@@ -29,6 +29,7 @@ def demo_sequence(
     on_point_error: str | None = None,
     timeout: str = "1 s",
     acquisition_timeout: str = "1 s",
+    settle: str | None = None,
     name: str = "sweep.toml",
 ) -> Path:
     """A copy of the DC demo sequence with a smaller grid, written into ``tmp_path``.
@@ -44,6 +45,8 @@ def demo_sequence(
         text = _set(text, "load_values", "[" + ", ".join(f'"{v}"' for v in loads) + "]")
     if captures is not None:
         text = _set(text, "captures_per_point", str(captures))
+    if settle is not None:
+        text = _set(text, "settle", f'"{settle}"')
     if on_point_error is not None:
         text = _set(text, "on_point_error", f'"{on_point_error}"')
     text = _set(text, "acquisition_timeout", f'"{acquisition_timeout}"')

@@ -233,3 +233,50 @@ def test_design_invalid_combinations_exit_2(
     code, stderr = run_main(capsys, "design", *args)
     assert code == 2, stderr
     assert message in stderr and "Traceback" not in stderr
+
+
+def test_design_sizes_an_rcd_clamp_and_names_the_cheaper_tool() -> None:
+    runner = CliRunner()
+    clamp = ["--clamp-voltage", "60V", "--peak-current", "2A", "--reflected-voltage", "25V"]
+    rc = ["--ring-freq", "25MHz", "--leakage", "250n", "--volts", "100V", "--fsw", "200kHz"]
+    data = json.loads(runner.invoke(group, ["design", *rc, *clamp, "--json"]).output)
+    # Fairchild AN-4147 (from memory): P = ½·Llk·Ipk²·fsw·Vc/(Vc − Vr), R = Vc²/P,
+    # C = Vc/(ΔV·R·fsw); the default ripple is 10 % of Vc.
+    loss_w = 0.5 * 250e-9 * 2.0**2 * 200e3 * 60 / (60 - 25)
+    assert data["clamp_loss_w"] == pytest.approx(loss_w)
+    assert data["clamp_r_ohm"] == pytest.approx(60**2 / loss_w)
+    assert data["clamp_c_f"] == pytest.approx(60 / (6.0 * 60**2 / loss_w * 200e3))
+    # RC damper: Cs = 3 × Cpar dissipates Cs·V²·fsw ≈ 0.97 W, more than the clamp's 0.17 W.
+    assert data["loss_w"] > data["clamp_loss_w"] and data["cheaper_tool"] == "rcd clamp"
+    text = runner.invoke(group, ["design", *rc, *clamp, "--clamp-ripple", "3V"])
+    assert text.exit_code == 0, text.output
+    assert "171 mW" in text.output and "the RCD clamp is the cheaper tool" in text.output
+    # A small chosen Cs at a low step voltage makes the RC damper the cheaper tool.
+    cheap_rc = ["--ring-freq", "25MHz", "--leakage", "250n", "--volts", "20V", "--fsw", "200kHz"]
+    text = runner.invoke(group, ["design", *cheap_rc, "--cs", "100p", *clamp])
+    assert "the RC damper is the cheaper tool" in text.output
+    only_clamp = json.loads(
+        runner.invoke(
+            group, ["design", "--leakage", "250n", "--fsw", "200kHz", *clamp, "--json"]
+        ).output
+    )
+    assert only_clamp["clamp_loss_w"] == pytest.approx(loss_w) and only_clamp["r_ohm"] is None
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["--clamp-voltage", "20V"], "--clamp-voltage (20 V) must be above --reflected-voltage"),
+        (["--clamp-voltage", "60V", "--clamp-ripple", "80V"], "--clamp-ripple (80 V) must be"),
+        (["--clamp-voltage", "60 A"], "expected V"),
+    ],
+)
+def test_design_clamp_errors_exit_2(
+    capsys: pytest.CaptureFixture[str], args: list[str], message: str
+) -> None:
+    base = ["--leakage", "250n", "--fsw", "200kHz", "--peak-current", "2A"]
+    code, stderr = run_main(capsys, "design", *base, "--reflected-voltage", "25V", *args)
+    assert code == 2, stderr
+    assert message in stderr and "Traceback" not in stderr
+    code, stderr = run_main(capsys, "design", "--clamp-voltage", "60V")
+    assert code == 2 and "needs --leakage, --peak-current, --fsw, --reflected-voltage" in stderr

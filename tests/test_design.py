@@ -12,9 +12,12 @@ from labseq.analysis import (
     added_capacitance_method,
     capacitance_for_loss_f,
     characteristic_impedance_ohm,
+    cheaper_tool,
     cv2f_loss_w,
     parasitic_capacitance_f,
+    propose_clamp,
     propose_snubber,
+    rcd_clamp_loss_w,
     snubber_damping_ratio,
 )
 
@@ -128,3 +131,73 @@ def test_proposal_from_a_list_of_measured_frequencies() -> None:
 def test_inconsistent_inputs_are_refused(kwargs: dict[str, float], message: str) -> None:
     with pytest.raises(DesignInputError, match=message):
         propose_snubber(**kwargs)
+
+
+# --- RCD clamp (Fairchild AN-4147, "Design Guidelines for RCD Snubber of Flyback Converters";
+# its formulas are recalled from memory, so each one is checked here against a balance derived
+# independently of it) ------------------------------------------------------------------------
+
+LLK_H, IPK_A, FSW_HZ, VR_V = 250e-9, 2.0, 200e3, 25.0
+
+
+def clamp_interval_energy_and_charge(
+    leakage_h: float, peak_a: float, clamp_v: float, reflected_v: float
+) -> tuple[float, float]:
+    """Energy and charge the clamp absorbs in one cycle, by numerical integration.
+
+    Derivation: while the clamp diode conducts, the drain sits at Vin + Vclamp and the secondary
+    holds the magnetising side at Vin + Vr, so the leakage inductance sees Vclamp − Vr and its
+    current falls linearly, di/dt = −(Vclamp − Vr)/Llk, from Ipk to zero. The clamp capacitor
+    takes that current at Vclamp: energy ∫Vclamp·i dt, charge ∫i dt.
+    """
+    t_end_s = leakage_h * peak_a / (clamp_v - reflected_v)
+    t = np.linspace(0.0, t_end_s, 20_001)
+    current = peak_a - (clamp_v - reflected_v) / leakage_h * t
+    return float(np.trapezoid(clamp_v * current, t)), float(np.trapezoid(current, t))
+
+
+@pytest.mark.parametrize("clamp_v", [30.0, 50.0, 100.0])
+def test_clamp_loss_resistor_and_capacitor_against_energy_and_charge_balance(
+    clamp_v: float,
+) -> None:
+    ripple_v = 0.08 * clamp_v
+    clamp = propose_clamp(
+        leakage_h=LLK_H,
+        peak_current_a=IPK_A,
+        fsw_hz=FSW_HZ,
+        reflected_voltage_v=VR_V,
+        clamp_voltage_v=clamp_v,
+        clamp_ripple_v=ripple_v,
+    )
+    energy_j, charge_c = clamp_interval_energy_and_charge(LLK_H, IPK_A, clamp_v, VR_V)
+    # Energy balance: the clamp dissipates per second what it absorbs per cycle times fsw.
+    assert clamp.clamp_loss_w == pytest.approx(energy_j * FSW_HZ, rel=1e-6)
+    assert rcd_clamp_loss_w(LLK_H, IPK_A, FSW_HZ, clamp_v, VR_V) == pytest.approx(
+        clamp.clamp_loss_w
+    )
+    # The resistor across the clamp capacitor burns that power at Vclamp: V²/R = P.
+    assert clamp_v**2 / clamp.clamp_r_ohm == pytest.approx(energy_j * FSW_HZ, rel=1e-6)
+    # Charge balance: the capacitor's ripple C·ΔV is the charge the diode delivers per cycle,
+    # which the resistor removes over the period.
+    assert clamp.clamp_c_f * ripple_v == pytest.approx(charge_c, rel=1e-6)
+    # More than the bare leakage energy ½·Llk·Ipk²: the reflected voltage keeps delivering.
+    assert clamp.clamp_loss_w > 0.5 * LLK_H * IPK_A**2 * FSW_HZ
+
+
+def test_clamp_at_or_below_the_reflected_voltage_is_refused() -> None:
+    with pytest.raises(DesignInputError, match="must be above reflected_voltage_v"):
+        rcd_clamp_loss_w(LLK_H, IPK_A, FSW_HZ, VR_V, VR_V)
+    with pytest.raises(DesignInputError, match="needs peak_current_a"):
+        propose_clamp(
+            leakage_h=LLK_H,
+            peak_current_a=None,
+            fsw_hz=FSW_HZ,
+            reflected_voltage_v=VR_V,
+            clamp_voltage_v=50.0,
+            clamp_ripple_v=5.0,
+        )
+
+
+def test_cheaper_tool_compares_the_two_losses() -> None:
+    assert cheaper_tool(rc_loss_w=1.0, clamp_loss_w=0.2) == "rcd clamp"
+    assert cheaper_tool(rc_loss_w=0.2, clamp_loss_w=1.0) == "rc damper"

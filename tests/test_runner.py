@@ -15,7 +15,7 @@ import pytest
 from sweeps import demo_sequence
 
 from labseq.progress import Progress
-from labseq.runner import analyse_run, execute, resumable_sequence, run_sequence, start_run
+from labseq.runner import analyse_run, claim_for_resume, execute, run_sequence, start_run
 from labseq.sequence import load_sequence
 from labseq.store import Store
 from sim_instruments.flyback import DEMO_DUTS, load_dut
@@ -178,5 +178,6 @@ def test_abort_policy_stops_at_the_failing_point(tmp_path, make_sim_bench):
         assert [p.status for p in store.points(run_id)] == ["done", "pending", "pending"]
         assert not sim.state.source_output_on and not sim.state.load_input_on
         assert store.run(run_id).status == "aborted"
-        # resume refuses nothing here: the run is not finished and no process owns it
-        assert resumable_sequence(store, run_id).sha256 == sequence.sha256
+        # The run may be resumed: not finished, and no live process owns it.
+        claim_for_resume(store, run_id)
+        assert store.run(run_id).status == "running"

@@ -21,13 +21,13 @@ from labseq.store import Store
 from sim_instruments.flyback import DEMO_DUTS, load_dut
 
 
-def _start_runner(tmp_path, make_sim_bench):
+def _start_runner(tmp_path, make_sim_bench, settle: str | None = None):
     probe = load_sequence(demo_sequence(tmp_path, name="probe.toml"))
     design = load_dut(DEMO_DUTS["telecom_dc"]).with_snubber(
         probe.snubber.resistance_ohm, probe.snubber.capacitance_f
     )
     sim = make_sim_bench(design=design)
-    path = demo_sequence(tmp_path, resources=sim.resources)
+    path = demo_sequence(tmp_path, resources=sim.resources, settle=settle)
     db = tmp_path / "run.sqlite"
     process = subprocess.Popen(
         [*LABSEQ, "run", str(path), "--db", str(db), "--quiet"],

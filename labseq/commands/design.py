@@ -1,13 +1,21 @@
-"""``labseq design``: propose RC snubber values from a measured ring."""
+"""``labseq design``: propose RC snubber values from a measured ring, and size an RCD clamp."""
 
 from __future__ import annotations
 
 import json
+from dataclasses import fields
 
 import click
 
-from labseq.analysis import DesignInputError, SnubberProposal, propose_snubber
-from labseq.commands.analyze import option_quantity
+from labseq.analysis import (
+    ClampProposal,
+    DesignInputError,
+    SnubberProposal,
+    cheaper_tool,
+    propose_clamp,
+    propose_snubber,
+)
+from labseq.commands._options import option_fraction_or_quantity, option_quantity
 from labseq.errors import InputError
 from labseq.units import format_si
 
@@ -22,6 +30,16 @@ OPTIONS: dict[str, tuple[str, str]] = {
     "loss_budget_w": ("--loss-budget", "W"),
     "cs_f": ("--cs", "F"),
 }
+#: Keyword of :func:`propose_clamp` → (option, unit), beyond ``leakage_h`` and ``fsw_hz``.
+CLAMP_OPTIONS: dict[str, tuple[str, str]] = {
+    "clamp_voltage_v": ("--clamp-voltage", "V"),
+    "peak_current_a": ("--peak-current", "A"),
+    "reflected_voltage_v": ("--reflected-voltage", "V"),
+    "clamp_ripple_v": ("--clamp-ripple", "V"),
+}
+#: Clamp capacitor ripple when none is given: from memory of AN-4147, which takes 5-10 % of the
+#: clamp voltage as reasonable.
+DEFAULT_CLAMP_RIPPLE = "10%"
 
 #: Lines of the text output: (label, field, unit).
 REPORT_LINES = (
@@ -32,17 +50,25 @@ REPORT_LINES = (
     ("Cs", "cs_f", "F"),
     ("Rs loss Cs·V²·fsw", "loss_w", "W"),
 )
+CLAMP_LINES = (
+    ("clamp voltage over bus", "clamp_voltage_v", "V"),
+    ("clamp ripple", "clamp_ripple_v", "V"),
+    ("clamp loss", "clamp_loss_w", "W"),
+    ("clamp resistor", "clamp_r_ohm", "Ω"),
+    ("clamp capacitor", "clamp_c_f", "F"),
+)
 
 
 def _with_option_names(message: str) -> str:
     """Replace keyword names in a design message by the command's option names."""
-    for keyword, (option, _) in sorted(OPTIONS.items(), key=lambda item: -len(item[0])):
+    names = {**OPTIONS, **CLAMP_OPTIONS}
+    for keyword, (option, _) in sorted(names.items(), key=lambda item: -len(item[0])):
         message = message.replace(keyword, option)
     return message
 
 
 def report_text(proposal: SnubberProposal) -> str:
-    """The proposal as aligned lines in engineering notation."""
+    """The RC proposal as aligned lines in engineering notation."""
     lines = []
     for label, name, unit in REPORT_LINES:
         value = getattr(proposal, name)
@@ -54,6 +80,34 @@ def report_text(proposal: SnubberProposal) -> str:
     return "\n".join(lines)
 
 
+def clamp_text(clamp: ClampProposal) -> str:
+    """The RCD clamp sizing as aligned lines in engineering notation."""
+    lines = ["RCD clamp (Fairchild AN-4147 method)"]
+    lines.extend(
+        f"{label:<24}{format_si(getattr(clamp, name), unit)}" for label, name, unit in CLAMP_LINES
+    )
+    return "\n".join(lines)
+
+
+def comparison_text(rc_loss_w: float, clamp_loss_w: float) -> str:
+    """One line saying which tool dissipates less at these operating conditions."""
+    rc, clamp = format_si(rc_loss_w, "W"), format_si(clamp_loss_w, "W")
+    if cheaper_tool(rc_loss_w, clamp_loss_w) == "rcd clamp":
+        return f"the RCD clamp is the cheaper tool: {clamp} against {rc} in the RC damper"
+    return f"the RC damper is the cheaper tool: {rc} against {clamp} in the RCD clamp"
+
+
+def _ripple_v(ripple: str | None, clamp_voltage_v: float | None) -> float | None:
+    """--clamp-ripple in volts, or as a percentage of --clamp-voltage (None if that is missing:
+    the clamp sizing then names the missing clamp voltage)."""
+    text = ripple or DEFAULT_CLAMP_RIPPLE
+    if text.strip().endswith("%"):
+        if clamp_voltage_v is None:
+            return None
+        return option_fraction_or_quantity(text, "V", "--clamp-ripple", clamp_voltage_v)
+    return option_quantity(text, "V", "--clamp-ripple")
+
+
 @click.command("design")
 @click.option("--ring-freq", help="Measured ring frequency, e.g. 25MHz.")
 @click.option("--leakage", help="Known leakage inductance, e.g. 200n.")
@@ -63,18 +117,60 @@ def report_text(proposal: SnubberProposal) -> str:
 @click.option("--fsw", help="Switching frequency, e.g. 100kHz.")
 @click.option("--loss-budget", help="Allowed snubber resistor loss, e.g. 0.5W.")
 @click.option("--cs", help="A chosen snubber capacitance instead of a loss budget.")
+@click.option("--clamp-voltage", help="RCD clamp: capacitor voltage above the bus, e.g. 150V.")
+@click.option("--peak-current", help="RCD clamp: peak primary current, e.g. 1.8A.")
+@click.option("--reflected-voltage", help="RCD clamp: reflected voltage n·(Vout+Vf), e.g. 100V.")
+@click.option(
+    "--clamp-ripple", help=f"RCD clamp: capacitor ripple, e.g. 10V or 5% [{DEFAULT_CLAMP_RIPPLE}]."
+)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object (SI numbers).")
-def command(as_json: bool, **options: str | None) -> None:
-    """Propose Rs and Cs from the ring frequency and L (or an added-capacitance measurement)."""
+def command(as_json: bool, clamp_ripple: str | None, **options: str | None) -> None:
+    """Propose Rs and Cs from the ring frequency and L (or an added-capacitance measurement),
+    and size an RCD clamp when --clamp-voltage, --peak-current and --reflected-voltage are given.
+    """
     values = {
         keyword: option_quantity(options[option.lstrip("-").replace("-", "_")], unit, option)
-        for keyword, (option, unit) in OPTIONS.items()
+        for keyword, (option, unit) in {**OPTIONS, **CLAMP_OPTIONS}.items()
+        if keyword != "clamp_ripple_v"
     }
+    wants_clamp = clamp_ripple is not None or any(
+        values[keyword] is not None for keyword in CLAMP_OPTIONS if keyword != "clamp_ripple_v"
+    )
+    wants_rc = values["ring_freq_hz"] is not None or not wants_clamp
+    proposal = clamp = None
     try:
-        proposal = propose_snubber(**values)
+        if wants_rc:
+            proposal = propose_snubber(**{keyword: values[keyword] for keyword in OPTIONS})
+        if wants_clamp:
+            leakage_h = proposal.l_leak_h if proposal is not None else values["leakage_h"]
+            clamp = propose_clamp(
+                leakage_h=leakage_h,
+                peak_current_a=values["peak_current_a"],
+                fsw_hz=values["fsw_hz"],
+                reflected_voltage_v=values["reflected_voltage_v"],
+                clamp_voltage_v=values["clamp_voltage_v"],
+                clamp_ripple_v=_ripple_v(clamp_ripple, values["clamp_voltage_v"]),
+            )
     except DesignInputError as exc:
         raise InputError(f"design: {_with_option_names(str(exc))}") from None
+
+    tool = None
+    if proposal is not None and clamp is not None and proposal.loss_w is not None:
+        tool = cheaper_tool(proposal.loss_w, clamp.clamp_loss_w)
     if as_json:
-        click.echo(json.dumps(proposal.as_dict(), indent=2))
-    else:
-        click.echo(report_text(proposal))
+        rc_dict = (
+            proposal.as_dict()
+            if proposal is not None
+            else {**{f.name: None for f in fields(SnubberProposal)}, "warnings": []}
+        )
+        clamp_dict = (
+            clamp.as_dict() if clamp is not None else {f.name: None for f in fields(ClampProposal)}
+        )
+        click.echo(json.dumps({**rc_dict, **clamp_dict, "cheaper_tool": tool}, indent=2))
+        return
+    blocks = [report_text(proposal)] if proposal is not None else []
+    if clamp is not None:
+        blocks.append(clamp_text(clamp))
+    if tool is not None:
+        blocks.append(comparison_text(proposal.loss_w, clamp.clamp_loss_w))
+    click.echo("\n".join(blocks))

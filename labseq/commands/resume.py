@@ -9,7 +9,7 @@ import click
 from labseq.commands._store import db_option, resolve_run
 from labseq.commands.run import report_outcome
 from labseq.progress import Progress
-from labseq.runner import execute, resumable_sequence
+from labseq.runner import bench_locks, claim_for_resume, execute, stored_sequence
 from labseq.store import Store
 
 
@@ -26,7 +26,9 @@ def command(run: str, db_path: Path, quiet: bool) -> None:
     progress = Progress(quiet=quiet)
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
-        sequence = resumable_sequence(store, run_id)
-        store.log_event(run_id, "info", "run resumed")
-        outcome = execute(sequence, store, run_id, progress=progress)
+        sequence = stored_sequence(store, run_id)
+        with bench_locks(sequence, store):
+            claim_for_resume(store, run_id)
+            store.log_event(run_id, "info", "run resumed")
+            outcome = execute(sequence, store, run_id, progress=progress)
     report_outcome(outcome, db_path, progress)

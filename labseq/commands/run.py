@@ -9,7 +9,7 @@ import click
 
 from labseq.commands._store import db_option
 from labseq.progress import Progress
-from labseq.runner import RunOutcome, execute, start_run
+from labseq.runner import RunOutcome, bench_locks, execute, start_run
 from labseq.sequence import load_sequence
 from labseq.store import Store
 
@@ -44,7 +44,7 @@ def command(sequence_path: Path, db_path: Path, label: str, quiet: bool, sim_fau
     """
     sequence = load_sequence(sequence_path)
     progress = Progress(quiet=quiet)
-    with Store(db_path) as store:
+    with Store(db_path) as store, bench_locks(sequence, store):
         run_id = start_run(sequence, store, label=label)
         progress.message(f"run {run_id}: {sequence.name} — {len(sequence.points())} points")
         outcome = execute(sequence, store, run_id, progress=progress, sim_faults=sim_faults)
