@@ -319,19 +319,6 @@ def review_run(store: Store, run_id: int) -> RunReview:
     )
 
 
-def resolve_run_id(store: Store, text: str, *, what: str = "RUN") -> int:
-    """A run id from the command line: a number, or ``latest`` for the newest run."""
-    if text.strip().lower() == "latest":
-        runs = store.runs()
-        if not runs:
-            raise InputError(f"{store.path}: {what} latest: this store holds no runs")
-        return runs[-1].id
-    try:
-        return int(text)
-    except ValueError:
-        raise InputError(f"{what} {text!r}: give a run id (a number) or 'latest'") from None
-
-
 def limit_rows(review: RunReview) -> list[tuple[str, str]]:
     """The limits the run was judged against as (what, value) rows, in reading order."""
     sequence = review.sequence

@@ -37,7 +37,7 @@ from labseq.safety import (
     signals_raise_interrupted,
 )
 from labseq.sequence import Sequence, parse_sequence
-from labseq.store import CaptureRecord, PointReadings, PointRecord, Store
+from labseq.store import CAPTURE_FIGURES, CaptureRecord, PointReadings, PointRecord, Store
 
 #: How often the scope is asked whether its single acquisition is in.
 ACQUISITION_POLL_S = 0.005
@@ -141,7 +141,9 @@ def judge_stored_point(store: Store, sequence: Sequence, point: PointRecord) -> 
     for capture in store.captures(point.id, with_codes=False):
         stored = store.capture_figures(capture.id)
         if stored and not stored.get("error"):
-            figures.append({k: v for k, v in stored.items() if k not in ("edges", "error")})
+            row: dict[str, object] = {name: stored[name] for name in CAPTURE_FIGURES}
+            row["clipped"] = bool(stored.get("clipped"))
+            figures.append(row)
     summary = aggregate(figures)
     store.set_point_figures(
         point.id,

@@ -212,17 +212,14 @@ def sim_runs(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 def test_sim_sweep_better_snubber_and_worse_snubber(sim_runs: Path, tmp_path: Path) -> None:
-    # The candidate damper sits near the ring's characteristic impedance √(L/C): its ring is
-    # better damped (Severns, "Design of Snubbers for Power Circuits"; RC damper sizing).
-    code, stdout, _ = run_cli(
-        "compare", "1", "2", "--db", str(sim_runs), "--ignore", "snubber_loss_w",
-        "--ignore", "efficiency",
-    )  # fmt: skip
+    # The candidate keeps the damper capacitor and brings the resistor down to the ring's
+    # characteristic impedance √(L/C) (Severns, "Design of Snubbers for Power Circuits"; RC
+    # damper sizing): the ring is better damped and the peak lower. On this simulated DUT the
+    # resistor loss falls too, so nothing gets worse and the exit status is 0.
+    code, stdout, _ = run_cli("compare", "1", "2", "--db", str(sim_runs))
     assert code == 0, stdout
     assert "damping ratio up from" in stdout and "peak stress −" in stdout
-    # The candidate's lower resistance and larger capacitor cost loss: ungated, that fails.
-    code, _, stderr = run_cli("compare", "1", "2", "--db", str(sim_runs))
-    assert code == 1 and "snubber loss +" in stderr
+    assert "snubber loss −" in stdout
     # The under-damped snubber as the candidate: worse, exit 1, the worst point named.
     code, stdout, stderr = run_cli("compare", "2", "1", "--db", str(sim_runs), "--json")
     assert code == 1

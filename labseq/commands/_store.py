@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import click
 
@@ -11,26 +13,29 @@ from labseq.store import Store
 
 DEFAULT_DB = "labseq.sqlite"
 
-db_option = click.option(
-    "--db",
-    "db_path",
-    type=click.Path(path_type=Path, dir_okay=False),
-    default=DEFAULT_DB,
-    show_default=True,
-    help="The SQLite store.",
-)
+
+def db_option(help_text: str = "The SQLite store.") -> Callable[[Any], Any]:
+    """The ``--db PATH`` option (default ``labseq.sqlite`` in the working directory)."""
+    return click.option(
+        "--db",
+        "db_path",
+        type=click.Path(path_type=Path, dir_okay=False),
+        default=DEFAULT_DB,
+        show_default=True,
+        help=help_text,
+    )
 
 
-def resolve_run(store: Store, run: str) -> int:
-    """A RUN argument as a run id: a number, or ``latest`` for the newest run in the store."""
-    if run == "latest":
+def resolve_run(store: Store, text: str, *, what: str = "RUN") -> int:
+    """A run named on the command line: its id, or ``latest`` for the newest run in the store."""
+    if text.strip().lower() == "latest":
         runs = store.runs()
         if not runs:
-            raise InputError(f"{store.path}: no runs yet, so there is no latest run")
+            raise InputError(f"{store.path}: {what} latest: this store holds no runs")
         return runs[-1].id
     try:
-        return int(run)
+        return int(text)
     except ValueError:
         raise InputError(
-            f"RUN must be a run id (see `labseq runs`) or 'latest', not {run!r}"
+            f"{what} {text!r}: give a run id (see `labseq runs`) or 'latest'"
         ) from None

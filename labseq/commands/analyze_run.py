@@ -15,7 +15,7 @@ from labseq.store import Store
 
 @click.command("analyze-run")
 @click.argument("run", metavar="RUN")
-@db_option
+@db_option()
 @click.option(
     "--sequence",
     "sequence_path",

@@ -14,7 +14,7 @@ from pathlib import Path
 
 import click
 
-from labseq.commands._store import DEFAULT_DB
+from labseq.commands._store import db_option, resolve_run
 from labseq.errors import InputError
 from labseq.review import (
     DEFAULT_COVERAGE,
@@ -23,7 +23,6 @@ from labseq.review import (
     Comparison,
     compare_runs,
     comparison_summary,
-    resolve_run_id,
     review_run,
 )
 from labseq.store import Store
@@ -37,14 +36,7 @@ MAX_PRINTED_POINTS = 40
 @click.command("compare")
 @click.argument("baseline", metavar="BASELINE")
 @click.argument("candidate", metavar="CANDIDATE")
-@click.option(
-    "--db",
-    "db_path",
-    type=click.Path(path_type=Path),
-    default=DEFAULT_DB,
-    show_default=True,
-    help="The store holding the baseline (and the candidate, unless --candidate-db).",
-)
+@db_option("The store holding the baseline (and the candidate, unless --candidate-db).")
 @click.option(
     "--candidate-db",
     "candidate_db_path",
@@ -104,9 +96,9 @@ def command(
             if candidate_db_path is not None
             else baseline_store
         )
-        base = review_run(baseline_store, resolve_run_id(baseline_store, baseline, what="BASELINE"))
+        base = review_run(baseline_store, resolve_run(baseline_store, baseline, what="BASELINE"))
         cand = review_run(
-            candidate_store, resolve_run_id(candidate_store, candidate, what="CANDIDATE")
+            candidate_store, resolve_run(candidate_store, candidate, what="CANDIDATE")
         )
         gated = [name for name in FIGURE_DIRECTIONS if name not in ignored]
         comparison = compare_runs(

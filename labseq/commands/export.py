@@ -126,7 +126,7 @@ def write_captures_csv(store: Store, run_id: int, directory: Path) -> int:
 
 @click.command("export")
 @click.argument("run", metavar="RUN")
-@db_option
+@db_option()
 @click.option(
     "--out",
     "out_dir",

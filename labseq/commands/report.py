@@ -7,22 +7,15 @@ from pathlib import Path
 
 import click
 
-from labseq.commands._store import DEFAULT_DB
+from labseq.commands._store import db_option, resolve_run
 from labseq.errors import InputError
-from labseq.review import resolve_run_id, review_run, run_summary
+from labseq.review import review_run, run_summary
 from labseq.store import Store
 
 
 @click.command("report")
 @click.argument("run", metavar="RUN")
-@click.option(
-    "--db",
-    "db_path",
-    type=click.Path(path_type=Path),
-    default=DEFAULT_DB,
-    show_default=True,
-    help="The store to read.",
-)
+@db_option()
 @click.option(
     "--out",
     "out_dir",
@@ -46,7 +39,7 @@ def command(run: str, db_path: Path, out_dir: Path | None, output_format: str) -
     from labseq.report import build_run_report
 
     with Store(db_path, create=False) as store:
-        run_id = resolve_run_id(store, run)
+        run_id = resolve_run(store, run)
         review = review_run(store, run_id)
         if output_format == "json":
             click.echo(json.dumps(run_summary(review), indent=2, ensure_ascii=False))

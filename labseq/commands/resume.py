@@ -15,7 +15,7 @@ from labseq.store import Store
 
 @click.command("resume")
 @click.argument("run", metavar="RUN")
-@db_option
+@db_option()
 @click.option("--quiet", is_flag=True, help="No progress display; errors still go to stderr.")
 def command(run: str, db_path: Path, quiet: bool) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.

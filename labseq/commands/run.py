@@ -27,7 +27,7 @@ def report_outcome(outcome: RunOutcome, db_path: Path, progress: Progress) -> No
 
 @click.command("run")
 @click.argument("sequence_path", metavar="SEQUENCE", type=click.Path(path_type=Path))
-@db_option
+@db_option()
 @click.option("--label", default="", help="A note kept with the run (e.g. what changed).")
 @click.option("--quiet", is_flag=True, help="No progress display; errors still go to stderr.")
 @click.option(

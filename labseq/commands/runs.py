@@ -13,7 +13,7 @@ from labseq.store import Store
 
 
 @click.command("runs")
-@db_option
+@db_option()
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON array instead of a table.")
 def command(db_path: Path, as_json: bool) -> None:
     """List the runs in the store: id, start, status, DUT and snubber, points done/total."""
