@@ -9,7 +9,7 @@ the source in steps no larger than the declared line step. Every exit — finish
 
 Each capture is committed on its own as soon as it is fetched; the point's readings and "done"
 state are committed with its last capture, so a run killed at any instant (even by SIGKILL) loses
-no capture, and :func:`resume_run` takes only what is missing. Analysis runs on a worker thread
+no capture, and ``labseq resume`` takes only what is missing. Analysis runs on a worker thread
 while the next capture is acquired, so it does not slow the sweep down.
 """
 
@@ -20,6 +20,8 @@ from collections.abc import Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass, field
+
+import numpy as np
 
 from instruments import Waveform
 from instruments.errors import InstrumentError, ScpiError
@@ -92,6 +94,13 @@ class RunOutcome:
         return 0 if self.status == "finished" and self.points_done == self.points_total else 1
 
 
+def clip_mask(waveform: Waveform) -> np.ndarray | None:
+    """Samples at the bottom or top code of the screen, where the true voltage is unknown."""
+    if waveform.code_min is None or waveform.code_max is None:
+        return None
+    return (waveform.codes <= waveform.code_min) | (waveform.codes >= waveform.code_max)
+
+
 def analyse_waveform(sequence: Sequence, waveform: Waveform) -> CaptureFigures:
     """Figures of one capture as the sequence asks for them (pure: no bench, no store)."""
     snubber = sequence.snubber
@@ -108,7 +117,7 @@ def analyse_waveform(sequence: Sequence, waveform: Waveform) -> CaptureFigures:
         waveform.x_origin_s,
         polarity=sequence.scope.polarity,
         settling_band=sequence.limits.settling_band,
-        clipped=waveform.clipped,
+        clipped=clip_mask(waveform),
         snubber=branch,
         rating_v=sequence.dut.switch_rating_v,
         derating=sequence.dut.derating,
@@ -124,15 +133,14 @@ def analyse_or_error(sequence: Sequence, waveform: Waveform) -> CaptureFigures |
         return error
 
 
-def store_figures(store: Store, capture_id: int, result: CaptureFigures | Exception) -> dict:
-    """Store one capture's analysis (or why it failed); return the worst edge's figures."""
+def store_figures(store: Store, capture_id: int, result: CaptureFigures | Exception) -> None:
+    """Store one capture's analysis: its worst edge's figures and every edge, or why it failed."""
     if isinstance(result, Exception):
         store.set_capture_figures(capture_id, {}, error=str(result))
-        return {}
+        return
     worst = result.worst.as_dict()
     worst["clipped"] = result.clipped
     store.set_capture_figures(capture_id, worst, edges=[edge.as_dict() for edge in result.edges])
-    return worst
 
 
 def judge_stored_point(store: Store, sequence: Sequence, point: PointRecord) -> str:
