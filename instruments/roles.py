@@ -27,7 +27,7 @@ from instruments.limits import (
     check_word,
     format_number,
 )
-from instruments.scpi import ScpiInstrument
+from instruments.scpi import ScpiInstrument, is_response_token
 
 
 class _OutputRole(ScpiInstrument, ABC):
@@ -318,12 +318,20 @@ class Oscilloscope(ScpiInstrument):
         ------
         InstrumentTimeout
             "trigger did not fire within ..." after sending the map's stop command.
+        ReplyFormatError
+            A reply that is neither the done reply nor any one SCPI token (a number or a
+            mnemonic, such as a "not yet" 0): a garbled link, not a trigger that is late.
         """
         timeout_s = check_setpoint("acquisition timeout", timeout_s, 0.0, math.inf, "s")
         poll_interval_s = check_setpoint("poll interval", poll_interval_s, 0.0, math.inf, "s")
         query = self.map.command("acquisition_done_query")
         deadline = time.monotonic() + timeout_s
-        while self.query(query) != self.map.acquisition_done_reply:
+        while (reply := self.query(query)) != self.map.acquisition_done_reply:
+            if not is_response_token(reply):
+                raise ReplyFormatError(
+                    f"{self.label}: reply {reply!r} to {query!r} is neither "
+                    f"{self.map.acquisition_done_reply!r} nor a SCPI status value"
+                )
             if time.monotonic() >= deadline:
                 self._send("stop")
                 raise InstrumentTimeout(
@@ -347,6 +355,12 @@ class Oscilloscope(ScpiInstrument):
         if points is not None and points != codes.size:
             raise ReplyFormatError(
                 f"{self.label}: scaling announces {points:g} points, the block held {codes.size}"
+            )
+        if scaling["x_increment"] <= 0 or scaling["y_increment"] == 0:
+            raise ReplyFormatError(
+                f"{self.label}: scaling gives a sample interval of {scaling['x_increment']:g} s "
+                f"and {scaling['y_increment']:g} V per code; both must be non-zero, the "
+                "interval positive"
             )
         return Waveform(
             codes=codes,

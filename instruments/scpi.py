@@ -7,6 +7,7 @@ fast binary blocks); each bench role is a small subclass that only knows its com
 from __future__ import annotations
 
 import math
+import re
 import socket
 import time
 from collections.abc import Iterator
@@ -14,6 +15,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any, ClassVar, Self
 
+import numpy as np
 import pyvisa
 from pyvisa import constants
 from pyvisa.resources import MessageBasedResource
@@ -35,6 +37,24 @@ BLOCK_CHUNK_BYTES = 1 << 20
 QUIET_AFTER_INDEFINITE_BLOCK_MS = 50.0
 #: Bound on error-queue reads: an instrument that never answers "0,..." cannot hang us.
 MAX_QUEUED_ERRORS = 64
+#: Bytes asked of the VISA layer per read of a text reply, and the longest text reply accepted
+#: (far above any reply read as text; a peer streaming without a terminator is cut off here).
+TEXT_CHUNK_BYTES = 1 << 14
+MAX_TEXT_REPLY_BYTES = 1 << 20
+
+#: IEEE 488.2 decimal numeric data in its flexible form (NRf, 7.7.2: NR1, NR2 and NR3), and the
+#: INFinity, NINFinity and NAN keywords of SCPI-1999 vol. 1, 7.2.1.5.
+_NRF = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
+_NUMBER_KEYWORDS = {
+    "INF": math.inf,
+    "INFINITY": math.inf,
+    "NINF": -math.inf,
+    "NINFINITY": -math.inf,
+    "NAN": math.nan,
+}
+#: IEEE 488.2 character response data (8.7.1): a mnemonic, letter first.
+_MNEMONIC = re.compile(r"[A-Za-z][A-Za-z0-9_]*")
+_ERROR_CODE = re.compile(r"[+-]?\d+")
 
 _TIMEOUT_CODES = {constants.StatusCode.error_timeout}
 _CONNECTION_CODES = {
@@ -88,6 +108,23 @@ def open_resource(
     resource.write_termination = "\n"
     resource.timeout = timeout_s * 1000.0
     return resource
+
+
+def parse_number(text: str) -> float | None:
+    """The value of one SCPI numeric reply (NRf or an INF/NINF/NAN keyword), else None.
+
+    Stricter than :func:`float`, which also takes ``1_000`` or ``infinity`` spelled in any case
+    and would let a garbled reply through as a number.
+    """
+    text = text.strip()
+    if _NRF.fullmatch(text):
+        return float(text)
+    return _NUMBER_KEYWORDS.get(text.upper())
+
+
+def is_response_token(text: str) -> bool:
+    """Whether ``text`` is one SCPI response token: a number or a mnemonic (IEEE 488.2 8.7)."""
+    return parse_number(text) is not None or _MNEMONIC.fullmatch(text.strip()) is not None
 
 
 class ScpiInstrument:
@@ -161,6 +198,14 @@ class ScpiInstrument:
                 f"{error.start}); the session may hold the rest of an earlier reply"
             ) from None
 
+    @property
+    def is_socket(self) -> bool:
+        """Whether the resource is a raw TCP socket, where no END marks the end of a reply."""
+        return self.resource_name.upper().endswith("::SOCKET")
+
+    def _timeout_s(self) -> float:
+        return self.resource.timeout / 1000.0 if self.resource.timeout else math.inf
+
     def _tune_transport(self) -> None:
         """Turn off Nagle's algorithm on socket resources.
 
@@ -170,7 +215,7 @@ class ScpiInstrument:
         pyvisa-py 0.8 registers no setter for it, so its session's own helper is used then.
         """
         resource = self.resource
-        if not resource.resource_name.upper().endswith("::SOCKET"):
+        if not self.is_socket:
             return
         try:
             resource.set_visa_attribute(constants.ResourceAttribute.tcpip_nodelay, True)
@@ -201,17 +246,93 @@ class ScpiInstrument:
     def query(self, command: str) -> str:
         """Send a query and return its reply without the line terminator."""
         with self._translated(command):
-            return self.resource.query(command).strip()
+            self.resource.write(command)
+            deadline = time.monotonic() + self._timeout_s()
+            return self._read_message(command, deadline).decode("ascii").strip()
+
+    def _read_message(self, command: str, deadline: float) -> bytes:
+        """Read one response message, up to its terminator, by ``deadline`` (monotonic s).
+
+        PyVISA's own read goes on for as long as bytes keep coming, so a peer that streams
+        without a terminator would hold it for ever; here the deadline bounds the whole reply
+        and its length is capped. On a socket, where no END marks the end, a reply that stops
+        before its terminator is refused as truncated rather than read as a shorter value.
+        """
+        session = self._pyvisa_py_socket_session()
+        if session is not None:
+            return self._read_line_from_socket(session, command, deadline)
+        resource = self.resource
+        data = bytearray()
+        with resource.ignore_warning(constants.StatusCode.success_max_count_read):
+            while True:
+                try:
+                    chunk, status = resource.visalib.read(resource.session, TEXT_CHUNK_BYTES)
+                except pyvisa.errors.VisaIOError as error:
+                    if error.error_code in _TIMEOUT_CODES:
+                        raise self._no_reply(command) from None
+                    raise
+                data += chunk
+                if status != constants.StatusCode.success_max_count_read:
+                    break
+                self._check_growing_reply(command, data, deadline)
+        if self.is_socket and not data.endswith(b"\n"):
+            raise self._truncated(command, data)
+        return bytes(data)
+
+    def _read_line_from_socket(self, session: Any, command: str, deadline: float) -> bytes:
+        """:meth:`_read_message` straight from a pyvisa-py socket session (bytes it has read
+        ahead first), so that the deadline holds even while bytes trickle in."""
+        pending: bytearray = session._pending_buffer
+        terminator = (self.resource.read_termination or "\n").encode("ascii")
+        sock: socket.socket = session.interface
+        previous_timeout = sock.gettimeout()
+        try:
+            while (end := pending.find(terminator)) < 0:
+                self._check_growing_reply(command, pending, deadline)
+                sock.settimeout(max(deadline - time.monotonic(), 1e-3))
+                try:
+                    chunk = sock.recv(TEXT_CHUNK_BYTES)
+                except TimeoutError:
+                    continue  # the deadline check above raises
+                if not chunk:
+                    raise ConnectionLost(
+                        f"{self.label}: connection closed during the reply to {command!r}"
+                    )
+                pending += chunk
+        finally:
+            sock.settimeout(previous_timeout)
+        line = bytes(pending[: end + len(terminator)])
+        del pending[: end + len(terminator)]
+        return line
+
+    def _check_growing_reply(self, command: str, data: bytearray, deadline: float) -> None:
+        """Refuse a reply that is still incomplete at the deadline, or far too long."""
+        if len(data) > MAX_TEXT_REPLY_BYTES:
+            raise ReplyFormatError(
+                f"{self.label}: reply to {command!r} runs past {MAX_TEXT_REPLY_BYTES} bytes "
+                "without a terminator"
+            )
+        if time.monotonic() >= deadline:
+            raise self._truncated(command, data) if data else self._no_reply(command)
+
+    def _no_reply(self, command: str) -> InstrumentTimeout:
+        return InstrumentTimeout(
+            f"{self.label}: no reply within {self._timeout_s():g} s to {command!r}"
+        )
+
+    def _truncated(self, command: str, data: bytes | bytearray) -> ReplyFormatError:
+        return ReplyFormatError(
+            f"{self.label}: reply {bytes(data[:40])!r} to {command!r} has no line terminator "
+            "(truncated, or still arriving when the timeout ran out)"
+        )
 
     def query_float(self, command: str) -> float:
         """Send a query whose reply is one SCPI number (NR1/NR2/NR3 or NAN/INF forms)."""
         reply = self.query(command)
-        try:
-            return float(reply)
-        except ValueError:
-            raise ReplyFormatError(
-                f"{self.label}: reply {reply!r} to {command!r} is not a number"
-            ) from None
+        value = parse_number(reply)
+        if value is None:
+            raise ReplyFormatError(f"{self.label}: reply {reply!r} to {command!r} is not a number")
+        return value
 
     def query_bool(self, command: str) -> bool:
         """Send a query whose reply is a SCPI boolean, ``1``/``0`` (or ``ON``/``OFF``)."""
@@ -226,12 +347,12 @@ class ScpiInstrument:
     def query_floats(self, command: str) -> list[float]:
         """Send a query whose reply is comma-separated numbers."""
         reply = self.query(command)
-        try:
-            values = [float(item) for item in reply.split(",")]
-        except ValueError:
+        parsed = [parse_number(item) for item in reply.split(",")]
+        values = [value for value in parsed if value is not None]
+        if len(values) != len(parsed):
             raise ReplyFormatError(
                 f"{self.label}: reply {reply!r} to {command!r} is not a list of numbers"
-            ) from None
+            )
         if not all(math.isfinite(value) for value in values):
             raise ReplyFormatError(f"{self.label}: reply {reply!r} to {command!r} is not finite")
         return values
@@ -257,14 +378,12 @@ class ScpiInstrument:
         )
 
     def _parse_error(self, reply: str) -> tuple[int, str]:
-        code_text, _, message = reply.partition(",")
-        try:
-            code = int(code_text.strip())
-        except ValueError:
+        code_text, comma, message = reply.partition(",")
+        if not comma or not _ERROR_CODE.fullmatch(code_text.strip()):
             raise ReplyFormatError(
                 f"{self.label}: SYST:ERR? reply {reply!r} does not start with an error code"
-            ) from None
-        return code, message.strip().strip('"')
+            )
+        return int(code_text), message.strip().strip('"')
 
     def configure(self, *commands: str) -> None:
         """Send configuration commands and raise any error they queued.
@@ -313,18 +432,46 @@ class ScpiInstrument:
             try:
                 digit_count = block.length_digit_count(resource.read_bytes(2))
                 if digit_count == 0:
-                    return self._read_indefinite_payload(saved_termination)
+                    return self._read_indefinite_payload(command, saved_termination)
                 length = block.parse_length(resource.read_bytes(digit_count))
-                payload = self._read_into(bytearray(length))
+                # np.empty maps pages only as bytes arrive: a garbled header announcing a
+                # gigabyte costs no more memory than what is actually received
+                payload = self._read_into(np.empty(length, dtype=np.uint8))
                 self._read_trailer(command)
                 return payload
             except BlockFormatError:
-                resource.clear()  # drop the rest of the malformed reply before the next command
+                self._discard_input()  # drop the rest of the malformed reply
                 raise
             finally:
                 resource.read_termination = saved_termination
 
-    def _read_into(self, buffer: bytearray) -> memoryview:
+    def _discard_input(self) -> None:
+        """Throw away what is left of a broken reply, within the timeout.
+
+        On a socket the bytes already sent are read and dropped until the peer goes quiet or
+        closes (pyvisa-py's clear would spin for ever on a closed connection or an endless
+        stream); on other interfaces this is the VISA device clear.
+        """
+        session = self._pyvisa_py_socket_session()
+        if session is None:
+            self.resource.clear()
+            return
+        session._pending_buffer.clear()
+        sock: socket.socket = session.interface
+        deadline = time.monotonic() + min(self._timeout_s(), 5.0)
+        previous_timeout = sock.gettimeout()
+        try:
+            sock.settimeout(QUIET_AFTER_INDEFINITE_BLOCK_MS / 1000.0)
+            while time.monotonic() < deadline:
+                try:
+                    if not sock.recv(BLOCK_CHUNK_BYTES):
+                        return  # closed by the peer
+                except (TimeoutError, OSError):
+                    return  # quiet (or gone): nothing more to drop
+        finally:
+            sock.settimeout(previous_timeout)
+
+    def _read_into(self, buffer: np.ndarray) -> memoryview:
         """Fill ``buffer`` with the next ``len(buffer)`` bytes of the reply."""
         view = memoryview(buffer)
         session = self._pyvisa_py_socket_session()
@@ -399,26 +546,35 @@ class ScpiInstrument:
                 "after its announced length"
             )
 
-    def _read_indefinite_payload(self, termination: str | None) -> memoryview:
+    def _read_indefinite_payload(self, command: str, termination: str | None) -> memoryview:
         """Read a ``#0`` payload: messages up to each newline until the reply has no more.
 
         Over a socket there is no END signal, so the payload is everything up to the last
         newline the instrument sends before it goes quiet for
-        :data:`QUIET_AFTER_INDEFINITE_BLOCK_MS`.
+        :data:`QUIET_AFTER_INDEFINITE_BLOCK_MS`. The whole payload must arrive within the
+        resource's timeout: a block that never ends is refused, not read for ever.
         """
         resource = self.resource
         resource.read_termination = termination or "\n"
-        received = bytearray(resource.read_raw())
+        timeout_s = self._timeout_s()
+        deadline = time.monotonic() + timeout_s
+        received = bytearray(self._read_message(command, deadline))
+        quiet_s = QUIET_AFTER_INDEFINITE_BLOCK_MS / 1000.0
         saved_timeout = resource.timeout
         resource.timeout = min(saved_timeout or math.inf, QUIET_AFTER_INDEFINITE_BLOCK_MS)
         try:
             while True:
                 try:
-                    received += resource.read_raw()
-                except pyvisa.errors.VisaIOError as error:
-                    if error.error_code not in _TIMEOUT_CODES:
-                        raise
-                    break
+                    received += self._read_message(
+                        command, min(deadline, time.monotonic() + quiet_s)
+                    )
+                except InstrumentTimeout:
+                    break  # quiet: the block is complete
+                if time.monotonic() >= deadline:
+                    raise InstrumentTimeout(
+                        f"{self.label}: indefinite block reply to {command!r} still arriving "
+                        f"after {timeout_s:g} s"
+                    )
         finally:
             resource.timeout = saved_timeout
         return block.split_block(b"#0" + received)

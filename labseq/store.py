@@ -528,16 +528,23 @@ class Store:
         return self._run_record(rows[0])
 
     def mark_abandoned_runs(self) -> list[int]:
-        """Mark "interrupted" the runs left "running" by a process of this host that is gone."""
+        """Mark "interrupted" the runs left "running" by a process of this host that is gone,
+        and say so in each run's event log (a killed runner could not write it itself)."""
         host = socket.gethostname()
         abandoned = [
-            run.id
+            run
             for run in self.runs()
             if run.status == "running" and run.host == host and not _process_alive(run.pid)
         ]
-        for run_id in abandoned:
-            self.set_run_status(run_id, "interrupted")
-        return abandoned
+        for run in abandoned:
+            self.set_run_status(run.id, "interrupted")
+            self.log_event(
+                run.id,
+                "fault",
+                f"run abandoned: its process {run.pid} on {host} ended without a clean exit "
+                "(killed or crashed); the bench may have been left on",
+            )
+        return [run.id for run in abandoned]
 
     # ------------------------------------------------------------------- points
 

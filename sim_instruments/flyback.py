@@ -2,14 +2,17 @@
 
 The instruments of the simulated bench share one :class:`FlybackModel`: the line source sets the
 bus, the electronic load sets the load current, the power meter reads :meth:`line_reading` and
-the oscilloscope samples :meth:`switch_node_v` at an :meth:`operating_point`.
+the oscilloscope samples :meth:`switch_node_v` (and, when the DUT declares its output rectifier,
+:meth:`secondary_node_v`) at an :meth:`operating_point`.
 
 Operating point (a textbook flyback power stage, e.g. Pressman, *Switching Power Supply Design*):
 input power Pin = Pout + losses, with the losses (RC damper, RCD clamp, leakage-loop damping,
 capacitive turn-on and the design's other losses) taken from the integrated turn-off transient of
 :mod:`sim_instruments.flyback_transient`, so Pin and the transient are iterated together. DCM
 when the energy ½·Lm·Ipk²·fsw that delivers Pin fits in the period (on-time plus demagnetisation
-time Lm·Ipk/Vr), CCM otherwise with the ideal duty D = Vr/(Vin + Vr).
+time Lm·Ipk/Vr), CCM otherwise with the ideal duty D = Vr/(Vin + Vr). The output rectifier's
+ring (:mod:`sim_instruments.flyback_secondary`) follows from the primary's period; its damper and
+loop losses join the input power, and the two are iterated until they agree.
 """
 
 from __future__ import annotations
@@ -28,6 +31,7 @@ from sim_instruments.flyback_design import (
     load_dut,
     resolve_dut,
 )
+from sim_instruments.flyback_secondary import SecondaryNetwork, SecondaryPeriod
 from sim_instruments.flyback_transient import NodeNetwork, PeriodResult
 
 __all__ = [
@@ -74,6 +78,14 @@ class OperatingPoint:
     switching_loss_w: float = 0.0  # node capacitance discharged by the switch at turn-on
     other_loss_w: float = 0.0  # conduction, core and rectifier losses (design fraction of Pout)
     demag_time_s: float | None = None  # end of secondary conduction in DCM
+    # output rectifier (None/0 when the DUT declares no [secondary] or the converter idles)
+    secondary_plateau_v: float | None = None  # reverse voltage Vin·Lm/(n·(Lm + Llk)) + Vout
+    secondary_peak_reverse_v: float | None = None  # highest reverse voltage of the diode's ring
+    secondary_forward_current_a: float = 0.0  # diode current when the primary turns on (CCM)
+    secondary_recovery_current_a: float = 0.0  # reverse-recovery current Irr (pn diode)
+    secondary_recovery_charge_c: float = 0.0  # charge drawn back after the zero crossing
+    secondary_snubber_loss_w: float = 0.0  # in the diode's RC damper
+    secondary_damping_loss_w: float = 0.0  # in the rectifier ring's loop resistance
 
 
 @dataclass(frozen=True)
@@ -86,8 +98,15 @@ class LineReading:
     power_factor: float
 
 
-#: An operating point with its node voltage over one period: (op, grid times s, node V).
-_Solution = tuple[OperatingPoint, np.ndarray, np.ndarray]
+@dataclass(frozen=True)
+class _Solution:
+    """An operating point with its node voltages over one period, each on its own time grid."""
+
+    op: OperatingPoint
+    grid_s: np.ndarray
+    node_v: np.ndarray
+    secondary_grid_s: np.ndarray | None  # None: the DUT declares no [secondary]
+    secondary_v: np.ndarray | None
 
 
 @dataclass(frozen=True)
@@ -221,11 +240,31 @@ class FlybackModel:
 
     def operating_point(self, bulk_voltage_v: float, load_a: float) -> OperatingPoint:
         """Steady state at ``bulk_voltage_v`` and ``load_a`` (cached with its waveform)."""
-        return self._solve(float(bulk_voltage_v), float(load_a))[0]
+        return self._solve(float(bulk_voltage_v), float(load_a)).op
 
     def switch_node_v(self, op: OperatingPoint, t_s: np.ndarray) -> np.ndarray:
         """Drain-source voltage at times ``t_s`` (periodic in 1/fsw, t = 0 at turn-off)."""
-        _, grid_s, node_v = self._solve(op.bulk_voltage_v, op.load_a)
+        solution = self._solve(op.bulk_voltage_v, op.load_a)
+        return self._sample(solution.grid_s, solution.node_v, t_s)
+
+    @property
+    def has_secondary(self) -> bool:
+        """True when the DUT declares its output rectifier, so :meth:`secondary_node_v` works."""
+        return self.design.secondary is not None
+
+    def secondary_node_v(self, op: OperatingPoint, t_s: np.ndarray) -> np.ndarray:
+        """Rectifier anode–cathode voltage at ``t_s``, on :meth:`switch_node_v`'s time base.
+
+        Negative while the diode blocks: it steps to about −(Vin/n + Vout) when the primary turns
+        on, at t = −D/fsw modulo the period.
+        """
+        solution = self._solve(op.bulk_voltage_v, op.load_a)
+        if solution.secondary_v is None:
+            raise ValueError(f"DUT {self.design.label!r} declares no [secondary] rectifier")
+        return self._sample(solution.secondary_grid_s, solution.secondary_v, t_s)
+
+    def _sample(self, grid_s: np.ndarray, node_v: np.ndarray, t_s: np.ndarray) -> np.ndarray:
+        """A periodic waveform recorded over one period, at arbitrary times."""
         return np.interp(np.mod(np.asarray(t_s, dtype=float), self.period_s), grid_s, node_v)
 
     def _solve(self, bulk_v: float, load_a: float) -> _Solution:
@@ -265,23 +304,72 @@ class FlybackModel:
             efficiency=0.0,
             clamp_voltage_v=bulk_v if d.has_clamp else None,
         )
-        return op, np.array([0.0, self.period_s]), np.full(2, bulk_v)
+        grid_s = np.array([0.0, self.period_s])
+        # no switching: the diode blocks what the output holds
+        secondary_v = np.full(2, -op.output_voltage_v) if self.has_secondary else None
+        return _Solution(op, grid_s, np.full(2, bulk_v), grid_s, secondary_v)
 
     def _run(self, bulk_v: float, load_a: float) -> _Solution:
-        """Solve input power and clamp voltage for a periodic steady state, then record it.
+        """Solve the primary's steady state, then the rectifier's, until their losses agree.
 
-        Unknowns x = (Pin[, clamp capacitor voltage at turn-off]); residuals F(x) from one
-        integrated period: the input power the losses imply minus Pin, and the clamp capacitor's
-        drift over the period (zero when the energy its diode dumps per cycle equals what its
-        resistor dissipates). Newton steps with a finite-difference Jacobian kept up to date by
-        Broyden's update; a new bus voltage at a load already solved starts from the neighbours'
-        solution and Jacobian, which usually leaves one integrated period to confirm it.
+        The rectifier's losses (:mod:`sim_instruments.flyback_secondary`) depend on the primary's
+        period only weakly, through its currents, so they enter the primary's solve as a fixed
+        input power and the two are solved in turn until that power stops moving.
         """
         d = self.design
         network = NodeNetwork(d, bulk_v)
+        secondary = SecondaryNetwork(d, bulk_v) if d.secondary is not None else None
         output_w = d.output_voltage_v * load_a
         fixed_w = output_w * (1.0 + d.other_loss_fraction)
         x, jacobian = self._initial_guess(bulk_v, load_a, fixed_w)
+        secondary_w = 0.0
+        for _ in range(MAX_ITERATIONS):
+            x, jacobian, primary, period = self._converge(
+                network, x, jacobian, fixed_w + secondary_w
+            )
+            if secondary is None:
+                rectifier = None
+                break
+            grid_s = np.arange(period.node_v.size) * period.grid_dt_s
+            rectifier = secondary.simulate(
+                grid_s,
+                period.node_v,
+                primary.peak_current_a,
+                primary.off_time_s,
+                self.period_s,
+                period.demag_time_s,
+                period.grid_dt_s,
+            )
+            new_w = d.switching_frequency_hz * (
+                rectifier.snubber_energy_j + rectifier.damping_energy_j
+            )
+            settled = abs(new_w - secondary_w) <= POWER_RTOL * x[0]
+            secondary_w = new_w
+            if settled:
+                break
+        else:
+            raise RuntimeError(f"rectifier losses did not settle at {bulk_v} V, {load_a} A")
+        self._solved.setdefault(load_a, {})[bulk_v] = (x.copy(), jacobian)
+        other_w = output_w * d.other_loss_fraction
+        op = _operating_point(d, bulk_v, load_a, primary, period, other_w, rectifier)
+        grid_s = np.arange(period.node_v.size) * period.grid_dt_s
+        if rectifier is None:
+            return _Solution(op, grid_s, period.node_v, None, None)
+        secondary_grid_s = np.arange(rectifier.node_v.size) * rectifier.grid_dt_s
+        return _Solution(op, grid_s, period.node_v, secondary_grid_s, rectifier.node_v)
+
+    def _converge(
+        self, network: NodeNetwork, x: np.ndarray, jacobian: np.ndarray | None, fixed_w: float
+    ) -> tuple[np.ndarray, np.ndarray, _Primary, PeriodResult]:
+        """Newton–Broyden solve of the primary's periodic steady state from x = (Pin[, clamp V]).
+
+        Residuals F(x) from one integrated period: the input power the losses imply minus Pin,
+        and the clamp capacitor's drift over the period (zero when the energy its diode dumps
+        per cycle equals what its resistor dissipates). Newton steps with a finite-difference
+        Jacobian kept up to date by Broyden's update; a start from a neighbour's solution and
+        Jacobian usually leaves one integrated period to confirm it.
+        """
+        bulk_v = network.bulk_v
         # the clamp capacitor never discharges below the bus its resistor returns to; at light
         # load it may sit under Vin + Vr, where its diode takes magnetising energy too
         floor_v = bulk_v + 1.0
@@ -292,7 +380,7 @@ class FlybackModel:
             step = -np.linalg.solve(jacobian, residual)
             power_ok = abs(residual[0]) <= POWER_RTOL * x[0]
             if power_ok and (x.size == 1 or abs(step[1]) <= CLAMP_VTOL):
-                break
+                return x, jacobian, primary, period
             new_x = x + step
             new_x[0] = max(new_x[0], fixed_w)
             if x.size == 2:
@@ -300,12 +388,7 @@ class FlybackModel:
             new_residual, primary, period = self._residual(network, new_x, fixed_w, record=True)
             jacobian = _broyden(jacobian, new_x - x, new_residual - residual)
             x, residual = new_x, new_residual
-        else:
-            raise RuntimeError(f"flyback steady state did not converge at {bulk_v} V, {load_a} A")
-        self._solved.setdefault(load_a, {})[bulk_v] = (x.copy(), jacobian)
-        other_w = output_w * d.other_loss_fraction
-        op = _operating_point(d, bulk_v, load_a, primary, period, other_w)
-        return op, np.arange(period.node_v.size) * period.grid_dt_s, period.node_v
+        raise RuntimeError(f"flyback steady state did not converge at {bulk_v} V")
 
     def _residual(
         self, network: NodeNetwork, x: np.ndarray, fixed_w: float, *, record: bool
@@ -381,6 +464,7 @@ def _operating_point(
     primary: _Primary,
     period: PeriodResult,
     other_w: float,
+    rectifier: SecondaryPeriod | None,
 ) -> OperatingPoint:
     fsw = design.switching_frequency_hz
     output_w = design.output_voltage_v * load_a
@@ -388,7 +472,18 @@ def _operating_point(
     clamp_w = fsw * period.clamp_energy_j
     damping_w = fsw * period.damping_energy_j
     switching_w = fsw * period.switching_energy_j
-    input_w = output_w + other_w + snubber_w + clamp_w + damping_w + switching_w
+    secondary_snubber_w = fsw * rectifier.snubber_energy_j if rectifier else 0.0
+    secondary_damping_w = fsw * rectifier.damping_energy_j if rectifier else 0.0
+    input_w = (
+        output_w
+        + other_w
+        + snubber_w
+        + clamp_w
+        + damping_w
+        + switching_w
+        + secondary_snubber_w
+        + secondary_damping_w
+    )
     return OperatingPoint(
         bulk_voltage_v=bulk_v,
         load_a=load_a,
@@ -409,4 +504,11 @@ def _operating_point(
         switching_loss_w=switching_w,
         other_loss_w=other_w,
         demag_time_s=period.demag_time_s,
+        secondary_plateau_v=rectifier.plateau_v if rectifier else None,
+        secondary_peak_reverse_v=rectifier.peak_reverse_v if rectifier else None,
+        secondary_forward_current_a=rectifier.recovery.forward_current_a if rectifier else 0.0,
+        secondary_recovery_current_a=rectifier.recovery.recovery_current_a if rectifier else 0.0,
+        secondary_recovery_charge_c=rectifier.recovery.recovery_charge_c if rectifier else 0.0,
+        secondary_snubber_loss_w=secondary_snubber_w,
+        secondary_damping_loss_w=secondary_damping_w,
     )

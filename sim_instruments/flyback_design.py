@@ -11,6 +11,10 @@ notation (``"4.7n"``, ``"220pF"``, ``"75 V"``) or as plain SI numbers::
     [losses]      damping_resistance, other_loss_fraction
     [snubber]     resistance, capacitance          (capacitance 0 = no damper fitted)
     [clamp]       voltage, resistance, capacitance (whole table optional: RCD clamp)
+    [secondary]   kind ("schottky"/"pn"), junction_capacitance, loop_inductance,
+                  series_resistance, reverse_rating, carrier_lifetime (pn only),
+                  snubber_resistance, snubber_capacitance (whole table optional: the output
+                  rectifier; its forward drop is [output] rectifier_drop)
 
 The clamp ``voltage`` is the design's nominal clamp voltage above the bus; the simulated clamp
 capacitor settles wherever R, C and the energy balance put it, starting from that value.
@@ -42,8 +46,36 @@ DEMO_DUTS: dict[str, Path] = {
 VALID_LINE_FREQUENCIES_HZ = (50.0, 60.0)
 
 
+#: Output rectifier kinds a DUT file may declare.
+RECTIFIER_KINDS = ("schottky", "pn")
+
+
 class DutFileError(ValueError):
     """A DUT file that cannot be used; the message names the file, the key and what is valid."""
+
+
+@dataclass(frozen=True)
+class SecondaryRectifier:
+    """The output rectifier diode and what rings with it once the primary switch turns on.
+
+    ``loop_inductance_h`` is the secondary side's own loop (winding leakage and traces); the
+    ring also sees the primary leakage referred by n² (:mod:`sim_instruments.flyback_secondary`).
+    A ``pn`` diode stores charge ``carrier_lifetime_s`` × forward current; a Schottky stores none.
+    """
+
+    kind: str  # "schottky" or "pn"
+    junction_capacitance_f: float
+    loop_inductance_h: float
+    series_resistance_ohm: float
+    reverse_rating_v: float
+    carrier_lifetime_s: float = 0.0
+    snubber_resistance_ohm: float = 0.0
+    snubber_capacitance_f: float = 0.0  # 0 = no RC damper across the diode
+
+    @property
+    def has_snubber(self) -> bool:
+        """True when an RC damper is fitted across the diode."""
+        return self.snubber_capacitance_f > 0.0
 
 
 @dataclass(frozen=True)
@@ -75,6 +107,7 @@ class FlybackDesign:
     clamp_resistance_ohm: float | None
     clamp_capacitance_f: float | None
     other_loss_fraction: float
+    secondary: SecondaryRectifier | None = None  # None: the DUT file declares no [secondary]
 
     @property
     def has_snubber(self) -> bool:
@@ -187,8 +220,19 @@ _SCHEMA: dict[str, dict[str, _Key]] = {
         "resistance": _Key("Ω", _positive),
         "capacitance": _Key("F", _positive),
     },
+    "secondary": {
+        "junction_capacitance": _Key("F", _positive),
+        "loop_inductance": _Key("H", _non_negative),
+        "series_resistance": _Key("Ω", _positive),
+        "reverse_rating": _Key("V", _positive),
+        "carrier_lifetime": _Key("s", _positive, required=False),
+        "snubber_resistance": _Key("Ω", _non_negative, required=False, default=0.0),
+        "snubber_capacitance": _Key("F", _non_negative, required=False, default=0.0),
+    },
 }
-_OPTIONAL_TABLES = {"clamp"}
+_OPTIONAL_TABLES = {"clamp", "secondary"}
+#: Tables with a text ``kind`` beside their quantities.
+_KIND_TABLES = {"line", "secondary"}
 _TOP_LEVEL = {"label", *_SCHEMA}
 _LINE_KINDS = ("dc", "ac")
 
@@ -208,7 +252,7 @@ def _read_table(path: Path, data: dict[str, Any], table: str) -> dict[str, float
     if not isinstance(raw, dict):
         raise DutFileError(f"{path}: [{table}] must be a table of quantities, got {raw!r}")
     schema = _SCHEMA[table]
-    allowed = list(schema) + (["kind"] if table == "line" else [])
+    allowed = list(schema) + (["kind"] if table in _KIND_TABLES else [])
     for name in raw:
         if name not in allowed:
             raise _unknown(path, f"[{table}] ", name, allowed)
@@ -280,6 +324,7 @@ def load_dut(path: str | Path) -> FlybackDesign:
             f"a value > 0 (or capacitance = 0 for no damper)"
         )
     clamp = _read_table(path, data, "clamp") if "clamp" in data else None
+    secondary = _read_secondary(path, data) if "secondary" in data else None
 
     return FlybackDesign(
         label=label.strip(),
@@ -307,6 +352,42 @@ def load_dut(path: str | Path) -> FlybackDesign:
         clamp_resistance_ohm=clamp["resistance"] if clamp else None,
         clamp_capacitance_f=clamp["capacitance"] if clamp else None,
         other_loss_fraction=losses["other_loss_fraction"],
+        secondary=secondary,
+    )
+
+
+def _read_secondary(path: Path, data: dict[str, Any]) -> SecondaryRectifier:
+    """The optional [secondary] table: a Schottky or pn rectifier, with an optional RC damper."""
+    values = _read_table(path, data, "secondary")
+    kind = data["secondary"].get("kind")
+    if kind not in RECTIFIER_KINDS:
+        raise DutFileError(
+            f"{path}: [secondary] kind = {kind!r} is not valid; expected 'schottky' or 'pn'"
+        )
+    if kind == "pn" and "carrier_lifetime" not in values:
+        raise DutFileError(
+            f"{path}: [secondary] carrier_lifetime is missing; a pn rectifier needs one in s "
+            f'(e.g. "20ns")'
+        )
+    if kind == "schottky" and "carrier_lifetime" in values:
+        raise DutFileError(
+            f"{path}: [secondary] carrier_lifetime is for kind = 'pn' only (a Schottky stores "
+            f"no charge); remove it"
+        )
+    if values["snubber_capacitance"] > 0.0 and values["snubber_resistance"] == 0.0:
+        raise DutFileError(
+            f"{path}: [secondary] snubber_resistance = 0 is not valid with a snubber_capacitance "
+            f"fitted; expected a value > 0 (or snubber_capacitance = 0 for no damper)"
+        )
+    return SecondaryRectifier(
+        kind=kind,
+        junction_capacitance_f=values["junction_capacitance"],
+        loop_inductance_h=values["loop_inductance"],
+        series_resistance_ohm=values["series_resistance"],
+        reverse_rating_v=values["reverse_rating"],
+        carrier_lifetime_s=values.get("carrier_lifetime", 0.0),
+        snubber_resistance_ohm=values["snubber_resistance"],
+        snubber_capacitance_f=values["snubber_capacitance"],
     )
 
 

@@ -30,6 +30,10 @@ SOURCE_FREQUENCY_RANGE_HZ = (40.0, 500.0)
 SOURCE_CURRENT_LIMIT_MAX_A = 20.0
 LOAD_CURRENT_MAX_A = 30.0
 SCOPE_CHANNELS = 4
+#: What the scope's probes see: the primary switch node, and the output rectifier (anode to
+#: cathode) when the DUT declares one; the other channels are unprobed.
+PRIMARY_CHANNEL = 1
+SECONDARY_CHANNEL = 2
 SCOPE_SCALE_RANGE_V_PER_DIV = (1e-3, 10.0)  # at the BNC; times the probe ratio at the tip
 SCOPE_OFFSET_DIVS_MAX = 100.0  # offset range in divisions of the largest scale, at the BNC
 SCOPE_PROBE_RANGE = (0.1, 10_000.0)
@@ -169,10 +173,15 @@ class BenchState:
             volts = 0.0 if self.line_is_ac else self.bus_voltage_v()
             return LineReading(volts, 0.0, 0.0, 0.0)
 
-    def switch_node(self, rng: np.random.Generator) -> tuple[acquisition.Waveform, float] | None:
-        """Channel 1's waveform and its period for one acquisition, or None if not switching.
+    def probed_nodes(
+        self, rng: np.random.Generator
+    ) -> tuple[dict[int, acquisition.Waveform], float] | None:
+        """The waveforms the scope's probes see in one acquisition, and their period.
 
-        On an AC line each acquisition falls at a random phase of the line cycle.
+        Channel :data:`PRIMARY_CHANNEL` probes the switch node, :data:`SECONDARY_CHANNEL` the
+        output rectifier if the DUT declares one; both at one operating point, so one trigger
+        serves both. None when the converter is not switching. On an AC line each acquisition
+        falls at a random phase of the line cycle.
         """
         step = int(rng.integers(LINE_PHASE_STEPS)) if self.line_is_ac else 0
         phase_rad = 2 * math.pi * step / LINE_PHASE_STEPS
@@ -181,11 +190,17 @@ class BenchState:
             return None
         period_s = 1.0 / self.model.design.switching_frequency_hz
 
-        def waveform(t_s: np.ndarray) -> np.ndarray:
-            with self.lock:  # the model caches its solutions; one caller at a time
-                return self.model.switch_node_v(point, t_s)
+        def probe(node: Callable[[OperatingPoint, np.ndarray], np.ndarray]) -> acquisition.Waveform:
+            def waveform(t_s: np.ndarray) -> np.ndarray:
+                with self.lock:  # the model caches its solutions; one caller at a time
+                    return node(point, t_s)
 
-        return waveform, period_s
+            return waveform
+
+        probes = {PRIMARY_CHANNEL: probe(self.model.switch_node_v)}
+        if self.model.has_secondary:
+            probes[SECONDARY_CHANNEL] = probe(self.model.secondary_node_v)
+        return probes, period_s
 
 
 class SimInstrument(ScpiInstrument):
@@ -340,7 +355,8 @@ class SimMeter(SimInstrument):
 
 
 class SimScope(SimInstrument):
-    """Four-channel digital storage scope; channel 1 probes the switch node.
+    """Four-channel digital storage scope; channel 1 probes the switch node, channel 2 the
+    output rectifier (anode to cathode) when the DUT declares one.
 
     ``:SINGle`` computes the capture in a background thread, so ``:ACQuire:COMPlete?`` can be
     polled; a trigger that cannot fire keeps the acquisition pending until ``:STOP``, ``*RST`` or
@@ -400,7 +416,7 @@ class SimScope(SimInstrument):
         rng = np.random.default_rng(seed)
         while not never_trigger and not cancel.is_set():
             try:
-                source = self.state.switch_node(rng)
+                source = self.state.probed_nodes(rng)
                 capture = None if source is None else acquisition.acquire(*source, settings, rng)
             except (ValueError, ArithmeticError, MemoryError) as error:
                 with self.lock:
@@ -435,10 +451,16 @@ class SimScope(SimInstrument):
 
     def _mean_v(self, call: Call) -> str:
         channel = call.suffixed("CHANnel", 1, SCOPE_CHANNELS)
-        vertical = self.settings.channels[channel - 1]
-        on_dc = channel == 1 and vertical.coupling == "DC"
-        # Volt-second balance on the primary: the switch node's mean is the bus voltage.
-        return self.reading(self.state.bus_voltage_v() if on_dc else 0.0)
+        if self.settings.channels[channel - 1].coupling != "DC":
+            return self.reading(0.0)
+        if channel == PRIMARY_CHANNEL:
+            # Volt-second balance on the primary: the switch node's mean is the bus voltage.
+            return self.reading(self.state.bus_voltage_v())
+        if channel == SECONDARY_CHANNEL and self.state.model.has_secondary:
+            # Volt-second balance on the secondary winding: the diode's mean is −Vout.
+            point = self.state.operating_point()
+            return self.reading(-point.output_voltage_v if point is not None else 0.0)
+        return self.reading(0.0)
 
     # -- settings
     def _channel_setting(

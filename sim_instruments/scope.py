@@ -1,16 +1,17 @@
 """The simulated oscilloscope's acquisition: trigger, timebase, bandwidth, noise, quantisation.
 
 A capture is made the way a digital storage scope makes one: the trigger comparator fires where
-the channel's waveform crosses the trigger level with the chosen slope, samples are taken at
-``x_origin + i·x_increment`` around it (with a random sub-sample trigger jitter), the analog front
-end limits the bandwidth, adds noise, and an 8-bit ADC quantises the screen into codes −128…127,
-clipping what lies beyond it. The physics (the waveform itself) comes in as a function of time.
+the trigger channel's waveform crosses the trigger level with the chosen slope, every channel is
+sampled at the same ``x_origin + i·x_increment`` around it (with a random sub-sample trigger
+jitter), each channel's analog front end limits its bandwidth and adds noise, and an 8-bit ADC
+quantises its screen into codes −128…127, clipping what lies beyond it. The physics (each probed
+waveform) comes in as a function of time; an unprobed channel is a flat 0 V with noise.
 """
 
 from __future__ import annotations
 
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -171,18 +172,27 @@ def scaling(
 
 
 class Capture:
-    """One completed acquisition: the analog channel-1 trace and the settings it was taken with.
+    """One completed acquisition: its analog traces and the settings it was taken with.
 
-    Encoded payloads are cached per (channel, format, byte order), so a repeated transfer sends
-    the same bytes without recomputing. Other channels are flat traces at 0 V with noise.
+    The trigger channel's trace is made with the acquisition; every other channel's is made on
+    first use, sampling its probed waveform at the same ``times_s`` (a flat 0 V if unprobed),
+    with noise drawn from its own stream of ``seed``. Encoded payloads are cached per (channel,
+    format, byte order), so a repeated transfer sends the same bytes without recomputing.
     """
 
     def __init__(
-        self, settings: AcquisitionSettings, traces_v: dict[int, np.ndarray], seed: int
+        self,
+        settings: AcquisitionSettings,
+        traces_v: dict[int, np.ndarray],
+        seed: int,
+        probes: Mapping[int, Waveform] | None = None,
+        times_s: np.ndarray | None = None,
     ) -> None:
         self.settings = settings
         self._traces_v = traces_v
         self._seed = seed
+        self._probes = dict(probes or {})
+        self._times_s = times_s
         self._payloads: dict[tuple[int, str, str], memoryview] = {}
         self._lock = threading.Lock()
 
@@ -191,13 +201,17 @@ class Capture:
         return self.settings.record_length
 
     def trace_v(self, channel: int) -> np.ndarray:
-        """Analog volts of ``channel`` before the ADC (made on first use for flat channels)."""
+        """Analog volts of ``channel`` before the ADC (made on first use but for the trigger's)."""
         if channel not in self._traces_v:
             rng = np.random.default_rng((self._seed, channel))
-            flat = np.zeros(self.points, dtype=np.float32)
+            probe = self._probes.get(channel)
+            if probe is None or self._times_s is None:
+                tip_v = np.zeros(self.points, dtype=np.float32)
+            else:
+                tip_v = probe(self._times_s)
             rate = 1 / self.settings.x_increment_s
             self._traces_v[channel] = front_end(
-                flat, self.settings.channels[channel - 1], rate, rng
+                tip_v, self.settings.channels[channel - 1], rate, rng
             )
         return self._traces_v[channel]
 
@@ -228,25 +242,30 @@ class Capture:
 
 
 def acquire(
-    waveform: Waveform,
+    probes: Mapping[int, Waveform],
     period_s: float,
     settings: AcquisitionSettings,
     rng: np.random.Generator,
 ) -> Capture | None:
-    """Trigger on channel 1's ``waveform`` and take one record; None if the trigger cannot fire.
+    """Trigger on the trigger channel's waveform and take one record; None if it cannot fire.
 
-    ``waveform`` gives channel-1 volts at the probe tip at times relative to the turn-off command
-    and repeats every ``period_s``. A trigger on another channel (flat traces) never fires.
+    ``probes`` maps channel numbers to the volts at their probe tips, at times relative to the
+    primary's turn-off command, each repeating every ``period_s``. A trigger on an unprobed
+    channel (a flat trace) never fires.
     """
-    if settings.trigger_channel != 1:
+    trigger_channel = settings.trigger_channel
+    trigger_waveform = probes.get(trigger_channel)
+    if trigger_waveform is None:
         return None
     trigger_s = find_trigger_time_s(
-        waveform, period_s, settings.trigger_level_v, settings.trigger_rising
+        trigger_waveform, period_s, settings.trigger_level_v, settings.trigger_rising
     )
     if trigger_s is None:
         return None
     step_s = settings.x_increment_s
     jitter_s = rng.uniform(-0.5, 0.5) * step_s
     times = trigger_s + jitter_s + settings.x_origin_s + np.arange(settings.record_length) * step_s
-    trace = front_end(waveform(times), settings.channels[0], 1 / step_s, rng)
-    return Capture(settings, {1: trace}, seed=int(rng.integers(2**31)))
+    vertical = settings.channels[trigger_channel - 1]
+    trace = front_end(trigger_waveform(times), vertical, 1 / step_s, rng)
+    seed = int(rng.integers(2**31))
+    return Capture(settings, {trigger_channel: trace}, seed, probes=probes, times_s=times)

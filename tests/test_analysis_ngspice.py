@@ -8,6 +8,9 @@ node. The node holds Coss(V) = C0/√(1 + V/Vj) (the usual abrupt-junction form:
 published source), a fixed stray capacitance and an Rs–Cs damper. The analysis, on the waveform
 resampled uniformly, is checked against the ring frequency that ngspice's own points show (zero
 crossings of v − plateau) and against the small-signal resonance at the plateau.
+
+The clamp diode has 0.1 Ω of series resistance: without it ngspice's step control stalls where
+the diode's current falls towards zero late in the ring.
 """
 
 from __future__ import annotations
@@ -37,7 +40,7 @@ NETLIST = f"""* flyback turn-off: leakage inductance ringing with Coss(V), stray
 Im 0 m DC {PEAK_A}
 Cm m 0 10p
 Dclamp m p DCLAMP
-.model DCLAMP D(IS=1e-14 N=1)
+.model DCLAMP D(IS=1e-14 N=1 RS=0.1)
 Vplateau p 0 DC {PLATEAU_SOURCE_V}
 Llk m d {LEAKAGE_H} IC={PEAK_A}
 Ccoss d 0 c='{C0_F}/sqrt(1+max(V(d),0)/{VJ_V})'

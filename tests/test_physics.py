@@ -310,6 +310,8 @@ def test_power_balance_and_dcm_energy_per_cycle() -> None:
         + op.damping_loss_w
         + op.switching_loss_w
         + op.other_loss_w
+        + op.secondary_snubber_loss_w
+        + op.secondary_damping_loss_w
     )
     assert op.input_power_w == pytest.approx(op.output_power_w + losses_w, rel=1e-9)
     assert op.efficiency == pytest.approx(op.output_power_w / op.input_power_w)

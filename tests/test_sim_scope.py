@@ -59,12 +59,20 @@ def read_errors(instrument: pyvisa.resources.MessageBasedResource) -> list[int]:
 def capture(
     scope: pyvisa.resources.MessageBasedResource, setup: str, data_format: str = "INT8"
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[float]]:
-    """Arm, wait, transfer: (times s, volts, raw values, scaling fields)."""
+    """Arm, wait, transfer channel 1: (times s, volts, raw values, scaling fields)."""
     scope.write(f"{setup};:WAV:SOUR CHAN1;:WAV:FORM {data_format};:SING")
     deadline = time.monotonic() + 10
     while scope.query(":ACQ:COMP?") != "1":
         assert time.monotonic() < deadline, "acquisition never completed"
         time.sleep(0.005)
+    return transfer(scope, data_format)
+
+
+def transfer(
+    scope: pyvisa.resources.MessageBasedResource, data_format: str = "INT8"
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[float]]:
+    """Transfer the last capture's :WAV:SOUR channel: (times s, volts, raw values, scaling)."""
+    scope.write(f":WAV:FORM {data_format}")
     scaling = [float(field) for field in scope.query(":WAV:SCAL?").split(",")]
     points, x_increment, x_origin, y_increment, y_origin, y_reference = scaling
     datatype = {"INT8": "b", "INT16": "h", "FLOAT32": "f"}[data_format]

@@ -179,7 +179,9 @@ def _check_inputs(
         raise ValueError(f"volts must be a 1-D array, got shape {v.shape}")
     if v.size < MIN_RECORD_SAMPLES:
         raise ValueError(f"the record has {v.size} samples; at least {MIN_RECORD_SAMPLES} needed")
-    if not np.all(np.isfinite(v)):
+    # A finite sum is the cheap proof that every sample is finite; only if it is not (a NaN or
+    # infinity, or an overflow of huge values) are the samples themselves checked.
+    if not math.isfinite(float(np.sum(v))) and not np.all(np.isfinite(v)):
         bad = int(np.flatnonzero(~np.isfinite(v))[0])
         raise ValueError(f"volts holds a non-finite value at sample {bad}")
     if not (math.isfinite(sample_interval_s) and sample_interval_s > 0):

@@ -21,8 +21,11 @@ import numpy as np
 
 #: Poles kept by the matrix pencil: the ring pair, the offset and room for a slower trend and noise.
 PENCIL_MODEL_ORDER = 6
-#: The pencil works on at most this many samples (a start value does not need more).
-PENCIL_MAX_SAMPLES = 93
+#: The pencil works on at most this many samples (a start value does not need more). 72 samples
+#: give a 25 × 25 Gram matrix: LAPACK's symmetric eigensolver then takes its QR-iteration path,
+#: whereas larger sizes use divide and conquer with multithreaded matrix products, which stall
+#: for milliseconds when other processes keep the cores busy.
+PENCIL_MAX_SAMPLES = 72
 #: Smallest ring amplitude, relative to the window's peak-to-peak spread, that counts as a ring.
 MIN_RELATIVE_AMPLITUDE = 0.02
 #: Fewest samples a window may hold for a five-parameter fit.
@@ -182,23 +185,25 @@ def _dominant_oscillation(z: np.ndarray, h: np.ndarray) -> list[tuple[float, flo
 def _pencil_starts(windows: list[np.ndarray]) -> list[tuple[float, float] | RingFitError]:
     """(σ, ωd) starts in units of each window's length, from the matrix pencil.
 
-    Each window is decimated to at most ``PENCIL_MAX_SAMPLES``; windows of equal decimated length
-    go through the pencil together.
+    Each window is decimated to at most ``PENCIL_MAX_SAMPLES``; windows decimated by the same
+    stride go through the pencil together, each cut to the shortest of them (the windows of one
+    record differ by a few samples, and a start value does not need them).
     """
     strides = [max(1, math.ceil(y.size / PENCIL_MAX_SAMPLES)) for y in windows]
     groups: dict[int, list[int]] = {}
-    for k, (y, stride) in enumerate(zip(windows, strides, strict=True)):
-        groups.setdefault(-(-y.size // stride), []).append(k)
+    for k, stride in enumerate(strides):
+        groups.setdefault(stride, []).append(k)
     starts: list[tuple[float, float] | RingFitError] = [RingFitError("")] * len(windows)
-    for members in groups.values():
-        stack = np.stack([windows[k][:: strides[k]] for k in members])
+    for stride, members in groups.items():
+        length = min(-(-windows[k].size // stride) for k in members)
+        stack = np.stack([windows[k][::stride][:length] for k in members])
         try:
             found = _dominant_oscillation(*matrix_pencil_poles(stack))
         except RingFitError as exc:
             found = [exc] * len(members)
         for k, start in zip(members, found, strict=True):
             if isinstance(start, tuple):
-                scale = windows[k].size / strides[k]  # per decimated sample → per window length
+                scale = windows[k].size / stride  # per decimated sample → per window length
                 start = (start[0] * scale, start[1] * scale)
             starts[k] = start
     return starts
@@ -296,8 +301,7 @@ class _VarPro:
         The step solves (JᵀJ + λ·diag(JᵀJ))·δ = −Jᵀr (Marquardt 1963, with the diagonal scaling
         of Moré 1978); each window's λ shrinks after a step that lowers its cost and grows after
         one that does not. Windows drop out of the batch once a step is below
-        ``REFINE_STEP_TOLERANCE``. ``decay`` and
-        ``omega`` are updated in place.
+        ``REFINE_STEP_TOLERANCE``. ``decay`` and ``omega`` are updated in place.
         """
         best = self.project(np.arange(decay.size), decay, omega)
         damping = np.full(decay.size, LM_INITIAL_DAMPING)

@@ -59,7 +59,10 @@ def branch_resistor_power_w(
     a = math.exp(-sample_interval_s / tau)
     beta = tau * -math.expm1(-sample_interval_s / tau) / sample_interval_s
     vc, _ = lfilter([1.0 - beta, beta - a], [1.0, -a], v, zi=[beta * v[0]])
-    return (v - vc) ** 2 / branch.rs_ohm
+    power = np.subtract(v, vc, out=vc)  # in place: records run to millions of samples
+    np.square(power, out=power)
+    power *= 1.0 / branch.rs_ohm
+    return power
 
 
 def period_means_w(
