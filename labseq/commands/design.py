@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 from dataclasses import fields
+from pathlib import Path
 
 import click
 
@@ -16,6 +17,7 @@ from labseq.analysis import (
     propose_snubber,
 )
 from labseq.commands._options import option_fraction_or_quantity, option_quantity
+from labseq.commands._store import db_option, resolve_run
 from labseq.errors import InputError
 from labseq.units import format_si
 
@@ -123,11 +125,27 @@ def _ripple_v(ripple: str | None, clamp_voltage_v: float | None) -> float | None
 @click.option(
     "--clamp-ripple", help=f"RCD clamp: capacitor ripple, e.g. 10V or 5% [{DEFAULT_CLAMP_RIPPLE}]."
 )
+@click.option(
+    "--run",
+    "run",
+    metavar="RUN",
+    help="Propose for every point of a stored run (id or 'latest'), worst peak first.",
+)
+@db_option("The store holding --run.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object (SI numbers).")
-def command(as_json: bool, clamp_ripple: str | None, **options: str | None) -> None:
+def command(
+    as_json: bool, clamp_ripple: str | None, run: str | None, db_path: Path, **options: str | None
+) -> None:
     """Propose Rs and Cs from the ring frequency and L (or an added-capacitance measurement),
     and size an RCD clamp when --clamp-voltage, --peak-current and --reflected-voltage are given.
+
+    With --run, the ring frequency and step voltage of every point of a stored run are used,
+    with the run's switching frequency, leakage inductance (or --leakage) and resistor budget
+    (or --loss-budget / --cs).
     """
+    if run is not None:
+        _run_proposals(run, db_path, options, as_json)
+        return
     values = {
         keyword: option_quantity(options[option.lstrip("-").replace("-", "_")], unit, option)
         for keyword, (option, unit) in {**OPTIONS, **CLAMP_OPTIONS}.items()
@@ -174,3 +192,78 @@ def command(as_json: bool, clamp_ripple: str | None, **options: str | None) -> N
     if tool is not None:
         blocks.append(comparison_text(proposal.loss_w, clamp.clamp_loss_w))
     click.echo("\n".join(blocks))
+
+
+def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_json: bool) -> None:
+    """``design --run``: one RC proposal per measured point of a stored run, worst peak first."""
+    from labseq.runner import stored_sequence
+    from labseq.store import Store
+
+    given = {k: option_quantity(options[k], unit, f"--{k.replace('_', '-')}") for k, unit in
+             (("leakage", "H"), ("loss_budget", "W"), ("cs", "F"))}  # fmt: skip
+    with Store(db_path, create=False) as store:
+        run_id = resolve_run(store, run)
+        sequence = stored_sequence(store, run_id)
+        points = store.points(run_id, status="done")
+        figures = store.point_figures(run_id)
+    leakage_h = given["leakage"] or sequence.dut.leakage_inductance_h
+    if leakage_h is None:
+        raise InputError(
+            f"design --run {run_id}: the run's sequence declares no leakage inductance; give "
+            "--leakage, or measure the ring with and without a known added capacitance and use "
+            "--ring-freq, --added-cap and --ring-freq-added"
+        )
+    cs_f = given["cs"]
+    budget_w = None if cs_f is not None else given["loss_budget"]
+    budget_w = budget_w or (None if cs_f is not None else sequence.snubber.resistor_power_budget_w)
+    rows = []
+    for point in points:
+        point_figures = figures.get(point.id, {})
+
+        def mean(name: str, figures_of_point: dict = point_figures) -> float | None:
+            return figures_of_point.get(name, {}).get("mean")
+
+        ring_hz, plateau_v, base_v = mean("ring_frequency_hz"), mean("plateau_v"), mean("base_v")
+        if ring_hz is None or plateau_v is None or base_v is None:
+            continue  # no ring fitted at this point: nothing to size from
+        try:
+            proposal = propose_snubber(
+                ring_freq_hz=ring_hz,
+                leakage_h=leakage_h,
+                volts=plateau_v - base_v,
+                fsw_hz=sequence.dut.switching_frequency_hz,
+                loss_budget_w=budget_w,
+                cs_f=cs_f,
+            )
+        except DesignInputError as exc:
+            raise InputError(f"design --run {run_id}: {_with_option_names(str(exc))}") from None
+        peak_v = point_figures.get("peak_v", {}).get("worst")
+        rows.append((peak_v if peak_v is not None else float("-inf"), point, proposal))
+    if not rows:
+        raise InputError(f"design --run {run_id}: no point of the run has a fitted ring")
+    rows.sort(key=lambda row: -row[0])
+    if as_json:
+        click.echo(
+            json.dumps(
+                [
+                    {"line_v": p.line_v, "load_a": p.load_a, "peak_v": peak, **prop.as_dict()}
+                    for peak, p, prop in rows
+                ],
+                indent=2,
+            )
+        )
+        return
+    click.echo(
+        f"run {run_id}: {len(rows)} points, worst peak first; L = {format_si(leakage_h, 'H')}, "
+        f"fsw = {format_si(sequence.dut.switching_frequency_hz, 'Hz')}"
+    )
+    for peak_v, point, prop in rows:
+        zeta = "—" if prop.damping_ratio is None else f"{prop.damping_ratio:.2f}"
+        click.echo(
+            f"{format_si(point.line_v, 'V'):>7} / {format_si(point.load_a, 'A'):<8} "
+            f"peak {format_si(peak_v, 'V'):>7}  ring {format_si(prop.ring_freq_hz, 'Hz'):>9}  "
+            f"Cpar {format_si(prop.c_par_f, 'F'):>7}  Rs {format_si(prop.r_ohm, 'Ω'):>7}  "
+            f"Cs {format_si(prop.cs_f, 'F'):>7}  loss {format_si(prop.loss_w, 'W'):>7}  ζ {zeta}"
+        )
+        for warning in prop.warnings:
+            click.echo(f"    warning: {warning}")
