@@ -95,3 +95,24 @@ def test_crossing_and_band_entry_interpolate_linearly() -> None:
     # Band 10 ± 0.5: last outside sample is index 5 (11.0), enters on 10.5 at 5 + 0.5/0.6.
     assert last_band_entry(v, 10.0, 0.5, 0, v.size) == pytest.approx(5 + 0.5 / 0.6)
     assert last_band_entry(v[:6], 10.0, 0.5, 0, 6) is None  # ends outside: not settled
+
+
+def test_state_levels_survive_a_ring_that_overshoots_by_the_whole_step():
+    # A CCM switch node: 40 % of each period on (0 V), 60 % off at a 61 V plateau, an
+    # under-damped ring (ζ = 0.06, 20 MHz, 75 V) that reaches about twice the plateau. The middle of
+    # the range then lies above the plateau, so IEEE 181's midpoint split would put both states
+    # in its lower half; with Otsu's split (Otsu, IEEE Trans. SMC 1979) the modes are the true
+    # state levels, which IEEE Std 181-2011 5.2.1.3 defines as the histogram modes.
+    dt, period = 1e-9, 5e-6
+    t = np.arange(20_000) * dt
+    phase = np.mod(t, period)
+    off = phase >= 0.4 * period
+    tau = phase - 0.4 * period
+    zeta, f = 0.06, 20e6
+    ring = 75.0 * np.exp(-zeta * 2 * np.pi * f * tau) * np.sin(2 * np.pi * f * tau)
+    v = np.where(off, 61.0 + ring, 0.0)
+    v = np.round(v / (250 / 256)) * (250 / 256)  # 8-bit steps over 250 V
+    assert 0.5 * (v.max() + v.min()) > 61.0  # the middle of the range is above the plateau
+    low, high = histogram_state_levels(v)
+    assert low == pytest.approx(0.0, abs=1.0)
+    assert high == pytest.approx(61.0, abs=1.0)

@@ -56,6 +56,28 @@ def histogram_mode(
     return _mode_of(x, lo, hi, bins)
 
 
+def otsu_threshold(samples: np.ndarray, lo: float, hi: float, bins: int) -> float:
+    """Level that splits ``samples`` into two classes of maximal between-class variance.
+
+    Otsu, N., "A threshold selection method from gray-level histograms", IEEE Transactions on
+    Systems, Man, and Cybernetics 9(1), 1979: over the histogram's bin edges, maximise
+    w0·w1·(μ0 − μ1)², with w the class weights and μ the class means.
+    """
+    width = (hi - lo) / bins
+    index = ((samples - lo) / width).astype(np.intp)
+    np.clip(index, 0, bins - 1, out=index)
+    counts = np.bincount(index, minlength=bins).astype(float)
+    centres = lo + (np.arange(bins) + 0.5) * width
+    w0 = np.cumsum(counts)[:-1]
+    m0 = np.cumsum(counts * centres)[:-1]
+    w1 = counts.sum() - w0
+    valid = (w0 > 0) & (w1 > 0)
+    mu0 = np.divide(m0, w0, out=np.zeros_like(m0), where=valid)
+    mu1 = np.divide(m0[-1] + counts[-1] * centres[-1] - m0, w1, out=np.zeros_like(m0), where=valid)
+    between = np.where(valid, w0 * w1 * (mu0 - mu1) ** 2, -1.0)
+    return lo + (int(np.argmax(between)) + 1) * width
+
+
 def histogram_state_levels(volts: np.ndarray, bins: int = HISTOGRAM_BINS) -> tuple[float, float]:
     """Low and high state levels of a two-state record by the histogram mode method.
 
@@ -66,22 +88,26 @@ def histogram_state_levels(volts: np.ndarray, bins: int = HISTOGRAM_BINS) -> tup
 
     Returns
     -------
-    (low_v, high_v) : mode of the lower and of the upper half of the histogram.
+    (low_v, high_v) : mode of the lower and of the upper part of the histogram.
 
     Notes
     -----
-    IEEE Std 181-2011, 5.2.1.3 (mode method): the histogram of the record is split at the middle
-    of its range and each state level is the mode of its half.
+    IEEE Std 181-2011, 5.2.1.3 (mode method): the histogram is split in two and each state level
+    is the mode of its part. The standard splits at the middle of the record's range; a switch
+    node's ring can overshoot the plateau by as much as the step itself, which drags the middle
+    up to the plateau and puts both states in the lower part. The split here is Otsu's threshold
+    (:func:`otsu_threshold`), which falls between the two populous states however far the ring
+    reaches; on a record without overshoot both splits give the same two modes.
     """
     x = _subsample(np.asarray(volts, dtype=float))
     lo, hi = float(np.min(x)), float(np.max(x))
     if hi == lo:
         return lo, hi
-    middle = 0.5 * (lo + hi)
+    split = otsu_threshold(x, lo, hi, bins)
     half_bins = max(1, bins // 2)
     return (
-        _mode_of(x[x <= middle], lo, middle, half_bins),
-        _mode_of(x[x >= middle], middle, hi, half_bins),
+        _mode_of(x[x < split], lo, split, half_bins),
+        _mode_of(x[x >= split], split, hi, half_bins),
     )
 
 
