@@ -129,8 +129,9 @@ class FlybackModel:
         self._points = OrderedDict()
         # rectifier solutions per (line V, line Hz, load A); small, one per grid point
         self._rectified: dict[tuple[float, float, float], tuple[float, float, float]] = {}
-        # converged (x, Jacobian) per load and bus voltage: starting points for nearby buses
-        self._solved: dict[float, dict[float, tuple[np.ndarray, np.ndarray]]] = {}
+        # converged (x, Jacobian, rectifier losses W) per load and bus voltage: starting points
+        # for nearby buses
+        self._solved: dict[float, dict[float, tuple[np.ndarray, np.ndarray, float]]] = {}
 
     # --- line side ------------------------------------------------------------------------------
 
@@ -321,8 +322,7 @@ class FlybackModel:
         secondary = SecondaryNetwork(d, bulk_v) if d.secondary is not None else None
         output_w = d.output_voltage_v * load_a
         fixed_w = output_w * (1.0 + d.other_loss_fraction)
-        x, jacobian = self._initial_guess(bulk_v, load_a, fixed_w)
-        secondary_w = 0.0
+        x, jacobian, secondary_w = self._initial_guess(bulk_v, load_a, fixed_w)
         for _ in range(MAX_ITERATIONS):
             x, jacobian, primary, period = self._converge(
                 network, x, jacobian, fixed_w + secondary_w
@@ -349,7 +349,7 @@ class FlybackModel:
                 break
         else:
             raise RuntimeError(f"rectifier losses did not settle at {bulk_v} V, {load_a} A")
-        self._solved.setdefault(load_a, {})[bulk_v] = (x.copy(), jacobian)
+        self._solved.setdefault(load_a, {})[bulk_v] = (x.copy(), jacobian, secondary_w)
         other_w = output_w * d.other_loss_fraction
         op = _operating_point(d, bulk_v, load_a, primary, period, other_w, rectifier)
         grid_s = np.arange(period.node_v.size) * period.grid_dt_s
@@ -426,16 +426,17 @@ class FlybackModel:
 
     def _initial_guess(
         self, bulk_v: float, load_a: float, fixed_w: float
-    ) -> tuple[np.ndarray, np.ndarray | None]:
+    ) -> tuple[np.ndarray, np.ndarray | None, float]:
         """Start from solved points at the same load (interpolated in bus voltage), else afresh.
 
-        The clamp voltage is interpolated as its excess over the bus, which varies slowly.
+        The clamp voltage is interpolated as its excess over the bus, which varies slowly; the
+        Jacobian and the rectifier's losses are the nearest point's.
         """
         d = self.design
         solved = self._solved.get(load_a, {})
         if not solved:
             x = [fixed_w * 1.05] + ([bulk_v + d.clamp_voltage_v] if d.has_clamp else [])
-            return np.array(x), None
+            return np.array(x), None, 0.0
         nearest = sorted(solved, key=lambda v: abs(v - bulk_v))[:2]
         as_excess = np.array([0.0, 1.0])[: len(solved[nearest[0]][0])]
         points = [(v, solved[v][0] - as_excess * v) for v in nearest]
@@ -446,7 +447,8 @@ class FlybackModel:
             guess = x0 + (x1 - x0) * (bulk_v - v0) / (v1 - v0)
         guess = guess + as_excess * bulk_v
         guess[0] = max(guess[0], fixed_w)
-        return guess, solved[nearest[0]][1].copy()
+        _, jacobian, secondary_w = solved[nearest[0]]
+        return guess, jacobian.copy(), secondary_w
 
 
 def _broyden(jacobian: np.ndarray, dx: np.ndarray, dfx: np.ndarray) -> np.ndarray:

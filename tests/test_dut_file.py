@@ -158,3 +158,64 @@ def test_optional_clamp_table_is_checked_when_present(tmp_path: Path) -> None:
         load_dut(write(tmp_path, text))
     design = load_dut(write(tmp_path, text + 'capacitance = "2.2nF"\n'))
     assert design.clamp_voltage_v == 60.0 and design.clamp_capacitance_f == pytest.approx(2.2e-9)
+
+
+def test_demo_rectifiers_match_their_briefed_classes() -> None:
+    # The demo scenarios: telecom with a 60-100 V Schottky, offline with a 150-200 V
+    # fast-recovery pn diode and an RC damper across it.
+    telecom, offline = load_dut(DEMO_DUTS["telecom_dc"]), load_dut(DEMO_DUTS["offline_ac"])
+    assert telecom.secondary.kind == "schottky" and telecom.secondary.carrier_lifetime_s == 0.0
+    assert 60.0 <= telecom.secondary.reverse_rating_v <= 100.0
+    assert offline.secondary.kind == "pn" and offline.secondary.has_snubber
+    assert 150.0 <= offline.secondary.reverse_rating_v <= 200.0
+    assert offline.secondary.carrier_lifetime_s == pytest.approx(20e-9)  # written "20ns"
+    assert offline.secondary.snubber_capacitance_f == pytest.approx(470e-12)  # written "470pF"
+    for design in (telecom, offline):
+        # reverse plateau Vin/n + Vout at high line under the rating (flyback relation, Erickson
+        # & Maksimović, Fundamentals of Power Electronics, flyback chapter)
+        peak_bus_v = design.line_max_v * (math.sqrt(2) if design.line_kind == "ac" else 1.0)
+        plateau_v = peak_bus_v / design.turns_ratio + design.output_voltage_v
+        assert plateau_v < design.secondary.reverse_rating_v
+
+
+def test_secondary_table_is_optional(tmp_path: Path) -> None:
+    without = TELECOM_TEXT.split("\n[secondary]")[0] + "\n"
+    assert load_dut(write(tmp_path, without)).secondary is None
+
+
+@pytest.mark.parametrize(
+    ("old", "new", "pattern"),
+    [
+        (
+            'kind = "schottky"',
+            'kind = "zener"',
+            r"\[secondary\] kind = 'zener'.*'schottky' or 'pn'",
+        ),
+        ('kind = "schottky"', 'kind = "pn"', r"\[secondary\] carrier_lifetime is missing"),
+        (
+            'reverse_rating = "100 V"',
+            'reverse_rating = "100 V"\ncarrier_lifetime = "20ns"',
+            r"\[secondary\] carrier_lifetime is for kind = 'pn' only",
+        ),
+        (
+            'series_resistance = "30mohm"',
+            'series_resistance = "30mohm"\nsnubber_capacitance = "1nF"',
+            r"\[secondary\] snubber_resistance = 0.*snubber_capacitance = 0",
+        ),
+        (
+            'junction_capacitance = "250pF"',
+            'junction_capacitence = "250pF"',
+            r"\[secondary\] 'junction_capacitence'.*did you mean 'junction_capacitance'",
+        ),
+        ('reverse_rating = "100 V"', 'reverse_rating = "100 A"', r"reverse_rating.*expected V"),
+        ('loop_inductance = "10nH"', 'loop_inductance = "-1nH"', r"loop_inductance.*≥ 0"),
+    ],
+)
+def test_secondary_table_errors_name_file_and_key(
+    tmp_path: Path, old: str, new: str, pattern: str
+) -> None:
+    assert old in TELECOM_TEXT
+    path = write(tmp_path, TELECOM_TEXT.replace(old, new, 1))
+    with pytest.raises(DutFileError, match=pattern) as caught:
+        load_dut(path)
+    assert str(path) in str(caught.value)
