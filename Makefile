@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test clean ngspice
+.PHONY: demo test soak clean ngspice
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -34,6 +34,11 @@ test: $(STAMP) ngspice
 	$(BIN)/ruff check .
 	$(BIN)/python -m pytest -q -p no:cacheprovider --ignore=tests/benchmarks
 	$(BIN)/python -m pytest -q -s -p no:cacheprovider tests/benchmarks
+
+# A multi-hour sweep compressed in simulated time (>= 500 points, >= 2000 captures): memory and
+# per-point time must stay flat. Kept out of `make test` for its length.
+soak: $(STAMP)
+	$(BIN)/python -m pytest -q -s -p no:cacheprovider -m slow tests/benchmarks/soak.py
 
 # ngspice (a Debian package) is the second reference for the nonlinear switch-node checks; where it
 # cannot be installed (no root, no apt) those checks skip and say why.

@@ -9,6 +9,7 @@ code changes. ``generic.toml`` documents every key.
 from __future__ import annotations
 
 import difflib
+import math
 import string
 import tomllib
 from collections.abc import Mapping
@@ -180,6 +181,8 @@ def _get(path: Path, table: Mapping[str, Any], key: str, kind: type | tuple[type
     if isinstance(value, bool) or not isinstance(value, kind):
         names = kind.__name__ if isinstance(kind, type) else " or ".join(k.__name__ for k in kind)
         raise CommandMapError(f"{path}: key {key!r} must be {names}, got {value!r}")
+    if isinstance(value, float) and not math.isfinite(value):
+        raise CommandMapError(f"{path}: key {key!r} must be a finite number, got {value!r}")
     return value
 
 
@@ -228,14 +231,25 @@ def _validate(document: dict[str, Any], path: Path) -> CommandMap:
         code_min=code_min,
         code_max=code_max,
         scaling_fields=_scaling_fields(path, document),
-        acquisition_done_reply=_safe(
-            path, "acquisition_done_reply", _get(path, document, "acquisition_done_reply", str)
-        ),
+        acquisition_done_reply=_done_reply(path, document),
         commands=_commands(path, _get(path, document, "commands", dict)),
         words=_words(path, document.get("words", {})),
         limits=_limits(path, document.get("limits", {})),
         source=path,
     )
+
+
+def _done_reply(path: Path, document: Mapping[str, Any]) -> str:
+    """The reply that says a single acquisition is in: one non-empty token."""
+    reply = _safe(
+        path, "acquisition_done_reply", _get(path, document, "acquisition_done_reply", str)
+    )
+    if not reply.strip() or reply != reply.strip():
+        raise CommandMapError(
+            f"{path}: acquisition_done_reply = {reply!r} must be the scope's reply as sent, "
+            'without surrounding spaces, e.g. "1"'
+        )
+    return reply
 
 
 def _scaling_fields(path: Path, document: Mapping[str, Any]) -> tuple[str, ...]:
@@ -275,9 +289,20 @@ def _commands(path: Path, table: Mapping[str, Any]) -> Mapping[str, str]:
 
 def _check_placeholders(path: Path, key: str, template: str, expected: frozenset[str]) -> None:
     try:
-        used = {name for _, name, _, _ in string.Formatter().parse(template) if name is not None}
+        fields_used = [
+            (name, spec, conversion)
+            for _, name, spec, conversion in string.Formatter().parse(template)
+            if name is not None
+        ]
     except ValueError as error:
         raise CommandMapError(f"{path}: commands.{key} = {template!r}: {error}") from None
+    for name, spec, conversion in fields_used:
+        if spec or conversion:
+            raise CommandMapError(
+                f"{path}: commands.{key} = {template!r}: placeholders take no format or "
+                f"conversion; write {{{name}}} alone"
+            )
+    used = {name for name, _, _ in fields_used}
     unknown = used - expected
     if unknown:
         allowed = ", ".join(f"{{{name}}}" for name in sorted(expected)) or "none"

@@ -575,13 +575,22 @@ def _resolve_sim_dut(out: _Collector, key: str, value: Any, seq_dir: Path) -> tu
 
 
 def _resolve_scope_map(out: _Collector, key: str, value: str, seq_dir: Path) -> str | None:
-    """A scope command-map family shipped in instruments/command_maps, or a file path."""
+    """A scope command-map family shipped in instruments/command_maps, or a file path; a file
+    is loaded and validated here, so a bad map is reported before anything is opened."""
     if value.endswith(".toml") or "/" in value or "\\" in value:
+        from instruments.command_map import load_command_map
+        from instruments.errors import CommandMapError
+
         path = seq_dir / value
-        if path.is_file():
-            return str(path)
-        out.fail(key, f"no command-map file {path}")
-        return None
+        if not path.is_file():
+            out.fail(key, f"no command-map file {path}")
+            return None
+        try:
+            load_command_map(path)
+        except CommandMapError as error:
+            out.fail(key, f"the command map cannot be used: {error}")
+            return None
+        return str(path)
     shipped = resources.files("instruments") / "command_maps"
     families = sorted(p.name[:-5] for p in shipped.iterdir() if p.name.endswith(".toml"))
     if value in families:

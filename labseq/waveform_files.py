@@ -12,7 +12,6 @@ Every problem becomes an :class:`~labseq.errors.InputError` naming the file and 
 from __future__ import annotations
 
 import warnings
-import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -66,6 +65,15 @@ def _read_csv(path: Path) -> tuple[np.ndarray, np.ndarray]:
     return table[:, 0], table[:, 1]
 
 
+def _real(path: Path, name: str, values: np.ndarray) -> np.ndarray:
+    """``values`` as float64, refusing what is not real numbers (text, dates, complex)."""
+    if values.dtype.kind not in "iuf":
+        raise InputError(
+            f"{path}: {name} holds {values.dtype} values; expected real numbers (int or float)"
+        )
+    return values.astype(float).ravel()
+
+
 def _read_npy(path: Path) -> tuple[np.ndarray, np.ndarray]:
     array = np.load(path, allow_pickle=False)
     if array.dtype.names:
@@ -75,10 +83,10 @@ def _read_npy(path: Path) -> tuple[np.ndarray, np.ndarray]:
                 f"{path}: structured array has fields {list(array.dtype.names)}; "
                 f"expected {list(CSV_HEADER)}"
             )
-        return array["time_s"].astype(float).ravel(), array["volts"].astype(float).ravel()
+        return _real(path, "time_s", array["time_s"]), _real(path, "volts", array["volts"])
     if array.ndim != 2 or array.shape[1] != 2:
         raise InputError(f"{path}: array of shape {array.shape}; expected N×2 (time_s, volts)")
-    return array[:, 0].astype(float), array[:, 1].astype(float)
+    return _real(path, "time_s", array[:, 0]), _real(path, "volts", array[:, 1])
 
 
 def _read_npz(path: Path) -> tuple[np.ndarray, np.ndarray]:
@@ -86,8 +94,8 @@ def _read_npz(path: Path) -> tuple[np.ndarray, np.ndarray]:
         missing = [name for name in CSV_HEADER if name not in archive.files]
         if missing:
             raise InputError(f"{path}: holds arrays {archive.files}; expected {list(CSV_HEADER)}")
-        time_s = np.asarray(archive["time_s"], dtype=float).ravel()
-        volts = np.asarray(archive["volts"], dtype=float).ravel()
+        time_s = _real(path, "time_s", archive["time_s"])
+        volts = _real(path, "volts", archive["volts"])
     if time_s.size != volts.size:
         raise InputError(f"{path}: time_s has {time_s.size} values but volts {volts.size}")
     return time_s, volts
@@ -136,6 +144,12 @@ def read_waveform(path: Path | str) -> Waveform:
         raise InputError(f"{path}: no such file")
     try:
         time_s, volts = reader(path)
-    except (OSError, ValueError, zipfile.BadZipFile, EOFError) as exc:
-        raise InputError(f"{path}: cannot read it as {path.suffix} data: {exc}") from None
+    except InputError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - numpy's parsers raise many types on a bad file
+        # (ValueError, EOFError, BadZipFile, and tokenize or syntax errors from a mangled .npy
+        # header): each one means the file is not readable data, which the user can act on
+        raise InputError(
+            f"{path}: cannot read it as {path.suffix} data: {type(exc).__name__}: {exc}"
+        ) from None
     return check_uniform(path, np.asarray(time_s, dtype=float), np.asarray(volts, dtype=float))

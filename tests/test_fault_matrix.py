@@ -208,6 +208,7 @@ def test_fault_ends_safe_and_resume_completes(
         messages = "\n".join(event["message"] for event in store.events(run_id))
         named = re.search(EVENT_PATTERNS[kind], messages, re.IGNORECASE)
         assert store.integrity_check() == "ok"
+        status = store.run(run_id).status
         before = _digests(store, run_id)
 
         def resume() -> None:
@@ -224,7 +225,7 @@ def test_fault_ends_safe_and_resume_completes(
             Row(
                 spec,
                 landed,
-                store.run(run_id).status,
+                status,
                 safe,
                 len(before),
                 after,
@@ -285,6 +286,7 @@ def test_signal_at_a_random_moment_ends_safe_and_resume_completes(
         assert _bench_off(sim)
     with Store(db, create=False) as store:
         assert store.integrity_check() == "ok"
+        status = store.run(1).status  # "running" after SIGKILL: nobody could mark it
         before = _digests(store, 1)
     mark = len(sim.state.line_history)
     with pytest.raises(SystemExit) as resumed:
@@ -303,7 +305,7 @@ def test_signal_at_a_random_moment_ends_safe_and_resume_completes(
             Row(
                 f"{signal_name} after {wait_for} captures + {delay_s * 1e3:.0f} ms",
                 f"capture {len(before) + 1}",
-                store.run(1).status,
+                status,
                 _bench_off(sim),
                 len(before),
                 len(after),
@@ -321,7 +323,7 @@ def test_matrix_table_and_totals(capsys: pytest.CaptureFixture[str]) -> None:
     expected = len(_fault_cases()) + len(SIGNAL_CASES)
     if len(RESULTS) != expected:
         pytest.skip(f"{len(RESULTS)} of {expected} cases ran in this session: no full table")
-    header = ("case", "landed", "run status", "safe", "before", "after", "lost", "event")
+    header = ("case", "landed", "status before resume", "safe", "before", "after", "lost", "event")
     rows = [
         (
             r.case,
