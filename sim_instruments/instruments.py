@@ -418,7 +418,7 @@ class SimScope(SimInstrument):
             try:
                 source = self.state.probed_nodes(rng)
                 capture = None if source is None else acquisition.acquire(*source, settings, rng)
-            except (ValueError, ArithmeticError, MemoryError) as error:
+            except (ValueError, ArithmeticError, MemoryError, RuntimeError) as error:
                 with self.lock:
                     self.push_error(CommandError(-300, f"acquisition failed: {error}"))
                 return
