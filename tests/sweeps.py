@@ -28,7 +28,7 @@ def demo_sequence(
     resources: dict[str, str] | None = None,
     on_point_error: str | None = None,
     timeout: str = "1 s",
-    acquisition_timeout: str = "1 s",
+    acquisition_timeout: str = "2 s",
     settle: str | None = None,
     name: str = "sweep.toml",
 ) -> Path:

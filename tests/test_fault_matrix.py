@@ -70,7 +70,11 @@ EVENT_PATTERNS = {
     "SIGTERM": r"interrupted by SIGTERM",
     "SIGKILL": r"run abandoned: its process \d+",
 }
-SHORT_TIMEOUT = "0.3 s"
+#: Reply and acquisition timeouts: short, so that the no-reply and no-trigger cases end soon, yet
+#: long enough that a busy machine never turns the first capture at a new operating point (the
+#: simulated DUT solves its steady state then, up to a few hundred ms) into a false fault.
+REPLY_TIMEOUT = "1 s"
+ACQUISITION_TIMEOUT = "2 s"
 SIGNAL_CASES = [(sig, index) for sig in ("SIGINT", "SIGTERM", "SIGKILL") for index in (1, 2)]
 
 
@@ -106,8 +110,8 @@ def _sweep(tmp_path: Path, sim: SimBench, **options: object) -> Path:
         loads=LOADS,
         captures=CAPTURES,
         resources=sim.resources,
-        timeout=SHORT_TIMEOUT,
-        acquisition_timeout=SHORT_TIMEOUT,
+        timeout=REPLY_TIMEOUT,
+        acquisition_timeout=ACQUISITION_TIMEOUT,
         **options,
     )
 

@@ -179,8 +179,10 @@ def _finite_numbers(text: str) -> list[float] | None:
     items = [item.strip() for item in text.split(",")]
     if not all(re.fullmatch(NRF, item) for item in items):
         return None
+    if any(re.fullmatch(r"(?i:inf|infinity|ninf|ninfinity|nan)", item) for item in items):
+        return None  # a keyword for a value that is not finite
     values = [float(item) for item in items]
-    return values if all(abs(v) < float("inf") and v == v for v in values) else None
+    return values if all(abs(v) < float("inf") for v in values) else None
 
 
 def acceptable(kind: str, action: Action) -> bool:

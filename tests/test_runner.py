@@ -134,8 +134,7 @@ def test_fault_skips_the_point_ends_safe_and_resume_completes(
         loads=["1 A", "2 A"],
         captures=2,
         resources=sim.resources,
-        timeout="0.5 s",
-        acquisition_timeout="0.5 s",
+        timeout="1 s",
     )
     sequence = load_sequence(path)
     with Store(tmp_path / "run.sqlite") as store:
@@ -168,7 +167,6 @@ def test_abort_policy_stops_at_the_failing_point(tmp_path, make_sim_bench):
         captures=1,
         resources=sim.resources,
         on_point_error="abort",
-        acquisition_timeout="0.3 s",
     )
     sequence = load_sequence(path)
     with Store(tmp_path / "run.sqlite") as store:
