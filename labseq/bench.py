@@ -10,7 +10,7 @@ from __future__ import annotations
 import time
 from collections.abc import Callable
 from contextlib import suppress
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 from instruments import (
@@ -93,16 +93,43 @@ class Bench:
             self.sim.stop()
 
 
-def _sim_resources(sequence: Sequence, faults: str, seed: int) -> tuple[Any, dict[str, str]]:
-    """Start the simulated bench for ``sequence`` with its snubber fitted; return it and its
-    resources."""
-    from sim_instruments.bench import SimBench
-    from sim_instruments.faults import FaultSpecError
+def sim_design(sequence: Sequence) -> Any:
+    """The simulated DUT with the sequence's parts fitted: its snubber across the switch, its
+    clamp's R and C in place of the DUT file's (whose nominal clamp voltage stays the solver's
+    start), and a node's snubber across the output rectifier it probes (channel 2). A node
+    without a snubber leaves the DUT file's rectifier damper as it is."""
     from sim_instruments.flyback import load_dut
+    from sim_instruments.instruments import SECONDARY_CHANNEL
 
     design = load_dut(sequence.bench.sim_dut_path).with_snubber(
         sequence.snubber.resistance_ohm, sequence.snubber.capacitance_f
     )
+    clamp = sequence.clamp
+    if clamp is not None and design.has_clamp:
+        design = replace(
+            design,
+            clamp_resistance_ohm=clamp.resistance_ohm,
+            clamp_capacitance_f=clamp.capacitance_f,
+        )
+    for node in sequence.nodes[1:]:
+        snubber = node.snubber
+        if node.channel == SECONDARY_CHANNEL and design.secondary and snubber is not None:
+            rectifier = replace(
+                design.secondary,
+                snubber_resistance_ohm=snubber.resistance_ohm,
+                snubber_capacitance_f=snubber.capacitance_f,
+            )
+            design = replace(design, secondary=rectifier)
+    return design
+
+
+def _sim_resources(sequence: Sequence, faults: str, seed: int) -> tuple[Any, dict[str, str]]:
+    """Start the simulated bench for ``sequence`` with its parts fitted (:func:`sim_design`);
+    return it and its resources."""
+    from sim_instruments.bench import SimBench
+    from sim_instruments.faults import FaultSpecError
+
+    design = sim_design(sequence)
     try:
         sim = SimBench(design, faults=faults, seed=seed).start()
     except FaultSpecError as error:

@@ -19,22 +19,32 @@ quantisation (:data:`NOISE_FLOORS`). A change beyond the threshold is "better" o
 figure's direction: lower peak, overshoot, Q, settling time and snubber loss are better; higher
 damping ratio, stress margin and efficiency are better. A point regressed when any gated figure
 got worse or its verdict went from pass to fail.
+
+Nodes
+-----
+A run may capture several nodes per point (the primary switch node first, then e.g. a secondary
+rectifier). ``PointReview.figures`` and the run's ``worst`` are the primary's, so a single-node
+run reads as it always did; :meth:`RunReview.node_view` gives the same review for any node, with
+that node's figures and verdicts. A falling node keeps its own sign: its peak is negative and a
+more negative peak is worse. A compare matches (point, node): each node's figures are compared
+at every matched point, and a worse gated figure of any node makes the point regress.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
 
 from labseq.analysis.capture import FIGURE_UNITS
+from labseq.analysis.verdict import SIGNED_FIGURES
 from labseq.errors import InputError
+from labseq.sequence import NodeSpec, parse_sequence
 from labseq.sequence import Sequence as SequenceFile
-from labseq.sequence import parse_sequence
-from labseq.store import PointRecord, RunRecord, Store
+from labseq.store import PRIMARY_NODE, PointRecord, RunRecord, Store
 from labseq.units import format_si
 
 #: Figures a review reports, in the order a reviewer reads them, with their direction:
@@ -48,6 +58,8 @@ FIGURE_DIRECTIONS: dict[str, int] = {
     "q_factor": -1,
     "settling_time_s": -1,
     "snubber_loss_w": -1,
+    "clamp_level_v": -1,
+    "clamp_loss_w": -1,
     "efficiency": +1,
 }
 
@@ -63,6 +75,8 @@ FIGURE_TITLES: dict[str, str] = {
     "snubber_loss_w": "snubber loss",
     "efficiency": "efficiency",
     "ring_frequency_hz": "ring frequency",
+    "clamp_level_v": "clamp level",
+    "clamp_loss_w": "clamp loss",
 }
 
 #: Smallest change taken as real, per figure: about one 8-bit code on a 250 V screen for volts,
@@ -77,6 +91,8 @@ NOISE_FLOORS: dict[str, float] = {
     "q_factor": 0.05,
     "settling_time_s": 2e-9,
     "snubber_loss_w": 1e-3,
+    "clamp_level_v": 1.0,
+    "clamp_loss_w": 1e-3,
     "efficiency": 1e-3,
 }
 
@@ -90,6 +106,13 @@ MINUS = "\u2212"
 
 
 # --------------------------------------------------------------------------- text helpers
+
+
+def figure_direction(figure: str, polarity: int = 1) -> int:
+    """+1 when a higher value of ``figure`` is better, −1 when lower is; turned round for a
+    signed figure (the peak) of a falling node, whose worse peak is the more negative."""
+    direction = FIGURE_DIRECTIONS[figure]
+    return -direction if polarity < 0 and figure in SIGNED_FIGURES else direction
 
 
 def figure_unit(figure: str) -> str:
@@ -155,10 +178,14 @@ class FigureStats:
 
 @dataclass(frozen=True)
 class PointReview:
-    """One stored point with its per-point figures."""
+    """One stored point with its per-point figures: ``figures`` of one node (the primary's
+    unless ``node`` names another), ``nodes`` of every node, and each node's verdict."""
 
     point: PointRecord
     figures: dict[str, FigureStats]
+    nodes: dict[str, dict[str, FigureStats]] = field(default_factory=dict)
+    node_verdicts: dict[str, tuple[str, list[str]]] = field(default_factory=dict)
+    node: str | None = None  # None: the point as a whole (its combined verdict)
 
     def value(self, figure: str) -> float | None:
         """The point's value of ``figure`` (None when not determined)."""
@@ -167,8 +194,22 @@ class PointReview:
 
     @property
     def verdict(self) -> str:
-        """pass / fail / incomplete; a point never judged (pending, skipped) is incomplete."""
+        """pass / fail / incomplete (of ``node`` when set, else the point's combined verdict);
+        a point never judged (pending, skipped) is incomplete."""
+        if self.node is not None and self.node in self.node_verdicts:
+            return self.node_verdicts[self.node][0]
         return self.point.verdict or "incomplete"
+
+    @property
+    def reasons(self) -> list[str]:
+        """Why the verdict is what it is (of ``node`` when set)."""
+        if self.node is not None and self.node in self.node_verdicts:
+            return self.node_verdicts[self.node][1]
+        return self.point.verdict_reasons
+
+    def of_node(self, node: str) -> PointReview:
+        """The same point seen through one node's figures and verdict."""
+        return replace(self, figures=self.nodes.get(node, {}), node=node)
 
 
 @dataclass(frozen=True)
@@ -193,6 +234,8 @@ class RunReview:
     worst: dict[str, WorstPoint]
     line_values_v: tuple[float, ...]
     load_values_a: tuple[float, ...]
+    node_names: tuple[str, ...] = (PRIMARY_NODE,)  # every node of the run, the primary first
+    node_name: str = PRIMARY_NODE  # the node whose figures ``points`` and ``worst`` hold
 
     @property
     def rated_load_a(self) -> float | None:
@@ -200,11 +243,38 @@ class RunReview:
         return self.sequence.dut.rated_load_a if self.sequence else None
 
     @property
+    def node_spec(self) -> NodeSpec | None:
+        """The sequence's description of the viewed node, when known."""
+        return self.sequence.node(self.node_name) if self.sequence else None
+
+    @property
+    def polarity(self) -> int:
+        """+1 for a node that rises at its edge, −1 for one that falls (by the sequence, else by
+        the sign of the stored peaks)."""
+        return node_polarity(self, self.node_name)
+
+    @property
+    def node_title(self) -> str:
+        """The viewed node's label ("Primary switch", "Secondary rectifier")."""
+        spec = self.node_spec
+        return spec.label if spec else self.node_name.capitalize()
+
+    @property
+    def peak_word(self) -> str:
+        """What the viewed node's peak is called: "peak stress" or "peak reverse voltage"."""
+        return "peak stress" if self.polarity > 0 else "peak reverse voltage"
+
+    @property
     def derated_rating_v(self) -> float | None:
-        """Switch rating × derating: what the peak may use."""
-        if self.sequence is None:
-            return None
-        return self.sequence.dut.switch_rating_v * self.sequence.dut.derating
+        """The viewed node's rating × derating: what the magnitude of its peak may use."""
+        spec = self.node_spec
+        return spec.derated_rating_v if spec else None
+
+    def node_view(self, node: str) -> RunReview:
+        """The same review through ``node``'s figures, worst points and verdicts."""
+        points = [point.of_node(node) for point in self.points]
+        polarity = node_polarity(self, node)
+        return replace(self, points=points, worst=worst_points(points, polarity), node_name=node)
 
     def label(self, point: PointReview) -> str:
         """The point's setpoints as text."""
@@ -262,10 +332,25 @@ def run_verdict(verdicts: Iterable[str]) -> str:
     return "pass"
 
 
-def worst_points(points: Sequence[PointReview]) -> dict[str, WorstPoint]:
-    """For each figure of :data:`FIGURE_DIRECTIONS`, the point with the worst value."""
+def node_polarity(review: RunReview, node: str) -> int:
+    """A node's polarity: from the sequence, else −1 when its stored peaks are negative."""
+    spec = review.sequence.node(node) if review.sequence else None
+    if spec is not None:
+        return spec.polarity
+    peaks = [
+        stats["peak_v"].value
+        for point in review.points
+        if "peak_v" in (stats := point.nodes.get(node, {}))
+    ]
+    return -1 if peaks and all(peak is not None and peak < 0 for peak in peaks) else 1
+
+
+def worst_points(points: Sequence[PointReview], polarity: int = 1) -> dict[str, WorstPoint]:
+    """For each figure of :data:`FIGURE_DIRECTIONS`, the point with the worst value (a falling
+    node's worst peak is its most negative)."""
     result: dict[str, WorstPoint] = {}
-    for figure, direction in FIGURE_DIRECTIONS.items():
+    for figure in FIGURE_DIRECTIONS:
+        direction = figure_direction(figure, polarity)
         candidates = [(p.value(figure), p) for p in points if p.value(figure) is not None]
         if not candidates:
             continue
@@ -275,17 +360,22 @@ def worst_points(points: Sequence[PointReview]) -> dict[str, WorstPoint]:
     return result
 
 
-def _point_reviews(store: Store, run_id: int) -> list[PointReview]:
-    figures = store.point_figures(run_id)
+def _point_reviews(store: Store, run_id: int, primary: str) -> list[PointReview]:
+    figures = store.node_figures(run_id)
+    verdicts = store.node_verdicts(run_id)
     reviews = []
     for point in store.points(run_id):
-        stats = {
-            name: FigureStats(v["worst"], v["mean"], v["spread"], int(v["n"] or 0))
-            for name, v in figures.get(point.id, {}).items()
+        nodes = {
+            node: {
+                name: FigureStats(v["worst"], v["mean"], v["spread"], int(v["n"] or 0))
+                for name, v in per_node.items()
+            }
+            for node, per_node in figures.get(point.id, {}).items()
         }
+        stats = nodes.setdefault(primary, {})
         if "efficiency" not in stats and point.efficiency is not None:
             stats["efficiency"] = FigureStats(point.efficiency, point.efficiency, None, 1)
-        reviews.append(PointReview(point, stats))
+        reviews.append(PointReview(point, stats, nodes, verdicts.get(point.id, {})))
     return reviews
 
 
@@ -301,8 +391,11 @@ def stored_sequence(run: RunRecord) -> tuple[SequenceFile | None, str | None]:
 def review_run(store: Store, run_id: int) -> RunReview:
     """Read run ``run_id`` and its points and work out its verdict, grid and worst points."""
     run = store.run(run_id)
-    points = _point_reviews(store, run_id)
     sequence, problem = stored_sequence(run)
+    stored_nodes = store.node_names(run_id)
+    declared = [node.name for node in sequence.nodes] if sequence else []
+    node_names = tuple(dict.fromkeys([*declared, *stored_nodes])) or (PRIMARY_NODE,)
+    points = _point_reviews(store, run_id, node_names[0])
     counts = {word: 0 for word in VERDICT_ORDER}
     for point in points:
         counts[point.verdict] += 1
@@ -316,23 +409,27 @@ def review_run(store: Store, run_id: int) -> RunReview:
         worst=worst_points(points),
         line_values_v=tuple(sorted({p.point.line_v for p in points})),
         load_values_a=tuple(sorted({p.point.load_a for p in points})),
+        node_names=node_names,
+        node_name=node_names[0],
     )
 
 
 def limit_rows(review: RunReview) -> list[tuple[str, str]]:
-    """The limits the run was judged against as (what, value) rows, in reading order."""
-    sequence = review.sequence
-    if sequence is None:
+    """The limits the viewed node was judged against as (what, value) rows, in reading order."""
+    spec = review.node_spec
+    if review.sequence is None or spec is None:
         return []
-    limits, dut = sequence.limits, sequence.dut
+    limits = spec.limits
+    primary = spec is review.sequence.primary
     rows = []
     if limits.max_peak_v is not None:
-        rows.append(("peak stress ≤", format_si(limits.max_peak_v, "V")))
+        what = review.peak_word if spec.polarity > 0 else f"|{review.peak_word}|"
+        rows.append((f"{what} ≤", format_si(limits.max_peak_v, "V")))
     rows.append(
         (
-            "switch rating × derating",
-            f"{format_si(dut.switch_rating_v, 'V')} × {dut.derating:g} = "
-            f"{format_si(dut.switch_rating_v * dut.derating, 'V')}",
+            ("switch rating" if primary else "rating") + " × derating",
+            f"{format_si(spec.rating_v, 'V')} × {spec.derating:g} = "
+            f"{format_si(spec.derated_rating_v, 'V')}",
         )
     )
     for name, relation, figure in (
@@ -347,12 +444,40 @@ def limit_rows(review: RunReview) -> list[tuple[str, str]]:
         if value is not None:
             rows.append((f"{FIGURE_TITLES[figure]} {relation}", format_figure(figure, value)))
     rows.append(("settling band", f"±{100 * limits.settling_band:.3g} % of the step"))
+    if spec.snubber is not None:
+        rows.append(("snubber", spec.snubber.label))
+    clamp = review.sequence.clamp
+    if primary and clamp is not None:
+        rows.append(("clamp", clamp.label))
     return rows
+
+
+def _node_limits(spec: NodeSpec) -> dict[str, Any]:
+    return {
+        **vars(spec.limits),
+        "rating_v": spec.rating_v,
+        "derating": spec.derating,
+        "polarity": "rising" if spec.polarity > 0 else "falling",
+        "channel": spec.channel,
+    }
+
+
+def _worst_summary(worst: Mapping[str, WorstPoint]) -> dict[str, Any]:
+    return {
+        figure: {
+            "point_index": found.point.point.point_index,
+            "line_v": found.point.point.line_v,
+            "load_a": found.point.point.load_a,
+            "value": found.value,
+        }
+        for figure, found in worst.items()
+    }
 
 
 def run_summary(review: RunReview) -> dict[str, Any]:
     """The review as plain data for JSON: verdict, limits, one row per point, worst points."""
     sequence = review.sequence
+    views = {name: review.node_view(name) for name in review.node_names}
     return {
         "run": review.run.id,
         "status": review.run.status,
@@ -368,8 +493,11 @@ def run_summary(review: RunReview) -> dict[str, Any]:
                 **vars(sequence.limits),
                 "switch_rating_v": sequence.dut.switch_rating_v,
                 "derating": sequence.dut.derating,
+                "nodes": {node.name: _node_limits(node) for node in sequence.nodes},
+                "clamp": None if sequence.clamp is None else vars(sequence.clamp),
             }
         ),
+        "nodes": list(review.node_names),
         "sequence_problem": review.sequence_problem,
         "points": [
             {
@@ -381,18 +509,21 @@ def run_summary(review: RunReview) -> dict[str, Any]:
                 "verdict": p.verdict,
                 "verdict_reasons": p.point.verdict_reasons,
                 "figures": {name: vars(stats) for name, stats in p.figures.items()},
+                "nodes": {
+                    name: {
+                        "verdict": p.of_node(name).verdict,
+                        "verdict_reasons": p.of_node(name).reasons,
+                        "figures": {
+                            figure: vars(stats) for figure, stats in p.nodes.get(name, {}).items()
+                        },
+                    }
+                    for name in review.node_names
+                },
             }
             for p in review.points
         ],
-        "worst": {
-            figure: {
-                "point_index": worst.point.point.point_index,
-                "line_v": worst.point.point.line_v,
-                "load_a": worst.point.point.load_a,
-                "value": worst.value,
-            }
-            for figure, worst in review.worst.items()
-        },
+        "worst": _worst_summary(review.worst),
+        "worst_by_node": {name: _worst_summary(view.worst) for name, view in views.items()},
     }
 
 
@@ -409,6 +540,7 @@ class FigureChange:
     delta: float | None
     threshold: float | None
     flag: str  # better, worse, unchanged, missing in baseline, missing in candidate
+    node: str | None = None  # None: the primary node
 
     @property
     def significance(self) -> float:
@@ -424,8 +556,14 @@ class PointChange:
 
     baseline: PointReview | None
     candidate: PointReview | None
-    changes: dict[str, FigureChange] = field(default_factory=dict)
+    changes: dict[str, FigureChange] = field(default_factory=dict)  # the primary node's
     gated: frozenset[str] = frozenset(FIGURE_DIRECTIONS)  # figures whose worsening counts
+    nodes: dict[str, dict[str, FigureChange]] = field(default_factory=dict)  # the other nodes'
+
+    @property
+    def all_changes(self) -> list[FigureChange]:
+        """Every figure change of every node, the primary's first."""
+        return [*self.changes.values(), *(c for per in self.nodes.values() for c in per.values())]
 
     @property
     def matched(self) -> bool:
@@ -450,15 +588,16 @@ class PointChange:
             return "missing in candidate"
         if self.baseline is None:
             return "missing in baseline"
-        flags = {change.flag for change in self.changes.values()}
+        flags = {change.flag for change in self.all_changes}
         if self.verdict_went_to_fail or self.worse(self.gated):
             return "worse"
         return "better" if "better" in flags else "unchanged"
 
     def worse(self, gated: Iterable[str]) -> list[FigureChange]:
-        """Gated figures that got worse beyond their threshold, most significant first."""
+        """Gated figures (of any node) that got worse beyond their threshold, most significant
+        first."""
         gated = set(gated)
-        found = [c for c in self.changes.values() if c.flag == "worse" and c.figure in gated]
+        found = [c for c in self.all_changes if c.flag == "worse" and c.figure in gated]
         return sorted(found, key=lambda c: -c.significance)
 
 
@@ -496,8 +635,12 @@ class Comparison:
 
     def label(self, change: PointChange) -> str:
         """The setpoints of a change as text (the candidate's when both runs have the point)."""
+        return self.label_of(change.either)
+
+    def label_of(self, point: PointReview) -> str:
+        """The setpoints of a point of either run as text."""
         rated = self.candidate.rated_load_a or self.baseline.rated_load_a
-        return point_label(change.either.point, rated)
+        return point_label(point.point, rated)
 
     @property
     def line_values_v(self) -> tuple[float, ...]:
@@ -539,10 +682,10 @@ class Comparison:
 
     def most_moved(self, count: int) -> list[PointChange]:
         """The matched points whose figures moved most, in units of their thresholds."""
-        matched = [p for p in self.points if p.matched and p.changes]
+        matched = [p for p in self.points if p.matched and p.all_changes]
 
         def moved(change: PointChange) -> float:
-            return max(c.significance for c in change.changes.values())
+            return max(c.significance for c in change.all_changes)
 
         return sorted(matched, key=moved, reverse=True)[:count]
 
@@ -561,7 +704,7 @@ class Comparison:
         """A point's outcome in one line: its flag and its most significant changes."""
         if not change.matched:
             return f"{change.flag:<20} {self.label(change)}"
-        moved = [c for c in change.changes.values() if c.flag in ("worse", "better")]
+        moved = [c for c in change.all_changes if c.flag in ("worse", "better")]
         moved.sort(
             key=lambda c: (not (c.flag == "worse" and c.figure in change.gated), -c.significance)
         )
@@ -579,8 +722,9 @@ class Comparison:
 def _change_text(change: FigureChange) -> str:
     b = change.baseline.value if change.baseline else None
     c = change.candidate.value if change.candidate else None
+    node = f"{change.node}: " if change.node else ""
     return (
-        f"{FIGURE_TITLES[change.figure]} {format_change(change.figure, change.delta)} "
+        f"{node}{FIGURE_TITLES[change.figure]} {format_change(change.figure, change.delta)} "
         f"({format_figure(change.figure, b)} → {format_figure(change.figure, c)})"
     )
 
@@ -636,13 +780,16 @@ def compare_figure(
     *,
     coverage: float = DEFAULT_COVERAGE,
     floors: Mapping[str, float] = NOISE_FLOORS,
+    polarity: int = 1,
+    node: str | None = None,
 ) -> FigureChange:
-    """Compare one figure of a matched point by the rule in this module's notes."""
+    """Compare one figure of a matched point (of ``node``, None for the primary, whose
+    ``polarity`` sets which way its peak is worse) by the rule in this module's notes."""
     b = baseline.value if baseline else None
     c = candidate.value if candidate else None
     if b is None or c is None:
         flag = "missing in baseline" if b is None else "missing in candidate"
-        return FigureChange(figure, baseline, candidate, None, None, flag)
+        return FigureChange(figure, baseline, candidate, None, None, flag, node)
     spread_b = baseline.spread or 0.0
     spread_c = candidate.spread or 0.0
     threshold = max(coverage * math.hypot(spread_b, spread_c), floors.get(figure, 0.0))
@@ -650,8 +797,26 @@ def compare_figure(
     if abs(delta) <= threshold:
         flag = "unchanged"
     else:
-        flag = "better" if delta * FIGURE_DIRECTIONS[figure] > 0 else "worse"
-    return FigureChange(figure, baseline, candidate, delta, threshold, flag)
+        flag = "better" if delta * figure_direction(figure, polarity) > 0 else "worse"
+    return FigureChange(figure, baseline, candidate, delta, threshold, flag, node)
+
+
+def _compare_figures(
+    b: PointReview, c: PointReview, coverage: float, polarity: int, node: str | None
+) -> dict[str, FigureChange]:
+    """Every figure either point has, compared."""
+    return {
+        figure: compare_figure(
+            figure,
+            b.figures.get(figure),
+            c.figures.get(figure),
+            coverage=coverage,
+            polarity=polarity,
+            node=node,
+        )
+        for figure in FIGURE_DIRECTIONS
+        if figure in b.figures or figure in c.figures
+    }
 
 
 def compare_runs(
@@ -678,35 +843,58 @@ def compare_runs(
     if not (coverage > 0 and math.isfinite(coverage)):
         raise InputError(f"coverage factor {coverage!r}: give a positive number such as 2")
     changes = []
+    extra_nodes = shared_nodes(baseline, candidate)
     for b, c in match_points(baseline.points, candidate.points, rel_tol):
-        figures = {}
+        figures: dict[str, FigureChange] = {}
+        nodes: dict[str, dict[str, FigureChange]] = {}
         if b is not None and c is not None:
-            for figure in FIGURE_DIRECTIONS:
-                if figure in b.figures or figure in c.figures:
-                    figures[figure] = compare_figure(
-                        figure, b.figures.get(figure), c.figures.get(figure), coverage=coverage
-                    )
-        changes.append(PointChange(b, c, figures, frozenset(gated)))
+            figures = _compare_figures(b, c, coverage, baseline.polarity, None)
+            for node in extra_nodes:
+                polarity = node_polarity(candidate, node)
+                nodes[node] = _compare_figures(
+                    b.of_node(node), c.of_node(node), coverage, polarity, node
+                )
+        changes.append(PointChange(b, c, figures, frozenset(gated), nodes))
     return Comparison(baseline, candidate, changes, gated, coverage, rel_tol)
 
 
-def _run_level(comparison: Comparison, figure: str) -> FigureChange | None:
-    """The run-level change of a figure: worst over matched points in each run, judged with the
-    spreads of the two points that hold those worst values."""
+def shared_nodes(baseline: RunReview, candidate: RunReview) -> list[str]:
+    """The nodes other than the primary that both runs captured, in the candidate's order."""
+    return [node for node in candidate.node_names[1:] if node in baseline.node_names[1:]]
+
+
+def _run_level(
+    comparison: Comparison, figure: str, node: str | None = None
+) -> tuple[FigureChange, PointReview] | None:
+    """The run-level change of a figure (of ``node``; None: the primary): worst over matched
+    points in each run, judged with the spreads of the two points that hold those worst
+    values; with the candidate's worst point."""
     matched = [p for p in comparison.points if p.matched]
-    b = worst_points([p.baseline for p in matched]).get(figure)
-    c = worst_points([p.candidate for p in matched]).get(figure)
+    polarity = 1 if node is None else node_polarity(comparison.candidate, node)
+
+    def side(review: PointReview) -> PointReview:
+        return review if node is None else review.of_node(node)
+
+    b = worst_points([side(p.baseline) for p in matched], polarity).get(figure)
+    c = worst_points([side(p.candidate) for p in matched], polarity).get(figure)
     if b is None or c is None:
         return None
-    return compare_figure(
-        figure, b.point.figures[figure], c.point.figures[figure], coverage=comparison.coverage
+    change = compare_figure(
+        figure,
+        b.point.figures[figure],
+        c.point.figures[figure],
+        coverage=comparison.coverage,
+        polarity=polarity,
+        node=node,
     )
+    return change, c.point
 
 
 def summary_sentence(comparison: Comparison) -> str:
     """One sentence on what changed, most important first."""
     parts: list[str] = []
-    peak = _run_level(comparison, "peak_v")
+    found = _run_level(comparison, "peak_v")
+    peak = found[0] if found else None
     if peak is not None:
         if peak.flag == "unchanged":
             parts.append(f"peak stress unchanged at the worst corner ({_values_text(peak)})")
@@ -716,9 +904,10 @@ def summary_sentence(comparison: Comparison) -> str:
                 f"({_values_text(peak)})"
             )
     for figure in ("damping_ratio", "settling_time_s"):
-        level = _run_level(comparison, figure)
-        if level is None:
+        found = _run_level(comparison, figure)
+        if found is None:
             continue
+        level = found[0]
         b, c = level.baseline.value, level.candidate.value
         title = FIGURE_TITLES[figure]
         if level.flag == "unchanged":
@@ -736,6 +925,7 @@ def summary_sentence(comparison: Comparison) -> str:
         else:
             delta = format_change("snubber_loss_w", change.delta)
             parts.append(f"snubber loss {delta} at {comparison.label(point)}")
+    parts += _node_peak_parts(comparison)
     efficiency = [
         p.changes["efficiency"].delta
         for p in comparison.points
@@ -760,6 +950,22 @@ def summary_sentence(comparison: Comparison) -> str:
     if missing_b:
         parts.append(f"{missing_b} candidate point(s) not in the baseline")
     return ", ".join(parts)
+
+
+def _node_peak_parts(comparison: Comparison) -> list[str]:
+    """Each node but the primary: its peak's run-level change, where the candidate's worst is,
+    e.g. "secondary: peak −12 V at 264 V AC / 2.4 A (−107 V → −119 V)"."""
+    parts = []
+    for node in shared_nodes(comparison.baseline, comparison.candidate):
+        found = _run_level(comparison, "peak_v", node)
+        if found is None:
+            continue
+        change, where = found
+        moved = "unchanged" if change.flag == "unchanged" else format_change("peak_v", change.delta)
+        parts.append(
+            f"{node}: peak {moved} at {comparison.label_of(where)} ({_values_text(change)})"
+        )
+    return parts
 
 
 def _values_text(change: FigureChange) -> str:
@@ -792,6 +998,10 @@ def comparison_summary(comparison: Comparison) -> dict[str, Any]:
         "baseline": comparison.baseline.run.id,
         "candidate": comparison.candidate.run.id,
         "regressed": comparison.regressed,
+        "nodes": [
+            comparison.candidate.node_names[0],
+            *shared_nodes(comparison.baseline, comparison.candidate),
+        ],
         "summary": comparison.summary(),
         "rule": {
             "coverage_k": comparison.coverage,
@@ -808,17 +1018,22 @@ def comparison_summary(comparison: Comparison) -> dict[str, Any]:
                 "flag": p.flag,
                 "baseline": side(p.baseline),
                 "candidate": side(p.candidate),
-                "figures": {
-                    name: {
-                        "baseline": change.baseline.value if change.baseline else None,
-                        "candidate": change.candidate.value if change.candidate else None,
-                        "change": change.delta,
-                        "threshold": change.threshold,
-                        "flag": change.flag,
-                    }
-                    for name, change in p.changes.items()
-                },
+                "figures": _changes_summary(p.changes),
+                "nodes": {node: _changes_summary(changes) for node, changes in p.nodes.items()},
             }
             for p in comparison.points
         ],
+    }
+
+
+def _changes_summary(changes: Mapping[str, FigureChange]) -> dict[str, Any]:
+    return {
+        name: {
+            "baseline": change.baseline.value if change.baseline else None,
+            "candidate": change.candidate.value if change.candidate else None,
+            "change": change.delta,
+            "threshold": change.threshold,
+            "flag": change.flag,
+        }
+        for name, change in changes.items()
     }

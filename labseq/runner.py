@@ -25,8 +25,10 @@ import numpy as np
 
 from instruments import Waveform
 from instruments.errors import InstrumentError, ScpiError
-from labseq.analysis import CaptureFigures, NoEdgeError, SnubberBranch, aggregate, analyze_capture
+from labseq.analysis import CaptureFigures, NoEdgeError, aggregate, analyze_capture
 from labseq.analysis import judge as judge_point
+from labseq.analysis.capture import ClampFigures, clamp_figures
+from labseq.analysis.verdict import worst_verdict
 from labseq.bench import Bench, SafeReport, make_safe, open_bench
 from labseq.errors import LabseqError
 from labseq.locks import run_locks
@@ -38,8 +40,15 @@ from labseq.safety import (
     signals_ignored,
     signals_raise_interrupted,
 )
-from labseq.sequence import Sequence, parse_sequence
-from labseq.store import CAPTURE_FIGURES, CaptureRecord, PointReadings, PointRecord, Store
+from labseq.sequence import NodeSpec, Sequence, parse_sequence
+from labseq.store import (
+    CAPTURE_FIGURES,
+    CaptureRecord,
+    PointReadings,
+    PointRecord,
+    Store,
+    StoredCapture,
+)
 
 #: How often the scope is asked whether its single acquisition is in.
 ACQUISITION_POLL_S = 0.005
@@ -101,68 +110,101 @@ def clip_mask(waveform: Waveform) -> np.ndarray | None:
     return (waveform.codes <= waveform.code_min) | (waveform.codes >= waveform.code_max)
 
 
-def analyse_waveform(sequence: Sequence, waveform: Waveform) -> CaptureFigures:
-    """Figures of one capture as the sequence asks for them (pure: no bench, no store)."""
-    snubber = sequence.snubber
-    branch = (
-        SnubberBranch(
-            snubber.resistance_ohm, snubber.capacitance_f, sequence.dut.switching_frequency_hz
-        )
-        if snubber.capacitance_f > 0 and snubber.resistance_ohm > 0
-        else None
-    )
+@dataclass(frozen=True)
+class NodeResult:
+    """One capture's analysis: its edges and, on the primary with a clamp declared, the clamp."""
+
+    figures: CaptureFigures
+    clamp: ClampFigures | None = None
+
+
+def analyse_waveform(
+    sequence: Sequence, waveform: Waveform | StoredCapture, node: NodeSpec | None = None
+) -> CaptureFigures:
+    """Figures of one capture of ``node`` (the primary by default) as the sequence asks for
+    them: the node's polarity, settling band, snubber and rating (pure: no bench, no store)."""
     return analyze_capture(
         waveform.volts(),
         waveform.x_increment_s,
         waveform.x_origin_s,
-        polarity=sequence.scope.polarity,
-        settling_band=sequence.limits.settling_band,
-        clipped=clip_mask(waveform),
-        snubber=branch,
-        rating_v=sequence.dut.switch_rating_v,
-        derating=sequence.dut.derating,
+        clipped=clip_mask(waveform),  # type: ignore[arg-type]
+        **sequence.analysis_options(node or sequence.primary),
     )
 
 
-def analyse_or_error(sequence: Sequence, waveform: Waveform) -> CaptureFigures | Exception:
-    """:func:`analyse_waveform`, with a record it cannot analyse (no edge, too short) returned
-    as the error to store beside the capture."""
+def analyse_or_error(
+    sequence: Sequence,
+    waveform: Waveform | StoredCapture,
+    node: NodeSpec | None = None,
+    point: PointRecord | None = None,
+) -> NodeResult | Exception:
+    """:func:`analyse_waveform`, plus the clamp's figures on the primary when the sequence
+    declares a clamp and the ``point`` (its line, for the bus) is known; a record it cannot
+    analyse (no edge, too short) is returned as the error to store beside the capture."""
+    node = node or sequence.primary
     try:
-        return analyse_waveform(sequence, waveform)
+        figures = analyse_waveform(sequence, waveform, node)
     except (NoEdgeError, ValueError) as error:
         return error
+    clamp = sequence.clamp
+    if clamp is None or point is None or node is not sequence.primary or figures.polarity < 0:
+        return NodeResult(figures)
+    return NodeResult(
+        figures,
+        clamp_figures(
+            waveform.volts(),
+            waveform.x_increment_s,
+            waveform.x_origin_s,
+            figures,
+            resistance_ohm=clamp.resistance_ohm,
+            capacitance_f=clamp.capacitance_f,
+            switching_frequency_hz=sequence.dut.switching_frequency_hz,
+            line_v=point.line_v,
+            line_is_ac=point.line_is_ac,
+        ),
+    )
 
 
-def store_figures(store: Store, capture_id: int, result: CaptureFigures | Exception) -> None:
-    """Store one capture's analysis: its worst edge's figures and every edge, or why it failed."""
+def store_figures(store: Store, capture_id: int, result: NodeResult | Exception) -> None:
+    """Store one capture's analysis: its worst edge's figures (and the clamp's) and every edge,
+    or why it failed."""
     if isinstance(result, Exception):
         store.set_capture_figures(capture_id, {}, error=str(result))
         return
-    worst = result.worst.as_dict()
-    worst["clipped"] = result.clipped
-    store.set_capture_figures(capture_id, worst, edges=[edge.as_dict() for edge in result.edges])
+    figures = result.figures
+    worst = figures.worst.as_dict()
+    worst["clipped"] = figures.clipped
+    if result.clamp is not None:
+        worst.update(result.clamp.as_dict())
+    store.set_capture_figures(capture_id, worst, edges=[edge.as_dict() for edge in figures.edges])
 
 
 def judge_stored_point(store: Store, sequence: Sequence, point: PointRecord) -> str:
-    """Aggregate a point's stored capture figures, judge it, store both; return the verdict."""
-    figures = []
+    """Aggregate a point's stored capture figures per node, judge each node against its own
+    limits (efficiency with the primary), store them, and store the worst of the nodes'
+    verdicts as the point's; return that verdict."""
+    rows: dict[str, list[dict[str, object]]] = {node.name: [] for node in sequence.nodes}
     for capture in store.captures(point.id, with_codes=False):
         stored = store.capture_figures(capture.id)
-        if stored and not stored.get("error"):
+        if capture.node in rows and stored and not stored.get("error"):
             row: dict[str, object] = {name: stored[name] for name in CAPTURE_FIGURES}
             row["clipped"] = bool(stored.get("clipped"))
-            figures.append(row)
-    summary = aggregate(figures)
-    store.set_point_figures(
-        point.id,
-        {
+            rows[capture.node].append(row)
+    node_figures, node_verdicts, reasons = {}, {}, []
+    several = len(sequence.nodes) > 1
+    for node in sequence.nodes:
+        summary = aggregate(rows[node.name], polarity=node.polarity)
+        node_figures[node.name] = {
             name: {"worst": s.worst, "mean": s.mean, "spread": s.spread, "n": s.count}
             for name, s in summary.figures.items()
-        },
-    )
-    verdict = judge_point(summary, sequence.verdict_limits(), point.efficiency)
-    store.set_point_verdict(point.id, verdict.status, verdict.reasons)
-    return verdict.status
+        }
+        efficiency = point.efficiency if node is sequence.primary else None
+        verdict = judge_point(summary, node.verdict_limits(), efficiency, polarity=node.polarity)
+        node_verdicts[node.name] = (verdict.status, verdict.reasons)
+        reasons += [f"{node.name}: {r}" if several else r for r in verdict.reasons]
+    status = worst_verdict(status for status, _ in node_verdicts.values())
+    store.set_point_judgement(point.id, node_figures, node_verdicts, status, reasons)
+    return status
 
 
 def analyse_run(store: Store, sequence: Sequence, run_id: int, *, only_missing: bool) -> int:
@@ -170,12 +212,20 @@ def analyse_run(store: Store, sequence: Sequence, run_id: int, *, only_missing: 
     against ``sequence``'s limits, without touching the bench; return the captures analysed.
 
     ``only_missing`` limits the work to captures that have no figures yet (after a run was
-    killed between storing a capture and storing its figures)."""
+    killed between storing a capture and storing its figures). A capture of a node the
+    sequence does not declare gets that as its error."""
     analysed = 0
+    points = {point.id: point for point in store.points(run_id)}
     for capture in store.iter_captures(run_id):
         if only_missing and store.capture_figures(capture.id) is not None:
             continue
-        store_figures(store, capture.id, analyse_or_error(sequence, capture))  # type: ignore[arg-type]
+        node = sequence.node(capture.node)
+        result: NodeResult | Exception = (
+            LookupError(f"node {capture.node!r} is not declared in the sequence")
+            if node is None
+            else analyse_or_error(sequence, capture, node, points[capture.point_id])
+        )
+        store_figures(store, capture.id, result)
         analysed += 1
     for point in store.points(run_id, status="done"):
         if not only_missing or point.verdict is None:
@@ -212,20 +262,21 @@ class Sweep:
         self.store.log_event(self.run_id, kind, message, point_id=point_id, data=data or None)
 
     def prepare(self) -> None:
-        """Load off, source off, current limit, scope set-up."""
+        """Load off, source off, current limit, scope set-up (every node's channel)."""
         bench, scope = self.bench, self.sequence.scope
         with self.timings.charge("instrument"):
             bench.load.set_input(False)
             bench.source.set_output(False)
             bench.source.set_current_limit(self.sequence.bench.limits.source_max_current_a)
-            bench.scope.configure_channel(
-                scope.channel,
-                scope.volts_per_div_v,
-                scope.offset_v,
-                scope.coupling,
-                scope.bandwidth_limit_hz,
-                scope.probe_ratio,
-            )
+            for node in self.sequence.nodes:
+                bench.scope.configure_channel(
+                    node.channel,
+                    node.volts_per_div_v,
+                    node.offset_v,
+                    node.coupling,
+                    node.bandwidth_limit_hz,
+                    node.probe_ratio,
+                )
             bench.scope.configure_timebase(scope.time_per_div_s, scope.record_length)
             bench.scope.configure_trigger(
                 scope.channel, scope.trigger_level_v, scope.trigger_slope, scope.trigger_position
@@ -257,13 +308,13 @@ class Sweep:
         with self.timings.charge(activity):
             time.sleep(seconds)
 
-    def acquire(self) -> Waveform:
-        """One single-shot capture of the switch node."""
+    def acquire(self) -> list[Waveform]:
+        """One single-shot acquisition: every node's channel, in the sequence's node order."""
         scope, settings = self.bench.scope, self.sequence.scope
         with self.timings.charge("instrument"):
             scope.single()
             scope.wait_acquisition(settings.acquisition_timeout_s, ACQUISITION_POLL_S)
-            return scope.fetch_waveform(settings.channel)
+            return [scope.fetch_waveform(node.channel) for node in self.sequence.nodes]
 
     def read_point(self) -> PointReadings:
         """Meter on the line input, load and source readbacks; efficiency = Pout / Pin."""
@@ -297,24 +348,28 @@ class Sweep:
             self.bench.load.set_current(point.load_a)
             self.bench.load.set_input(True)
         self._wait("settle", seq.grid.settle_s)
-        already = len(self.store.captures(point.id, with_codes=False))
+        already = self.store.acquisitions(point.id)
         wanted = seq.grid.captures_per_point
         for number in range(already + 1, wanted + 1):
             self.progress.point(index, total, point.line_v, point.load_a, number, wanted)
-            waveform = self.acquire()
+            waveforms = self.acquire()
             last = number == wanted
             readings = self.read_point() if last else None
-            record = CaptureRecord(waveform, channel=seq.scope.channel, node=seq.scope.node)
+            records = [
+                CaptureRecord(waveform, channel=node.channel, node=node.name)
+                for node, waveform in zip(seq.nodes, waveforms, strict=True)
+            ]
             with self.timings.charge("store"):
-                capture_id = self.store.add_capture(
+                capture_ids = self.store.add_captures(
                     point.id,
-                    record,
+                    records,
                     point_status="done" if last else None,
                     readings=readings,
                     started_at=started,
                 )
-            future = self.analysis.submit(analyse_or_error, seq, waveform)
-            self.pending_figures.append((point.id, capture_id, future))
+            for node, waveform, capture_id in zip(seq.nodes, waveforms, capture_ids, strict=True):
+                future = self.analysis.submit(analyse_or_error, seq, waveform, node, point)
+                self.pending_figures.append((point.id, capture_id, future))
         if already >= wanted:  # every capture was in; only the readings were missing
             self.store.commit_point(point.id, readings=self.read_point(), started_at=started)
         with self.store.transaction():

@@ -45,6 +45,11 @@ LINE_KINDS = ("dc", "ac")
 POINT_ERROR_ACTIONS = ("skip", "abort")
 COUPLINGS = ("dc", "ac")
 TRIGGER_SLOPES = ("rising", "falling")
+#: Which way a node moves at the edge of interest: a switch's drain rises at turn-off, a
+#: rectifier's anode–cathode voltage falls (reverse voltage) when the primary turns on.
+NODE_POLARITIES = ("rising", "falling")
+#: A node's name: a short lower-case word, used in reports, the store and exported file names.
+_NODE_NAME = re.compile(r"^[a-z][a-z0-9_-]{0,23}$")
 
 #: VISA interface types (IVI VPP-4.3 resource names) we accept at the start of a resource string.
 _VISA_RESOURCE = re.compile(r"^(TCPIP|USB|GPIB|ASRL|VXI|PXI|VICP)[^:\s]*::\S+$", re.IGNORECASE)
@@ -210,6 +215,65 @@ class VerdictLimits:
 
 
 @dataclass(frozen=True)
+class Clamp:
+    """The RCD clamp across the primary: its resistor and capacitor (the diode is not judged)."""
+
+    label: str
+    resistance_ohm: float
+    capacitance_f: float
+
+
+@dataclass(frozen=True)
+class NodeSpec:
+    """One node captured at every acquisition, all on the primary's trigger.
+
+    The primary switch node is built from the file's [scope], [dut], [snubber] and [limits];
+    further nodes come from ``[[nodes]]``. A falling node (a rectifier's reverse voltage) is
+    analysed as its negative and reported in its own sign; its peak and stress margin are
+    judged on magnitudes against ``rating_v`` × ``derating``.
+    """
+
+    name: str
+    label: str
+    channel: int
+    polarity: int  # +1: rises at the edge of interest, -1: falls
+    volts_per_div_v: float
+    offset_v: float
+    probe_ratio: float
+    coupling: str
+    bandwidth_limit_hz: float
+    rating_v: float
+    derating: float
+    snubber: Snubber | None
+    limits: VerdictLimits
+
+    @property
+    def derated_rating_v(self) -> float:
+        """What the node's peak magnitude may use: rating × derating."""
+        return self.rating_v * self.derating
+
+    @property
+    def peak_word(self) -> str:
+        """How a reviewer names the node's peak: stress on a switch, reverse voltage on a diode."""
+        return "peak stress" if self.polarity > 0 else "peak reverse voltage"
+
+    def verdict_limits(self) -> Any:
+        """The node's limits as :class:`labseq.analysis.verdict.Limits`."""
+        from labseq.analysis.verdict import Limits
+
+        limits = self.limits
+        return Limits(
+            max_peak_v=limits.max_peak_v,
+            min_stress_margin_v=limits.min_stress_margin_v,
+            min_damping_ratio=limits.min_damping_ratio,
+            max_q_factor=limits.max_q_factor,
+            max_settling_time_s=limits.max_settling_time_s,
+            max_snubber_loss_w=limits.max_snubber_loss_w,
+            min_efficiency=limits.min_efficiency,
+        )
+
+
+@dataclass(frozen=True)
 class Sequence:
     """A validated sequence file, SI units throughout."""
 
@@ -226,6 +290,17 @@ class Sequence:
     limits: VerdictLimits
     on_point_error: str  # "skip" or "abort"
     hazardous_voltage_acknowledged: bool
+    nodes: tuple[NodeSpec, ...]  # every node captured per acquisition, the primary first
+    clamp: Clamp | None = None  # the RCD clamp across the primary, when declared
+
+    @property
+    def primary(self) -> NodeSpec:
+        """The primary switch node (the trigger's channel)."""
+        return self.nodes[0]
+
+    def node(self, name: str) -> NodeSpec | None:
+        """The node called ``name``, or None."""
+        return next((node for node in self.nodes if node.name == name), None)
 
     def points(self) -> list[GridPoint]:
         """The grid in run order: lines ascending, and loads ascending within each line, so the
@@ -237,18 +312,26 @@ class Sequence:
         ]
 
     def verdict_limits(self) -> Any:
-        """The verdict limits as :class:`labseq.analysis.verdict.Limits`."""
-        from labseq.analysis.verdict import Limits
+        """The primary node's verdict limits as :class:`labseq.analysis.verdict.Limits`."""
+        return self.primary.verdict_limits()
 
-        return Limits(
-            max_peak_v=self.limits.max_peak_v,
-            min_stress_margin_v=self.limits.min_stress_margin_v,
-            min_damping_ratio=self.limits.min_damping_ratio,
-            max_q_factor=self.limits.max_q_factor,
-            max_settling_time_s=self.limits.max_settling_time_s,
-            max_snubber_loss_w=self.limits.max_snubber_loss_w,
-            min_efficiency=self.limits.min_efficiency,
-        )
+    def analysis_options(self, node: NodeSpec) -> dict[str, Any]:
+        """Keyword arguments of :func:`labseq.analysis.analyze_capture` for ``node``'s captures:
+        its polarity, settling band, snubber (at the DUT's switching frequency) and rating."""
+        from labseq.analysis import SnubberBranch
+
+        snubber = node.snubber
+        return {
+            "polarity": node.polarity,
+            "settling_band": node.limits.settling_band,
+            "snubber": None
+            if snubber is None
+            else SnubberBranch(
+                snubber.resistance_ohm, snubber.capacitance_f, self.dut.switching_frequency_hz
+            ),
+            "rating_v": node.rating_v,
+            "derating": node.derating,
+        }
 
 
 # --------------------------------------------------------------------------- reading helpers
@@ -257,28 +340,40 @@ _MISSING = object()
 
 
 def find_key_line(text: str, key: str) -> int | None:
-    """Line number (1-based) where ``key`` (a dotted path, indices ignored) is written in ``text``.
+    """Line number (1-based) where ``key`` (a dotted path such as ``nodes[1].channel``) is
+    written in ``text``.
 
-    A simple scan of table headers and ``name =`` lines; falls back to the parent key's line.
+    A simple scan of table headers and ``name =`` lines; the n-th ``[[name]]`` header is
+    ``name[n]`` (and so are the ``[name.sub]`` tables under it). Falls back to the nearest parent
+    that is found, then to the same path without indices.
     """
-    target = re.sub(r"\[\d+\]", "", key)
     section = ""
+    counts: dict[str, int] = {}
     found: dict[str, int] = {}
     for number, raw in enumerate(text.splitlines(), start=1):
         line = raw.strip()
-        header = re.match(r"^\[\[?\s*([^\]]+?)\s*\]\]?", line)
+        header = re.match(r"^(\[\[?)\s*([^\]]+?)\s*\]\]?", line)
         if header:
-            section = re.sub(r"\s*\.\s*", ".", header.group(1)).replace('"', "")
+            name = re.sub(r"\s*\.\s*", ".", header.group(2)).replace('"', "")
+            head, dot, rest = name.partition(".")
+            if header.group(1) == "[[":
+                counts[name] = counts.get(name, -1) + 1
+                found.setdefault(name, number)
+                name = f"{name}[{counts[name]}]"
+            elif head in counts:
+                name = f"{head}[{counts[head]}]{dot}{rest}"
+            section = name
             found.setdefault(section, number)
             continue
         assignment = re.match(r'^([A-Za-z0-9_\-."\' ]+?)\s*=', line)
         if assignment:
             name = re.sub(r"\s*\.\s*", ".", assignment.group(1)).replace('"', "").replace("'", "")
             found.setdefault(f"{section}.{name}" if section else name, number)
-    while target:
-        if target in found:
-            return found[target]
-        target = target.rpartition(".")[0]
+    for target in (key, re.sub(r"\[\d+\]", "", key)):
+        while target:
+            if target in found:
+                return found[target]
+            target = re.sub(r"(\[\d+\]|\.?[^.\[]*)$", "", target, count=1)
     return None
 
 
@@ -655,8 +750,8 @@ def _read_dut(top: _Table) -> Dut | None:
     return Dut(**values)
 
 
-def _read_snubber(top: _Table) -> Snubber | None:
-    table = top.table("snubber")
+def _read_snubber(table: _Table | None) -> Snubber | None:
+    """An RC snubber table: [snubber] across the switch, or [nodes.snubber] across a device."""
     if table is None:
         return None
     label = table.text("label", default="")
@@ -790,11 +885,16 @@ def _read_scope(top: _Table) -> ScopeSettings | None:
     return ScopeSettings(**values)
 
 
-def _read_limits(top: _Table, dut: Dut | None, snubber: Snubber | None) -> VerdictLimits | None:
-    """[limits]: all optional. Peak defaults to rating × derating, loss to the resistor budget."""
-    table = top.table("limits", required=False)
-    if table is None:
-        table = _Table({}, "limits", top.out)
+def _read_limits(
+    table: _Table,
+    rating: tuple[float, float, str, str] | None,
+    snubber: Snubber | None,
+    *,
+    point_limits: bool,
+) -> VerdictLimits | None:
+    """A limits table, all optional: [limits] (``point_limits``: efficiency is judged there) or
+    [nodes.limits]. The peak defaults to rating × derating and the snubber loss to the
+    resistor's budget; ``rating`` is (rating, derating, its name, the key that declares it)."""
     values = {
         "max_peak_v": table.quantity("max_peak", "V", default=None),
         "min_stress_margin_v": table.quantity(
@@ -804,27 +904,156 @@ def _read_limits(top: _Table, dut: Dut | None, snubber: Snubber | None) -> Verdi
         "max_q_factor": table.quantity("max_q", "", default=None),
         "max_settling_time_s": table.quantity("max_settling_time", "s", default=None),
         "max_snubber_loss_w": table.quantity("max_snubber_loss", "W", default=None),
-        "min_efficiency": table.fraction("min_efficiency", default=None),
+        "min_efficiency": (
+            table.fraction("min_efficiency", default=None) if point_limits else None
+        ),
         "settling_band": table.fraction("settling_band", default=DEFAULT_SETTLING_BAND),
     }
+    if not point_limits and "min_efficiency" in table.data:
+        table.known.append("min_efficiency")
+        table.out.fail(
+            table.key("min_efficiency"),
+            "efficiency belongs to the whole point; set min_efficiency in [limits]",
+        )
     table.finish()
     if values["settling_band"] is None or any(
         values[name] is None and name in table.data for name in values
     ):
         return None
-    if dut is not None:
-        rating_v = dut.switch_rating_v
+    if rating is not None:
+        rating_v, derating, rating_name, rating_key = rating
         if values["max_peak_v"] is None:
-            values["max_peak_v"] = rating_v * dut.derating
+            values["max_peak_v"] = rating_v * derating
         elif values["max_peak_v"] > rating_v:
-            top.out.fail(
+            table.out.fail(
                 table.key("max_peak"),
-                f"{format_si(values['max_peak_v'], 'V')} is above the switch rating "
-                f"{format_si(rating_v, 'V')}; must be ≤ dut.switch_rating",
+                f"{format_si(values['max_peak_v'], 'V')} is above the {rating_name} "
+                f"{format_si(rating_v, 'V')}; must be ≤ {rating_key}",
             )
     if values["max_snubber_loss_w"] is None and snubber is not None:
         values["max_snubber_loss_w"] = snubber.resistor_power_budget_w
     return VerdictLimits(**values)
+
+
+def _primary_node(
+    scope: ScopeSettings, dut: Dut, snubber: Snubber, limits: VerdictLimits
+) -> NodeSpec:
+    """The primary switch node from today's tables: [scope], [dut], [snubber], [limits]."""
+    return NodeSpec(
+        name=scope.node,
+        label="Primary switch",
+        channel=scope.channel,
+        polarity=scope.polarity,
+        volts_per_div_v=scope.volts_per_div_v,
+        offset_v=scope.offset_v,
+        probe_ratio=scope.probe_ratio,
+        coupling=scope.coupling,
+        bandwidth_limit_hz=scope.bandwidth_limit_hz,
+        rating_v=dut.switch_rating_v,
+        derating=dut.derating,
+        snubber=snubber if snubber.capacitance_f > 0 and snubber.resistance_ohm > 0 else None,
+        limits=limits,
+    )
+
+
+def _read_node(table: _Table) -> NodeSpec | None:
+    """One ``[[nodes]]`` entry: a further node captured on the primary's trigger."""
+    name = table.text("name")
+    label = table.text("label", default="")
+    polarity = table.text("polarity", default="rising", choices=NODE_POLARITIES)
+    values = {
+        "channel": table.integer("channel"),
+        "volts_per_div_v": table.quantity("volts_per_div", "V"),
+        "offset_v": table.quantity("offset", "V", default=0.0, minimum=None),
+        "probe_ratio": table.quantity("probe_ratio", "", default=1.0),
+        "coupling": table.text("coupling", default="dc", choices=COUPLINGS),
+        "bandwidth_limit_hz": table.quantity(
+            "bandwidth_limit", "Hz", default=0.0, minimum=0.0, allow_equal=True
+        ),
+        "rating_v": table.quantity("rating", "V"),
+        "derating": table.fraction("derating", default=DEFAULT_DERATING),
+    }
+    snubber_table = table.table("snubber", required=False)
+    snubber = _read_snubber(snubber_table)
+    limits_table = table.table("limits", required=False) or _Table(
+        {}, table.key("limits"), table.out
+    )
+    rating = (
+        None
+        if values["rating_v"] is None or values["derating"] is None
+        else (values["rating_v"], values["derating"], "rating", table.key("rating"))
+    )
+    limits = _read_limits(limits_table, rating, snubber, point_limits=False)
+    table.finish()
+    if isinstance(name, str) and not _NODE_NAME.match(name):
+        table.out.fail(
+            table.key("name"),
+            f"{name!r} is not a node name; use a short lower-case word (letters, digits, - or _, "
+            'at most 24 characters), e.g. "secondary"',
+        )
+        return None
+    if (
+        None in (name, label, polarity, limits)
+        or any(value is None for value in values.values())
+        or (snubber_table is not None and snubber is None)
+    ):
+        return None
+    return NodeSpec(
+        name=name,
+        label=label or name.capitalize(),
+        polarity=1 if polarity == "rising" else -1,
+        snubber=snubber,
+        limits=limits,
+        **values,
+    )
+
+
+def _read_nodes(top: _Table, primary: NodeSpec | None) -> list[NodeSpec] | None:
+    """The optional ``[[nodes]]`` array, each node checked against the primary and the others:
+    names and channels unique, and no node on the primary's channel (the trigger's)."""
+    raw = top.raw("nodes", False, "an array of tables [[nodes]]")
+    if raw is _MISSING:
+        return []
+    if not isinstance(raw, list) or not all(isinstance(item, dict) for item in raw):
+        top.out.fail("nodes", f"expected an array of tables [[nodes]], got {_kind(raw)}")
+        return None
+    nodes = [_read_node(_Table(item, f"nodes[{index}]", top.out)) for index, item in enumerate(raw)]
+    names = {primary.name: "the primary node ([scope] node)"} if primary else {}
+    channels = {primary.channel: "the primary node's, where the scope triggers"} if primary else {}
+    for index, node in enumerate(nodes):
+        if node is None:
+            continue
+        key = f"nodes[{index}]"
+        if node.name in names:
+            top.out.fail(
+                f"{key}.name",
+                f"{node.name!r} is already the name of {names[node.name]}; "
+                "each node needs its own name",
+            )
+        if node.channel in channels:
+            top.out.fail(
+                f"{key}.channel",
+                f"channel {node.channel} is already {channels[node.channel]}; each node needs "
+                "its own channel",
+            )
+        names.setdefault(node.name, key)
+        channels.setdefault(node.channel, f"the channel of {key}")
+    return None if any(node is None for node in nodes) else nodes  # type: ignore[return-value]
+
+
+def _read_clamp(top: _Table) -> Clamp | None:
+    """The optional [clamp]: the RCD clamp across the primary."""
+    table = top.table("clamp", required=False)
+    if table is None:
+        return None
+    label = table.text("label", default="")
+    resistance = table.quantity("resistance", "Ω")
+    capacitance = table.quantity("capacitance", "F")
+    table.finish()
+    if None in (label, resistance, capacitance):
+        return None
+    label = label or f"RCD clamp {format_si(resistance, 'Ω')} / {format_si(capacitance, 'F')}"
+    return Clamp(label, resistance, capacitance)
 
 
 # --------------------------------------------------------------------------- cross-checks
@@ -860,6 +1089,67 @@ def _check_bench(
             f"{format_si(dut.switch_rating_v, 'V')}, which the node can reach; use a probe rated "
             "at least that high",
         )
+
+
+def _check_nodes_on_bench(
+    out: _Collector,
+    bench: Bench,
+    scope: ScopeSettings | None,
+    nodes: list[NodeSpec],
+    clamp: Clamp | None,
+) -> None:
+    """Every node's channel on the scope, its rating within the probe's; on the simulated bench,
+    each node probed by the simulated scope and a clamp the DUT file can take."""
+    channels = _scope_channels(bench.scope_map)
+    if channels is not None and scope is not None and scope.channel > channels:
+        out.fail("scope.channel", f"channel {scope.channel} is beyond the scope's {channels}")
+    probe_v = bench.limits.probe_max_voltage_v
+    for index, node in enumerate(nodes):
+        key = f"nodes[{index}]"
+        if channels is not None and node.channel > channels:
+            out.fail(
+                f"{key}.channel",
+                f"channel {node.channel} is beyond the scope's {channels} channels "
+                f"(bench.scope_map); valid: 1 to {channels}",
+            )
+        if probe_v is not None and probe_v < node.rating_v:
+            out.fail(
+                f"{key}.rating",
+                f"{format_si(node.rating_v, 'V')} is above bench.limits.probe_max_voltage "
+                f"{format_si(probe_v, 'V')}; use a probe rated at least as high as the device",
+            )
+    if not bench.is_sim or bench.sim_dut_path is None:
+        return
+    from sim_instruments.flyback import load_dut
+    from sim_instruments.instruments import SECONDARY_CHANNEL
+
+    design = load_dut(bench.sim_dut_path)
+    for index, node in enumerate(nodes):
+        if node.channel != SECONDARY_CHANNEL or design.secondary is None:
+            out.fail(
+                f"nodes[{index}].channel",
+                f"the simulated scope probes only the primary and, when the DUT file declares "
+                f"[secondary], the output rectifier on channel {SECONDARY_CHANNEL}; channel "
+                f"{node.channel} would be a flat trace",
+            )
+    if clamp is not None and not design.has_clamp:
+        out.fail(
+            "clamp",
+            "the simulated DUT file (bench.dut) declares no [clamp] whose values this table "
+            "could replace; remove [clamp] or use a DUT file with one",
+        )
+
+
+def _scope_channels(scope_map: str) -> int | None:
+    """The channel count of a scope command map (None when it cannot be loaded: reported
+    elsewhere)."""
+    from instruments.command_map import load_command_map
+    from instruments.errors import CommandMapError
+
+    try:
+        return load_command_map(scope_map).channels
+    except (CommandMapError, OSError):
+        return None
 
 
 def _check_hazard(out: _Collector, bench: Bench, grid: Grid, acknowledged: bool) -> None:
@@ -912,10 +1202,24 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     on_point_error = top.text("on_point_error", default="skip", choices=POINT_ERROR_ACTIONS)
     bench, sim_line_kind = _read_bench(top, path.parent)
     dut = _read_dut(top)
-    snubber = _read_snubber(top)
+    snubber = _read_snubber(top.table("snubber"))
     grid = _read_grid(top, dut, bench)
     scope = _read_scope(top)
-    limits = _read_limits(top, dut, snubber)
+    limits = _read_limits(
+        top.table("limits", required=False) or _Table({}, "limits", out),
+        None
+        if dut is None
+        else (dut.switch_rating_v, dut.derating, "switch rating", "dut.switch_rating"),
+        snubber,
+        point_limits=True,
+    )
+    primary = (
+        None
+        if None in (scope, dut, snubber, limits)
+        else _primary_node(scope, dut, snubber, limits)  # type: ignore[arg-type]
+    )
+    nodes = _read_nodes(top, primary)
+    clamp = _read_clamp(top)
     safety = top.table("safety", required=False)
     acknowledged = (
         False if safety is None else safety.boolean("hazardous_voltage_acknowledged", default=False)
@@ -926,6 +1230,7 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
 
     if bench is not None:
         _check_bench(out, bench, dut, scope)
+        _check_nodes_on_bench(out, bench, scope, nodes or [], clamp)
         if grid is not None and acknowledged is not None:
             _check_hazard(out, bench, grid, acknowledged)
     if (
@@ -938,7 +1243,7 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
             f'the simulated DUT file (bench.dut) takes "{sim_line_kind}" but dut.line_kind is '
             f"{_kind_word(dut.line_is_ac)}; they must match",
         )
-    parts = (name, description, on_point_error, bench, dut, snubber, grid, scope, limits)
+    parts = (name, description, on_point_error, bench, dut, snubber, grid, scope, limits, nodes)
     if out.problems or any(part is None for part in parts) or acknowledged is None:
         if not out.problems:  # every None above comes with a recorded problem
             out.fail("(file)", "incomplete sequence")
@@ -957,4 +1262,6 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
         limits=limits,
         on_point_error=on_point_error,
         hazardous_voltage_acknowledged=acknowledged,
+        nodes=(primary, *nodes),
+        clamp=clamp,
     )

@@ -11,7 +11,13 @@ through a power cut, which may lose only the last few commits (SQLite's document
 WAL with NORMAL; FULL would add a disk sync per capture). A capture is committed on its own, and a
 point's readings and "done" state with its last capture, so a crash leaves every committed capture
 intact and the point pending until it is complete. The schema version is checked on open; a file
-written by a newer labseq is refused without being touched.
+written by a newer labseq is refused without being touched, and one written by an older labseq is
+upgraded in place (:meth:`Store._upgrade`).
+
+Several nodes may be captured per acquisition (the primary switch node, a secondary rectifier…):
+each capture names its node, its index counts the point's acquisitions (the captures of one
+acquisition share it and are committed together), and the per-point figures and verdicts are
+kept per node; ``points.verdict`` is the point's combined verdict, the worst of its nodes'.
 """
 
 from __future__ import annotations
@@ -34,8 +40,10 @@ import sqlite_utils
 from labseq import __version__
 from labseq.errors import InputError, LabseqError
 
-#: Version of the schema below; a file with a higher version is refused.
-SCHEMA_VERSION = 1
+#: Version of the schema below; a file with a higher version is refused, a lower one upgraded.
+SCHEMA_VERSION = 2
+#: The node a capture or figure belongs to when nothing else is said (and in version-1 files).
+PRIMARY_NODE = "primary"
 APPLICATION = "labseq"
 
 #: Page size for new files. Every table and index costs at least one page and each capture
@@ -67,13 +75,60 @@ CAPTURE_FIGURES = (
     "settling_time_s",
     "snubber_loss_w",
     "stress_margin_v",
+    "clamp_level_v",
+    "clamp_loss_w",
 )
+#: Text that says how a capture figure was obtained, one TEXT column each.
+CAPTURE_METHODS = ("snubber_loss_method", "clamp_loss_method")
 
 
 def _sql_list(values: Iterable[str]) -> str:
     """Constant names as an SQL list for CHECK constraints (module constants, never user values)."""
     return ", ".join(f"'{value}'" for value in values)
 
+
+#: Tables whose definition changed since version 1, as templates of their name (the upgrade
+#: builds each under another name first).
+_CAPTURES_TABLE = f"""
+CREATE TABLE {{table}} (
+    id INTEGER PRIMARY KEY,
+    point_id INTEGER NOT NULL REFERENCES points(id),
+    run_id INTEGER NOT NULL REFERENCES runs(id),
+    capture_index INTEGER NOT NULL,
+    node TEXT NOT NULL DEFAULT 'primary',
+    channel INTEGER NOT NULL,
+    dtype TEXT NOT NULL CHECK (dtype IN ({_sql_list(CODE_DTYPES)})),
+    x_increment_s REAL NOT NULL,
+    x_origin_s REAL NOT NULL,
+    y_increment_v REAL NOT NULL,
+    y_origin_v REAL NOT NULL,
+    y_reference REAL NOT NULL,
+    code_min REAL,
+    code_max REAL,
+    points INTEGER NOT NULL,
+    captured_at TEXT NOT NULL,
+    codes BLOB NOT NULL,
+    UNIQUE (point_id, node, capture_index)
+)"""
+_POINT_FIGURES_TABLE = f"""
+CREATE TABLE {{table}} (
+    point_id INTEGER NOT NULL REFERENCES points(id),
+    node TEXT NOT NULL DEFAULT '{PRIMARY_NODE}',
+    figure TEXT NOT NULL,
+    worst REAL,
+    mean REAL,
+    spread REAL,
+    n INTEGER NOT NULL,
+    PRIMARY KEY (point_id, node, figure)
+) WITHOUT ROWID"""
+_NODE_VERDICTS_TABLE = f"""
+CREATE TABLE {{table}} (
+    point_id INTEGER NOT NULL REFERENCES points(id),
+    node TEXT NOT NULL,
+    verdict TEXT NOT NULL CHECK (verdict IN ({_sql_list(VERDICTS)})),
+    verdict_reasons TEXT NOT NULL,
+    PRIMARY KEY (point_id, node)
+) WITHOUT ROWID"""
 
 _SCHEMA = f"""
 CREATE TABLE schema_info (
@@ -125,44 +180,18 @@ CREATE TABLE points (
     duration_s REAL,
     UNIQUE (run_id, point_index)
 );
-CREATE TABLE captures (
-    id INTEGER PRIMARY KEY,
-    point_id INTEGER NOT NULL REFERENCES points(id),
-    run_id INTEGER NOT NULL REFERENCES runs(id),
-    capture_index INTEGER NOT NULL,
-    node TEXT NOT NULL DEFAULT 'primary',
-    channel INTEGER NOT NULL,
-    dtype TEXT NOT NULL CHECK (dtype IN ({_sql_list(CODE_DTYPES)})),
-    x_increment_s REAL NOT NULL,
-    x_origin_s REAL NOT NULL,
-    y_increment_v REAL NOT NULL,
-    y_origin_v REAL NOT NULL,
-    y_reference REAL NOT NULL,
-    code_min REAL,
-    code_max REAL,
-    points INTEGER NOT NULL,
-    captured_at TEXT NOT NULL,
-    codes BLOB NOT NULL,
-    UNIQUE (point_id, capture_index)
-);
+{_CAPTURES_TABLE.format(table="captures")};
 CREATE TABLE capture_figures (
     capture_id INTEGER PRIMARY KEY REFERENCES captures(id),
     {", ".join(f"{name} REAL" for name in CAPTURE_FIGURES)},
-    snubber_loss_method TEXT,
+    {", ".join(f"{name} TEXT" for name in CAPTURE_METHODS)},
     clipped INTEGER,
     edge_count INTEGER,
     error TEXT,
     edges_json TEXT
 );
-CREATE TABLE point_figures (
-    point_id INTEGER NOT NULL REFERENCES points(id),
-    figure TEXT NOT NULL,
-    worst REAL,
-    mean REAL,
-    spread REAL,
-    n INTEGER NOT NULL,
-    PRIMARY KEY (point_id, figure)
-) WITHOUT ROWID;
+{_POINT_FIGURES_TABLE.format(table="point_figures")};
+{_NODE_VERDICTS_TABLE.format(table="node_verdicts")};
 CREATE TABLE events (
     id INTEGER PRIMARY KEY,
     run_id INTEGER NOT NULL REFERENCES runs(id),
@@ -173,6 +202,42 @@ CREATE TABLE events (
     data TEXT
 );
 """
+
+
+def _rebuilt(template: str, name: str, columns: str) -> list[str]:
+    """Statements that rebuild table ``name`` to its present definition ``template``, keeping
+    its rows (SQLite's documented procedure for a change ALTER TABLE cannot make)."""
+    return [
+        template.format(table=f"{name}_new"),
+        f"INSERT INTO {name}_new ({columns}) SELECT {columns} FROM {name}",
+        f"DROP TABLE {name}",
+        f"ALTER TABLE {name}_new RENAME TO {name}",
+    ]
+
+
+_V1_CAPTURE_COLUMNS = (
+    "id, point_id, run_id, capture_index, node, channel, dtype, x_increment_s, x_origin_s, "
+    "y_increment_v, y_origin_v, y_reference, code_min, code_max, points, captured_at, codes"
+)
+
+
+def _upgrade_to_2() -> list[str]:
+    """Statements that bring a version-1 file to version 2 (several nodes per acquisition):
+    capture indices count per node, point figures carry their node (version-1 figures are the
+    primary's), per-node verdicts, and the RCD clamp's capture figures."""
+    return (
+        _rebuilt(_CAPTURES_TABLE, "captures", _V1_CAPTURE_COLUMNS)
+        + [
+            "ALTER TABLE capture_figures ADD COLUMN clamp_level_v REAL",
+            "ALTER TABLE capture_figures ADD COLUMN clamp_loss_w REAL",
+            "ALTER TABLE capture_figures ADD COLUMN clamp_loss_method TEXT",
+        ]
+        + _rebuilt(
+            _POINT_FIGURES_TABLE, "point_figures", "point_id, figure, worst, mean, spread, n"
+        )
+        + [_NODE_VERDICTS_TABLE.format(table="node_verdicts")]
+    )
+
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
@@ -211,7 +276,7 @@ class CaptureRecord:
 
     waveform: WaveformLike
     channel: int = 1
-    node: str = "primary"
+    node: str = PRIMARY_NODE
     captured_at: float = field(default_factory=time.time)  # Unix time, s
 
 
@@ -435,6 +500,28 @@ class Store:
                         "created_at": _now_iso(),
                     }
                 )
+        elif version < SCHEMA_VERSION:
+            self._upgrade(version)
+
+    def _upgrade(self, version: int) -> None:
+        """Bring a file written by an older labseq to :data:`SCHEMA_VERSION`, in one transaction
+        (a failure leaves it as it was). Foreign keys are off meanwhile, as SQLite requires for
+        rebuilding a referenced table, and checked before the commit."""
+        conn = self.db.conn
+        conn.execute("PRAGMA foreign_keys = OFF")
+        try:
+            with self.db.atomic():
+                for statement in _upgrade_to_2():  # the only upgrade so far: 1 → 2
+                    conn.execute(" ".join(statement.split()))
+                broken = conn.execute("PRAGMA foreign_key_check").fetchall()
+                if broken:
+                    raise StoreFileError(
+                        f"{self.path}: cannot upgrade from schema version {version}: "
+                        f"{len(broken)} broken references; the file was not changed"
+                    )
+                conn.execute("UPDATE schema_info SET version = ?", [SCHEMA_VERSION])
+        finally:
+            conn.execute("PRAGMA foreign_keys = ON")
 
     def __enter__(self) -> Store:
         return self
@@ -626,56 +713,139 @@ class Store:
     ) -> int:
         """Store one capture in its own transaction; with ``point_status`` (given with the last
         capture) the point's state is set in that same transaction. Returns the capture id."""
+        return self.add_captures(
+            point_id,
+            [capture],
+            point_status=point_status,
+            readings=readings,
+            started_at=started_at,
+        )[0]
+
+    def add_captures(
+        self,
+        point_id: int,
+        captures: Iterable[CaptureRecord],
+        *,
+        point_status: str | None = None,
+        readings: PointReadings | None = None,
+        started_at: float | None = None,
+    ) -> list[int]:
+        """Store the captures of one acquisition (one per node) in one transaction, so a point
+        never holds part of an acquisition; ``point_status`` as for :meth:`add_capture`."""
         with self.db.atomic():
-            capture_id = self._insert_capture(point_id, capture)
+            ids = [self._insert_capture(point_id, capture) for capture in captures]
             if point_status is not None:
                 self._update_point(point_id, point_status, readings, started_at)
-        return capture_id
+        return ids
+
+    def acquisitions(self, point_id: int) -> int:
+        """How many acquisitions a point holds (distinct capture indices over its nodes)."""
+        query = "SELECT COUNT(DISTINCT capture_index) FROM captures WHERE point_id = ?"
+        return int(self.db.execute(query, [point_id]).fetchone()[0])
 
     def set_point_verdict(self, point_id: int, verdict: str, reasons: Iterable[str]) -> None:
-        """Record a point's verdict and the reasons behind it."""
+        """Record a point's (combined) verdict and the reasons behind it."""
         with self.db.atomic():
             self.db["points"].update(
                 point_id, {"verdict": verdict, "verdict_reasons": json.dumps(list(reasons))}
             )
 
     def set_point_figures(
-        self, point_id: int, figures: Mapping[str, Mapping[str, float | int | None]]
+        self,
+        point_id: int,
+        figures: Mapping[str, Mapping[str, float | int | None]],
+        *,
+        node: str = PRIMARY_NODE,
     ) -> None:
-        """Replace a point's aggregated figures: figure name → {worst, mean, spread, n}."""
-        rows = [
-            {
-                "point_id": point_id,
-                "figure": name,
-                "worst": values.get("worst"),
-                "mean": values.get("mean"),
-                "spread": values.get("spread"),
-                "n": int(values.get("n") or 0),
-            }
-            for name, values in figures.items()
-        ]
+        """Replace one node's aggregated figures at a point: figure → {worst, mean, spread, n}."""
+        with self.db.atomic():
+            self.db.execute(
+                "DELETE FROM point_figures WHERE point_id = ? AND node = ?", [point_id, node]
+            )
+            self._insert_point_figures(point_id, node, figures)
+
+    def set_point_judgement(
+        self,
+        point_id: int,
+        node_figures: Mapping[str, Mapping[str, Mapping[str, float | int | None]]],
+        node_verdicts: Mapping[str, tuple[str, Iterable[str]]],
+        verdict: str,
+        reasons: Iterable[str],
+    ) -> None:
+        """Replace everything a point was judged on in one transaction: each node's figures
+        (node → figure → stats) and verdict (node → (verdict, reasons)), and the point's
+        combined verdict. Nodes not given lose their old figures and verdicts."""
         with self.db.atomic():
             self.db.execute("DELETE FROM point_figures WHERE point_id = ?", [point_id])
+            self.db.execute("DELETE FROM node_verdicts WHERE point_id = ?", [point_id])
+            for node, figures in node_figures.items():
+                self._insert_point_figures(point_id, node, figures)
+            rows = [
+                {
+                    "point_id": point_id,
+                    "node": node,
+                    "verdict": node_verdict,
+                    "verdict_reasons": json.dumps(list(node_reasons)),
+                }
+                for node, (node_verdict, node_reasons) in node_verdicts.items()
+            ]
             if rows:
-                self.db["point_figures"].insert_all(rows)
+                self.db["node_verdicts"].insert_all(rows)
+            self.set_point_verdict(point_id, verdict, reasons)
 
-    def point_figures(self, run_id: int) -> dict[int, dict[str, dict[str, Any]]]:
-        """Aggregated figures of every point of a run: point id → figure → {worst, mean, ...}."""
-        result: dict[int, dict[str, dict[str, Any]]] = {}
+    def point_figures(
+        self, run_id: int, *, node: str = PRIMARY_NODE
+    ) -> dict[int, dict[str, dict[str, Any]]]:
+        """One node's aggregated figures at every point of a run (the primary's by default):
+        point id → figure → {worst, mean, spread, n}."""
+        return {
+            point_id: nodes[node]
+            for point_id, nodes in self.node_figures(run_id).items()
+            if node in nodes
+        }
+
+    def node_figures(self, run_id: int) -> dict[int, dict[str, dict[str, dict[str, Any]]]]:
+        """Aggregated figures of every node at every point: point id → node → figure → stats."""
+        result: dict[int, dict[str, dict[str, dict[str, Any]]]] = {}
         query = (
             "SELECT f.* FROM point_figures f JOIN points p ON p.id = f.point_id "
-            "WHERE p.run_id = ? ORDER BY p.point_index, f.figure"
+            "WHERE p.run_id = ? ORDER BY p.point_index, f.node, f.figure"
         )
         for row in self.db.query(query, [run_id]):
             values = {key: row[key] for key in ("worst", "mean", "spread", "n")}
-            result.setdefault(row["point_id"], {})[row["figure"]] = values
+            nodes = result.setdefault(row["point_id"], {})
+            nodes.setdefault(row["node"], {})[row["figure"]] = values
         return result
+
+    def node_verdicts(self, run_id: int) -> dict[int, dict[str, tuple[str, list[str]]]]:
+        """Each node's verdict at every judged point: point id → node → (verdict, reasons)."""
+        query = (
+            "SELECT v.* FROM node_verdicts v JOIN points p ON p.id = v.point_id "
+            "WHERE p.run_id = ? ORDER BY p.point_index, v.node"
+        )
+        result: dict[int, dict[str, tuple[str, list[str]]]] = {}
+        for row in self.db.query(query, [run_id]):
+            reasons = json.loads(row["verdict_reasons"])
+            result.setdefault(row["point_id"], {})[row["node"]] = (row["verdict"], reasons)
+        return result
+
+    def node_names(self, run_id: int) -> list[str]:
+        """The nodes a run captured, in order of first capture (the primary first)."""
+        query = "SELECT node, MIN(id) AS first FROM captures WHERE run_id = ? GROUP BY node"
+        rows = sorted(self.db.query(query, [run_id]), key=lambda row: row["first"])
+        return [row["node"] for row in rows]
 
     # ------------------------------------------------------------------- captures
 
-    def captures(self, point_id: int, *, with_codes: bool = True) -> list[StoredCapture]:
-        """A point's captures in order; ``with_codes=False`` leaves the BLOBs unread."""
-        return list(self._iter_captures("c.point_id = ?", [point_id], with_codes))
+    def captures(
+        self, point_id: int, *, with_codes: bool = True, node: str | None = None
+    ) -> list[StoredCapture]:
+        """A point's captures in order (of one ``node``, or of all); ``with_codes=False`` leaves
+        the BLOBs unread."""
+        if node is None:
+            return list(self._iter_captures("c.point_id = ?", [point_id], with_codes))
+        where = "c.point_id = ? AND c.node = ?"
+        return list(self._iter_captures(where, [point_id, node], with_codes))
 
     def iter_captures(self, run_id: int, *, with_codes: bool = True) -> Iterator[StoredCapture]:
         """A run's captures in point and capture order, read one at a time."""
@@ -692,7 +862,7 @@ class Store:
     ) -> None:
         """Store one capture's figures (those of its worst edge), its edges and any analysis
         error. ``figures`` uses the analysis' names; unknown names are a programming error."""
-        allowed = {*CAPTURE_FIGURES, "snubber_loss_method", "clipped"}
+        allowed = {*CAPTURE_FIGURES, *CAPTURE_METHODS, "clipped"}
         unknown = sorted(set(figures) - allowed)
         if unknown:
             raise ValueError(f"unknown capture figures {unknown}; known: {sorted(allowed)}")
@@ -769,8 +939,12 @@ class Store:
             {
                 "point_id": point_id,
                 "run_id": rows[0]["run_id"],
-                "capture_index": self._next_index(
-                    "captures", "capture_index", "point_id", point_id
+                "capture_index": int(
+                    self.db.execute(
+                        "SELECT COALESCE(MAX(capture_index) + 1, 0) FROM captures "
+                        "WHERE point_id = ? AND node = ?",
+                        [point_id, capture.node],
+                    ).fetchone()[0]
                 ),
                 "node": capture.node,
                 "channel": int(capture.channel),
@@ -811,6 +985,24 @@ class Store:
         if cursor.rowcount != 1:
             raise StoreError(f"no point with id {point_id}")
 
+    def _insert_point_figures(
+        self, point_id: int, node: str, figures: Mapping[str, Mapping[str, float | int | None]]
+    ) -> None:
+        rows = [
+            {
+                "point_id": point_id,
+                "node": node,
+                "figure": name,
+                "worst": values.get("worst"),
+                "mean": values.get("mean"),
+                "spread": values.get("spread"),
+                "n": int(values.get("n") or 0),
+            }
+            for name, values in figures.items()
+        ]
+        if rows:
+            self.db["point_figures"].insert_all(rows)
+
     def _next_index(self, table: str, column: str, parent: str, parent_id: int) -> int:
         # table and column names are this module's constants; the id is a parameter
         query = f"SELECT COALESCE(MAX({column}) + 1, 0) FROM {table} WHERE {parent} = ?"
@@ -824,7 +1016,7 @@ class Store:
             f"SELECT {', '.join('c.' + name for name in columns)}, c.dtype"
             + (", c.codes" if with_codes else "")
             + " FROM captures c JOIN points p ON p.id = c.point_id"
-            + f" WHERE {where} ORDER BY p.point_index, c.capture_index"
+            + f" WHERE {where} ORDER BY p.point_index, c.capture_index, c.id"
         )
         for row in self.db.execute(query, params):
             dtype = np.dtype(row["dtype"]).newbyteorder("<")

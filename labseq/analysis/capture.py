@@ -17,7 +17,32 @@ The fit covers the first, dominant ring after the peak: the window starts at the
 the last clipped sample), spans about three decay time constants (at least 3 and at most 20 ring
 periods), and ends early where the node departs from the plateau by more than 10 % of the step
 after the ring has decayed, so a later, slower ring is not mixed in. The window is decimated to
-at most ``FIT_MAX_SAMPLES`` samples, which keeps at least 20 samples per ring period.
+at most ``FIT_MAX_SAMPLES`` samples, which keeps at least 20 samples per ring period. A fit that
+explains less than ``MIN_RING_FIT_QUALITY`` of the window's variance has found noise, not a ring
+(e.g. a rectifier whose damper leaves a single undershoot and no oscillation): the edge then has
+no ring figures, and its plateau is the record's high state level.
+
+The RCD clamp (:func:`clamp_figures`)
+-------------------------------------
+While the clamp diode conducts, the switch node is tied to the clamp capacitor: the spike after
+turn-off is held flat for the tens of ns the leakage current takes to charge the capacitor, then
+the node rings down to the reflected plateau. The clamp level is the histogram mode of the first
+contiguous run of samples above half-way from the reflected plateau to the peak (the flat top,
+plus the rounded start of the ring's first fall, which the mode ignores); the capacitor's voltage
+climbs a little as it charges, and a sinusoid's or a charging curve's samples crowd near its top,
+so the mode is the capacitor's voltage near the end of conduction — the top of its ripple. Limits:
+a top shorter than a few samples, or held for less time than the ring spends near one of its
+later crests, gives the ring's level rather than the clamp's; a clipped top is not measured.
+
+The clamp resistor returns the capacitor's charge to the bus, so it carries the capacitor's
+voltage above the bus, Vc = clamp level − bus, and dissipates Vc²/Rclamp (the relation of the
+usual RCD clamp design, Fairchild AN-4147, from memory). Between two conductions Vc decays as
+exp(−t/RC) over the switching period T; its mean square over the period is
+Vc_top²·RC/(2T)·(1 − exp(−2T/RC)), which sets the loss (a ripple of a few % of Vc, 5–10 % of the
+loss, otherwise ignored). The bus is the DC line; on an AC line it is the centre of the DCM valley
+ring after demagnetisation (Lm rings around the bus, volt-second balance), fitted as a decaying
+sinusoid, or √2·Vrms (the rectified line's peak, with no bridge drop and no ripple) when the
+record has no valley ring (CCM): that estimate is high by the bulk capacitor's ripple.
 """
 
 from __future__ import annotations
@@ -67,6 +92,10 @@ DECAYED_FRACTION = 0.05
 #: A transition slower than this many times the fastest one in the record is a resonant swing
 #: (e.g. a DCM valley ring reaching the low state), not a switching edge.
 SLOW_SWING_FACTOR = 10.0
+#: Consecutive samples in the settling band that show an edge without a fitted ring has settled.
+QUIET_SAMPLES = 32
+#: Least R² of a final ring fit for its figures to count (see the module notes).
+MIN_RING_FIT_QUALITY = 0.5
 #: Snubber branch start-up: decay time constants skipped before the loss window.
 BRANCH_SETTLE_TIME_CONSTANTS = 5.0
 
@@ -120,6 +149,8 @@ FIGURE_UNITS: dict[str, str] = {
     "settling_time_s": "s",
     "snubber_loss_w": "W",
     "stress_margin_v": "V",
+    "clamp_level_v": "V",
+    "clamp_loss_w": "W",
 }
 
 #: Names of the per-edge figures, in order (JSON keys and store columns).
@@ -314,8 +345,11 @@ def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | None
         final_windows[k] = _window(rec, start, samples, rough)
     finals = fit_rings(list(final_windows.values()))
     for k, fit in zip(final_windows, finals, strict=True):
-        if isinstance(fit, RingFit):
-            found[k] = fit
+        best = fit if isinstance(fit, RingFit) else found[k]
+        if best.fit_quality >= MIN_RING_FIT_QUALITY:
+            found[k] = best
+        else:
+            del found[k]
     return [found.get(k) for k in range(len(spans))]
 
 
@@ -350,7 +384,13 @@ def _edge(
     if t50 is None:
         return None
     half_band = settling_band * step
+    # Without a fit, the node is quiet from the first run of QUIET_SAMPLES samples in the band;
+    # the search for the last entry ends where it next leaves the band.
     limit = high_end + 1
+    inside = np.concatenate(([0], np.cumsum(np.abs(u[peak:limit] - plateau) <= half_band)))
+    quiet_runs = np.flatnonzero(inside[QUIET_SAMPLES:] - inside[:-QUIET_SAMPLES] == QUIET_SAMPLES)
+    if fit is None and quiet_runs.size:
+        limit = _first_departure(u, peak + int(quiet_runs[0]), limit, plateau, half_band)
     if fit is not None:
         decayed = fit.time_envelope_below_s(0.5 * half_band)
         quiet = max(peak, math.ceil((decayed - t0) / dt))
@@ -391,6 +431,139 @@ def _snubber_losses(
     centred = np.array([float(e["edge_time_s"]) - rec.t0 for e in edges]) - 0.5 * branch.period_s
     starts = np.clip(centred, settle_s, record_s - branch.period_s)
     return [(float(p), "waveform") for p in period_means_w(power, rec.dt, starts, branch.period_s)]
+
+
+#: Samples above this share of the way from the reflected plateau to the peak count as the clamp's
+#: flat top.
+CLAMP_TOP_FRACTION = 0.5
+#: The valley ring must last at least this many of its periods to be fitted for the bus voltage.
+VALLEY_MIN_PERIODS = 1.0
+#: and its fit must explain at least this share of the variance (R²).
+VALLEY_MIN_FIT_QUALITY = 0.9
+#: Stride (samples) of the walk back from the turn-on edge to the last crest before it.
+VALLEY_WALK_SAMPLES = 8
+
+
+@dataclass(frozen=True)
+class ClampFigures:
+    """The RCD clamp seen in one primary capture (see the module notes for the method).
+
+    ``bus_method`` says where the bus came from: "dc-line", "valley-ring" or "line-peak".
+    """
+
+    clamp_level_v: float  # node voltage while the clamp diode conducts (top of the ripple)
+    bus_v: float
+    bus_method: str
+    clamp_voltage_v: float  # capacitor voltage above the bus, rms over the switching period
+    clamp_loss_w: float
+
+    def as_dict(self) -> dict[str, float | str]:
+        """The stored figures: level and loss, with the bus method as the loss's method."""
+        return {
+            "clamp_level_v": self.clamp_level_v,
+            "clamp_loss_w": self.clamp_loss_w,
+            "clamp_loss_method": self.bus_method,
+        }
+
+
+def clamp_level_v(
+    volts: np.ndarray, sample_interval_s: float, t0_s: float, edge: EdgeFigures
+) -> float | None:
+    """Level the spike after ``edge`` is held at by the clamp (None when the top clipped)."""
+    v = np.asarray(volts, dtype=float)
+    start = min(max(0, math.floor((edge.edge_time_s - t0_s) / sample_interval_s)), v.size - 1)
+    level = edge.plateau_v + CLAMP_TOP_FRACTION * (edge.peak_v - edge.plateau_v)
+    above = np.flatnonzero(v[start:] > level)
+    if edge.clipped or not above.size:
+        return None
+    first = start + int(above[0])
+    below = np.flatnonzero(v[first:] <= level)
+    stop = first + int(below[0]) if below.size else v.size
+    return histogram_mode(v[first:stop])
+
+
+def valley_ring_centre_v(
+    volts: np.ndarray, sample_interval_s: float, t0_s: float, edge: EdgeFigures
+) -> float | None:
+    """Centre of the DCM valley ring after ``edge``'s plateau, or None when there is none.
+
+    The ring runs from the node's departure from the plateau (by 10 % of the step) to the last
+    crest before the next turn-on pulls the node below 10 % of the step.
+    """
+    v = np.asarray(volts, dtype=float)
+    dt = sample_interval_s
+    step = edge.plateau_v - edge.base_v
+    quiet_s = edge.edge_time_s + (edge.settling_time_s or 0.0)
+    start = min(max(0, math.ceil((quiet_s - t0_s) / dt)), v.size)
+    depart = _first_departure(v, start, v.size, edge.plateau_v, DEPARTURE_FRACTION * step)
+    low = edge.base_v + LOW_REFERENCE * step
+    fallen = np.flatnonzero(v[depart:] < low)
+    stop = depart + int(fallen[0]) if fallen.size else v.size
+    tolerance = 0.005 * step
+    while (
+        stop - VALLEY_WALK_SAMPLES > depart
+        and v[stop - VALLEY_WALK_SAMPLES] >= v[stop - 1] - tolerance
+    ):
+        stop -= VALLEY_WALK_SAMPLES
+    if stop - depart < MIN_RECORD_SAMPLES:
+        return None
+    stride = max(1, -(-(stop - depart) // FIT_MAX_SAMPLES))
+    window = RingWindow(v[depart:stop:stride], dt * stride, t0_s + depart * dt)
+    fit = fit_rings([window])[0]
+    if not isinstance(fit, RingFit) or fit.fit_quality < VALLEY_MIN_FIT_QUALITY:
+        return None
+    if (stop - depart) * dt * fit.frequency_hz < VALLEY_MIN_PERIODS:
+        return None
+    return fit.offset_v
+
+
+def clamp_figures(
+    volts: np.ndarray,
+    sample_interval_s: float,
+    t0_s: float,
+    figures: CaptureFigures,
+    *,
+    resistance_ohm: float,
+    capacitance_f: float,
+    switching_frequency_hz: float,
+    line_v: float,
+    line_is_ac: bool,
+) -> ClampFigures | None:
+    """The RCD clamp's level and loss at the worst edge of a primary capture (module notes).
+
+    Parameters
+    ----------
+    volts, sample_interval_s, t0_s : the record, as given to :func:`analyze_capture`.
+    figures : its analysis (a rising node: the primary switch).
+    resistance_ohm, capacitance_f : the clamp's resistor and capacitor.
+    switching_frequency_hz : the converter's, for the capacitor's ripple over a period.
+    line_v, line_is_ac : the line setpoint (DC volts or AC rms volts), for the bus.
+
+    Returns None when the clamp level cannot be measured (the top clipped, no spike above the
+    plateau).
+    """
+    edge = figures.worst
+    level_v = clamp_level_v(volts, sample_interval_s, t0_s, edge)
+    if level_v is None:
+        return None
+    if not line_is_ac:
+        bus_v, method = line_v, "dc-line"
+    else:
+        centre_v = valley_ring_centre_v(volts, sample_interval_s, t0_s, edge)
+        if centre_v is not None:
+            bus_v, method = centre_v, "valley-ring"
+        else:
+            bus_v, method = math.sqrt(2.0) * line_v, "line-peak"
+    top_v = max(level_v - bus_v, 0.0)
+    periods = 2.0 / (switching_frequency_hz * resistance_ohm * capacitance_f)  # 2T/RC
+    mean_square = top_v**2 * -math.expm1(-periods) / periods
+    return ClampFigures(
+        clamp_level_v=level_v,
+        bus_v=bus_v,
+        bus_method=method,
+        clamp_voltage_v=math.sqrt(mean_square),
+        clamp_loss_w=mean_square / resistance_ohm,
+    )
 
 
 def analyze_capture(

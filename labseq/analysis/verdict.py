@@ -4,12 +4,16 @@ A point is captured several times. Each figure is summarised by its worst value 
 is judged on), its mean and its spread (sample standard deviation). A limit on a figure that no
 capture determined (no capture analysed, a failed ring fit, a clipped peak that only bounds the
 truth on the safe side) cannot pass: the point is then incomplete.
+
+A node that falls at its edge of interest (polarity −1, a rectifier's reverse voltage) keeps its
+own sign in the figures: its worst peak is the most negative one, and the peak limit is judged on
+the magnitude.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, fields
 from typing import Literal
 
@@ -20,8 +24,19 @@ from labseq.units import format_si
 
 #: Figures whose worst value is the largest.
 WORST_IS_MAX = frozenset(
-    {"peak_v", "overshoot_v", "overshoot_pct", "settling_time_s", "snubber_loss_w", "q_factor"}
+    {
+        "peak_v",
+        "overshoot_v",
+        "overshoot_pct",
+        "settling_time_s",
+        "snubber_loss_w",
+        "q_factor",
+        "clamp_level_v",
+        "clamp_loss_w",
+    }
 )
+#: Figures kept in the node's own sign: on a falling node their worst is the most negative.
+SIGNED_FIGURES = frozenset({"peak_v"})
 #: Figures whose worst value is the smallest.
 WORST_IS_MIN = frozenset({"damping_ratio", "stress_margin_v", "efficiency", "fit_quality"})
 #: Figures that clipping turns into a bound on the safe side (their true value may be worse).
@@ -52,13 +67,21 @@ class PointFigures:
         return summary.worst if summary else None
 
 
-def aggregate(captures: Sequence[Mapping[str, object]]) -> PointFigures:
+def _worst_is_max(name: str, polarity: int) -> bool | None:
+    """True when the worst of ``name`` is its largest value, False its smallest, None neither."""
+    if name in WORST_IS_MAX:
+        return polarity > 0 or name not in SIGNED_FIGURES
+    return False if name in WORST_IS_MIN else None
+
+
+def aggregate(captures: Sequence[Mapping[str, object]], *, polarity: int = 1) -> PointFigures:
     """Summarise the figures of a point's captures (one mapping per capture, e.g. ``as_dict()``).
 
     Numbers are summarised per key; None, booleans and text are skipped. ``worst`` is the maximum
     or minimum according to ``WORST_IS_MAX`` / ``WORST_IS_MIN`` (None for figures without a
-    direction); ``spread`` is the sample standard deviation (ddof = 1), None for one capture.
-    A capture counts as clipped when its ``clipped`` entry is true.
+    direction), turned round for ``SIGNED_FIGURES`` of a falling node (``polarity`` −1);
+    ``spread`` is the sample standard deviation (ddof = 1), None for one capture. A capture
+    counts as clipped when its ``clipped`` entry is true.
     """
     values: dict[str, list[float]] = {}
     for capture in captures:
@@ -69,7 +92,8 @@ def aggregate(captures: Sequence[Mapping[str, object]]) -> PointFigures:
     figures = {}
     for name, samples in values.items():
         x = np.asarray(samples)
-        worst = x.max() if name in WORST_IS_MAX else x.min() if name in WORST_IS_MIN else None
+        is_max = _worst_is_max(name, polarity)
+        worst = None if is_max is None else x.max() if is_max else x.min()
         figures[name] = FigureSummary(
             worst=None if worst is None else float(worst),
             mean=float(x.mean()),
@@ -108,18 +132,30 @@ class Verdict:
     reasons: list[str]
 
 
+def worst_verdict(verdicts: Iterable[str]) -> Literal["pass", "fail", "incomplete"]:
+    """The verdict of several (a point's nodes): fail if any fails, else incomplete if any is
+    incomplete (or there are none), else pass."""
+    seen = set(verdicts)
+    if "fail" in seen:
+        return "fail"
+    return "incomplete" if "incomplete" in seen or not seen else "pass"
+
+
 def _text(name: str, value: float) -> str:
     if name == "efficiency":
         return f"{100 * value:.3g} %"
     return format_si(value, FIGURE_UNITS.get(name, ""))
 
 
-def judge(point: PointFigures, limits: Limits, efficiency: float | None = None) -> Verdict:
-    """Judge a point against ``limits``.
+def judge(
+    point: PointFigures, limits: Limits, efficiency: float | None = None, *, polarity: int = 1
+) -> Verdict:
+    """Judge a point (or one node of it) against ``limits``.
 
     Fail when any worst value is beyond its limit; otherwise incomplete when a limited figure is
     missing, or is a clipped bound that could hide a failure; otherwise pass. Reasons name the
-    figure, its value and the limit in engineering notation.
+    figure, its value and the limit in engineering notation. On a falling node (``polarity``
+    −1) the peak limit applies to the magnitude of the peak.
     """
     failures: list[str] = []
     missing: list[str] = []
@@ -128,13 +164,15 @@ def judge(point: PointFigures, limits: Limits, efficiency: float | None = None) 
         if limit is None:
             continue
         value = efficiency if figure == "efficiency" else point.worst(figure)
-        relation = "≤" if is_max else "≥"
+        magnitude = polarity < 0 and figure in SIGNED_FIGURES
+        relation = ("|peak| " if magnitude else "") + ("≤" if is_max else "≥")
         wanted = f"limit {relation} {_text(figure, limit)}"
         if value is None:
             why = "no captures analysed" if point.n_captures == 0 else "not determined"
             missing.append(f"{figure}: {why}; {wanted}")
             continue
-        beyond = value > limit if is_max else value < limit
+        judged = abs(value) if magnitude else value
+        beyond = judged > limit if is_max else judged < limit
         clipped = point.n_clipped and figure in BOUNDED_BY_CLIPPING
         if beyond:
             bound = " (a bound: the capture clipped)" if clipped else ""

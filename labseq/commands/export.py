@@ -1,10 +1,13 @@
 """``labseq export RUN``: a run's points as CSV and its captures as NPZ or CSV files.
 
-``points.csv`` has one row per point: setpoints, readbacks, meter readings, efficiency, verdict
-and the per-point figures (worst, mean, spread, n of each). Captures go either into one
+``points.csv`` has one row per point: setpoints, readbacks, meter readings, efficiency, the
+combined verdict and the per-point figures (worst, mean, spread, n of each) of the primary node,
+then for each further node its verdict and figures in columns prefixed by its name
+(``secondary_verdict``, ``secondary_peak_v_worst``…). Captures go either into one
 ``captures.npz`` (per capture ``<name>_codes`` as stored, ``<name>_volts``, and a ``scaling``
 table with one row per capture) or into ``captures/<name>.csv`` files of ``time_s,volts``, where
-``<name>`` is ``p<point index>_c<capture index>``. Captures are read and written one at a time.
+``<name>`` is ``p<point index>_c<capture index>``, followed by ``_<node>`` for a node other than
+the primary. Captures are read and written one at a time.
 """
 
 from __future__ import annotations
@@ -20,13 +23,13 @@ import click
 import numpy as np
 
 from labseq.commands._store import db_option, resolve_run
-from labseq.store import PointRecord, Store, StoredCapture
+from labseq.store import PRIMARY_NODE, PointRecord, Store, StoredCapture
 
 _POINT_COLUMNS = [f.name for f in fields(PointRecord) if f.name not in ("id", "run_id")]
 _FIGURE_STATS = ("worst", "mean", "spread", "n")
 _SCALING_DTYPE = np.dtype(
     [
-        ("name", "U16"),
+        ("name", "U48"),
         ("point_index", "i8"),
         ("capture_index", "i8"),
         ("channel", "i8"),
@@ -42,17 +45,27 @@ _SCALING_DTYPE = np.dtype(
 )
 
 
-def capture_name(point_index: int, capture_index: int) -> str:
-    """File-safe name of a capture: ``p003_c01``."""
-    return f"p{point_index:03d}_c{capture_index:02d}"
+def capture_name(point_index: int, capture_index: int, node: str | None = None) -> str:
+    """File-safe name of a capture: ``p003_c01``, or ``p003_c01_secondary`` for a node other than
+    the primary (``node`` None)."""
+    return f"p{point_index:03d}_c{capture_index:02d}" + (f"_{node}" if node else "")
 
 
 def write_points_csv(store: Store, run_id: int, path: Path) -> int:
-    """Write the run's points with their figures to ``path``; return the number of rows."""
+    """Write the run's points with their figures (per node) to ``path``; return the row count."""
     points = store.points(run_id)
-    figures = store.point_figures(run_id)
-    names = sorted({name for per_point in figures.values() for name in per_point})
-    header = _POINT_COLUMNS + [f"{name}_{stat}" for name in names for stat in _FIGURE_STATS]
+    figures = store.node_figures(run_id)
+    verdicts = store.node_verdicts(run_id)
+    nodes = store.node_names(run_id) or [PRIMARY_NODE]
+    names = {
+        node: sorted({name for per_point in figures.values() for name in per_point.get(node, {})})
+        for node in nodes
+    }
+    header = list(_POINT_COLUMNS)
+    for index, node in enumerate(nodes):
+        prefix = f"{node}_" if index else ""
+        header += [f"{node}_verdict"] if index else []
+        header += [f"{prefix}{name}_{stat}" for name in names[node] for stat in _FIGURE_STATS]
     with path.open("w", newline="", encoding="utf-8") as handle:
         writer = csv.writer(handle)
         writer.writerow(header)
@@ -60,18 +73,23 @@ def write_points_csv(store: Store, run_id: int, path: Path) -> int:
             row = asdict(point)
             row["verdict_reasons"] = "; ".join(point.verdict_reasons)
             values = [row[column] for column in _POINT_COLUMNS]
-            per_point = figures.get(point.id, {})
-            for name in names:
-                values += [per_point.get(name, {}).get(stat) for stat in _FIGURE_STATS]
+            for index, node in enumerate(nodes):
+                if index:
+                    values.append(verdicts.get(point.id, {}).get(node, (None,))[0])
+                per_node = figures.get(point.id, {}).get(node, {})
+                for name in names[node]:
+                    values += [per_node.get(name, {}).get(stat) for stat in _FIGURE_STATS]
             writer.writerow(["" if value is None else value for value in values])
     return len(points)
 
 
 def _named_captures(store: Store, run_id: int) -> Iterator[tuple[str, StoredCapture, int]]:
     index_of_point = {point.id: point.point_index for point in store.points(run_id)}
+    nodes = store.node_names(run_id)
     for capture in store.iter_captures(run_id):
         point_index = index_of_point[capture.point_id]
-        yield capture_name(point_index, capture.capture_index), capture, point_index
+        node = None if capture.node == nodes[0] else capture.node
+        yield capture_name(point_index, capture.capture_index, node), capture, point_index
 
 
 def write_captures_npz(store: Store, run_id: int, path: Path) -> int:

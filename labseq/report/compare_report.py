@@ -26,11 +26,14 @@ from labseq.review import (
     format_change,
     format_figure,
     line_text,
+    shared_nodes,
 )
 from labseq.store import Store
 
 #: Figures with maps and table columns, in reading order.
 MAPPED_FIGURES = ("peak_v", "damping_ratio", "settling_time_s", "snubber_loss_w", "efficiency")
+#: Figures of a node other than the primary in its change table (efficiency is the point's).
+NODE_FIGURES = ("peak_v", "damping_ratio", "settling_time_s", "snubber_loss_w")
 #: Points listed in the change table at most (changed ones first).
 MAX_LISTED_POINTS = 200
 #: Points given an overlay.
@@ -77,6 +80,25 @@ def _change_rows(comparison: Comparison) -> tuple[list[list[Markup | str]], int]
         for p in listed[:MAX_LISTED_POINTS]
     ]
     return rows, len(listed)
+
+
+def _node_change_rows(comparison: Comparison, node: str) -> list[list[Markup | str]]:
+    """One row per matched point where a figure of ``node`` moved beyond its threshold."""
+    rows: list[list[Markup | str]] = []
+    for change in comparison.points:
+        changes = change.nodes.get(node, {})
+        if not any(c.flag in ("better", "worse") for c in changes.values()):
+            continue
+        worse = any(c.flag == "worse" and c.figure in change.gated for c in changes.values())
+        flag = "worse" if worse else "better"
+        rows.append(
+            [
+                comparison.label(change),
+                cell(flag, _FLAG_CLASS[flag]),
+                *(_change_cell(changes.get(figure)) for figure in NODE_FIGURES),
+            ]
+        )
+    return rows[:MAX_LISTED_POINTS]
 
 
 def _run_rows(baseline: RunReview, candidate: RunReview) -> list[list[str]]:
@@ -183,26 +205,37 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
 def _overlays(
     page: Page, comparison: Comparison, baseline_store: Store, candidate_store: Store
 ) -> None:
-    rating = comparison.candidate.derated_rating_v or comparison.baseline.derated_rating_v
     for index, change in enumerate(comparison.most_moved(OVERLAY_POINTS)):
         label = comparison.label(change)
-        moved = sorted(change.changes.values(), key=lambda c: -c.significance)[:3]
+        moved = sorted(change.all_changes, key=lambda c: -c.significance)[:3]
+        node = moved[0].node or comparison.candidate.node_names[0]
         words = ", ".join(
-            f"{FIGURE_TITLES[c.figure]} {format_change(c.figure, c.delta)}" for c in moved
+            (f"{c.node}: " if c.node else "")
+            + f"{FIGURE_TITLES[c.figure]} {format_change(c.figure, c.delta)}"
+            for c in moved
         )
+        view = comparison.candidate.node_view(node)
+        rating = view.derated_rating_v or comparison.baseline.node_view(node).derated_rating_v
+        rating = None if rating is None else view.polarity * rating
         page.add(f"<h3>{esc(label)}: {esc(words)}</h3>")
         groups = [
             (
                 f"baseline (run {comparison.baseline.run.id})",
                 point_traces(
-                    baseline_store, change.baseline.point.id, comparison.baseline.sequence
+                    baseline_store,
+                    change.baseline.point.id,
+                    comparison.baseline.sequence,
+                    node=node,
                 ),
                 [plots.BASELINE_COLOUR],
             ),
             (
                 f"candidate (run {comparison.candidate.run.id})",
                 point_traces(
-                    candidate_store, change.candidate.point.id, comparison.candidate.sequence
+                    candidate_store,
+                    change.candidate.point.id,
+                    comparison.candidate.sequence,
+                    node=node,
                 ),
                 [plots.CANDIDATE_COLOUR],
             ),
@@ -269,6 +302,15 @@ def build_compare_report(
     page.add(table(header, rows))
     if total > len(rows):
         page.paragraph(f"… and {total - len(rows)} more points: see compare --json.", "note")
+
+    for node in shared_nodes(b, c):
+        page.section(f"changes-{node}", f"Changes of the {node} node")
+        node_rows = _node_change_rows(comparison, node)
+        if node_rows:
+            node_header = ["point", "result", *(FIGURE_TITLES[f] for f in NODE_FIGURES)]
+            page.add(table(node_header, node_rows))
+        else:
+            page.paragraph(f"No figure of the {node} node moved beyond its threshold.", "note")
 
     page.section("maps", "Side-by-side and change maps")
     for figure in MAPPED_FIGURES:

@@ -39,6 +39,8 @@ MAX_ANNOTATED_CELLS = 100
 #: Axis ticks shown at most (evenly thinned beyond).
 MAX_TICKS = 12
 DPI = 100
+#: Damping ratio from which a fitted ring barely oscillates, so its period does not set the window.
+OVERDAMPED_RATIO = 0.5
 #: Time shown after an edge whose ring could not be fitted.
 NO_FIT_SPAN_S = 1e-6
 
@@ -165,19 +167,25 @@ def heat_map(
 
 def _window_s(traces: Sequence[Trace]) -> tuple[float, float]:
     """A time window around the first trace's worst edge that holds its ring: from a little
-    before the edge to about five decay time constants after it (3 to 30 ring periods); 1 µs
+    before the edge to about five decay time constants after it (3 to 30 ring periods, or just the
+    decay for a response that barely oscillates); 1 µs
     when no ring was fitted; the whole record when no edge was found."""
     for trace in traces:
         if trace.edge_time_s is None:
             continue
         span_s = NO_FIT_SPAN_S
-        later = [fit for fit in trace.fits if fit.t_start_s >= trace.edge_time_s]
+        # the edge's own ring starts at its peak, well within NO_FIT_SPAN_S of the edge
+        later = [
+            fit for fit in trace.fits if 0 <= fit.t_start_s - trace.edge_time_s < NO_FIT_SPAN_S
+        ]
         if later:
             fit = min(later, key=lambda f: f.t_start_s)
             period_s = 1.0 / fit.frequency_hz
             decay_s = 5.0 / fit.decay_rate_per_s if fit.decay_rate_per_s > 0 else math.inf
+            # a response damped past oscillating (ζ ≥ 0.5) is shown over its decay alone
+            shortest_s = 3 * period_s if fit.damping_ratio < OVERDAMPED_RATIO else 0.0
             span_s = (
-                fit.t_start_s - trace.edge_time_s + min(max(decay_s, 3 * period_s), 30 * period_s)
+                fit.t_start_s - trace.edge_time_s + min(max(decay_s, shortest_s), 30 * period_s)
             )
         return trace.edge_time_s - 0.15 * span_s, trace.edge_time_s + span_s
     if traces:
@@ -195,6 +203,7 @@ def overlay(
     title: str,
     limit_v: float | None = None,
     limit_label: str = "",
+    y_label: str = "switch node (V)",
 ) -> Figure:
     """Captures overlaid around their worst edge, with their fitted rings dashed.
 
@@ -243,7 +252,7 @@ def overlay(
             va="bottom",
         )
     ax.set_xlabel(f"time from trigger ({unit})")
-    ax.set_ylabel("switch node (V)")
+    ax.set_ylabel(y_label)
     ax.set_title(title)
     ax.grid(True, color="#e0e0e0", lw=0.6)
     handles, labels = ax.get_legend_handles_labels()

@@ -1,5 +1,10 @@
 """The report of one run: verdict and limits, verdict grid, heat maps, worst points, identities,
-the sequence as run and the safety note — in the order a reviewer reads them."""
+the sequence as run and the safety note — in the order a reviewer reads them.
+
+The verdict grid is the points' combined verdicts (the worst of their nodes); heat maps, worst
+points and overlays are the primary node's, then one section per further node (e.g. "Secondary
+rectifier — peak reverse voltage against the derated rating") with its own limits.
+"""
 
 from __future__ import annotations
 
@@ -15,10 +20,10 @@ from labseq.report import plots
 from labseq.report.html import Markup, Page, esc, table, verdict_cell
 from labseq.report.traces import point_traces
 from labseq.review import (
-    FIGURE_DIRECTIONS,
     FIGURE_TITLES,
     PointReview,
     RunReview,
+    figure_direction,
     figure_unit,
     format_figure,
     limit_rows,
@@ -72,42 +77,54 @@ def cell_texts(values: np.ndarray, describe: Callable[[float], str]) -> Callable
     return text
 
 
+def _prefix(review: RunReview) -> str:
+    """File-name prefix of a node's images: none for the first (primary) node."""
+    return "" if review.node_name == review.node_names[0] else f"{review.node_name}_"
+
+
 def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
-    """(file name, caption, PNG) of each heat map the run's figures allow."""
+    """(file name, caption, PNG) of each heat map the viewed node's figures allow."""
     lines, loads = grid_axes(review)
     maps: list[tuple[str, str, bytes]] = []
     peak = review.grid("peak_v")
     rating_v = review.derated_rating_v
+    word = review.peak_word
+    where = "switch-node voltage" if review.polarity > 0 else f"{review.node_title.lower()} voltage"
     if np.isfinite(peak).any():
         if rating_v:
-            share = 100 * peak / rating_v
-            texts = cell_texts(peak, lambda v: f"{format_si(v, 'V')}\n{100 * v / rating_v:.0f} %")
+            share = 100 * np.abs(peak) / rating_v
+            texts = cell_texts(
+                peak, lambda v: f"{format_si(v, 'V')}\n{100 * abs(v) / rating_v:.0f} %"
+            )
             fig = plots.heat_map(
                 peak,
                 lines,
                 loads,
                 colour_values=share,
-                title=f"Peak stress against the derated rating ({format_si(rating_v, 'V')})",
-                colour_label="peak / derated rating (%)",
+                title=f"{word.capitalize()} against the derated rating "
+                f"({format_si(rating_v, 'V')})",
+                colour_label="|peak| / derated rating (%)",
                 cell_text=texts,
             )
-            caption = "Peak switch-node voltage; 100 % is the switch rating × derating."
+            caption = f"Peak {where}; 100 % is the rating × derating."
         else:
             fig = plots.heat_map(
                 peak,
                 lines,
                 loads,
-                title="Peak stress",
+                title=word.capitalize(),
                 colour_label="peak (V)",
                 cell_text=cell_texts(peak, lambda v: format_si(v, "V")),
             )
-            caption = "Peak switch-node voltage (no rating known: the sequence did not validate)."
-        maps.append(("map_peak", caption, plots.png_bytes(fig)))
+            caption = f"Peak {where} (no rating known: the sequence does not describe the node)."
+        maps.append((f"{_prefix(review)}map_peak", caption, plots.png_bytes(fig)))
     damping = "damping_ratio" if np.isfinite(review.grid("damping_ratio")).any() else "q_factor"
     for figure, name in (
         (damping, "map_damping"),
         ("settling_time_s", "map_settling"),
         ("snubber_loss_w", "map_snubber_loss"),
+        ("clamp_level_v", "map_clamp_level"),
+        ("clamp_loss_w", "map_clamp_loss"),
         ("efficiency", "map_efficiency"),
     ):
         values = review.grid(figure)
@@ -122,13 +139,13 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
             colour_values=shown,
             title=FIGURE_TITLES[figure].capitalize()
             + ("" if figure == "efficiency" else " (worst over the captures)"),
-            cmap_name=plots.value_map(FIGURE_DIRECTIONS[figure]),
+            cmap_name=plots.value_map(figure_direction(figure, review.polarity)),
             colour_label=f"{FIGURE_TITLES[figure]}" + (f" ({unit})" if unit else ""),
             cell_text=cell_texts(values, lambda v, f=figure: format_figure(f, v)),
             colour_format=None if figure == "efficiency" else _colour_format(figure),
         )
         caption = f"{FIGURE_TITLES[figure].capitalize()} at each point; brighter is worse."
-        maps.append((name, caption, plots.png_bytes(fig)))
+        maps.append((_prefix(review) + name, caption, plots.png_bytes(fig)))
     return maps
 
 
@@ -137,9 +154,13 @@ def _colour_format(figure: str) -> Callable[[float], str]:
 
 
 def _worst_rows(review: RunReview) -> list[list[str]]:
-    limits = review.sequence.limits if review.sequence else None
+    spec = review.node_spec
+    limits = spec.limits if spec else None
     limit_of = {
-        "peak_v": ("≤", limits.max_peak_v if limits else None),
+        "peak_v": (
+            "|peak| ≤" if review.polarity < 0 else "≤",
+            limits.max_peak_v if limits else None,
+        ),
         "stress_margin_v": ("≥", limits.min_stress_margin_v if limits else None),
         "damping_ratio": ("≥", limits.min_damping_ratio if limits else None),
         "q_factor": ("≤", limits.max_q_factor if limits else None),
@@ -152,7 +173,7 @@ def _worst_rows(review: RunReview) -> list[list[str]]:
         relation, limit = limit_of.get(figure, ("", None))
         rows.append(
             [
-                FIGURE_TITLES[figure],
+                review.peak_word if figure == "peak_v" else FIGURE_TITLES[figure],
                 format_figure(figure, worst.value),
                 review.label(worst.point),
                 f"{relation} {format_figure(figure, limit)}" if limit is not None else "—",
@@ -169,24 +190,47 @@ def _worst_overlays(page: Page, store: Store, review: RunReview) -> None:
         entry = by_point.setdefault(worst.point.point.id, (worst.point, []))
         entry[1].append(FIGURE_TITLES[figure])
     rating_v = review.derated_rating_v
+    limit_v = None if rating_v is None else review.polarity * rating_v
+    prefix = _prefix(review)
     for point, figures in by_point.values():
-        traces = point_traces(store, point.point.id, review.sequence)
+        traces = point_traces(store, point.point.id, review.sequence, node=review.node_name)
         label = review.label(point)
         heading = f"{label} — worst {', '.join(figures)}"
-        page.add(f'<h3 id="point-{point.point.point_index}">{esc(heading)}</h3>')
+        anchor = f"{prefix}point-{point.point.point_index}"
+        page.add(f'<h3 id="{esc(anchor)}">{esc(heading)}</h3>')
         if not traces:
             page.paragraph("No captures stored for this point.", "note")
             continue
         fig = plots.overlay(
             [("", traces, plots.OKABE_ITO)],
             title=f"{label}: {len(traces)} capture(s), fitted ring dashed",
-            limit_v=rating_v,
-            limit_label=f"derated rating {format_si(rating_v, 'V')}" if rating_v else "",
+            limit_v=limit_v,
+            limit_label=f"derated rating {format_si(limit_v, 'V')}" if limit_v else "",
+            y_label=f"{review.node_title.lower()} (V)",
         )
         caption = f"Captures at {label} overlaid around the worst edge, with the fitted ring."
-        page.add(
-            page.image(f"overlay_p{point.point.point_index:04d}", plots.png_bytes(fig), caption)
-        )
+        name = f"{prefix}overlay_p{point.point.point_index:04d}"
+        page.add(page.image(name, plots.png_bytes(fig), caption))
+
+
+def _node_section(page: Page, store: Store, view: RunReview) -> None:
+    """A further node: its limits, its heat maps, its worst points with their overlays."""
+    page.section(
+        f"node-{view.node_name}",
+        f"{view.node_title} — {view.peak_word} against the derated rating",
+    )
+    limits = limit_rows(view)
+    if limits:
+        page.add(table(["limit", "value"], limits, numeric=[1]))
+    figures = [page.image(name, png, caption) for name, caption, png in run_maps(view)]
+    if not figures:
+        page.paragraph(f"No figures stored for {view.node_name} yet.", "note")
+        return
+    page.add('<div class="maps">' + "".join(figures) + "</div>")
+    page.add(f"<h3>Worst point for each figure ({esc(view.node_name)})</h3>")
+    header = ["figure", "worst value", "at", "limit", f"{view.node_name} verdict there"]
+    page.add(table(header, _worst_rows(view), numeric=[1]))
+    _worst_overlays(page, store, view)
 
 
 def _identity_rows(review: RunReview) -> list[list[str]]:
@@ -199,7 +243,10 @@ def _identity_rows(review: RunReview) -> list[list[str]]:
         ["DUT", run.dut_label],
         ["snubber", run.snubber_label],
         ["bench", run.bench_kind],
+        ["nodes", ", ".join(review.node_names)],
     ]
+    if review.sequence is not None and review.sequence.clamp is not None:
+        rows.insert(6, ["clamp", review.sequence.clamp.label])
     rows += [[f"{role} identity", str(identity)] for role, identity in run.instruments.items()]
     rows += [
         ["labseq version", run.software_version],
@@ -273,6 +320,9 @@ def build_run_report(store: Store, review: RunReview, out_dir: Path) -> ReportFi
         _worst_overlays(page, store, review)
     else:
         page.paragraph("No figures stored for this run yet.", "note")
+
+    for node in review.node_names[1:]:
+        _node_section(page, store, review.node_view(node))
 
     page.section("identity", "DUT, snubber, bench and software")
     page.add(table(["what", "value"], _identity_rows(review)))

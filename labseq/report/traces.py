@@ -6,35 +6,27 @@ large run reads a handful of raw captures at most.
 
 from __future__ import annotations
 
-from labseq.analysis import NoEdgeError, SnubberBranch, analyze_capture
+from labseq.analysis import NoEdgeError, analyze_capture
 from labseq.report.plots import Trace
 from labseq.sequence import Sequence
-from labseq.store import Store, StoredCapture
+from labseq.store import PRIMARY_NODE, Store, StoredCapture
 
 #: Captures drawn per point at most.
 MAX_CAPTURES_DRAWN = 4
 
 
-def _analysis_options(sequence: Sequence | None) -> dict[str, object]:
-    """The settings the run analysed with; plain defaults when the sequence is unknown."""
-    if sequence is None:
+def _analysis_options(sequence: Sequence | None, node_name: str) -> dict[str, object]:
+    """The settings the run analysed the node with; plain defaults when the sequence (or the
+    node in it) is unknown."""
+    node = None if sequence is None else sequence.node(node_name)
+    if sequence is None or node is None:
         return {}
-    return {
-        "polarity": sequence.scope.polarity,
-        "settling_band": sequence.limits.settling_band,
-        "snubber": SnubberBranch(
-            rs_ohm=sequence.snubber.resistance_ohm,
-            cs_f=sequence.snubber.capacitance_f,
-            fsw_hz=sequence.dut.switching_frequency_hz,
-        ),
-        "rating_v": sequence.dut.switch_rating_v,
-        "derating": sequence.dut.derating,
-    }
+    return sequence.analysis_options(node)
 
 
 def trace_of(capture: StoredCapture, sequence: Sequence | None) -> Trace:
     """A stored capture in volts with its fitted rings (none, and the reason, when the analysis
-    finds no edge)."""
+    finds no edge), analysed as its node was."""
     volts = capture.volts()
     time_s = capture.time_s()
     label = f"capture {capture.capture_index + 1}"
@@ -44,7 +36,7 @@ def trace_of(capture: StoredCapture, sequence: Sequence | None) -> Trace:
             capture.x_increment_s,
             float(time_s[0]),
             clipped=capture.clipped,
-            **_analysis_options(sequence),  # type: ignore[arg-type]
+            **_analysis_options(sequence, capture.node),  # type: ignore[arg-type]
         )
     except (NoEdgeError, ValueError) as exc:
         return Trace(label, time_s, volts, (), None, f"{label}: {exc}")
@@ -54,7 +46,13 @@ def trace_of(capture: StoredCapture, sequence: Sequence | None) -> Trace:
 
 
 def point_traces(
-    store: Store, point_id: int, sequence: Sequence | None, limit: int = MAX_CAPTURES_DRAWN
+    store: Store,
+    point_id: int,
+    sequence: Sequence | None,
+    limit: int = MAX_CAPTURES_DRAWN,
+    *,
+    node: str = PRIMARY_NODE,
 ) -> list[Trace]:
-    """Up to ``limit`` captures of a point as traces."""
-    return [trace_of(capture, sequence) for capture in store.captures(point_id)[:limit]]
+    """Up to ``limit`` captures of one node of a point as traces."""
+    captures = store.captures(point_id, node=node)[:limit]
+    return [trace_of(capture, sequence) for capture in captures]

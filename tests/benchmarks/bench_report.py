@@ -70,6 +70,8 @@ def build_store(path: Path) -> int:
                 "q_factor": 0.5 / (0.3 - 0.01 * load_a),
                 "settling_time_s": 1e-7 + 1e-8 * load_a,
                 "snubber_loss_w": 2e-3 * (line_v + 25),
+                "clamp_level_v": line_v + 150 + 10 * load_a,
+                "clamp_loss_w": 0.3 + 0.1 * load_a,
                 "ring_frequency_hz": 20e6,
             }
             figures.append(values)
