@@ -14,8 +14,9 @@ $(STAMP): pyproject.toml | $(BIN)/python
 	$(BIN)/python -m pip install -q -e '.[test]'
 	touch $(STAMP)
 
-# The main job on the simulated bench: sweep the DC demo flyback, store it, report it; then a
-# regression: the same flyback with a mis-sized and a matched RC damper, compared.
+# The main job on the simulated bench: sweep the DC demo flyback, store it, report it; sweep the
+# offline flyback (primary switch and secondary rectifier, RCD clamp) and report it; then a
+# regression: the DC flyback with a mis-sized and a matched RC damper, compared.
 DEMO := demo-output
 demo: $(STAMP)
 	@mkdir -p $(DEMO)
@@ -23,12 +24,14 @@ demo: $(STAMP)
 	$(BIN)/labseq runs --db $(DEMO)/labseq.sqlite
 	$(BIN)/labseq export latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/export
 	$(BIN)/labseq report latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/report
+	$(BIN)/labseq run sequences/demo_offline_flyback.toml --db $(DEMO)/labseq.sqlite --quiet
+	$(BIN)/labseq report latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/offline-report
 	rm -f $(DEMO)/regression.sqlite $(DEMO)/regression.sqlite-*
 	$(BIN)/labseq run sequences/demo_regression/baseline.toml --db $(DEMO)/regression.sqlite --quiet
 	$(BIN)/labseq run sequences/demo_regression/candidate.toml --db $(DEMO)/regression.sqlite --quiet
 	$(BIN)/labseq compare 1 2 --db $(DEMO)/regression.sqlite --report $(DEMO)/compare
 	@echo "Results in $(DEMO)/: labseq.sqlite (every raw capture), report/report.html,"
-	@echo "export/points.csv, and the regression comparison in compare/report.html"
+	@echo "offline-report/report.html, export/points.csv, and the regression in compare/report.html"
 
 test: $(STAMP) ngspice
 	$(BIN)/ruff check .
