@@ -175,7 +175,8 @@ class Waveform:
     """One capture: raw codes and the scaling that turns them into volts and seconds.
 
     volts = (code - y_reference) * y_increment + y_origin; t = x_origin + i * x_increment,
-    so the trigger is at t = 0.
+    so the trigger is at t = 0. ``code_min``/``code_max`` are the codes at the bottom and top of
+    the screen (None where the scope sends volts, which do not clip at a known code).
     """
 
     codes: np.ndarray
@@ -184,23 +185,30 @@ class Waveform:
     y_increment_v: float
     y_origin_v: float
     y_reference: float
-    code_min: float
-    code_max: float
+    code_min: float | None
+    code_max: float | None
 
     def volts(self) -> np.ndarray:
         """Samples in volts (float64)."""
-        return (self.codes - self.y_reference) * self.y_increment_v + self.y_origin_v
+        return (self.codes.astype(np.float64) - self.y_reference) * self.y_increment_v + (
+            self.y_origin_v
+        )
 
     def time_s(self) -> np.ndarray:
         """Sample instants in seconds, trigger at zero."""
         return self.x_origin_s + np.arange(self.codes.size) * self.x_increment_s
 
+    def clip_mask(self) -> np.ndarray | None:
+        """Samples at the bottom or top code of the screen, where the true voltage is unknown."""
+        if self.code_min is None or self.code_max is None:
+            return None
+        return (self.codes <= self.code_min) | (self.codes >= self.code_max)
+
     @property
     def clipped(self) -> bool:
         """Whether any sample sits at the bottom or top of the screen."""
-        if self.codes.size == 0:
-            return False
-        return bool(self.codes.min() <= self.code_min or self.codes.max() >= self.code_max)
+        mask = self.clip_mask()
+        return mask is not None and bool(mask.any())
 
 
 class Oscilloscope(ScpiInstrument):

@@ -21,8 +21,6 @@ from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass, field
 
-import numpy as np
-
 from instruments import Waveform
 from instruments.errors import InstrumentError, ScpiError
 from labseq.analysis import CaptureFigures, NoEdgeError, aggregate, analyze_capture
@@ -103,13 +101,6 @@ class RunOutcome:
         return 0 if self.status == "finished" and self.points_done == self.points_total else 1
 
 
-def clip_mask(waveform: Waveform) -> np.ndarray | None:
-    """Samples at the bottom or top code of the screen, where the true voltage is unknown."""
-    if waveform.code_min is None or waveform.code_max is None:
-        return None
-    return (waveform.codes <= waveform.code_min) | (waveform.codes >= waveform.code_max)
-
-
 @dataclass(frozen=True)
 class NodeResult:
     """One capture's analysis: its edges and, on the primary with a clamp declared, the clamp."""
@@ -127,7 +118,7 @@ def analyse_waveform(
         waveform.volts(),
         waveform.x_increment_s,
         waveform.x_origin_s,
-        clipped=clip_mask(waveform),  # type: ignore[arg-type]
+        clipped=waveform.clip_mask(),
         **sequence.analysis_options(node or sequence.primary),
     )
 

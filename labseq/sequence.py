@@ -858,11 +858,10 @@ def _load_value(value: Any, key: str, rated_load_a: float | None) -> float:
     return _quantity(value, "A", key, 0.0, False)
 
 
-def _read_scope(top: _Table) -> ScopeSettings | None:
-    table = top.table("scope")
-    if table is None:
-        return None
-    values = {
+def _channel_values(table: _Table) -> dict[str, Any]:
+    """The scope-channel keys a node is captured with (the primary's in [scope], the others' in
+    their [[nodes]] entry)."""
+    return {
         "channel": table.integer("channel"),
         "volts_per_div_v": table.quantity("volts_per_div", "V"),
         "offset_v": table.quantity("offset", "V", default=0.0, minimum=None),
@@ -871,6 +870,15 @@ def _read_scope(top: _Table) -> ScopeSettings | None:
         "bandwidth_limit_hz": table.quantity(
             "bandwidth_limit", "Hz", default=0.0, minimum=0.0, allow_equal=True
         ),
+    }
+
+
+def _read_scope(top: _Table) -> ScopeSettings | None:
+    table = top.table("scope")
+    if table is None:
+        return None
+    values = {
+        **_channel_values(table),
         "time_per_div_s": table.quantity("time_per_div", "s"),
         "record_length": table.integer("record_length", minimum=2),
         "trigger_level_v": table.quantity("trigger_level", "V", minimum=None),
@@ -962,14 +970,7 @@ def _read_node(table: _Table) -> NodeSpec | None:
     label = table.text("label", default="")
     polarity = table.text("polarity", default="rising", choices=NODE_POLARITIES)
     values = {
-        "channel": table.integer("channel"),
-        "volts_per_div_v": table.quantity("volts_per_div", "V"),
-        "offset_v": table.quantity("offset", "V", default=0.0, minimum=None),
-        "probe_ratio": table.quantity("probe_ratio", "", default=1.0),
-        "coupling": table.text("coupling", default="dc", choices=COUPLINGS),
-        "bandwidth_limit_hz": table.quantity(
-            "bandwidth_limit", "Hz", default=0.0, minimum=0.0, allow_equal=True
-        ),
+        **_channel_values(table),
         "rating_v": table.quantity("rating", "V"),
         "derating": table.fraction("derating", default=DEFAULT_DERATING),
     }

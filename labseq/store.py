@@ -37,6 +37,7 @@ from typing import Any, Protocol
 import numpy as np
 import sqlite_utils
 
+from instruments import Waveform
 from labseq import __version__
 from labseq.errors import InputError, LabseqError
 
@@ -348,9 +349,10 @@ class PointRecord:
     duration_s: float | None
 
 
-@dataclass(frozen=True)
-class StoredCapture:
-    """A capture read back: raw codes with their scaling (IEEE 488.2 block payload as sent)."""
+@dataclass(frozen=True, eq=False)
+class StoredCapture(Waveform):
+    """A capture read back: the raw codes and scaling as the scope sent them (the IEEE 488.2
+    block payload), and which point, node and channel it belongs to."""
 
     id: int
     point_id: int
@@ -358,31 +360,7 @@ class StoredCapture:
     capture_index: int
     node: str
     channel: int
-    codes: np.ndarray
-    x_increment_s: float
-    x_origin_s: float
-    y_increment_v: float
-    y_origin_v: float
-    y_reference: float
-    code_min: float | None
-    code_max: float | None
     captured_at: str
-
-    def volts(self) -> np.ndarray:
-        """Volts at the probe tip: (code − y_reference) × y_increment + y_origin."""
-        return (self.codes.astype(np.float64) - self.y_reference) * self.y_increment_v + (
-            self.y_origin_v
-        )
-
-    def time_s(self) -> np.ndarray:
-        """Sample times, trigger at t = 0: x_origin + i × x_increment."""
-        return self.x_origin_s + np.arange(self.codes.size) * self.x_increment_s
-
-    @property
-    def clipped(self) -> bool:
-        """True when any code sits at the bottom or top of the screen."""
-        low = self.code_min is not None and bool(np.any(self.codes <= self.code_min))
-        return low or (self.code_max is not None and bool(np.any(self.codes >= self.code_max)))
 
 
 def _now_iso(unix_s: float | None = None) -> str:
