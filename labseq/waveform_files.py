@@ -101,6 +101,9 @@ def _read_npz(path: Path) -> tuple[np.ndarray, np.ndarray]:
     return time_s, volts
 
 
+#: Largest magnitude accepted in a volts column: a megavolt is far beyond any power-supply probe.
+MAX_ABS_VOLTS = 1e6
+
 READERS = {".csv": _read_csv, ".npy": _read_npy, ".npz": _read_npz}
 
 
@@ -115,6 +118,12 @@ def check_uniform(path: Path | str, time_s: np.ndarray, volts: np.ndarray) -> Wa
                 f"{path}: {name} has {bad.size} missing or non-finite value(s), first at row "
                 f"{bad[0] + 1}"
             )
+    largest = int(np.argmax(np.abs(volts)))
+    if abs(volts[largest]) > MAX_ABS_VOLTS:
+        raise InputError(
+            f"{path}: volts reaches {volts[largest]:.3g} V at row {largest + 1}; values beyond "
+            f"±{MAX_ABS_VOLTS:.0e} V are no measurement — check that the column is in volts"
+        )
     steps = np.diff(time_s)
     backwards = np.flatnonzero(steps <= 0)
     if backwards.size:

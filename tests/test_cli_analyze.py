@@ -280,3 +280,14 @@ def test_design_clamp_errors_exit_2(
     assert message in stderr and "Traceback" not in stderr
     code, stderr = run_main(capsys, "design", "--clamp-voltage", "60V")
     assert code == 2 and "needs --leakage, --peak-current, --fsw, --reflected-voltage" in stderr
+
+
+def test_absurd_volts_are_refused_with_the_row(tmp_path: Path, capsys) -> None:
+    t, v = synthetic_ring()
+    v = v.copy()
+    v[10] = 3e9  # a column in millivolts, or a corrupt row
+    path = tmp_path / "mv.csv"
+    np.savetxt(path, np.column_stack([t, v]), delimiter=",", header="time_s,volts", comments="")
+    code, err = run_main(capsys, "analyze", str(path))
+    assert code == 2
+    assert "row 11" in err and str(path) in err and "Traceback" not in err

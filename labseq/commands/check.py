@@ -26,6 +26,14 @@ def command(sequence_file: Path) -> None:
     click.echo(f"  bench:   {bench}")
     click.echo(f"  DUT:     {dut.label}, switch {format_si(dut.switch_rating_v, 'V')}")
     click.echo(f"  snubber: {snubber.label}")
+    if sequence.clamp is not None:
+        click.echo(f"  clamp:   {sequence.clamp.label}")
+    for node in sequence.nodes[1:]:
+        edge = "rising" if node.polarity > 0 else "falling"
+        click.echo(
+            f"  node:    {node.name} on channel {node.channel} ({edge}), rating "
+            f"{format_si(node.rating_v, 'V')} × {node.derating:g}"
+        )
     click.echo(
         f"  grid:    {len(grid.line_values_v)} line × {len(grid.load_values_a)} load values, "
         f"{grid.captures_per_point} captures per point, settle {format_si(grid.settle_s, 's')}"
