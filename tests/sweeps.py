@@ -1,10 +1,15 @@
-"""Helpers for tests that run sweeps: small sequence files made from the shipped demo."""
+"""Helpers for tests that run sweeps: small sequence files made from the shipped demo, and the
+``labseq`` command run in-process."""
 
 from __future__ import annotations
 
+import contextlib
+import io
 import re
 import sys
 from pathlib import Path
+
+from labseq.cli import main
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_DC = ROOT / "sequences" / "demo_dc_flyback.toml"
@@ -62,3 +67,15 @@ def demo_sequence(
     path = tmp_path / name
     path.write_text(text)
     return path
+
+
+def run_cli(*args: str) -> tuple[int, str, str]:
+    """Run ``labseq`` in-process as a user would; return (exit status, stdout, stderr)."""
+    out, err = io.StringIO(), io.StringIO()
+    code = 0
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        try:
+            main(list(args))
+        except SystemExit as exc:
+            code = int(exc.code or 0)
+    return code, out.getvalue(), err.getvalue()

@@ -6,33 +6,22 @@ import json
 import math
 
 import pytest
-from sweeps import demo_sequence
+from sweeps import demo_sequence, run_cli
 
-from labseq.cli import main
 from labseq.runner import run_sequence
 from labseq.sequence import load_sequence
 from labseq.store import Store
 from sim_instruments.flyback import DEMO_DUTS, load_dut
 
 
-def _cli(capsys, *args: str) -> tuple[int, str, str]:
-    try:
-        main(list(args))
-        code = 0
-    except SystemExit as exit_info:
-        code = exit_info.code or 0
-    out, err = capsys.readouterr()
-    return code, out, err
-
-
-def test_design_run_proposes_per_point_worst_first(tmp_path, capsys):
+def test_design_run_proposes_per_point_worst_first(tmp_path):
     sequence = load_sequence(
         demo_sequence(tmp_path, lines=["36 V", "75 V"], loads=["2.2 A"], captures=2)
     )
     db = tmp_path / "run.sqlite"
     with Store(db) as store:
         run_sequence(sequence, store)
-    code, out, err = _cli(capsys, "design", "--run", "latest", "--db", str(db), "--json")
+    code, out, err = run_cli("design", "--run", "latest", "--db", str(db), "--json")
     assert code == 0, err
     rows = json.loads(out)
     assert [row["line_v"] for row in rows] == [75.0, 36.0]  # worst (highest) peak first
@@ -56,16 +45,16 @@ def test_design_run_proposes_per_point_worst_first(tmp_path, capsys):
         # Cs from the resistor budget: Cs = P / (V²·fsw) (Severns).
         assert row["loss_w"] == pytest.approx(sequence.snubber.resistor_power_budget_w)
 
-    code, out, _ = _cli(capsys, "design", "--run", "latest", "--db", str(db))
+    code, out, _ = run_cli("design", "--run", "latest", "--db", str(db))
     assert "worst peak first" in out and "Rs" in out
 
 
-def test_design_run_without_leakage_is_a_clear_error(tmp_path, capsys):
+def test_design_run_without_leakage_is_a_clear_error(tmp_path):
     path = demo_sequence(tmp_path, lines=["48 V"], loads=["1 A"], captures=1)
     path.write_text(path.read_text().replace('leakage_inductance = "250nH"', ""))
     db = tmp_path / "run.sqlite"
     with Store(db) as store:
         run_sequence(load_sequence(path), store)
-    code, _, err = _cli(capsys, "design", "--run", "1", "--db", str(db))
+    code, _, err = run_cli("design", "--run", "1", "--db", str(db))
     assert code == 2
     assert "no leakage inductance" in err and "--leakage" in err and "Traceback" not in err

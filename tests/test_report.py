@@ -5,7 +5,6 @@ the run verdict follows the rule (fail if any point fails, else incomplete if an
 from __future__ import annotations
 
 import base64
-import contextlib
 import csv
 import io
 import json
@@ -17,8 +16,8 @@ from pathlib import Path
 import matplotlib.image
 import numpy as np
 import pytest
+from sweeps import run_cli
 
-from labseq.cli import main
 from labseq.review import review_run, run_verdict
 from labseq.store import CaptureRecord, PointReadings, Store
 from labseq.units import format_si
@@ -127,18 +126,6 @@ def make_run(
             store.set_point_verdict(point_id, "pass", [])
     store.set_run_status(run_id, "finished")
     return run_id
-
-
-def run_cli(*args: str) -> tuple[int, str, str]:
-    """Run ``labseq`` in-process; return (exit status, stdout, stderr)."""
-    out, err = io.StringIO(), io.StringIO()
-    code = 0
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        try:
-            main(list(args))
-        except SystemExit as exc:
-            code = int(exc.code or 0)
-    return code, out.getvalue(), err.getvalue()
 
 
 # --------------------------------------------------------------------------- HTML checks

@@ -3,16 +3,14 @@ file, the key and what would be valid; the CLI turns them into exit status 2."""
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
-import io
 import re
 from collections.abc import Callable
 from pathlib import Path
 
 import pytest
+from sweeps import run_cli
 
-from labseq.cli import main
 from labseq.errors import InputError
 from labseq.sequence import (
     BenchLimits,
@@ -26,18 +24,6 @@ from labseq.sequence import (
 SEQUENCES = Path(__file__).resolve().parent.parent / "sequences"
 DEMO_DC = SEQUENCES / "demo_dc_flyback.toml"
 TEMPLATE = SEQUENCES / "template_real_bench.toml"
-
-
-def run_cli(*args: str) -> tuple[int, str, str]:
-    """Run ``labseq`` in-process; return (exit status, stdout, stderr)."""
-    out, err = io.StringIO(), io.StringIO()
-    code = 0
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        try:
-            main(list(args))
-        except SystemExit as exc:
-            code = int(exc.code or 0)
-    return code, out.getvalue(), err.getvalue()
 
 
 def edited(base: Path, tmp_path: Path, edit: Callable[[str], str]) -> Path:

@@ -3,9 +3,7 @@ files that are not ours or too new are refused untouched, and exports hold what 
 
 from __future__ import annotations
 
-import contextlib
 import csv
-import io
 import json
 import sqlite3
 import subprocess
@@ -16,8 +14,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from sweeps import run_cli
 
-from labseq.cli import main
 from labseq.store import (
     SCHEMA_VERSION,
     CaptureRecord,
@@ -66,17 +64,6 @@ def new_run(store: Store, points: int = 4) -> tuple[int, list[int]]:
     )
     grid = [(36.0 + 12 * (i // 2), 0.5 * (1 + i % 2)) for i in range(points)]
     return run_id, store.add_points(run_id, grid, line_is_ac=False)
-
-
-def run_cli(*args: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    code = 0
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        try:
-            main(list(args))
-        except SystemExit as exc:
-            code = int(exc.code or 0)
-    return code, out.getvalue(), err.getvalue()
 
 
 @pytest.fixture
