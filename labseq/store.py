@@ -32,7 +32,7 @@ from contextlib import AbstractContextManager
 from dataclasses import dataclass, field, fields
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Protocol
+from typing import Any
 
 import numpy as np
 import sqlite_utils
@@ -258,24 +258,11 @@ class UnknownRunError(StoreError, InputError):
 # --------------------------------------------------------------------------- records
 
 
-class WaveformLike(Protocol):
-    """What the store needs of a capture: raw codes and the scaling to volts."""
-
-    codes: np.ndarray
-    x_increment_s: float
-    x_origin_s: float
-    y_increment_v: float
-    y_origin_v: float
-    y_reference: float
-    code_min: float | None
-    code_max: float | None
-
-
 @dataclass(frozen=True)
 class CaptureRecord:
     """A capture to store: the waveform plus where and when it was taken."""
 
-    waveform: WaveformLike
+    waveform: Waveform
     channel: int = 1
     node: str = PRIMARY_NODE
     captured_at: float = field(default_factory=time.time)  # Unix time, s

@@ -147,10 +147,9 @@ def test_process_killed_mid_commit_leaves_nothing_half_written(db: Path) -> None
         f"""
         import os, numpy as np
         from labseq.store import Store, CaptureRecord
-        from types import SimpleNamespace
+        from instruments import Waveform
         codes = np.arange(-128, 128, dtype=np.int8)
-        wf = SimpleNamespace(codes=codes, x_increment_s=1e-9, x_origin_s=0.0, y_increment_v=1.0,
-                             y_origin_v=0.0, y_reference=0.0, code_min=-128, code_max=127)
+        wf = Waveform(codes, 1e-9, 0.0, 1.0, 0.0, 0.0, -128, 127)
         store = Store({str(db)!r})
         Store._update_point = lambda *args: os._exit(3)  # dies after the captures are written
         store.commit_point({points[0]}, captures=[CaptureRecord(wf), CaptureRecord(wf)])

@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from instruments import Waveform
 from labseq.report import build_run_report
 from labseq.review import FIGURE_DIRECTIONS, review_run
 from labseq.store import CaptureRecord, Store
@@ -24,20 +25,15 @@ LOADS = 100
 CAPTURED_POINTS = 4
 
 
-class Capture:
+def ringing_capture(seed: int) -> Waveform:
     """A short 8-bit switch-node record with one ringing turn-off edge."""
-
-    def __init__(self, seed: int) -> None:
-        rng = np.random.default_rng(seed)
-        self.x_increment_s, self.x_origin_s = 1e-9, -0.5e-6
-        t_s = self.x_origin_s + np.arange(2500) * self.x_increment_s
-        ring = 30 * np.exp(-2e6 * t_s) * np.sin(2 * np.pi * 20e6 * t_s)
-        volts = np.where(t_s < 0, 0.0, 100 + ring) + rng.normal(0, 0.3, t_s.size)
-        self.y_increment_v, self.y_origin_v, self.y_reference = 250 / 256, 100.0, 0.0
-        self.codes = np.clip(np.round((volts - 100) / self.y_increment_v), -128, 127).astype(
-            np.int8
-        )
-        self.code_min, self.code_max = -128, 127
+    rng = np.random.default_rng(seed)
+    x_increment_s, x_origin_s, y_increment_v = 1e-9, -0.5e-6, 250 / 256
+    t_s = x_origin_s + np.arange(2500) * x_increment_s
+    ring = 30 * np.exp(-2e6 * t_s) * np.sin(2 * np.pi * 20e6 * t_s)
+    volts = np.where(t_s < 0, 0.0, 100 + ring) + rng.normal(0, 0.3, t_s.size)
+    codes = np.clip(np.round((volts - 100) / y_increment_v), -128, 127).astype(np.int8)
+    return Waveform(codes, x_increment_s, x_origin_s, y_increment_v, 100.0, 0.0, -128, 127)
 
 
 def build_store(path: Path) -> int:
@@ -101,7 +97,7 @@ def build_store(path: Path) -> int:
         review = review_run(store, run_id)
         worst_ids = {worst.point.point.id for worst in review.worst.values()}
         for seed, point_id in enumerate(sorted(worst_ids)[:CAPTURED_POINTS]):
-            store.commit_point(point_id, captures=[CaptureRecord(Capture(seed))])
+            store.commit_point(point_id, captures=[CaptureRecord(ringing_capture(seed))])
         store.set_run_status(run_id, "finished")
     return run_id
 

@@ -13,11 +13,11 @@ from __future__ import annotations
 import sqlite3
 import time
 from pathlib import Path
-from types import SimpleNamespace
 
 import numpy as np
 import pytest
 
+from instruments import Waveform
 from labseq.store import CAPTURE_FIGURES, PAGE_SIZE, CaptureRecord, PointReadings, Store
 
 SEQUENCE = Path(__file__).resolve().parents[2] / "sequences" / "demo_dc_flyback.toml"
@@ -28,7 +28,7 @@ EDGES_PER_CAPTURE = 4
 MAX_BYTES_PER_SAMPLE = 1.05
 
 
-def ringing_capture(rng: np.random.Generator, samples: int, plateau_v: float) -> SimpleNamespace:
+def ringing_capture(rng: np.random.Generator, samples: int, plateau_v: float) -> Waveform:
     """A switch-node record at 1 GS/s as 8-bit codes: turn-off every 5 µs, 15 MHz ring, noise."""
     x_increment_s = 1e-9
     t_s = np.arange(samples) * x_increment_s - 1e-6
@@ -37,7 +37,7 @@ def ringing_capture(rng: np.random.Generator, samples: int, plateau_v: float) ->
     volts = np.where(phase_s < 2.5e-6, plateau_v + ring_v, 0.0) + rng.normal(0.0, 0.5, samples)
     y_increment_v, y_origin_v = 250.0 / 256, 100.0
     codes = np.clip(np.round((volts - y_origin_v) / y_increment_v), -128, 127).astype(np.int8)
-    return SimpleNamespace(
+    return Waveform(
         codes=codes,
         x_increment_s=x_increment_s,
         x_origin_s=-1e-6,
