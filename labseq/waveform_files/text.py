@@ -197,33 +197,44 @@ def _head(path: Path) -> tuple[str, list[str]]:
 
 
 def _choose_dialect(path: Path, lines: list[str]) -> tuple[Dialect, int]:
-    """The dialect reading the longest run of equal rows of numbers at the end of the head (a
-    header of the same width above them breaks a tie), and the width of those rows."""
+    """The dialect reading the longest run of equal rows of numbers at the end of the head, and
+    the width of those rows. Where dialects read the run at different widths (``1,5`` is one
+    number with a decimal comma or two), the width of a header above the run decides."""
     filled = [line for line in lines if line.strip()]
-    best: tuple[tuple[int, bool, int], Dialect, int] | None = None
+    runs: list[tuple[int, int, int, Dialect]] = []  # (run, width, order, dialect)
     for order, dialect in enumerate(DIALECTS):
-        run, width = 0, None
+        run, width = 0, 0
         for line in reversed(filled):
             count = dialect.width(line)
-            if count is None or (width is not None and count != width):
+            if count is None or (width and count != width):
                 break
             width, run = count, run + 1
-        if not run:
-            continue
-        header_fits = run < len(filled) and len(dialect.cells(filled[-run - 1])) == width
-        score = (run, header_fits, -order)
-        if best is None or score > best[0]:
-            best = (score, dialect, width)
-    if best is None:
+        if run:
+            runs.append((run, width, order, dialect))
+    if not runs:
         first = next((line for line in filled), "")
         raise InputError(
             f"{path}: no data rows: no line of numbers in the first {len(lines)} line(s) (line 1: "
             f"{quoted(first)}); expected a header such as time_s,volts and one sample per line"
         )
-    return best[1], best[2]
+    longest = max(run for run, *_ in runs)
+    header = filled[-longest - 1] if longest < len(filled) else None
+    fitting = {
+        width
+        for run, width, _, dialect in runs
+        if run == longest
+        and header is not None
+        and len(_header_cells(header, dialect, width)) == width
+    }
+    _, width, _, dialect = max(runs, key=lambda r: (r[0], r[1] in fitting, -r[2]))
+    return dialect, width
 
 
 def _header_cells(line: str, dialect: Dialect, width: int) -> list[str]:
+    """The names in a header line (a comment marker before them is no name; a tab may be)."""
+    line = line.lstrip(" ")
+    if line[:1] in ("#", "%"):
+        line = line[1:].lstrip(" ")
     cells = dialect.cells(line)
     if dialect.delimiter is None and len(cells) != width:  # "Time (s)   CH1 (V)"
         cells = [cell.strip().strip('"') for cell in re.split(r"\t|\s{2,}", line.strip())]
@@ -307,7 +318,7 @@ def read_layout(path: Path) -> Layout:
             for index, (name, unit) in enumerate(names)
         ]
         time = _find_time(candidate)
-        starts_preamble = _key(rows[0][0]).startswith(_PREAMBLE_WORDS)
+        starts_preamble = _key(rows[0][0]).startswith(_PREAMBLE_WORDS) or not rows[0][0]
         if time is not None or (_time_base_keys(preamble) and not starts_preamble):
             header, columns = tuple(rows[0]), candidate
             preamble = _preamble(above[:-header_rows], dialect)
