@@ -162,17 +162,22 @@ def _row(sample: int) -> str:
 def check_volts(
     path: object, volts: np.ndarray, *, volts_name: str = "volts", where: Where = _row
 ) -> None:
-    """Check a volts column: long enough, finite, and plausibly in volts."""
+    """Check a volts column: long enough, finite, and plausibly in volts.
+
+    The checks of a record that holds are cheap in memory (no temporary of its size); the place
+    of a failure is found only once one has failed.
+    """
     if volts.size < MIN_RECORD_SAMPLES:
         raise InputError(f"{path}: {volts.size} samples; at least {MIN_RECORD_SAMPLES} are needed")
-    bad = np.flatnonzero(~np.isfinite(volts))
-    if bad.size:
+    low, high = float(volts.min()), float(volts.max())  # NaN when any sample is NaN
+    if not (np.isfinite(low) and np.isfinite(high)):
+        bad = np.flatnonzero(~np.isfinite(volts))
         raise InputError(
             f"{path}: {volts_name} has {bad.size} missing or non-finite value(s), first at "
             f"{where(int(bad[0]))}"
         )
-    largest = int(np.argmax(np.abs(volts)))
-    if abs(volts[largest]) > MAX_ABS_VOLTS:
+    if max(-low, high) > MAX_ABS_VOLTS:
+        largest = int(np.argmax(np.abs(volts)))
         raise InputError(
             f"{path}: {volts_name} reaches {volts[largest]:.3g} V at {where(largest)}; values "
             f"beyond ±{MAX_ABS_VOLTS:.0e} V are no measurement — check that the column is in volts"
@@ -193,26 +198,26 @@ def check_uniform(
     ``where`` turns a sample index into the place in the file that an error names.
     """
     check_volts(path, volts, volts_name=volts_name, where=where)
-    bad = np.flatnonzero(~np.isfinite(time_s))
-    if bad.size:
+    if not np.isfinite(time_s).all():
+        bad = np.flatnonzero(~np.isfinite(time_s))
         raise InputError(
             f"{path}: {time_name} has {bad.size} missing or non-finite value(s), first at "
             f"{where(int(bad[0]))}"
         )
-    steps = np.diff(time_s)
-    backwards = np.flatnonzero(steps <= 0)
-    if backwards.size:
+    deviation = np.diff(time_s)  # the steps, then (in place) their distance from the mean step
+    if deviation.min() <= 0:
+        first = int(np.argmax(deviation <= 0))
         raise InputError(
-            f"{path}: {time_name} does not increase at {where(int(backwards[0]) + 1)}; sort the "
-            "samples by time"
+            f"{path}: {time_name} does not increase at {where(first + 1)}; sort the samples by time"
         )
     interval = (time_s[-1] - time_s[0]) / (time_s.size - 1)
-    deviation = np.abs(steps - interval)
+    deviation -= interval
+    np.abs(deviation, out=deviation)
     worst = int(np.argmax(deviation))
     if deviation[worst] > UNIFORM_TOLERANCE * interval:
+        step = time_s[worst + 1] - time_s[worst]
         raise InputError(
             f"{path}: {time_name} is not uniformly sampled: the step at {where(worst + 1)} is "
-            f"{steps[worst]:.6g} s, the mean step {interval:.6g} s (±{UNIFORM_TOLERANCE:.0%} "
-            "allowed)"
+            f"{step:.6g} s, the mean step {interval:.6g} s (±{UNIFORM_TOLERANCE:.0%} allowed)"
         )
     return Waveform(volts=volts, sample_interval_s=float(interval), t0_s=float(time_s[0]))
