@@ -2,9 +2,9 @@
 
 The layout is found from the head of the file (its first 64 KiB): the delimiter and decimal mark
 from the rows of numbers at its end, then, above the first row of numbers, a units row, a header
-and a preamble. The samples are then parsed in blocks of about 1 MiB by numpy's C parser straight
-into float arrays, keeping only the columns asked for, so a 10-million-row file never becomes
-Python strings and numbers.
+and a preamble. The samples are then parsed by numpy's C reader straight into float arrays —
+streaming the file itself where the numbers need no rewriting, else in blocks of about 1 MiB —
+so a 10-million-row file never becomes Python strings and numbers.
 
 Shapes read:
 
@@ -288,6 +288,39 @@ def _preamble(lines: list[tuple[int, str]], dialect: Dialect) -> dict[str, tuple
     return entries
 
 
+def _find_header(
+    path: Path, above: list[tuple[int, str]], dialect: Dialect, width: int
+) -> tuple[int, list[Column], Column | None] | None:
+    """(how many lines it takes, the columns, the time column) of the header right above the
+    data: a header with a units row under it, else a header alone; None where the line above the
+    data belongs to the preamble (headerless data)."""
+    has_time_base = _time_base_keys(_preamble(above, dialect))
+    for rows_taken in (2, 1):
+        rows = [_header_cells(line, dialect, width) for _, line in above[-rows_taken:]]
+        if len(above) < rows_taken or any(len(row) != width for row in rows):
+            continue
+        if rows_taken == 2 and not _is_units_row(rows[1]):
+            continue
+        units_row = rows[1] if rows_taken == 2 else [""] * width
+        columns = [
+            Column(index, name or f"column {index + 1}", units_row[index] or unit)
+            for index, (name, unit) in enumerate(_name_and_unit(cell) for cell in rows[0])
+        ]
+        time = _find_time(columns)
+        # A key/value line ("Model,MX-2041") or an unnamed first column is no header of names.
+        looks_like_preamble = not rows[0][0] or _key(rows[0][0]).startswith(_PREAMBLE_WORDS)
+        if time is not None or (has_time_base and not looks_like_preamble):
+            return rows_taken, columns, time
+        if rows_taken == 1 and not looks_like_preamble:
+            raise InputError(
+                f"{path}: no time column among the names on line {above[-1][0]} "
+                f"({', '.join(quoted(c.name, 30) for c in columns[:12])}); name it time, t, x or "
+                "s (or give it a unit such as 's'), or give the sample interval in a preamble line "
+                "such as 'Sample Interval,5e-10'"
+            )
+    return None
+
+
 def read_layout(path: Path) -> Layout:
     """Find the dialect, the first row of numbers, the header, units row and preamble."""
     encoding, lines = _head(path)
@@ -300,43 +333,24 @@ def read_layout(path: Path) -> Layout:
                 f"{path}: line {number} holds {dialect.width(line)} number(s) but the data from "
                 f"line {data_index + 1} on holds {width} per row: {quoted(line)}"
             )
-    header: tuple[str, ...] = ()
-    columns: list[Column] = []
-    time: Column | None = None
-    preamble = _preamble(above, dialect)
-    # A header with a units row under it, else a header, else none (the line above the data
-    # belongs to the preamble).
-    for header_rows in (2, 1):
-        if len(above) < header_rows:
-            continue
-        rows = [_header_cells(line, dialect, width) for _, line in above[-header_rows:]]
-        if any(len(row) != width for row in rows) or (
-            header_rows == 2 and not _is_units_row(rows[1])
-        ):
-            continue
-        names = [_name_and_unit(cell) for cell in rows[0]]
-        units_row = rows[1] if header_rows == 2 else [""] * width
-        candidate = [
-            Column(index, name or f"column {index + 1}", units_row[index] or unit)
-            for index, (name, unit) in enumerate(names)
-        ]
-        time = _find_time(candidate)
-        starts_preamble = _key(rows[0][0]).startswith(_PREAMBLE_WORDS) or not rows[0][0]
-        if time is not None or (_time_base_keys(preamble) and not starts_preamble):
-            header, columns = tuple(rows[0]), candidate
-            preamble = _preamble(above[:-header_rows], dialect)
-            break
-        if header_rows == 1 and not starts_preamble:
-            raise InputError(
-                f"{path}: no time column among the names on line {above[-1][0]} "
-                f"({', '.join(quoted(c.name, 30) for c in candidate[:12])}); name it time, t, x or "
-                "s (or give it a unit such as 's'), or give the sample interval in a preamble line "
-                "such as 'Sample Interval,5e-10'"
-            )
-    if not columns:
+    found = _find_header(path, above, dialect, width)
+    if found is None:
         columns = [Column(index, f"column {index + 1}") for index in range(width)]
-        time = columns[0] if width > 1 else None
-    return Layout(encoding, dialect, width, data_index + 1, tuple(columns), time, header, preamble)
+        header, time, preamble = (), (columns[0] if width > 1 else None), above
+    else:
+        rows_taken, columns, time = found
+        header = tuple(_header_cells(above[-rows_taken][1], dialect, width))
+        preamble = above[:-rows_taken]
+    return Layout(
+        encoding,
+        dialect,
+        width,
+        data_index + 1,
+        tuple(columns),
+        time,
+        header,
+        _preamble(preamble, dialect),
+    )
 
 
 def _time_base_keys(preamble: dict[str, tuple[str, int]]) -> bool:
@@ -557,14 +571,17 @@ def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None
     if layout.time is None:
         interval, origin = _time_base(path, layout, scale)
         [volts] = read_columns(path, layout, (chosen,))
-        volts *= volts_per_unit
+        if volts_per_unit != 1.0:
+            volts *= volts_per_unit
         check_volts(path, volts, volts_name=f"column {chosen.name}", where=where)
         waveform = Waveform(volts, interval, origin)
         times = f"times from the preamble ({interval:.6g} s per sample)"
     else:
         time_s, volts = read_columns(path, layout, (layout.time, chosen))
-        time_s *= scale
-        volts *= volts_per_unit
+        if scale != 1.0:
+            time_s *= scale
+        if volts_per_unit != 1.0:
+            volts *= volts_per_unit
         waveform = check_uniform(
             path,
             time_s,
@@ -584,9 +601,9 @@ def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None
     plain = layout.header in ((), CANONICAL_HEADER) and layout.width == 2 and scale == 1.0
     if plain and layout.dialect == DIALECTS[0] and layout.data_line <= 2:
         return waveform.noted(hint)
-    volts = f"volts from column {chosen.name}" + (
+    read = f"volts from column {chosen.name}" + (
         f" in {chosen.unit}" if volts_per_unit != 1 else ""
     )
-    volts += f" (one of {len(channels)})" if len(channels) > 1 else ""
-    note = f"{volts}, {times}; {layout.dialect.describe()}, data from line {layout.data_line}"
+    read += f" (one of {len(channels)})" if len(channels) > 1 else ""
+    note = f"{read}, {times}; {layout.dialect.describe()}, data from line {layout.data_line}"
     return waveform.noted(f"{note}; {hint}" if hint else note)
