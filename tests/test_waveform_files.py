@@ -7,14 +7,15 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Callable
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pytest
 from sweeps import run_cli
+from test_store import new_run
 from waveforms import record
 
+from instruments import Waveform
 from labseq.analysis import analyze_capture
 from labseq.store import CaptureRecord, Store
 from labseq.waveform_files.text import HEAD_BYTES
@@ -23,52 +24,28 @@ from labseq.waveform_files.text import HEAD_BYTES
 LSB_V, ORIGIN_V = 800.0 / 256, 350.0
 
 
-@dataclass
-class Capture:
-    """A scope record as a driver hands it over: raw codes plus scaling."""
-
-    codes: np.ndarray
-    x_increment_s: float
-    x_origin_s: float
-    y_increment_v: float = LSB_V
-    y_origin_v: float = ORIGIN_V
-    y_reference: float = 0.0
-    code_min: float | None = -128
-    code_max: float | None = 127
-
-
-def digitised(ring_amp_v: float) -> Capture:
+def digitised(ring_amp_v: float) -> Waveform:
     """The shared synthetic flyback node (20 MHz ring) on an 8-bit screen of −50…750 V."""
     volts, dt_s, t0_s = record(fs_hz=500e6, duration_s=4e-6, ring_amps_v=(ring_amp_v,))
     codes = np.clip(np.round((volts - ORIGIN_V) / LSB_V), -128, 127).astype(np.int8)
-    return Capture(codes, dt_s, t0_s)
+    return Waveform(codes, dt_s, t0_s, LSB_V, ORIGIN_V, 0.0, code_min=-128, code_max=127)
 
 
 @pytest.fixture
-def exported(tmp_path: Path) -> tuple[Path, Store, list[Capture]]:
+def exported(tmp_path: Path) -> tuple[Path, Path]:
     """A store with one point of two captures (the second clipped at the top of the screen),
-    exported by ``labseq export`` as NPZ and as CSV."""
-    captures = [digitised(90.0), digitised(400.0)]
+    exported by ``labseq export`` as NPZ and as CSV; (the directory, the store)."""
     db = tmp_path / "store.sqlite"
     with Store(db) as store:
-        run_id = store.create_run(
-            sequence_text='name = "t"\n',
-            sequence_sha256="ab" * 32,
-            sequence_path="t.toml",
-            dut_label="DUT",
-            snubber_label="RC",
-            bench_kind="sim",
-            instruments={"scope": "SIM,SCOPE,0,1"},
-        )
-        [point] = store.add_points(run_id, [(36.0, 0.5)], line_is_ac=False)
-        store.commit_point(point, captures=[CaptureRecord(c) for c in captures])
+        _, [point] = new_run(store, points=1)
+        store.commit_point(point, captures=[CaptureRecord(digitised(a)) for a in (90.0, 400.0)])
     for kind in ("npz", "csv"):
         out = tmp_path / kind
         code, _, err = run_cli(
             "export", "1", "--db", str(db), "--out", str(out), "--captures", kind
         )
         assert code == 0, err
-    return tmp_path, db, captures
+    return tmp_path, db
 
 
 def assert_same_figures(got: object, expected: object, rel: float, path: str = "") -> None:
@@ -95,8 +72,8 @@ def analyze_json(*args: str) -> dict:
     return result
 
 
-def test_analyze_reads_labseq_npz_export(exported: tuple[Path, Path, list[Capture]]) -> None:
-    tmp_path, db, captures = exported
+def test_analyze_reads_labseq_npz_export(exported: tuple[Path, Path]) -> None:
+    tmp_path, db = exported
     npz = tmp_path / "npz" / "captures.npz"
     from_npz = analyze_json(str(npz), "--capture", "p000_c00")
     # The same capture exported as a time_s,volts CSV gives the same figures.
@@ -117,9 +94,7 @@ def test_analyze_reads_labseq_npz_export(exported: tuple[Path, Path, list[Captur
     assert clipped["peak_v"] == pytest.approx(ORIGIN_V + 127 * LSB_V)
 
 
-def test_export_errors_name_the_captures(
-    exported: tuple[Path, Path, list[Capture]], capsys: pytest.CaptureFixture[str]
-) -> None:
+def test_export_errors_name_the_captures(exported: tuple[Path, Path]) -> None:
     npz = exported[0] / "npz" / "captures.npz"
     for args, message in [
         ([], "2 captures ('p000_c00', 'p000_c01'); choose one with --capture NAME"),
