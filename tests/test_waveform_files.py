@@ -256,7 +256,7 @@ def test_every_shape_gives_the_canonical_figures(
         {k: v for k, v in json.loads(out).items() if k != "file"}, canonical_figures, rel=1e-9
     )
     # What was read is said beside the result.
-    assert err.startswith(f"{path}: read volts from column"), err
+    assert err.startswith(f"{path}: read volts from column "), err
 
 
 # -- bad files -------------------------------------------------------------------------------
@@ -293,7 +293,7 @@ BAD: list[tuple[str, str, list[str], str]] = [
         "time goes back",
         replace_line(GOOD, 40, f"{TIME_S[30].item()!r},{VOLTS[38].item()!r}"),
         [],
-        "time (column TIME) does not increase at line 40",
+        "time (column 'TIME') does not increase at line 40",
     ),
     ("non-finite", replace_line(GOOD, 41, f"{TIME_S[39].item()!r},nan"), [], "first at line 41"),
     (

@@ -41,6 +41,7 @@ from labseq.waveform_files.record import (
     Where,
     check_uniform,
     check_volts,
+    listing,
     parse_unit,
     pick_channel,
     quoted,
@@ -445,7 +446,7 @@ def _parse_block(path: Path, layout: Layout, block: str, first_line: int) -> np.
 
 def _bad_row(path: Path, layout: Layout, block: str, first_line: int, why: str) -> InputError:
     """An error naming the first line of ``block`` that is not a row of numbers."""
-    names = ", ".join(c.name for c in layout.columns[:12])
+    names = listing([column.name for column in layout.columns])
     for offset, line in enumerate(block.split("\n")):
         if layout.dialect.skipped(line):
             continue
@@ -568,12 +569,13 @@ def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None
     volts_per_unit = volts_scale(path, chosen)
     scale, unit_source = _stated_time_scale(path, layout, time_unit)
     where = _locator(path, layout)
+    volts_name = f"column {quoted(chosen.name, 40)}"
     if layout.time is None:
         interval, origin = _time_base(path, layout, scale)
         [volts] = read_columns(path, layout, (chosen,))
         if volts_per_unit != 1.0:
             volts *= volts_per_unit
-        check_volts(path, volts, volts_name=f"column {chosen.name}", where=where)
+        check_volts(path, volts, volts_name=volts_name, where=where)
         waveform = Waveform(volts, interval, origin)
         times = f"times from the preamble ({interval:.6g} s per sample)"
     else:
@@ -586,11 +588,11 @@ def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None
             path,
             time_s,
             volts,
-            time_name=f"time (column {layout.time.name})",
-            volts_name=f"column {chosen.name}",
+            time_name=f"time (column {quoted(layout.time.name, 40)})",
+            volts_name=volts_name,
             where=where,
         )
-        times = f"times from column {layout.time.name}"
+        times = f"times from column {quoted(layout.time.name, 40)}"
         times += f" in {unit_source}" if scale != 1.0 else ""
     hint = None
     if not unit_source and waveform.sample_interval_s >= LONG_STEP_S:
@@ -601,9 +603,7 @@ def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None
     plain = layout.header in ((), CANONICAL_HEADER) and layout.width == 2 and scale == 1.0
     if plain and layout.dialect == DIALECTS[0] and layout.data_line <= 2:
         return waveform.noted(hint)
-    read = f"volts from column {chosen.name}" + (
-        f" in {chosen.unit}" if volts_per_unit != 1 else ""
-    )
+    read = f"volts from {volts_name}" + (f" in {chosen.unit}" if volts_per_unit != 1 else "")
     read += f" (one of {len(channels)})" if len(channels) > 1 else ""
     note = f"{read}, {times}; {layout.dialect.describe()}, data from line {layout.data_line}"
     return waveform.noted(f"{note}; {hint}" if hint else note)
