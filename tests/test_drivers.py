@@ -74,9 +74,8 @@ class ScriptedServer:
                     if reply == "CLOSE":
                         return
                     if reply is not None:
-                        connection.sendall(
-                            reply if isinstance(reply, bytes) else reply.encode() + b"\n"
-                        )
+                        connection.sendall(reply if isinstance(reply, bytes) else
+                                           reply.encode() + b"\n")
 
     def close(self) -> None:
         self.listener.close()
@@ -276,14 +275,8 @@ def kestrel_map(tmp_path: Path):
 def test_new_family_needs_only_a_map(scripted, kestrel_map, definite):
     server = scripted(KestrelScope(definite=definite))
     with Oscilloscope.open(server.resource_name, command_map=kestrel_map) as scope:
-        scope.configure_channel(
-            1,
-            volts_per_div=2.0,
-            offset_v=-1.0,
-            coupling="ac",
-            bandwidth_limit_hz=20e6,
-            probe_ratio=10,
-        )
+        scope.configure_channel(1, volts_per_div=2.0, offset_v=-1.0, coupling="ac",
+                                bandwidth_limit_hz=20e6, probe_ratio=10)
         scope.configure_timebase(seconds_per_div=1e-6, record_length=1000)
         scope.configure_trigger(1, level_v=1.5, slope="rising", position_fraction=0.25)
         scope.single()
@@ -293,28 +286,16 @@ def test_new_family_needs_only_a_map(scripted, kestrel_map, definite):
         assert scope.query_setting("channel_scale", channel=1) == "2.0"
     sent = [command for command in server.log if command != "SYST:ERR?"]
     assert sent[:7] == [
-        "C1:TRACE 1",
-        "C1:ATTN 10.0",
-        "C1:VDIV 2.0",
-        "C1:OFST -1.0",
-        "C1:BWL 20000000.0",
-        "C1:CPL AC",
-        "TDIV 1e-06",
+        "C1:TRACE 1", "C1:ATTN 10.0", "C1:VDIV 2.0", "C1:OFST -1.0", "C1:BWL 20000000.0",
+        "C1:CPL AC", "TDIV 1e-06",
     ]
     assert "MSIZ 1000" in sent
-    assert sent[sent.index("TRIG:SRC C1") : sent.index("TRIG:SRC C1") + 4] == [
-        "TRIG:SRC C1",
-        "TRIG:LVL 1.5",
-        "TRIG:EDGE UP",
-        "TRIG:DELAY 0.25",
+    assert sent[sent.index("TRIG:SRC C1"):sent.index("TRIG:SRC C1") + 4] == [
+        "TRIG:SRC C1", "TRIG:LVL 1.5", "TRIG:EDGE UP", "TRIG:DELAY 0.25",
     ]
     waveform_commands = [command for command in sent if command.startswith("WAVE")]
     assert waveform_commands == [
-        "WAVE:SRC C1",
-        "WAVE:WIDTH WORD",
-        "WAVE:ORDER LSBF",
-        "WAVE:PRE?",
-        "WAVE:FETCH?",
+        "WAVE:SRC C1", "WAVE:WIDTH WORD", "WAVE:ORDER LSBF", "WAVE:PRE?", "WAVE:FETCH?",
     ]
     # Every configuration step is checked: the next query after it is an error-queue read
     # (SCPI-1999 vol. 2 19.7).
@@ -470,9 +451,7 @@ def test_limits_refused_before_anything_is_sent(bench_roles, sim_bench):
     with pytest.raises(LimitError, match="load current = -1 A"):
         load.set_current(-1.0)
     assert (state.source_voltage_v, state.source_shape, state.source_current_limit_a) == (
-        0.0,
-        "DC",
-        1.0,
+        0.0, "DC", 1.0,
     )
     assert state.load_current_a == 0.0 and state.load_setpoints == 0
     coupling_before = scope.query_setting("channel_coupling", channel=1)
