@@ -139,7 +139,7 @@ def test_analyze_table_and_plot(tmp_path: Path) -> None:
     [
         ("", "empty"),
         ("time_s,volts\n", "no data rows"),
-        ("t,v\n0,1\n", "header"),
+        ("current,voltage\n0,1\n", "no time column among the names on line 1"),
         ("time_s,volts\n" + "\n".join(f"{k}e-9,{k % 7}" for k in range(20)), "at least"),
         (
             "time_s,volts\n" + "\n".join(f"{k}e-9,{'nan' if k == 50 else k}" for k in range(100)),
@@ -290,4 +290,5 @@ def test_absurd_volts_are_refused_with_the_row(tmp_path: Path, capsys) -> None:
     np.savetxt(path, np.column_stack([t, v]), delimiter=",", header="time_s,volts", comments="")
     code, err = run_main(capsys, "analyze", str(path))
     assert code == 2
-    assert "row 11" in err and str(path) in err and "Traceback" not in err
+    # Sample 11 is on line 12, under the header.
+    assert "line 12" in err and str(path) in err and "Traceback" not in err

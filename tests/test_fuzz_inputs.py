@@ -11,7 +11,9 @@ from __future__ import annotations
 import io
 import json
 import math
+import shutil
 import subprocess
+import tempfile
 import tomllib
 import zipfile
 from collections import Counter
@@ -22,8 +24,9 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from sweeps import DEMO_DC, LABSEQ
+from sweeps import DEMO_DC, LABSEQ, run_cli
 from test_sequence_fuzz import key_paths, to_toml, values
+from test_waveform_files import assert_same_figures
 from waveforms import record
 
 from instruments.command_map import MAPS_DIR, CommandMap, load_command_map
@@ -362,6 +365,166 @@ def test_waveform_files_for_analyze(
         assert result["file"] == str(path)
     else:
         assert_clear_failure(code, err, path)
+
+
+# -- text files as scopes and spreadsheets save them ---------------------------------------
+
+PREAMBLE = [
+    ("Model", "MX-2041"),
+    ("Firmware Version", "1.4.2"),
+    ("Record Length", "2000"),
+    ("Probe Attenuation", "10X"),
+    ("Trigger Level", "12.5"),
+    ("Source", "CH1"),
+    ("Date", "2024-05-01 10:22:31"),
+]
+TIME_UNITS = {"s": 1.0, "ms": 1e3, "us": 1e6, "µs": 1e6, "ns": 1e9}
+
+
+@st.composite
+def scope_text_files(draw: st.DrawFn) -> tuple[str, bytes, list[str]]:
+    """(suffix, contents, analyze arguments) of the fuzz record written in a shape that scopes
+    and spreadsheets write: every shape holds the same samples."""
+    sep, comma = draw(
+        st.sampled_from(
+            [(",", False), (";", False), (";", True), ("\t", False), ("\t", True), ("   ", False)]
+        )
+    )
+    mode = draw(st.sampled_from(["headerless", "header", "header+units", "preamble times"]))
+    time_unit = draw(st.sampled_from(sorted(TIME_UNITS)))
+    volts_unit = draw(st.sampled_from(["V", "mV"])) if mode in ("header", "header+units") else "V"
+    extra = draw(st.integers(0, 2)) if mode != "preamble times" or draw(st.booleans()) else 0
+    if mode == "preamble times" and extra == 0 and draw(st.booleans()):
+        mode = "preamble times, headerless"
+    position = draw(st.integers(0, extra))
+    channel_style = draw(st.sampled_from(["CH{}", "Channel {}", "C{}"]))
+    numbers = draw(st.permutations(range(1, extra + 2)))
+    names = [channel_style.format(n) for n in numbers]
+    columns = [VOLTS / (k + 2) for k in range(extra)]
+    columns.insert(position, VOLTS)
+    columns = [c * (1e3 if volts_unit == "mV" else 1.0) for c in columns]
+    args: list[str] = []
+    if extra:
+        how = draw(
+            st.sampled_from(
+                ["name", "number"] if mode.startswith(("header", "pre")) else ["number"]
+            )
+        )
+        if mode == "headerless":
+            args += ["--channel", str(position + 1)]
+        else:
+            args += ["--channel", names[position] if how == "name" else str(numbers[position])]
+    lines: list[str] = []
+    for key, value in draw(st.lists(st.sampled_from(PREAMBLE), max_size=4, unique=True)):
+        joint = draw(st.sampled_from([sep, ": "]))
+        lines.append(draw(st.sampled_from(["", "# "])) + f"{key}{joint}{value}")
+    if mode.startswith("preamble times"):
+        lines += [f"Sample Interval: {DT_S!r}", f"Start Time: {T0_S!r}"]
+        table = columns
+        if mode == "preamble times":
+            lines.append(sep.join(names))
+    else:
+        table = [TIME_S * TIME_UNITS[time_unit], *columns]
+        # Between runs of spaces an empty cell cannot be written: a spaced units row states both.
+        spaced_units = mode == "header+units" and sep == "   "
+        stated = mode != "headerless" and (spaced_units or draw(st.booleans()))
+        time_word = draw(st.sampled_from(["TIME", "time", "t", "X"]))
+        if mode == "header":
+            unit_forms = ["{} ({})", "{} [{}]", "{}/{}", "{}_{}"]
+            time_name = (
+                draw(st.sampled_from(unit_forms)).format(time_word, time_unit)
+                if stated
+                else time_word
+            )
+            volt_names = (
+                [f"{name} ({volts_unit})" for name in names]
+                if volts_unit == "mV" or draw(st.booleans())
+                else names
+            )
+            lines.append(sep.join([time_name, *volt_names]))
+        elif mode == "header+units":
+            lines.append(sep.join([time_word, *names]))
+            lines.append(sep.join([time_unit if stated else "", *[volts_unit] * len(names)]))
+        if not stated and TIME_UNITS[time_unit] != 1.0:
+            args += ["--time-unit", time_unit]
+    text_rows = (
+        sep.join(repr(x) for x in row) for row in zip(*(c.tolist() for c in table), strict=True)
+    )
+    body = "\n".join(text_rows)
+    lines.append(body.replace(".", ",") if comma else body)
+    newline = draw(st.sampled_from(["\n", "\r\n"]))
+    text = newline.join(lines) + newline
+    encoding = draw(st.sampled_from(["utf-8", "utf-8-sig", "utf-16", "latin-1"]))
+    suffix = draw(st.sampled_from([".csv", ".txt", ".tsv", ".dat"]))
+    return suffix, Blob(text.encode(encoding)), args
+
+
+@st.composite
+def spoiled(draw: st.DrawFn, data: bytes) -> bytes:
+    """``data`` with a line dropped, doubled or swapped, text put in, or the end cut off."""
+    lines = data.split(b"\n")
+    at = draw(st.integers(0, len(lines) - 2))
+    how = draw(st.sampled_from(["drop", "double", "swap", "text", "cut", "cell"]))
+    if how == "drop":
+        del lines[at]
+    elif how == "double":
+        lines.insert(at, lines[at])
+    elif how == "swap":
+        lines[at], lines[at + 1] = lines[at + 1], lines[at]
+    elif how == "text":
+        lines[at] += draw(st.text(max_size=8)).encode("utf-8")
+    elif how == "cell":
+        lines[at] = draw(st.sampled_from([b"", b"1", b"1,2,3", b"a;b", b"\t", b'"', b"nan"]))
+    else:
+        return data[: draw(st.integers(0, len(data)))]
+    return b"\n".join(lines)
+
+
+@FUZZ
+@given(shape=scope_text_files(), data=st.data())
+def test_scope_and_spreadsheet_text_files(
+    tmp_path_factory: pytest.TempPathFactory,
+    capsys: pytest.CaptureFixture[str],
+    tried: Counter[str],
+    shape: tuple[str, bytes, list[str]],
+    data: st.DataObject,
+) -> None:
+    suffix, contents, args = shape
+    spoil = data.draw(st.booleans(), label="spoil")
+    if spoil:
+        contents = Blob(data.draw(spoiled(contents), label="spoiled"))
+    tried[f"text shapes{' spoiled' if spoil else ''} (labseq analyze)"] += 1
+    path = tmp_path_factory.mktemp("shape") / f"capture{suffix}"
+    path.write_bytes(contents)
+    code, out, err = cli(capsys, "analyze", str(path), "--json", *args)
+    if not spoil:
+        # Every shape of the same samples gives the figures of the canonical file; only float
+        # rounding of a converted time unit may differ, far inside 1e-9.
+        assert code == 0, err
+        result = _strict_json(out)
+        result.pop("file")
+        assert_same_figures(result, canonical_figures(), rel=1e-9)
+    elif code == 0:
+        assert _strict_json(out)["file"] == str(path)
+    else:
+        assert_clear_failure(code, err, path)
+
+
+_CANONICAL: dict[str, Any] = {}
+
+
+def canonical_figures() -> dict[str, Any]:
+    """``labseq analyze --json`` of the fuzz record in labseq's own ``time_s,volts`` shape."""
+    if not _CANONICAL:
+        directory = Path(tempfile.mkdtemp())
+        path = directory / "canonical.csv"
+        path.write_bytes(_csv(TIME_S, VOLTS))
+        code, out, err = run_cli("analyze", str(path), "--json")
+        assert code == 0, err
+        _CANONICAL.update(json.loads(out))
+        _CANONICAL.pop("file")
+        shutil.rmtree(directory)
+    return _CANONICAL
 
 
 def test_the_unspoiled_waveform_is_analysed(tmp_path: Path, capsys) -> None:

@@ -167,6 +167,13 @@ def _plot(path: Path, waveform: Waveform, figures: CaptureFigures) -> None:
 @click.option("--fsw", help="Switching frequency, e.g. 150kHz (with --cs and --rs).")
 @click.option("--cs", help="Snubber capacitance, e.g. 470p.")
 @click.option("--rs", help="Snubber resistance, e.g. 47.")
+@click.option(
+    "--channel", help="Voltage column of a file with several: its name (CH2) or number (2)."
+)
+@click.option(
+    "--time-unit", help="Unit of the times where the file states none: s, ms, us, ns or ps."
+)
+@click.option("--capture", help="Capture of labseq's NPZ export (captures.npz), e.g. p003_c01.")
 def command(
     file: Path,
     as_json: bool,
@@ -178,17 +185,24 @@ def command(
     fsw: str | None,
     cs: str | None,
     rs: str | None,
+    channel: str | None,
+    time_unit: str | None,
+    capture: str | None,
 ) -> None:
-    """Analyse every turn-off edge in a waveform FILE (CSV time_s,volts, NPY or NPZ)."""
+    """Analyse every turn-off edge in a waveform FILE: text (CSV and the like, as scopes and
+    spreadsheets save it), NPY, NPZ, or labseq's own export."""
     band = _settling_band(settling_band)
     snubber = _snubber(fsw, cs, rs)
     rating_v = option_quantity(rating, "V", "--rating")
-    waveform = read_waveform(file)
+    waveform = read_waveform(file, channel=channel, time_unit=time_unit, capture=capture)
+    if waveform.note:
+        click.echo(f"{file}: read {waveform.note}", err=True)
     try:
         figures = analyze_capture(
             waveform.volts,
             waveform.sample_interval_s,
             waveform.t0_s,
+            clipped=waveform.clipped,
             polarity=1 if polarity == "rising" else -1,
             settling_band=band,
             snubber=snubber,
