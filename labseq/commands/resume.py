@@ -9,7 +9,13 @@ import click
 from labseq.commands._store import db_option, resolve_run
 from labseq.commands.run import report_outcome
 from labseq.progress import Progress
-from labseq.runner import bench_locks, claim_for_resume, execute, stored_sequence
+from labseq.runner import (
+    TAKE_OVER_RISK,
+    bench_locks,
+    claim_for_resume,
+    execute,
+    stored_sequence,
+)
 from labseq.store import Store
 
 
@@ -17,7 +23,13 @@ from labseq.store import Store
 @click.argument("run", metavar="RUN")
 @db_option()
 @click.option("--quiet", is_flag=True, help="No progress display; errors still go to stderr.")
-def command(run: str, db_path: Path, quiet: bool) -> None:
+@click.option(
+    "--take-over",
+    is_flag=True,
+    help="Resume a run still recorded as running (its process on another host, or known "
+    f"gone). Risk: {TAKE_OVER_RISK}.",
+)
+def command(run: str, db_path: Path, quiet: bool, take_over: bool) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
 
     The bench is first made safe, then only the points not yet done are measured; captures
@@ -28,7 +40,7 @@ def command(run: str, db_path: Path, quiet: bool) -> None:
         run_id = resolve_run(store, run)
         sequence = stored_sequence(store, run_id)
         with bench_locks(sequence, store):
-            claim_for_resume(store, run_id)
+            claim_for_resume(store, run_id, take_over=take_over)
             store.log_event(run_id, "info", "run resumed")
             outcome = execute(sequence, store, run_id, progress=progress)
     report_outcome(outcome, db_path, progress)
