@@ -30,7 +30,12 @@ from instruments.errors import (
     ReplyFormatError,
     ScpiError,
 )
-from instruments.transport import TIMEOUT_CODES, VisaTransport, choose_transport
+from instruments.transport import (
+    MAX_TEXT_REPLY_BYTES,
+    TIMEOUT_CODES,
+    VisaTransport,
+    choose_transport,
+)
 
 DEFAULT_TIMEOUT_S = 5.0
 #: Silence that ends an indefinite (#0) block on a transport without END, such as a socket.
@@ -247,15 +252,17 @@ class ScpiInstrument:
         with self._translated(command):
             self.resource.write(command)
 
-    def query(self, command: str) -> str:
+    def query(self, command: str, *, max_bytes: int = MAX_TEXT_REPLY_BYTES) -> str:
         """Send a query and return its reply without the line terminator (nor the header an
-        instrument with :attr:`reply_headers` puts first)."""
+        instrument with :attr:`reply_headers` puts first); a reply longer than ``max_bytes``
+        is refused."""
         start = time.monotonic()
         trace_log.debug("%s > %s", self.name, command)
         with self._translated(command):
             self.resource.write(command)
             deadline = start + self._timeout_s()
-            reply = self.transport.read_message(command, deadline).decode("ascii").strip()
+            reply = self.transport.read_message(command, deadline, max_bytes).decode("ascii")
+            reply = reply.strip()
         trace_log.debug("%s < %s  (%.1f ms)", self.name, reply, (time.monotonic() - start) * 1e3)
         if self.reply_headers and not command.lstrip().startswith("*"):
             reply = strip_reply_header(reply)

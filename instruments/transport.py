@@ -65,8 +65,11 @@ class VisaTransport:
             with suppress(Exception):
                 self.resource.set_visa_attribute(constants.ResourceAttribute.tcpip_nodelay, True)
 
-    def read_message(self, command: str, deadline: float) -> bytes:
-        """Read one response message, up to its terminator, by ``deadline`` (monotonic s).
+    def read_message(
+        self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
+    ) -> bytes:
+        """Read one response message, up to its terminator, by ``deadline`` (monotonic s), of
+        at most ``max_bytes``.
 
         PyVISA's own read goes on for as long as bytes keep coming, so a peer that streams
         without a terminator would hold it for ever; here the deadline bounds the whole reply
@@ -86,7 +89,7 @@ class VisaTransport:
                 data += chunk
                 if status != constants.StatusCode.success_max_count_read:
                     break
-                self.check_growing_reply(command, data, deadline)
+                self.check_growing_reply(command, data, deadline, max_bytes)
         if self.is_socket and not data.endswith(b"\n"):
             raise self.truncated(command, data)
         return bytes(data)
@@ -115,11 +118,13 @@ class VisaTransport:
 
     # -- messages shared by the strategies
 
-    def check_growing_reply(self, command: str, data: bytearray, deadline: float) -> None:
+    def check_growing_reply(
+        self, command: str, data: bytearray, deadline: float, max_bytes: int
+    ) -> None:
         """Refuse a reply that is still incomplete at the deadline, or far too long."""
-        if len(data) > MAX_TEXT_REPLY_BYTES:
+        if len(data) > max_bytes:
             raise ReplyFormatError(
-                f"{self.label}: reply to {command!r} runs past {MAX_TEXT_REPLY_BYTES} bytes "
+                f"{self.label}: reply to {command!r} runs past {max_bytes} bytes "
                 "without a terminator"
             )
         if time.monotonic() >= deadline:
@@ -153,7 +158,9 @@ class PyvisaPySocketTransport(VisaTransport):
         """Nagle off through pyvisa-py's own helper (0.8 registers no attribute setter)."""
         self.session._set_tcpip_nodelay(constants.ResourceAttribute.tcpip_nodelay, True)
 
-    def read_message(self, command: str, deadline: float) -> bytes:
+    def read_message(
+        self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
+    ) -> bytes:
         """As :meth:`VisaTransport.read_message`, the deadline holding even while bytes trickle
         in."""
         pending: bytearray = self.session._pending_buffer
@@ -162,7 +169,7 @@ class PyvisaPySocketTransport(VisaTransport):
         previous_timeout = sock.gettimeout()
         try:
             while (end := pending.find(terminator)) < 0:
-                self.check_growing_reply(command, pending, deadline)
+                self.check_growing_reply(command, pending, deadline, max_bytes)
                 sock.settimeout(max(deadline - time.monotonic(), 1e-3))
                 try:
                     chunk = sock.recv(TEXT_CHUNK_BYTES)

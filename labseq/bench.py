@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from contextlib import suppress
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -24,6 +23,7 @@ from instruments import (
     load_command_map,
 )
 from instruments.errors import InstrumentError
+from instruments.roles import MappedInstrument
 from labseq.errors import InputError
 from labseq.safety import SAFE_BUS_V
 from labseq.sequence import Sequence
@@ -76,8 +76,7 @@ class Bench:
     def reopen(self, role: str) -> ScpiInstrument:
         """Close ``role``'s session without talking to it and open a fresh one (after a drop or a
         command that never answered); clears its error queue."""
-        with suppress(Exception):  # the old session is dead; we only let go of it
-            self.drivers[role].resource.close()
+        self.drivers[role].abandon()  # the old session is dead; we only let go of it
         driver = self._openers[role]()
         self.drivers[role] = driver
         driver.clear()
@@ -87,8 +86,7 @@ class Bench:
         """Close every session (without switching anything: :func:`make_safe` does that first),
         then stop the simulated bench if there is one."""
         for driver in self.drivers.values():
-            with suppress(Exception):  # best effort: make_safe has already switched off
-                driver.resource.close()
+            driver.abandon()  # make_safe has already switched off
         if self.sim is not None:
             self.sim.stop()
 
@@ -131,16 +129,50 @@ def _sim_resources(sequence: Sequence, faults: str, seed: int) -> tuple[Any, dic
 
     design = sim_design(sequence)
     try:
-        sim = SimBench(design, faults=faults, seed=seed).start()
+        sim = SimBench(design, faults=faults, seed=seed, dialect=sequence.bench.sim_dialect).start()
     except FaultSpecError as error:
         raise InputError(str(error)) from None
     return sim, dict(sim.resources)
 
 
-def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -> Bench:
-    """Open the four drivers the sequence names (starting the simulated bench if it says so).
+def driver_options(sequence: Sequence) -> dict[str, dict[str, Any]]:
+    """Each role's constructor arguments: its command map, and the limits the sequence declares
+    (so no setpoint beyond them can be sent)."""
+    spec = sequence.bench
+    limits = spec.limits
+    frequencies = (
+        {
+            "min_frequency_hz": limits.source_min_frequency_hz,
+            "max_frequency_hz": limits.source_max_frequency_hz,
+        }
+        if limits.source_min_frequency_hz and limits.source_max_frequency_hz
+        else {}
+    )
+    options: dict[str, dict[str, Any]] = {
+        role: {"command_map": load_command_map(spec.maps[role], role)} for role in ROLES
+    }
+    options["source"]["limits"] = SourceLimits(
+        max_voltage_v=limits.source_max_voltage_v,
+        max_current_a=limits.source_max_current_a,
+        **frequencies,
+    )
+    options["load"]["limits"] = LoadLimits(max_current_a=limits.load_max_current_a)
+    return options
 
-    Every driver gets the limits the sequence declares, so no setpoint beyond them can be sent.
+
+DRIVER_CLASSES: dict[str, type[MappedInstrument]] = {
+    "source": LineSource,
+    "load": ElectronicLoad,
+    "meter": PowerMeter,
+    "scope": Oscilloscope,
+}
+
+
+def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -> Bench:
+    """Open the four drivers the sequence names (starting the simulated bench if it says so),
+    each with its role's command map, connection settings and the sequence's VISA library;
+    then put each in its known state (``*RST`` and its map's set-up commands, where the map has
+    them). A driver reopened after a fault is not reset: the run's settings stay.
     """
     spec = sequence.bench
     sim = None
@@ -150,40 +182,15 @@ def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -
         if sim_faults:
             raise InputError('fault injection needs the simulated bench (bench.kind = "sim")')
         resources = dict(spec.resources)
-    limits = spec.limits
-    command_map = load_command_map(spec.scope_map)
-    options: dict[str, dict[str, Any]] = {
-        "source": {
-            "limits": SourceLimits(
-                max_voltage_v=limits.source_max_voltage_v,
-                max_current_a=limits.source_max_current_a,
-                **(
-                    {
-                        "min_frequency_hz": limits.source_min_frequency_hz,
-                        "max_frequency_hz": limits.source_max_frequency_hz,
-                    }
-                    if limits.source_min_frequency_hz and limits.source_max_frequency_hz
-                    else {}
-                ),
-            )
-        },
-        "load": {"limits": LoadLimits(max_current_a=limits.load_max_current_a)},
-        "meter": {},
-        "scope": {"command_map": command_map},
-    }
-    classes: dict[str, type[ScpiInstrument]] = {
-        "source": LineSource,
-        "load": ElectronicLoad,
-        "meter": PowerMeter,
-        "scope": Oscilloscope,
-    }
+    options = driver_options(sequence)
 
     def opener(role: str) -> Callable[[], ScpiInstrument]:
-        return lambda: classes[role].open(
+        return lambda: DRIVER_CLASSES[role].open(
             resources[role],
             name=role,
             visa_library=spec.visa_library,
             timeout_s=spec.timeout_s,
+            connection=spec.connections.get(role),
             **options[role],
         )
 
@@ -191,7 +198,9 @@ def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -
     try:
         for role in ROLES:
             bench._openers[role] = opener(role)
-            bench.drivers[role] = bench._openers[role]()
+            driver = bench._openers[role]()
+            bench.drivers[role] = driver
+            driver.start()  # type: ignore[attr-defined]
     except BaseException:
         bench.close()
         raise

@@ -245,8 +245,10 @@ def _upgrade_to_2() -> list[str]:
 def _upgrade_statements(version: int) -> list[str]:
     """Statements that bring a file of schema ``version`` to :data:`SCHEMA_VERSION`, step by
     step: 1 → 2 (several nodes), 2 → 3 (the owning process's start time, for resume)."""
-    steps = {1: _upgrade_to_2, 2: lambda: ["ALTER TABLE runs ADD COLUMN process_started REAL"]}
-    return [statement for step in range(version, SCHEMA_VERSION) for statement in steps[step]()]
+    statements = _upgrade_to_2() if version < 2 else []
+    if version < 3:
+        statements.append("ALTER TABLE runs ADD COLUMN process_started REAL")
+    return statements
 
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"

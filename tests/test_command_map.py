@@ -14,7 +14,7 @@ from instruments.command_map import (
 )
 from instruments.errors import CommandMapError
 
-GENERIC_TEXT = (MAPS_DIR / "generic.toml").read_text()
+GENERIC_TEXT = (MAPS_DIR / "scope" / "generic.toml").read_text()
 
 
 def write_map(tmp_path: Path, text: str) -> Path:

@@ -32,7 +32,7 @@ from labseq.cli import main
 from sim_instruments.flyback import DEMO_DUTS, DutFileError, FlybackDesign, load_dut
 
 DUT_TEXT = DEMO_DUTS["telecom_dc"].read_text(encoding="utf-8")
-MAP_TEXT = (MAPS_DIR / "generic.toml").read_text(encoding="utf-8")
+MAP_TEXT = (MAPS_DIR / "scope" / "generic.toml").read_text(encoding="utf-8")
 FUZZ = settings(
     max_examples=150,
     deadline=None,
