@@ -43,10 +43,11 @@ class CommandDef:
 
     ``kind``: ``"set"`` (a setting; ``{value}`` is what is set, if it has one; it can be read
     back), ``"query"`` (answers a value) or ``"action"`` (no value, no reply). ``value``: how a
-    setting's value is written, ``"number"`` or the name of a word group (``"on_off"``,
-    ``"slope"``). ``step`` names what labseq is doing when it sends the command; ``required``
-    is False where a map may leave the command out (the step then does without it, or refuses
-    what needs it with a message naming the command).
+    setting's value is written: ``"number"``, ``"integer"``, ``"channel"`` (in the command
+    itself) or the name of a word group (``"on_off"``, ``"slope"``). ``step`` names what
+    labseq is doing when it sends the command; ``required`` is False where a map may leave the
+    command out (the step then does without it, or refuses what needs it with a message naming
+    the command).
     """
 
     kind: str
@@ -111,7 +112,7 @@ ROLE_COMMANDS: dict[str, dict[str, CommandDef]] = {
         "channel_bandwidth_limit": _setting(_CHANNEL_VALUE, "configure a channel", required=False),
         "channel_probe": _setting(_CHANNEL_VALUE, "configure a channel"),
         "timebase_scale": _setting(_VALUE, "configure the timebase"),
-        "record_length": _setting(_VALUE, "configure the timebase"),
+        "record_length": _setting(_VALUE, "configure the timebase", "integer"),
         "trigger_source": _setting(_CHANNEL, "configure the trigger", value="channel"),
         "trigger_level": _setting(_VALUE, "configure the trigger"),
         "trigger_slope": _setting(_VALUE, "configure the trigger", "slope"),
@@ -477,7 +478,7 @@ class _Validator:
         scale = 1.0
         if "scale" in value:
             scale = self.get(value, "scale", (int, float), f"{where}.") or 1.0
-            if definition.value != "number" or scale == 0:
+            if definition.value not in ("number", "integer") or scale == 0:
                 self.fail(f"{where}.scale", "a non-zero factor, for numeric values only")
         table = self.number_table(where, value.get("table"), definition)
         convert = value.get("convert")

@@ -13,7 +13,7 @@ from typing import Any
 from pyvisa import constants
 
 #: Plain names of the termination strings a sequence may give.
-TERMINATIONS = {"LF": "\n", "CRLF": "\r\n", "CR": "\r"}
+TERMINATIONS = {"lf": "\n", "crlf": "\r\n", "cr": "\r"}
 PARITIES = {
     "none": constants.Parity.none,
     "odd": constants.Parity.odd,

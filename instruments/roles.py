@@ -62,11 +62,12 @@ class MappedInstrument(ScpiInstrument):
 
     def start(self) -> None:
         """Put the instrument in its known state: ``*RST`` if the map asks for it (it does when
-        it has set-up commands), then the map's set-up commands, checked together."""
-        if self.map.reset:
-            self.reset()
-        if self.map.setup:
-            self.configure(*self.map.setup)
+        it has set-up commands), then the map's set-up commands, checked together (so a set-up
+        command that changes how replies look, such as headers off, comes before the first
+        reply)."""
+        commands = (*(["*RST"] if self.map.reset else []), *self.map.setup)
+        if commands:
+            self.configure(*commands)
 
     def has(self, key: str) -> bool:
         """Whether the map gives command ``key``."""
@@ -79,9 +80,11 @@ class MappedInstrument(ScpiInstrument):
         a number scaled (or looked up in the map's number table), a word translated."""
         definition = ROLE_COMMANDS[self.role][key]
         spec = self.map.spec(key)
-        if definition.value != "number":
+        if definition.value not in ("number", "integer"):
             return self._word(definition.value, value)
         number = float(value)
+        if definition.value == "integer":
+            return str(round(number * spec.scale))
         if spec.table:
             for entry, keyword in spec.table:
                 if math.isclose(number, entry, rel_tol=_TABLE_RTOL, abs_tol=1e-12):
@@ -91,7 +94,9 @@ class MappedInstrument(ScpiInstrument):
                 f"{self.label}: {key} = {number:g} is not offered by the {self.map.family!r} map; "
                 f"choose one of: {allowed}"
             )
-        return format_number(number * spec.scale)
+        if spec.scale != 1.0:  # 15 digits: no binary residue of the scaling in the command
+            number = float(f"{number * spec.scale:.15g}")
+        return format_number(number)
 
     def apply(self, key: str, value: Any = None, *, channel: int | None = None) -> None:
         """Send setting or action ``key`` with ``value`` (encoded as the map says), checked
@@ -436,7 +441,7 @@ class Oscilloscope(MappedInstrument):
             "record length", record_length, limits.min_record_length, limits.max_record_length
         )
         self.apply("timebase_scale", seconds_per_div)
-        self.configure(self.map.command("record_length", value=str(record_length)))
+        self.apply("record_length", record_length)
         self.record_duration_s = seconds_per_div * self.map.horizontal_divisions
 
     def trigger_position_value(self, position_fraction: float) -> float:

@@ -320,7 +320,9 @@ class ScpiInstrument:
         )
 
     def _parse_error(self, reply: str) -> tuple[int, str]:
-        code_text, comma, message = reply.partition(",")
+        # A header before the code is dropped even where the map does not expect headers:
+        # an instrument whose *RST turned them on must still be able to report errors.
+        code_text, comma, message = strip_reply_header(reply).partition(",")
         if not comma or not _ERROR_CODE.fullmatch(code_text.strip()):
             raise ReplyFormatError(
                 f"{self.label}: SYST:ERR? reply {reply!r} does not start with an error code"

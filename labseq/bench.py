@@ -18,7 +18,6 @@ from instruments import (
     LoadLimits,
     Oscilloscope,
     PowerMeter,
-    ScpiInstrument,
     SourceLimits,
     load_command_map,
 )
@@ -39,10 +38,10 @@ class Bench:
     """The opened drivers of a run, by role, and how to open each one again after a fault."""
 
     sequence: Sequence
-    drivers: dict[str, ScpiInstrument]
+    drivers: dict[str, MappedInstrument]
     resources: dict[str, str]
     sim: Any = None  # the in-process SimBench for kind = "sim"
-    _openers: dict[str, Callable[[], ScpiInstrument]] = field(default_factory=dict, repr=False)
+    _openers: dict[str, Callable[[], MappedInstrument]] = field(default_factory=dict, repr=False)
 
     @property
     def source(self) -> LineSource:
@@ -73,7 +72,7 @@ class Bench:
             result[role] = {"resource": self.resources[role], **vars(identity)}
         return result
 
-    def reopen(self, role: str) -> ScpiInstrument:
+    def reopen(self, role: str) -> MappedInstrument:
         """Close ``role``'s session without talking to it and open a fresh one (after a drop or a
         command that never answered); clears its error queue."""
         self.drivers[role].abandon()  # the old session is dead; we only let go of it
@@ -168,31 +167,48 @@ DRIVER_CLASSES: dict[str, type[MappedInstrument]] = {
 }
 
 
+def start_resources(
+    sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0
+) -> tuple[Any, dict[str, str]]:
+    """The resource of every role: the sequence's, or those of the simulated bench started
+    here (returned with them, to be stopped by the caller; None for a real bench)."""
+    if sequence.bench.is_sim:
+        return _sim_resources(sequence, sim_faults, sim_seed)
+    if sim_faults:
+        raise InputError('fault injection needs the simulated bench (bench.kind = "sim")')
+    return None, dict(sequence.bench.resources)
+
+
+def open_driver(
+    sequence: Sequence,
+    resources: dict[str, str],
+    role: str,
+    options: dict[str, dict[str, Any]] | None = None,
+) -> MappedInstrument:
+    """Open ``role``'s driver with its command map, connection settings, limits and the
+    sequence's VISA library (nothing is sent to it)."""
+    spec = sequence.bench
+    options = options or driver_options(sequence)
+    return DRIVER_CLASSES[role].open(
+        resources[role],
+        name=role,
+        visa_library=spec.visa_library,
+        timeout_s=spec.timeout_s,
+        connection=spec.connections.get(role),
+        **options[role],
+    )
+
+
 def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -> Bench:
     """Open the four drivers the sequence names (starting the simulated bench if it says so),
-    each with its role's command map, connection settings and the sequence's VISA library;
     then put each in its known state (``*RST`` and its map's set-up commands, where the map has
     them). A driver reopened after a fault is not reset: the run's settings stay.
     """
-    spec = sequence.bench
-    sim = None
-    if spec.is_sim:
-        sim, resources = _sim_resources(sequence, sim_faults, sim_seed)
-    else:
-        if sim_faults:
-            raise InputError('fault injection needs the simulated bench (bench.kind = "sim")')
-        resources = dict(spec.resources)
+    sim, resources = start_resources(sequence, sim_faults=sim_faults, sim_seed=sim_seed)
     options = driver_options(sequence)
 
-    def opener(role: str) -> Callable[[], ScpiInstrument]:
-        return lambda: DRIVER_CLASSES[role].open(
-            resources[role],
-            name=role,
-            visa_library=spec.visa_library,
-            timeout_s=spec.timeout_s,
-            connection=spec.connections.get(role),
-            **options[role],
-        )
+    def opener(role: str) -> Callable[[], MappedInstrument]:
+        return lambda: open_driver(sequence, resources, role, options)
 
     bench = Bench(sequence=sequence, drivers={}, resources=resources, sim=sim)
     try:
@@ -200,7 +216,7 @@ def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -
             bench._openers[role] = opener(role)
             driver = bench._openers[role]()
             bench.drivers[role] = driver
-            driver.start()  # type: ignore[attr-defined]
+            driver.start()
     except BaseException:
         bench.close()
         raise

@@ -258,13 +258,19 @@ def store_lock(store_path: Path, *, wait_s: float = 0.0) -> contextlib.AbstractC
 
 
 @contextmanager
-def run_locks(store_path: Path, resources: Iterable[str]) -> Iterator[None]:
-    """Lock the store and every instrument resource of a run, all or nothing; first clear away
-    lock files that killed processes left behind."""
-    with contextlib.suppress(OSError):
+def instrument_locks(resources: Iterable[str]) -> Iterator[None]:
+    """Lock every instrument resource, all or nothing; first clear away lock files that killed
+    processes left behind."""
+    with contextlib.suppress(OSError, LockError):
         remove_stale_locks(lock_dir())
     with ExitStack() as stack:
-        stack.enter_context(store_lock(store_path))
         for resource in sorted(set(resources)):
             stack.enter_context(exclusive(bench_lock_path(resource), f"the instrument {resource}"))
+        yield
+
+
+@contextmanager
+def run_locks(store_path: Path, resources: Iterable[str]) -> Iterator[None]:
+    """Lock the store and every instrument resource of a run, all or nothing."""
+    with store_lock(store_path), instrument_locks(resources):
         yield

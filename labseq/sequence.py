@@ -610,7 +610,7 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
         top.out.fail(table.key("dut"), 'only for kind = "sim"; a real bench has a real DUT')
     if kind == "sim" and connections:
         top.out.fail(table.key("connections"), 'only for kind = "visa"; a sim bench has its own')
-    for role in connections:
+    for role in connections or {}:
         serial = connections[role].serial
         resource = resources_map.get(role, "")
         if serial is not None and "::" in resource and not resource.upper().startswith("ASRL"):
@@ -724,7 +724,7 @@ def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connec
         if role_table is None:
             continue
         terminations = {
-            name: role_table.text(name, default="LF", choices=TERMINATIONS)
+            name: role_table.text(name, default="lf", choices=TERMINATIONS)
             for name in ("read_termination", "write_termination")
         }
         serial_keys = ("baud_rate", "data_bits", "parity", "stop_bits", "flow_control")
