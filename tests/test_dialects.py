@@ -68,8 +68,12 @@ def _sweep(tmp_path: Path, make_sim_bench, dialect: str) -> Store:
         text = path.read_text(encoding="utf-8").replace('scope_map = "generic"', ALT_MAPS)
         path.write_text(text, encoding="utf-8")
     db = tmp_path / f"{dialect}.sqlite"
-    code, _out, err = run_cli("run", str(path), "--db", str(db), "--quiet")
+    trace = tmp_path / f"{dialect}.trace"
+    code, _out, err = run_cli("run", str(path), "--db", str(db), "--quiet", "--trace", str(trace))
     assert code == 0, err
+    sent = [line.split(" > ", 1)[1] for line in trace.read_text().splitlines() if " > " in line]
+    setpoints = [command for command in sent if command.startswith((":LOAD:CC ", "SOUR:CURR "))]
+    assert len(setpoints) == 16  # one load setpoint per point of the grid, in the trace
     assert not sim.state.source_output_on and not sim.state.load_input_on
     return Store(db, create=False)
 
@@ -321,3 +325,10 @@ def test_bench_maps_aliases_and_connections_in_a_sequence(tmp_path):
     assert "bench.maps.scope: unknown scope family 'nosuch'; shipped: alt, generic" in message
     assert "not a serial port (ASRL...)" in message
     assert "parity" in message and "sideways" in message
+
+
+def test_the_sequence_knows_the_simulator_dialects():
+    from labseq.sequence import SIM_DIALECTS
+    from sim_instruments.instruments import DIALECTS
+
+    assert SIM_DIALECTS == DIALECTS
