@@ -295,7 +295,9 @@ def test_generic_transport_reads_what_the_fast_socket_path_reads(make_sim_bench)
 
 def test_bench_maps_aliases_and_connections_in_a_sequence(tmp_path):
     text = (HERE.parent / "sequences" / "template_real_bench.toml").read_text(encoding="utf-8")
-    text = text.replace('scope_map = "generic"', 'maps = { scope = "alt", meter = "alt" }')
+    text = text.replace('meter = "generic"', 'meter = "alt"').replace(
+        'scope = "generic"', 'scope = "alt"'
+    )
     text = text.replace('meter = "USB0::0x1234::0x5678::MTR0001::INSTR"', 'meter = "line_meter"')
     text = text.replace('source = "TCPIP0::192.168.1.21::inst0::INSTR"', 'source = "ASRL3::INSTR"')
     text = text.replace(
@@ -312,7 +314,7 @@ def test_bench_maps_aliases_and_connections_in_a_sequence(tmp_path):
     assert connection.read_termination == "\r\n" and connection.write_termination == "\n"
     assert connection.serial == SerialSettings(baud_rate=19200, parity="odd")
 
-    bad = text.replace('maps = { scope = "alt", meter = "alt" }', 'maps = { scope = "nosuch" }')
+    bad = text.replace('scope = "alt"', 'scope = "nosuch"')
     bad = bad.replace(
         "[bench.connections.source]",
         "[bench.connections.scope]\nbaud_rate = 9600\n\n[bench.connections.source]",
