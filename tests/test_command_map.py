@@ -192,10 +192,21 @@ def test_conversions_tables_and_scaling_sources_are_checked(tmp_path):
         'channel_bandwidth_limit = { command = ":CHANnel{channel}:BANDwidth {value}", '
         'table = { "twenty" = "ON" } }',
     )
-    text += '\n[scaling_values]\ny_origin = 0.0\n'
+    text += "\n[scaling_values]\ny_origin = 0.0\n"
     with pytest.raises(CommandMapError) as caught:
         load_command_map(write_map(tmp_path, text))
     message = str(caught.value)
     assert "'furlongs' is not a conversion here; valid: fraction, percent" in message
     assert "each key must be a number" in message
     assert "y_origin is already given in scaling_fields" in message
+
+
+def test_windows_line_endings_read_the_same(tmp_path):
+    # A map saved on Windows (CR LF): same map, same line numbers in its problems.
+    path = tmp_path / "crlf.toml"
+    path.write_bytes(GENERIC_TEXT.replace("\n", "\r\n").encode("utf-8"))
+    assert load_command_map(path).commands == load_command_map("generic").commands
+    path.write_bytes(edited("channels = 4", "channels = 0").replace("\n", "\r\n").encode())
+    line = GENERIC_TEXT.splitlines().index("channels = 4") + 1
+    with pytest.raises(CommandMapError, match=f"line {line}, channels: channels = 0 must be"):
+        load_command_map(path)
