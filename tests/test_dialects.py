@@ -334,3 +334,19 @@ def test_the_sequence_knows_the_simulator_dialects():
     from sim_instruments.instruments import DIALECTS
 
     assert SIM_DIALECTS == DIALECTS
+
+
+def test_with_no_library_named_pyvisa_library_is_honoured(tmp_path, monkeypatch):
+    # A sequence without visa_library leaves the choice to PyVISA, which reads PYVISA_LIBRARY
+    # (then ~/.pyvisarc): here it names pyvisa-sim with our instrument description.
+    text = (HERE.parent / "sequences" / "template_real_bench.toml").read_text(encoding="utf-8")
+    text = text.replace('source = "TCPIP0::192.168.1.21::inst0::INSTR"', 'source = "ASRL7::INSTR"')
+    path = tmp_path / "bench.toml"
+    path.write_text(text, encoding="utf-8")
+    sequence = load_sequence(path)
+    assert sequence.bench.visa_library == ""
+    monkeypatch.setenv("PYVISA_LIBRARY", f"{HERE / 'visa_sim' / 'line_source.yaml'}@sim")
+    from labseq.bench import open_driver
+
+    with open_driver(sequence, dict(sequence.bench.resources), "source") as source:
+        assert source.identify().model == "yaml-line-source"
