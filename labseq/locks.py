@@ -90,11 +90,13 @@ def _check_private_dir(path: Path) -> None:
             f"the lock directory {path} belongs to user id {info.st_uid}, not to you "
             f"({os.geteuid()}); another user may have made it: remove it, or set LABSEQ_LOCK_DIR"
         )
-    if info.st_mode & 0o077:
+    if info.st_mode & 0o022:
         raise LockError(
             f"the lock directory {path} has mode {stat.S_IMODE(info.st_mode):04o}; other users "
             f"may write in it. Make it private (chmod 700 {path}) or set LABSEQ_LOCK_DIR"
         )
+    if info.st_mode & 0o055:  # readable by others (as older labseq versions made it): tighten
+        os.chmod(path, 0o700)
 
 
 def _open_lock_file(path: Path) -> int:

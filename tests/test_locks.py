@@ -130,8 +130,11 @@ def test_store_reached_through_a_link_shares_its_lock(tmp_path, lock_home):
 def test_lock_directory_is_private_and_checked(tmp_path, lock_home, monkeypatch):
     lock_dir()
     assert stat.S_IMODE(os.stat(lock_home).st_mode) == 0o700
-    os.chmod(lock_home, 0o755)
-    with pytest.raises(LockError, match="mode 0755; other users may write"):
+    os.chmod(lock_home, 0o755)  # ours, readable by others: made private again
+    lock_dir()
+    assert stat.S_IMODE(os.stat(lock_home).st_mode) == 0o700
+    os.chmod(lock_home, 0o777)
+    with pytest.raises(LockError, match="mode 0777; other users may write"):
         lock_dir()
     os.chmod(lock_home, 0o700)
     linked = tmp_path / "linked"
