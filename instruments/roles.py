@@ -411,19 +411,19 @@ class Oscilloscope(MappedInstrument):
             ),
         }
         check_word("coupling", coupling, self.map.words["coupling"])
-        # Everything is checked before the first byte: an absent optional command refuses here
-        # any value other than the one the scope has without it.
+        # Everything is checked before the first byte. Full bandwidth and DC coupling are what a
+        # scope without those commands has; any other value needs the command (spec() refuses
+        # it by name), and a number outside a map's table is refused by encode().
         if settings["channel_bandwidth_limit"] == 0 and not self.has("channel_bandwidth_limit"):
             del settings["channel_bandwidth_limit"]
-        sent = [key for key in settings if self.map.spec(key)]
-        for key in sent:
-            self.encode(key, settings[key])
         if coupling.lower() != "dc" or self.has("channel_coupling"):
             self.map.spec("channel_coupling")
+        for key, value in settings.items():
+            self.encode(key, value)
         if self.has("channel_enable"):
             self.apply("channel_enable", "on", channel=channel)
-        for key in sent:
-            self.apply(key, settings[key], channel=channel)
+        for key, value in settings.items():
+            self.apply(key, value, channel=channel)
         if self.has("channel_coupling"):
             self.apply("channel_coupling", coupling.lower(), channel=channel)
 

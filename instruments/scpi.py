@@ -1,7 +1,9 @@
 """The SCPI base class every role builds on: transport, identity, error queue, block transfer.
 
-One base does the plumbing once (opening, terminations, error translation, the error queue,
-fast binary blocks); each bench role is a small subclass that only knows its commands.
+One base does the plumbing once (opening with the link's settings, error translation, the
+error queue, binary blocks, the SCPI trace); how reply bytes are read is a transport strategy
+(:mod:`instruments.transport`); each bench role is a small subclass that only knows its
+commands, and takes them from a command map (:mod:`instruments.roles`).
 """
 
 from __future__ import annotations

@@ -9,8 +9,11 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
+from contextlib import suppress
 from dataclasses import dataclass, field, replace
 from typing import Any
+
+import pyvisa
 
 from instruments import (
     ElectronicLoad,
@@ -177,6 +180,24 @@ def start_resources(
     if sim_faults:
         raise InputError('fault injection needs the simulated bench (bench.kind = "sim")')
     return None, dict(sequence.bench.resources)
+
+
+def lock_names(sequence: Sequence) -> list[str]:
+    """What the instrument locks of a real bench are keyed by: each resource string, with an
+    alias resolved by the VISA library to the resource it stands for (so an instrument named
+    both ways is still one instrument); an alias the library cannot resolve is kept as it is,
+    and opening it reports the problem. A simulated bench has no instruments to lock."""
+    spec = sequence.bench
+    if spec.is_sim:
+        return []
+    names = []
+    for resource in spec.resources.values():
+        if "::" not in resource:
+            with suppress(Exception):  # any failure of the library: keep the alias itself
+                info = pyvisa.ResourceManager(spec.visa_library).resource_info(resource)
+                resource = info.resource_name or resource
+        names.append(resource)
+    return names
 
 
 def open_driver(

@@ -28,7 +28,7 @@ from labseq.analysis import CaptureFigures, NoEdgeError, aggregate, analyze_capt
 from labseq.analysis import judge as judge_point
 from labseq.analysis.capture import ClampFigures, clamp_figures
 from labseq.analysis.verdict import worst_verdict
-from labseq.bench import Bench, SafeReport, make_safe, open_bench
+from labseq.bench import Bench, SafeReport, lock_names, make_safe, open_bench
 from labseq.errors import LabseqError
 from labseq.locks import run_locks
 from labseq.progress import Progress
@@ -558,8 +558,7 @@ def start_run(sequence: Sequence, store: Store, *, label: str = "") -> int:
 def bench_locks(sequence: Sequence, store: Store) -> AbstractContextManager[None]:
     """Exclusive use of the store and of every real instrument the sequence names, so a second
     labseq process cannot interleave commands on the bench or write the same store."""
-    resources = [] if sequence.bench.is_sim else list(sequence.bench.resources.values())
-    return run_locks(store.path, resources)
+    return run_locks(store.path, lock_names(sequence))
 
 
 def run_sequence(

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import click
 
-from labseq.bench import ROLES
+from labseq.bench import ROLES, lock_names
 from labseq.commands._options import trace_option, tracing
 from labseq.locks import instrument_locks
 from labseq.probe import FAILED, probe_bench
@@ -43,8 +43,7 @@ def command(sequence_path: Path, roles: tuple[str, ...], trace_path: Path | None
     sequence = load_sequence(sequence_path)
     roles = roles or ROLES
     click.echo(CAUTION, err=True)
-    resources = [] if sequence.bench.is_sim else [sequence.bench.resources[r] for r in roles]
-    with instrument_locks(resources), tracing(trace_path):
+    with instrument_locks(lock_names(sequence)), tracing(trace_path):
         lines = probe_bench(sequence, roles)
     width = max(len(line.key) for line in lines)
     for role in roles:
