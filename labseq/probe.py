@@ -98,25 +98,29 @@ class _RoleProbe:
         step = ROLE_COMMANDS[self.role][key].step
         self.record(key, NOT_MAPPED, "", f"optional: to {step} labseq does without it")
 
-    def start(self) -> None:
-        """Identify, then ``*RST`` and each set-up command on its own."""
+    def start(self) -> bool:
+        """Identify, then ``*RST`` and each set-up command on its own; False (and nothing more
+        sent) if the instrument does not identify itself."""
         driver = self.driver
         with self.attempt("*IDN?", "*IDN?") as detail:
             identity = driver.identify()
             detail.append(f"{identity.manufacturer} {identity.model}, serial {identity.serial}")
+        if self.lines[-1].outcome != OK:
+            return False
         if driver.map.reset:
             with self.attempt("*RST", "*RST"):
                 driver.reset()
         for index, command in enumerate(driver.map.setup):
             with self.attempt(f"setup[{index}]", command):
                 driver.configure(command)
+        return True
 
-    def remaining(self) -> None:
-        """A line for every command of the role not exercised (none should be left)."""
+    def remaining(self, reason: str = "not exercised by the probe") -> None:
+        """A line for every command of the role not exercised, saying why."""
         for key in ROLE_COMMANDS[self.role]:
             if key not in self.done:
                 if self.driver.map.has(key):
-                    self.record(key, SKIPPED, "", "not exercised by the probe")
+                    self.record(key, SKIPPED, "", reason)
                 else:
                     self.not_mapped(key)
 
@@ -266,9 +270,11 @@ def probe_bench(sequence: Sequence, roles: tuple[str, ...] = ROLES) -> list[Prob
                 continue
             try:
                 probe = _RoleProbe(role, driver, lines)
-                probe.start()
-                PROBES[role](probe, sequence)
-                probe.remaining()
+                if probe.start():
+                    PROBES[role](probe, sequence)
+                    probe.remaining()
+                else:
+                    probe.remaining("the instrument did not identify itself")
             finally:
                 try:
                     driver.close()

@@ -350,3 +350,16 @@ def test_with_no_library_named_pyvisa_library_is_honoured(tmp_path, monkeypatch)
 
     with open_driver(sequence, dict(sequence.bench.resources), "source") as source:
         assert source.identify().model == "yaml-line-source"
+
+
+def test_probe_of_an_instrument_that_cannot_be_reached(tmp_path, make_sim_bench):
+    bench = make_sim_bench()
+    resources = dict(bench.resources, meter="TCPIP::127.0.0.1::1::SOCKET")  # nothing listens
+    path = demo_sequence(tmp_path, resources=resources)
+    code, out, err = run_cli("probe", str(path), "--role", "meter", "--role", "load")
+    assert code == 1 and "Traceback" not in out + err
+    meter = out.split("load (")[0]
+    assert re.search(r"^  failed\s+\*IDN\?", meter, re.MULTILINE)
+    assert re.search(r"^  skipped\s+measure_voltage\s*\n.*did not identify itself", meter, re.M)
+    assert meter.count("failed") == 1
+    assert re.search(r"^  ok\s+measure_power\s+MEAS:POW\?", out, re.MULTILINE)  # the load's
