@@ -2,10 +2,12 @@
 
 from instruments.block import encode_block, parse_block
 from instruments.command_map import CommandMap, available_families, load_command_map
+from instruments.connection import Connection, SerialSettings
 from instruments.limits import LoadLimits, ScopeLimits, SourceLimits
 from instruments.roles import (
     ElectronicLoad,
     LineSource,
+    MappedInstrument,
     MeterReading,
     Oscilloscope,
     PowerMeter,
@@ -15,15 +17,18 @@ from instruments.scpi import Identity, ScpiInstrument, open_resource
 
 __all__ = [
     "CommandMap",
+    "Connection",
     "ElectronicLoad",
     "Identity",
     "LineSource",
     "LoadLimits",
+    "MappedInstrument",
     "MeterReading",
     "Oscilloscope",
     "PowerMeter",
     "ScopeLimits",
     "ScpiInstrument",
+    "SerialSettings",
     "SourceLimits",
     "Waveform",
     "available_families",

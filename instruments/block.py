@@ -18,7 +18,13 @@ import numpy as np
 from instruments.errors import BlockFormatError
 
 #: Payload formats a scope may send, by the name a command map uses.
-DATA_FORMATS: dict[str, str] = {"int8": "i1", "int16": "i2", "float32": "f4"}
+DATA_FORMATS: dict[str, str] = {
+    "int8": "i1",
+    "uint8": "u1",
+    "int16": "i2",
+    "uint16": "u2",
+    "float32": "f4",
+}
 #: Byte orders by the name a command map uses, as numpy byte-order characters.
 BYTE_ORDERS: dict[str, str] = {"big": ">", "little": "<"}
 
@@ -31,7 +37,7 @@ def payload_dtype(data_format: str, byte_order: str = "big") -> np.dtype:
 
     Parameters
     ----------
-    data_format : {"int8", "int16", "float32"}
+    data_format : {"int8", "uint8", "int16", "uint16", "float32"}
     byte_order : {"big", "little"}
         Ignored for one-byte items.
     """
@@ -154,3 +160,32 @@ def encode_block(payload: bytes | np.ndarray, *, definite: bool = True) -> bytes
     if len(length) > 9:
         raise BlockFormatError(f"payload of {len(raw)} bytes exceeds a definite block's 9 digits")
     return b"#" + str(len(length)).encode("ascii") + length + raw
+
+
+def signed_codes(codes: np.ndarray) -> tuple[np.ndarray, int]:
+    """Unsigned codes as the signed codes of the same width, and the shift applied.
+
+    An unsigned code ``u`` becomes ``u − 2**(bits−1)`` (0…255 → −128…127), exactly, so a capture
+    keeps one signed code type whatever its scope sends; a reference or code limit given in
+    unsigned codes moves by the returned shift. Signed and float codes come back unchanged.
+    """
+    if codes.dtype.kind != "u":
+        return codes, 0
+    bits = codes.dtype.itemsize * 8
+    shift = 1 << (bits - 1)
+    # Flipping the top bit is subtracting 2**(bits-1) modulo 2**bits: one pass, no overflow.
+    flipped = codes ^ codes.dtype.type(shift)
+    return flipped.view(codes.dtype.str.replace("u", "i")), shift
+
+
+def parse_ascii_values(text: str) -> np.ndarray:
+    """Comma-separated numbers (an ASCII waveform transfer) as float32 values."""
+    try:
+        values = np.array(text.split(","), dtype=np.float64)
+    except ValueError:
+        raise BlockFormatError(
+            f"ASCII waveform is not a list of comma-separated numbers: {text[:40]!r}"
+        ) from None
+    if not np.isfinite(values).all():
+        raise BlockFormatError("ASCII waveform holds a value that is not a finite number")
+    return values.astype(np.float32)

@@ -1,8 +1,9 @@
 """One small class per bench role: line source, electronic load, power meter, oscilloscope.
 
-Source, load and meter speak generic SCPI-1999; the oscilloscope takes its commands from a
-:class:`~instruments.command_map.CommandMap`. Every setter validates all its arguments against
-the role's declared limits before the first byte is sent.
+Every role takes its commands from a :class:`~instruments.command_map.CommandMap` of its role
+(the generic maps by default): command strings, keywords, value conversions and reply forms.
+Every setter validates all its arguments against the role's declared limits before the first
+byte is sent.
 """
 
 from __future__ import annotations
@@ -16,9 +17,13 @@ from typing import Any
 import numpy as np
 from pyvisa.resources import MessageBasedResource
 
-from instruments.block import decode_payload
-from instruments.command_map import CommandMap, load_command_map
-from instruments.errors import InstrumentTimeout, ReplyFormatError
+from instruments.block import decode_payload, parse_ascii_values, signed_codes
+from instruments.command_map import (
+    ROLE_COMMANDS,
+    CommandMap,
+    load_command_map,
+)
+from instruments.errors import CommandMapError, InstrumentTimeout, LimitError, ReplyFormatError
 from instruments.limits import (
     LoadLimits,
     SourceLimits,
@@ -27,23 +32,140 @@ from instruments.limits import (
     check_word,
     format_number,
 )
-from instruments.scpi import ScpiInstrument, is_response_token
+from instruments.scpi import ScpiInstrument, is_response_token, parse_number
+
+#: Relative tolerance under which a number matches an entry of a map's number table.
+_TABLE_RTOL = 1e-9
+#: Longest ASCII waveform reply read (about 15 M samples of 16 characters).
+MAX_ASCII_WAVEFORM_BYTES = 1 << 28
 
 
-class _OutputRole(ScpiInstrument, ABC):
+class MappedInstrument(ScpiInstrument):
+    """A role whose commands come from a command map: sending settings with the map's
+    conversions, and reading replies back the way the map says they come."""
+
+    def __init__(
+        self,
+        resource: MessageBasedResource,
+        command_map: CommandMap | str = "generic",
+        name: str | None = None,
+    ) -> None:
+        if not isinstance(command_map, CommandMap):
+            command_map = load_command_map(command_map, self.role)
+        if command_map.role != self.role:
+            raise CommandMapError(
+                f"{command_map.source}: a {command_map.role} map cannot drive the {self.role}"
+            )
+        self.map = command_map
+        self.reply_headers = command_map.reply_headers
+        super().__init__(resource, name)
+
+    def start(self) -> None:
+        """Put the instrument in its known state: ``*RST`` if the map asks for it (it does when
+        it has set-up commands), then the map's set-up commands, checked together (so a set-up
+        command that changes how replies look, such as headers off, comes before the first
+        reply)."""
+        commands = (*(["*RST"] if self.map.reset else []), *self.map.setup)
+        if commands:
+            self.configure(*commands)
+
+    def has(self, key: str) -> bool:
+        """Whether the map gives command ``key``."""
+        return self.map.has(key)
+
+    # -- values out
+
+    def encode(self, key: str, value: Any) -> str:
+        """``value`` in labseq's units or words as the instrument takes it for setting ``key``:
+        a number scaled (or looked up in the map's number table), a word translated."""
+        definition = ROLE_COMMANDS[self.role][key]
+        spec = self.map.spec(key)
+        if definition.value not in ("number", "integer"):
+            return self._word(definition.value, value)
+        number = float(value)
+        if definition.value == "integer":
+            return str(round(number * spec.scale))
+        if spec.table:
+            for entry, keyword in spec.table:
+                if math.isclose(number, entry, rel_tol=_TABLE_RTOL, abs_tol=1e-12):
+                    return keyword
+            allowed = ", ".join(f"{entry:g}" for entry, _ in spec.table)
+            raise LimitError(
+                f"{self.label}: {key} = {number:g} is not offered by the {self.map.family!r} map; "
+                f"choose one of: {allowed}"
+            )
+        if spec.scale != 1.0:  # 15 digits: no binary residue of the scaling in the command
+            number = float(f"{number * spec.scale:.15g}")
+        return format_number(number)
+
+    def apply(self, key: str, value: Any = None, *, channel: int | None = None) -> None:
+        """Send setting or action ``key`` with ``value`` (encoded as the map says), checked
+        through the error queue."""
+        text = None if value is None else self.encode(key, value)
+        self.configure(self.map.command(key, channel=channel, value=text))
+
+    def _word(self, group: str, name: str) -> str:
+        """Map one of our words (e.g. slope "rising") to this instrument's keyword, or refuse
+        it."""
+        words = self.map.words[group]
+        return words[check_word(group.replace("_", " "), name, words)]
+
+    # -- values in
+
+    def read_back(self, key: str, *, channel: int | None = None) -> str:
+        """The instrument's reply to setting ``key``'s read-back query, as it states it."""
+        return self.query(self.map.query(key, channel=channel))
+
+    def decode_number(self, key: str, reply: str, command: str) -> float:
+        """A reply to ``key`` (a measurement or a numeric setting) in labseq's units: the map's
+        number table read backwards, or the number divided by the map's scale."""
+        spec = self.map.spec(key)
+        for entry, keyword in spec.table:
+            if reply.strip().upper() == keyword.upper():
+                return entry
+        value = parse_number(reply)
+        if value is None:
+            raise ReplyFormatError(f"{self.label}: reply {reply!r} to {command!r} is not a number")
+        return value / spec.scale
+
+    def read_number(self, key: str, *, channel: int | None = None) -> float:
+        """Send query ``key`` and read its number."""
+        command = self.map.command(key, channel=channel)
+        return self.decode_number(key, self.query(command), command)
+
+    def read_flag(self, key: str) -> bool:
+        """Read back an on/off setting: the map's on and off words, or 1, 0, ON, OFF."""
+        command = self.map.query(key)
+        reply = self.query(command).upper()
+        words = self.map.words["on_off"]
+        if reply in ("1", "ON", words["on"].upper()):
+            return True
+        if reply in ("0", "OFF", words["off"].upper()):
+            return False
+        raise ReplyFormatError(
+            f"{self.label}: reply {reply!r} to {command!r} is neither {words['on']!r} nor "
+            f"{words['off']!r} (nor 1 or 0)"
+        )
+
+
+class _OutputRole(MappedInstrument, ABC):
     """A role with a power path that must be off whenever the driver lets go of it."""
 
     @abstractmethod
     def switch_off(self) -> None:
         """Turn the power path off."""
 
+    @abstractmethod
+    def is_on(self) -> bool:
+        """Whether the power path is on, as the instrument reads it back."""
+
     def measure_voltage_v(self) -> float:
         """Voltage at the terminals (rms for AC)."""
-        return self.query_float("MEAS:VOLT?")
+        return self.read_number("measure_voltage")
 
     def measure_current_a(self) -> float:
         """Current through the terminals (rms for AC)."""
-        return self.query_float("MEAS:CURR?")
+        return self.read_number("measure_current")
 
     def close(self) -> None:
         """Switch the power path off, then close the session, even if switching off fails."""
@@ -55,32 +177,33 @@ class _OutputRole(ScpiInstrument, ABC):
             super().close()
 
 
-def _on_off(on: bool) -> str:
-    return "ON" if on else "OFF"
-
-
 class LineSource(_OutputRole):
-    """AC or DC line source (generic SCPI-1999 SOURce/OUTPut subsystems)."""
+    """AC or DC line source."""
 
     role = "source"
 
     def __init__(
-        self, resource: MessageBasedResource, limits: SourceLimits, name: str | None = None
+        self,
+        resource: MessageBasedResource,
+        limits: SourceLimits,
+        command_map: CommandMap | str = "generic",
+        name: str | None = None,
     ) -> None:
-        super().__init__(resource, name)
+        super().__init__(resource, command_map, name)
         self.limits = limits
 
     def _voltage(self, volts: float) -> float:
         return check_setpoint("source voltage", volts, 0.0, self.limits.max_voltage_v, "V")
 
     def set_dc(self, volts: float) -> None:
-        """Select DC and set the output voltage."""
+        """Select DC (where the map can) and set the output voltage."""
         volts = self._voltage(volts)
-        self.configure("SOUR:FUNC:SHAP DC")
-        self.configure(f"SOUR:VOLT {format_number(volts)}")
+        if self.has("line_shape"):
+            self.apply("line_shape", "dc")
+        self.apply("voltage", volts)
 
     def set_ac(self, volts_rms: float, frequency_hz: float) -> None:
-        """Select a sine line and set its rms voltage and frequency."""
+        """Select a sine line (where the map can) and set its rms voltage and frequency."""
         volts_rms = self._voltage(volts_rms)
         frequency_hz = check_setpoint(
             "source frequency",
@@ -89,22 +212,26 @@ class LineSource(_OutputRole):
             self.limits.max_frequency_hz,
             "Hz",
         )
-        self.configure("SOUR:FUNC:SHAP SIN")
-        self.configure(f"SOUR:FREQ {format_number(frequency_hz)}")
-        self.configure(f"SOUR:VOLT {format_number(volts_rms)}")
+        self.map.spec("frequency")  # refused before anything is sent if the map lacks it
+        if self.has("line_shape"):
+            self.apply("line_shape", "ac")
+        self.apply("frequency", frequency_hz)
+        self.apply("voltage", volts_rms)
 
     def set_current_limit(self, amps: float) -> None:
         """Set the output current limit."""
         amps = check_setpoint("source current limit", amps, 0.0, self.limits.max_current_a, "A")
-        self.configure(f"SOUR:CURR:LIM {format_number(amps)}")
+        self.apply("current_limit", amps)
 
     def set_output(self, on: bool) -> None:
         """Turn the output on or off."""
-        self.configure(f"OUTP {_on_off(on)}")
+        self.apply("output", "on" if on else "off")
 
-    def output_is_on(self) -> bool:
+    def is_on(self) -> bool:
         """Whether the output is on."""
-        return self.query_bool("OUTP?")
+        return self.read_flag("output")
+
+    output_is_on = is_on
 
     def switch_off(self) -> None:
         """Turn the output off."""
@@ -112,33 +239,42 @@ class LineSource(_OutputRole):
 
 
 class ElectronicLoad(_OutputRole):
-    """Electronic load in constant-current mode (generic SCPI-1999 SOURce/INPut subsystems)."""
+    """Electronic load in constant-current mode."""
 
     role = "load"
 
     def __init__(
-        self, resource: MessageBasedResource, limits: LoadLimits, name: str | None = None
+        self,
+        resource: MessageBasedResource,
+        limits: LoadLimits,
+        command_map: CommandMap | str = "generic",
+        name: str | None = None,
     ) -> None:
-        super().__init__(resource, name)
+        super().__init__(resource, command_map, name)
         self.limits = limits
 
     def set_current(self, amps: float) -> None:
-        """Select constant current and set the current to sink."""
+        """Select constant current (where the map can) and set the current to sink."""
         amps = check_setpoint("load current", amps, 0.0, self.limits.max_current_a, "A")
-        self.configure("SOUR:FUNC CURR")
-        self.configure(f"SOUR:CURR {format_number(amps)}")
+        if self.has("mode"):
+            self.apply("mode", "current")
+        self.apply("current", amps)
 
     def set_input(self, on: bool) -> None:
         """Turn the load's input on or off."""
-        self.configure(f"INP {_on_off(on)}")
+        self.apply("input", "on" if on else "off")
 
-    def input_is_on(self) -> bool:
+    def is_on(self) -> bool:
         """Whether the input is on."""
-        return self.query_bool("INP?")
+        return self.read_flag("input")
+
+    input_is_on = is_on
 
     def measure_power_w(self) -> float:
-        """Power the load is sinking."""
-        return self.query_float("MEAS:POW?")
+        """Power the load is sinking (volts × amps where the map has no power query)."""
+        if self.has("measure_power"):
+            return self.read_number("measure_power")
+        return self.measure_voltage_v() * self.measure_current_a()
 
     def switch_off(self) -> None:
         """Turn the input off."""
@@ -152,21 +288,25 @@ class MeterReading:
     voltage_v: float
     current_a: float
     power_w: float
-    power_factor: float
+    power_factor: float  # NaN where the meter's map has no power-factor query
 
 
-class PowerMeter(ScpiInstrument):
-    """Power meter on the line input (generic SCPI-1999 MEASure subsystem)."""
+class PowerMeter(MappedInstrument):
+    """Power meter on the line input."""
 
     role = "meter"
 
     def measure(self) -> MeterReading:
         """Read voltage, current, real power and power factor."""
         return MeterReading(
-            voltage_v=self.query_float("MEAS:VOLT?"),
-            current_a=self.query_float("MEAS:CURR?"),
-            power_w=self.query_float("MEAS:POW?"),
-            power_factor=self.query_float("MEAS:POW:PFAC?"),
+            voltage_v=self.read_number("measure_voltage"),
+            current_a=self.read_number("measure_current"),
+            power_w=self.read_number("measure_power"),
+            power_factor=(
+                self.read_number("measure_power_factor")
+                if self.has("measure_power_factor")
+                else math.nan
+            ),
         )
 
 
@@ -211,7 +351,7 @@ class Waveform:
         return mask is not None and bool(mask.any())
 
 
-class Oscilloscope(ScpiInstrument):
+class Oscilloscope(MappedInstrument):
     """An oscilloscope driven entirely through a scope command map."""
 
     role = "scope"
@@ -222,21 +362,18 @@ class Oscilloscope(ScpiInstrument):
         command_map: CommandMap | str = "generic",
         name: str | None = None,
     ) -> None:
-        super().__init__(resource, name)
-        self.map = (
-            command_map if isinstance(command_map, CommandMap) else load_command_map(command_map)
-        )
+        super().__init__(resource, command_map, name)
         self.limits = self.map.limits
+        #: The record's duration once the timebase is set (a trigger position in seconds
+        #: needs it).
+        self.record_duration_s: float | None = None
 
     def _channel(self, channel: int) -> int:
         return check_count("scope channel", channel, 1, self.map.channels)
 
-    def _send(self, key: str, *, channel: int | None = None, value: str | None = None) -> None:
-        self.configure(self.map.command(key, channel=channel, value=value))
-
     def query_setting(self, key: str, channel: int | None = None) -> str:
         """Read back setting ``key`` of the map (e.g. ``channel_scale``) as the scope states it."""
-        return self.query(self.map.query(key, channel=channel))
+        return self.read_back(key, channel=channel)
 
     def configure_channel(
         self,
@@ -250,7 +387,8 @@ class Oscilloscope(ScpiInstrument):
         """Enable a channel and set its probe, scale, offset, coupling and bandwidth limit.
 
         ``volts_per_div`` and ``offset_v`` are at the probe tip; ``bandwidth_limit_hz`` = 0
-        means full bandwidth; ``coupling`` is ``"dc"`` or ``"ac"``.
+        means full bandwidth; ``coupling`` is ``"dc"`` or ``"ac"``. A map without a coupling or
+        bandwidth-limit command takes only DC and full bandwidth.
         """
         limits = self.limits
         channel = self._channel(channel)
@@ -272,11 +410,22 @@ class Oscilloscope(ScpiInstrument):
                 "bandwidth limit", bandwidth_limit_hz, 0.0, limits.max_bandwidth_limit_hz, "Hz"
             ),
         }
-        coupling_word = self._word("coupling", coupling)
-        self._send("channel_enable", channel=channel, value=self.map.word("on_off", "on"))
-        for key, number in settings.items():
-            self._send(key, channel=channel, value=format_number(number))
-        self._send("channel_coupling", channel=channel, value=coupling_word)
+        check_word("coupling", coupling, self.map.words["coupling"])
+        # Everything is checked before the first byte. Full bandwidth and DC coupling are what a
+        # scope without those commands has; any other value needs the command (spec() refuses
+        # it by name), and a number outside a map's table is refused by encode().
+        if settings["channel_bandwidth_limit"] == 0 and not self.has("channel_bandwidth_limit"):
+            del settings["channel_bandwidth_limit"]
+        if coupling.lower() != "dc" or self.has("channel_coupling"):
+            self.map.spec("channel_coupling")
+        for key, value in settings.items():
+            self.encode(key, value)
+        if self.has("channel_enable"):
+            self.apply("channel_enable", "on", channel=channel)
+        for key, value in settings.items():
+            self.apply(key, value, channel=channel)
+        if self.has("channel_coupling"):
+            self.apply("channel_coupling", coupling.lower(), channel=channel)
 
     def configure_timebase(self, seconds_per_div: float, record_length: int) -> None:
         """Set the horizontal scale and the number of samples per record."""
@@ -291,8 +440,27 @@ class Oscilloscope(ScpiInstrument):
         record_length = check_count(
             "record length", record_length, limits.min_record_length, limits.max_record_length
         )
-        self._send("timebase_scale", value=format_number(seconds_per_div))
-        self._send("record_length", value=str(record_length))
+        self.apply("timebase_scale", seconds_per_div)
+        self.apply("record_length", record_length)
+        self.record_duration_s = seconds_per_div * self.map.horizontal_divisions
+
+    def trigger_position_value(self, position_fraction: float) -> float:
+        """The trigger position as this scope takes it (the map's ``convert``), from the
+        fraction of the record before the trigger."""
+        conversion = self.map.spec("trigger_position").convert or "fraction"
+        if conversion == "fraction":
+            return position_fraction
+        if conversion == "percent":
+            return 100.0 * position_fraction
+        duration_s = self.record_duration_s
+        if duration_s is None:
+            raise LimitError(
+                f"{self.label}: the {self.map.family!r} map sets the trigger position in "
+                "seconds; configure the timebase first"
+            )
+        if conversion == "pretrigger_s":
+            return position_fraction * duration_s
+        return (0.5 - position_fraction) * duration_s  # delay_to_centre_s
 
     def configure_trigger(
         self, channel: int, level_v: float, slope: str = "rising", position_fraction: float = 0.1
@@ -303,21 +471,46 @@ class Oscilloscope(ScpiInstrument):
         level_v = check_setpoint(
             "trigger level", level_v, -self.limits.max_offset_v, self.limits.max_offset_v, "V"
         )
-        slope_word = self._word("slope", slope)
+        self._word("slope", slope)
         position_fraction = check_setpoint("trigger position", position_fraction, 0.0, 1.0)
-        self._send("trigger_source", channel=channel)
-        self._send("trigger_level", value=format_number(level_v))
-        self._send("trigger_slope", value=slope_word)
-        self._send("trigger_position", value=format_number(position_fraction))
-
-    def _word(self, group: str, name: str) -> str:
-        """Map one of our words (e.g. slope "rising") to this family's keyword, or refuse it."""
-        words = self.map.words[group]
-        return words[check_word(group.replace("_", " "), name, words)]
+        position = self.trigger_position_value(position_fraction)
+        self.encode("trigger_position", position)
+        self.apply("trigger_source", channel=channel)
+        self.apply("trigger_level", level_v)
+        self.apply("trigger_slope", slope)
+        self.apply("trigger_position", position)
 
     def single(self) -> None:
         """Arm one acquisition."""
-        self._send("single")
+        self.apply("single")
+
+    def stop(self) -> None:
+        """Stop (abandon) an acquisition in progress."""
+        self.apply("stop")
+
+    def force_trigger(self) -> None:
+        """Trigger now, whatever the trigger condition (used to probe a scope at rest)."""
+        self.apply("force_trigger")
+
+    def acquisition_done(self) -> bool:
+        """Whether the armed acquisition is in.
+
+        Raises
+        ------
+        ReplyFormatError
+            A reply that is neither the done reply nor any one SCPI token (a number or a
+            mnemonic, such as a "not yet" 0): a garbled link, not a trigger that is late.
+        """
+        query = self.map.command("acquisition_done_query")
+        reply = self.query(query)
+        if reply == self.map.acquisition_done_reply:
+            return True
+        if not is_response_token(reply):
+            raise ReplyFormatError(
+                f"{self.label}: reply {reply!r} to {query!r} is neither "
+                f"{self.map.acquisition_done_reply!r} nor a SCPI status value"
+            )
+        return False
 
     def wait_acquisition(self, timeout_s: float, poll_interval_s: float = 0.01) -> None:
         """Poll until the armed acquisition is in; on timeout stop the scope and raise.
@@ -327,38 +520,42 @@ class Oscilloscope(ScpiInstrument):
         InstrumentTimeout
             "trigger did not fire within ..." after sending the map's stop command.
         ReplyFormatError
-            A reply that is neither the done reply nor any one SCPI token (a number or a
-            mnemonic, such as a "not yet" 0): a garbled link, not a trigger that is late.
+            See :meth:`acquisition_done`.
         """
         timeout_s = check_setpoint("acquisition timeout", timeout_s, 0.0, math.inf, "s")
         poll_interval_s = check_setpoint("poll interval", poll_interval_s, 0.0, math.inf, "s")
-        query = self.map.command("acquisition_done_query")
         deadline = time.monotonic() + timeout_s
-        while (reply := self.query(query)) != self.map.acquisition_done_reply:
-            if not is_response_token(reply):
-                raise ReplyFormatError(
-                    f"{self.label}: reply {reply!r} to {query!r} is neither "
-                    f"{self.map.acquisition_done_reply!r} nor a SCPI status value"
-                )
+        while not self.acquisition_done():
             if time.monotonic() >= deadline:
-                self._send("stop")
+                self.stop()
                 raise InstrumentTimeout(
                     f"{self.label}: trigger did not fire within {timeout_s:g} s"
                 )
             time.sleep(poll_interval_s)
 
-    def fetch_waveform(self, channel: int) -> Waveform:
-        """Transfer the last capture of ``channel`` with its scaling."""
-        channel = self._channel(channel)
+    def select_waveform(self, channel: int) -> None:
+        """Select ``channel`` for transfer, with the map's format and byte order where it can
+        set them (one error-queue read for all: each costs a round trip)."""
         data_format, byte_order = self.map.data_format, self.map.byte_order
-        command = self.map.command
-        self.configure(  # one error-queue read for the three: each costs a round trip
-            command("waveform_source", channel=channel),
-            command("waveform_format", value=self.map.word("data_format", data_format)),
-            command("waveform_byte_order", value=self.map.word("byte_order", byte_order)),
-        )
-        scaling = self._scaling()
-        codes = self.read_codes()
+        commands = [self.map.command("waveform_source", channel=channel)]
+        if self.has("waveform_format"):
+            word = self.map.word("data_format", data_format)
+            commands.append(self.map.command("waveform_format", value=word))
+        if self.has("waveform_byte_order") and data_format not in ("int8", "uint8", "ascii"):
+            word = self.map.word("byte_order", byte_order)
+            commands.append(self.map.command("waveform_byte_order", value=word))
+        self.configure(*commands)
+
+    def fetch_waveform(self, channel: int) -> Waveform:
+        """Transfer the last capture of ``channel`` with its scaling.
+
+        Unsigned codes are returned as the signed codes of the same width, with the reference
+        and the code limits moved to match (:func:`~instruments.block.signed_codes`).
+        """
+        channel = self._channel(channel)
+        self.select_waveform(channel)
+        scaling = self.read_scaling()
+        codes, shift = signed_codes(self.read_codes())
         points = scaling.get("points")
         if points is not None and points != codes.size:
             raise ReplyFormatError(
@@ -370,39 +567,68 @@ class Oscilloscope(ScpiInstrument):
                 f"and {scaling['y_increment']:g} V per code; both must be non-zero, the "
                 "interval positive"
             )
+        x_origin_s = scaling.get("x_origin", 0.0)
+        x_origin_s -= scaling.get("x_reference", 0.0) * scaling["x_increment"]
         return Waveform(
             codes=codes,
             x_increment_s=scaling["x_increment"],
-            x_origin_s=scaling["x_origin"],
+            x_origin_s=x_origin_s,
             y_increment_v=scaling["y_increment"],
             y_origin_v=scaling["y_origin"],
-            y_reference=scaling.get("y_reference", 0.0),
-            code_min=self.map.code_min,
-            code_max=self.map.code_max,
+            y_reference=scaling.get("y_reference", 0.0) - shift,
+            code_min=self.map.code_min - shift,
+            code_max=self.map.code_max - shift,
         )
 
     def read_codes(self) -> np.ndarray:
-        """Query the waveform data block of the selected source and decode it.
+        """Query the waveform data of the selected source and decode it, as the scope sends it
+        (an IEEE 488.2 block, or comma-separated ASCII numbers).
 
         The source, format and byte order must already be selected (:meth:`fetch_waveform`
         does that); this is the bulk transfer alone.
         """
-        payload = self.query_block(self.map.command("waveform_data_query"))
+        query = self.map.command("waveform_data_query")
+        if self.map.data_format == "ascii":
+            text = self.query(query, max_bytes=MAX_ASCII_WAVEFORM_BYTES)
+            if not text:
+                self.check_errors(query)
+            return parse_ascii_values(text)
+        payload = self.query_block(query)
+        if not payload:  # a scope that refuses to send says why in its error queue
+            self.check_errors(query)
         return decode_payload(payload, self.map.data_format, self.map.byte_order)
 
-    def _scaling(self) -> dict[str, Any]:
-        """Read the scaling reply and name its fields as the map lists them."""
-        query = self.map.command("waveform_scaling_query")
-        values = self.query_floats(query)
+    def read_scaling(self) -> dict[str, float]:
+        """The scaling values of the selected waveform, from wherever the map says each comes:
+        fields of one reply (text fields skipped by name ``_``), queries of their own, or
+        constants."""
+        values = dict(self.map.scaling_values)
         names = self.map.scaling_fields
-        if len(values) != len(names):
+        if names:
+            query = self.map.command("waveform_scaling_query")
+            parts = self.query(query, max_bytes=MAX_ASCII_WAVEFORM_BYTES).split(",")
+            if len(parts) != len(names):
+                raise ReplyFormatError(
+                    f"{self.label}: {query!r} answered {len(parts)} fields, the "
+                    f"{self.map.family!r} map expects {len(names)} ({', '.join(names)})"
+                )
+            for name, part in zip(names, parts, strict=True):
+                if name != "_":
+                    values[name] = self._scaling_number(query, name, part)
+        for name, query in self.map.scaling_queries.items():
+            values[name] = self._scaling_number(query, name, self.query(query))
+        return values
+
+    def _scaling_number(self, query: str, name: str, text: str) -> float:
+        value = parse_number(text)
+        if value is None or not math.isfinite(value):
             raise ReplyFormatError(
-                f"{self.label}: {query!r} answered {len(values)} fields, the "
-                f"{self.map.family!r} map expects {len(names)} ({', '.join(names)})"
+                f"{self.label}: {name} in the reply to {query!r} is {text.strip()!r}, not a "
+                "finite number"
             )
-        return {name: value for name, value in zip(names, values, strict=True) if name != "_"}
+        return value
 
     def measure_mean_v(self, channel: int) -> float:
         """Free-running mean voltage of ``channel`` (watches the bus discharge)."""
         channel = self._channel(channel)
-        return self.query_float(self.map.command("measure_mean_query", channel=channel))
+        return self.read_number("measure_mean_query", channel=channel)

@@ -1,17 +1,19 @@
 """The SCPI base class every role builds on: transport, identity, error queue, block transfer.
 
-One base does the plumbing once (opening, terminations, error translation, the error queue,
-fast binary blocks); each bench role is a small subclass that only knows its commands.
+One base does the plumbing once (opening with the link's settings, error translation, the
+error queue, binary blocks, the SCPI trace); how reply bytes are read is a transport strategy
+(:mod:`instruments.transport`); each bench role is a small subclass that only knows its
+commands, and takes them from a command map (:mod:`instruments.roles`).
 """
 
 from __future__ import annotations
 
+import logging
 import math
 import re
-import socket
 import time
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from typing import Any, ClassVar, Self
 
@@ -21,6 +23,7 @@ from pyvisa import constants
 from pyvisa.resources import MessageBasedResource
 
 from instruments import block
+from instruments.connection import Connection
 from instruments.errors import (
     BlockFormatError,
     ConnectionLost,
@@ -29,18 +32,24 @@ from instruments.errors import (
     ReplyFormatError,
     ScpiError,
 )
+from instruments.transport import (
+    MAX_TEXT_REPLY_BYTES,
+    TIMEOUT_CODES,
+    VisaTransport,
+    choose_transport,
+)
 
 DEFAULT_TIMEOUT_S = 5.0
-#: Bytes asked of the VISA layer per read while receiving a block payload.
-BLOCK_CHUNK_BYTES = 1 << 20
 #: Silence that ends an indefinite (#0) block on a transport without END, such as a socket.
 QUIET_AFTER_INDEFINITE_BLOCK_MS = 50.0
 #: Bound on error-queue reads: an instrument that never answers "0,..." cannot hang us.
 MAX_QUEUED_ERRORS = 64
-#: Bytes asked of the VISA layer per read of a text reply, and the longest text reply accepted
-#: (far above any reply read as text; a peer streaming without a terminator is cut off here).
-TEXT_CHUNK_BYTES = 1 << 14
-MAX_TEXT_REPLY_BYTES = 1 << 20
+#: Longest header accepted before a block when the instrument sends headers with its replies.
+MAX_BLOCK_HEADER_BYTES = 64
+
+#: Every SCPI exchange is logged here at DEBUG level: the command sent, the reply received and
+#: how long it took. ``--trace FILE`` on a bench command writes this logger to FILE.
+trace_log = logging.getLogger("instruments.trace")
 
 #: IEEE 488.2 decimal numeric data in its flexible form (NRf, 7.7.2: NR1, NR2 and NR3), and the
 #: INFinity, NINFinity and NAN keywords of SCPI-1999 vol. 1, 7.2.1.5.
@@ -55,8 +64,9 @@ _NUMBER_KEYWORDS = {
 #: IEEE 488.2 character response data (8.7.1): a mnemonic, letter first.
 _MNEMONIC = re.compile(r"[A-Za-z][A-Za-z0-9_]*")
 _ERROR_CODE = re.compile(r"[+-]?\d+")
+#: A header echoed before a reply: mnemonics joined by colons, an optional leading colon.
+_REPLY_HEADER = re.compile(r":?[A-Za-z][A-Za-z0-9_]*(?::[A-Za-z][A-Za-z0-9_]*)*\??")
 
-_TIMEOUT_CODES = {constants.StatusCode.error_timeout}
 _CONNECTION_CODES = {
     constants.StatusCode.error_connection_lost,
     constants.StatusCode.error_io,
@@ -85,27 +95,44 @@ class Identity:
         return cls(*parts)
 
 
+def describe_visa_library(visa_library: str) -> str:
+    """How messages name a VISA library specification; "" is PyVISA's own choice."""
+    if visa_library:
+        return visa_library
+    return "the default VISA library (PYVISA_LIBRARY, else .pyvisarc, else IVI, else pyvisa-py)"
+
+
 def open_resource(
     resource_name: str,
     *,
-    visa_library: str = "@py",
+    visa_library: str = "",
     timeout_s: float = DEFAULT_TIMEOUT_S,
+    connection: Connection | None = None,
 ) -> MessageBasedResource:
-    """Open a message-based VISA resource with ``\\n`` terminations and a timeout.
+    """Open a message-based VISA resource with its terminations, serial settings and timeout.
 
-    ``visa_library`` selects the VISA implementation: ``"@py"`` (pyvisa-py, the default),
-    ``"@ivi"`` or the path of a vendor VISA library.
+    ``resource_name`` is a VISA resource string or an alias the VISA library knows.
+    ``visa_library`` selects the VISA implementation: ``"@py"`` (pyvisa-py), ``"@ivi"``, the
+    path of a vendor VISA library, or ``""`` to let PyVISA choose as its documentation says:
+    the ``PYVISA_LIBRARY`` environment variable, then the library named in ``~/.pyvisarc``, then
+    an installed IVI VISA, then pyvisa-py. ``connection`` carries terminations (``\\n`` when
+    not given) and, for a serial port, its line settings.
     """
+    connection = connection or Connection()
     try:
         manager = pyvisa.ResourceManager(visa_library)
         resource = manager.open_resource(resource_name)
     except Exception as error:  # pyvisa-py raises bare Exceptions as well as VisaIOError
-        raise ConnectionLost(f"cannot open {resource_name!r}: {error}") from None
+        library = describe_visa_library(visa_library)
+        raise ConnectionLost(f"cannot open {resource_name!r} with {library}: {error}") from None
     if not isinstance(resource, MessageBasedResource):
         resource.close()
         raise InstrumentError(f"{resource_name!r} is not a message-based instrument")
-    resource.read_termination = "\n"
-    resource.write_termination = "\n"
+    try:
+        connection.apply(resource)
+    except Exception as error:  # a library or interface that refuses a setting
+        resource.close()
+        raise InstrumentError(f"{resource_name!r}: cannot apply its settings: {error}") from None
     resource.timeout = timeout_s * 1000.0
     return resource
 
@@ -120,6 +147,15 @@ def parse_number(text: str) -> float | None:
     if _NRF.fullmatch(text):
         return float(text)
     return _NUMBER_KEYWORDS.get(text.upper())
+
+
+def strip_reply_header(reply: str) -> str:
+    """A reply without the header an instrument puts first when its headers are on: the first
+    word, if it is a header (``:CHAN1:SCAL 5.0E-01`` gives ``5.0E-01``)."""
+    head, space, rest = reply.partition(" ")
+    if space and _REPLY_HEADER.fullmatch(head):
+        return rest.strip()
+    return reply
 
 
 def is_response_token(text: str) -> bool:
@@ -137,12 +173,17 @@ class ScpiInstrument:
 
     role: ClassVar[str] = "instrument"
 
+    #: Whether the instrument puts its header before every reply (``:CHAN1:SCAL 5.0``); a
+    #: command map sets it for its instrument.
+    reply_headers: bool = False
+
     def __init__(self, resource: MessageBasedResource, name: str | None = None) -> None:
         self.resource = resource
         self.name = name or self.role
         self.resource_name: str = resource.resource_name  # kept for messages after close()
         self._closed = False
-        self._tune_transport()
+        self.transport: VisaTransport = choose_transport(resource, self.label)
+        self.transport.tune()
 
     @classmethod
     def open(
@@ -150,15 +191,19 @@ class ScpiInstrument:
         resource_name: str,
         *,
         name: str | None = None,
-        visa_library: str = "@py",
+        visa_library: str = "",
         timeout_s: float = DEFAULT_TIMEOUT_S,
+        connection: Connection | None = None,
         **options: Any,
     ) -> Self:
         """Open ``resource_name`` (e.g. ``TCPIP::host::5025::SOCKET``) as this role.
 
-        ``options`` are the role's own constructor arguments (its limits, a command map).
+        ``options`` are the role's own constructor arguments (its limits, a command map); the
+        other arguments are those of :func:`open_resource`.
         """
-        resource = open_resource(resource_name, visa_library=visa_library, timeout_s=timeout_s)
+        resource = open_resource(
+            resource_name, visa_library=visa_library, timeout_s=timeout_s, connection=connection
+        )
         try:
             return cls(resource, name=name, **options)
         except BaseException:
@@ -178,7 +223,7 @@ class ScpiInstrument:
         try:
             yield
         except pyvisa.errors.VisaIOError as error:
-            if error.error_code in _TIMEOUT_CODES:
+            if error.error_code in TIMEOUT_CODES:
                 raise InstrumentTimeout(
                     f"{self.label}: no reply within {self.resource.timeout / 1000:g} s "
                     f"to {command!r}"
@@ -198,133 +243,32 @@ class ScpiInstrument:
                 f"{error.start}); the session may hold the rest of an earlier reply"
             ) from None
 
-    @property
-    def is_socket(self) -> bool:
-        """Whether the resource is a raw TCP socket, where no END marks the end of a reply."""
-        return self.resource_name.upper().endswith("::SOCKET")
-
     def _timeout_s(self) -> float:
-        return self.resource.timeout / 1000.0 if self.resource.timeout else math.inf
-
-    def _tune_transport(self) -> None:
-        """Turn off Nagle's algorithm on socket resources.
-
-        Every configuration step is a write followed by ``SYST:ERR?``; with Nagle's algorithm
-        on, that second small write waits for the peer's delayed ACK (about 40 ms on Linux)
-        because the first one has no reply. VI_ATTR_TCPIP_NODELAY is the VISA attribute for it;
-        pyvisa-py 0.8 registers no setter for it, so its session's own helper is used then.
-        """
-        resource = self.resource
-        if not self.is_socket:
-            return
-        try:
-            resource.set_visa_attribute(constants.ResourceAttribute.tcpip_nodelay, True)
-        except Exception:  # pyvisa-py raises its own UnknownAttribute here
-            session = self._pyvisa_py_socket_session()
-            if session is not None:
-                session._set_tcpip_nodelay(constants.ResourceAttribute.tcpip_nodelay, True)
-
-    def _pyvisa_py_socket_session(self) -> Any | None:
-        """The pyvisa-py TCPIP SOCKET session behind the resource, if that is what it is."""
-        sessions = getattr(self.resource.visalib, "sessions", None)
-        session = sessions.get(self.resource.session) if isinstance(sessions, dict) else None
-        fields_present = all(
-            hasattr(session, field)
-            for field in ("interface", "_pending_buffer", "_set_tcpip_nodelay")
-        )
-        if fields_present and isinstance(session.interface, socket.socket):
-            return session
-        return None
+        return self.transport.timeout_s()
 
     # -- messages -------------------------------------------------------------------------
 
     def write(self, command: str) -> None:
         """Send one program message, unchecked (see :meth:`configure`)."""
+        trace_log.debug("%s > %s", self.name, command)
         with self._translated(command):
             self.resource.write(command)
 
-    def query(self, command: str) -> str:
-        """Send a query and return its reply without the line terminator."""
+    def query(self, command: str, *, max_bytes: int = MAX_TEXT_REPLY_BYTES) -> str:
+        """Send a query and return its reply without the line terminator (nor the header an
+        instrument with :attr:`reply_headers` puts first); a reply longer than ``max_bytes``
+        is refused."""
+        start = time.monotonic()
+        trace_log.debug("%s > %s", self.name, command)
         with self._translated(command):
             self.resource.write(command)
-            deadline = time.monotonic() + self._timeout_s()
-            return self._read_message(command, deadline).decode("ascii").strip()
-
-    def _read_message(self, command: str, deadline: float) -> bytes:
-        """Read one response message, up to its terminator, by ``deadline`` (monotonic s).
-
-        PyVISA's own read goes on for as long as bytes keep coming, so a peer that streams
-        without a terminator would hold it for ever; here the deadline bounds the whole reply
-        and its length is capped. On a socket, where no END marks the end, a reply that stops
-        before its terminator is refused as truncated rather than read as a shorter value.
-        """
-        session = self._pyvisa_py_socket_session()
-        if session is not None:
-            return self._read_line_from_socket(session, command, deadline)
-        resource = self.resource
-        data = bytearray()
-        with resource.ignore_warning(constants.StatusCode.success_max_count_read):
-            while True:
-                try:
-                    chunk, status = resource.visalib.read(resource.session, TEXT_CHUNK_BYTES)
-                except pyvisa.errors.VisaIOError as error:
-                    if error.error_code in _TIMEOUT_CODES:
-                        raise self._no_reply(command) from None
-                    raise
-                data += chunk
-                if status != constants.StatusCode.success_max_count_read:
-                    break
-                self._check_growing_reply(command, data, deadline)
-        if self.is_socket and not data.endswith(b"\n"):
-            raise self._truncated(command, data)
-        return bytes(data)
-
-    def _read_line_from_socket(self, session: Any, command: str, deadline: float) -> bytes:
-        """:meth:`_read_message` straight from a pyvisa-py socket session (bytes it has read
-        ahead first), so that the deadline holds even while bytes trickle in."""
-        pending: bytearray = session._pending_buffer
-        terminator = (self.resource.read_termination or "\n").encode("ascii")
-        sock: socket.socket = session.interface
-        previous_timeout = sock.gettimeout()
-        try:
-            while (end := pending.find(terminator)) < 0:
-                self._check_growing_reply(command, pending, deadline)
-                sock.settimeout(max(deadline - time.monotonic(), 1e-3))
-                try:
-                    chunk = sock.recv(TEXT_CHUNK_BYTES)
-                except TimeoutError:
-                    continue  # the deadline check above raises
-                if not chunk:
-                    raise ConnectionLost(
-                        f"{self.label}: connection closed during the reply to {command!r}"
-                    )
-                pending += chunk
-        finally:
-            sock.settimeout(previous_timeout)
-        line = bytes(pending[: end + len(terminator)])
-        del pending[: end + len(terminator)]
-        return line
-
-    def _check_growing_reply(self, command: str, data: bytearray, deadline: float) -> None:
-        """Refuse a reply that is still incomplete at the deadline, or far too long."""
-        if len(data) > MAX_TEXT_REPLY_BYTES:
-            raise ReplyFormatError(
-                f"{self.label}: reply to {command!r} runs past {MAX_TEXT_REPLY_BYTES} bytes "
-                "without a terminator"
-            )
-        if time.monotonic() >= deadline:
-            raise self._truncated(command, data) if data else self._no_reply(command)
-
-    def _no_reply(self, command: str) -> InstrumentTimeout:
-        return InstrumentTimeout(
-            f"{self.label}: no reply within {self._timeout_s():g} s to {command!r}"
-        )
-
-    def _truncated(self, command: str, data: bytes | bytearray) -> ReplyFormatError:
-        return ReplyFormatError(
-            f"{self.label}: reply {bytes(data[:40])!r} to {command!r} has no line terminator "
-            "(truncated, or still arriving when the timeout ran out)"
-        )
+            deadline = start + self._timeout_s()
+            reply = self.transport.read_message(command, deadline, max_bytes).decode("ascii")
+            reply = reply.strip()
+        trace_log.debug("%s < %s  (%.1f ms)", self.name, reply, (time.monotonic() - start) * 1e3)
+        if self.reply_headers and not command.lstrip().startswith("*"):
+            reply = strip_reply_header(reply)
+        return reply
 
     def query_float(self, command: str) -> float:
         """Send a query whose reply is one SCPI number (NR1/NR2/NR3 or NAN/INF forms)."""
@@ -378,7 +322,9 @@ class ScpiInstrument:
         )
 
     def _parse_error(self, reply: str) -> tuple[int, str]:
-        code_text, comma, message = reply.partition(",")
+        # A header before the code is dropped even where the map does not expect headers:
+        # an instrument whose *RST turned them on must still be able to report errors.
+        code_text, comma, message = strip_reply_header(reply).partition(",")
         if not comma or not _ERROR_CODE.fullmatch(code_text.strip()):
             raise ReplyFormatError(
                 f"{self.label}: SYST:ERR? reply {reply!r} does not start with an error code"
@@ -426,114 +372,50 @@ class ScpiInstrument:
         """
         resource = self.resource
         saved_termination = resource.read_termination
+        start = time.monotonic()
+        trace_log.debug("%s > %s", self.name, command)
         with self._translated(command):
             resource.write(command)
             resource.read_termination = None
             try:
-                digit_count = block.length_digit_count(resource.read_bytes(2))
+                digit_count = block.length_digit_count(self._read_block_start(command))
                 if digit_count == 0:
-                    return self._read_indefinite_payload(command, saved_termination)
-                length = block.parse_length(resource.read_bytes(digit_count))
-                # np.empty maps pages only as bytes arrive: a garbled header announcing a
-                # gigabyte costs no more memory than what is actually received
-                payload = self._read_into(np.empty(length, dtype=np.uint8))
-                self._read_trailer(command)
-                return payload
+                    payload = self._read_indefinite_payload(command, saved_termination)
+                else:
+                    length = block.parse_length(resource.read_bytes(digit_count))
+                    # np.empty maps pages only as bytes arrive: a garbled header announcing a
+                    # gigabyte costs no more memory than what is actually received
+                    payload = memoryview(np.empty(length, dtype=np.uint8))
+                    self.transport.read_into(payload)
+                    self._read_trailer(command)
             except BlockFormatError:
-                self._discard_input()  # drop the rest of the malformed reply
+                self.transport.discard_input()  # drop the rest of the malformed reply
                 raise
             finally:
                 resource.read_termination = saved_termination
+        trace_log.debug(
+            "%s < block of %d bytes  (%.1f ms)",
+            self.name,
+            len(payload),
+            (time.monotonic() - start) * 1e3,
+        )
+        return payload
 
-    def _discard_input(self) -> None:
-        """Throw away what is left of a broken reply, within the timeout.
-
-        On a socket the bytes already sent are read and dropped until the peer goes quiet or
-        closes (pyvisa-py's clear would spin for ever on a closed connection or an endless
-        stream); on other interfaces this is the VISA device clear.
-        """
-        session = self._pyvisa_py_socket_session()
-        if session is None:
-            self.resource.clear()
-            return
-        session._pending_buffer.clear()
-        sock: socket.socket = session.interface
-        deadline = time.monotonic() + min(self._timeout_s(), 5.0)
-        previous_timeout = sock.gettimeout()
-        try:
-            sock.settimeout(QUIET_AFTER_INDEFINITE_BLOCK_MS / 1000.0)
-            while time.monotonic() < deadline:
-                try:
-                    if not sock.recv(BLOCK_CHUNK_BYTES):
-                        return  # closed by the peer
-                except (TimeoutError, OSError):
-                    return  # quiet (or gone): nothing more to drop
-        finally:
-            sock.settimeout(previous_timeout)
-
-    def _read_into(self, buffer: np.ndarray) -> memoryview:
-        """Fill ``buffer`` with the next ``len(buffer)`` bytes of the reply."""
-        view = memoryview(buffer)
-        session = self._pyvisa_py_socket_session()
-        if session is not None:
-            self._receive_from_socket(session, view)
-        else:
-            self._read_visa_chunks(view)
-        return view
-
-    def _read_visa_chunks(self, view: memoryview) -> None:
-        """Read through ``viRead`` in large chunks (any VISA library), one copy per chunk."""
-        resource = self.resource
-        received = 0
-        # A full chunk is the normal case here, not a warning.
-        with resource.ignore_warning(constants.StatusCode.success_max_count_read):
-            while received < len(view):
-                chunk, _ = resource.visalib.read(
-                    resource.session, min(BLOCK_CHUNK_BYTES, len(view) - received)
+    def _read_block_start(self, command: str) -> bytes:
+        """The ``#`` and digit count that open a block. An instrument that sends headers with
+        its replies puts the header and a space before them: that is skipped."""
+        start = self.resource.read_bytes(2)
+        if start[:1] == b"#" or not self.reply_headers:
+            return start
+        skipped = bytearray(start)
+        while not skipped.endswith(b" #"):
+            if len(skipped) > MAX_BLOCK_HEADER_BYTES:
+                raise BlockFormatError(
+                    f"{self.label}: no block after {bytes(skipped[:40])!r} in the reply to "
+                    f"{command!r}"
                 )
-                if not chunk:
-                    raise BlockFormatError(
-                        f"{self.label}: block ended after {received} of {len(view)} bytes"
-                    )
-                view[received : received + len(chunk)] = chunk
-                received += len(chunk)
-
-    def _receive_from_socket(self, session: Any, view: memoryview) -> None:
-        """Receive straight into ``view`` from a pyvisa-py socket session.
-
-        pyvisa-py's ``viRead`` copies every byte four times (receive, read-ahead buffer, slice,
-        bytes) in calls of at most 4096 bytes, each behind a ``select``, which caps a 10 M-sample
-        transfer far below what the socket delivers. Here the bytes pyvisa-py has already read
-        ahead are taken first, then the session's own socket receives into the buffer directly,
-        within the resource's timeout. The session is left exactly as a ``viRead`` would.
-        """
-        pending: bytearray = session._pending_buffer
-        received = min(len(pending), len(view))
-        view[:received] = pending[:received]
-        del pending[:received]
-        sock: socket.socket = session.interface
-        timeout_s = self.resource.timeout / 1000.0 if self.resource.timeout else math.inf
-        deadline = time.monotonic() + timeout_s
-        previous_timeout = sock.gettimeout()
-        try:
-            while received < len(view):
-                remaining_s = deadline - time.monotonic()
-                if remaining_s <= 0:
-                    raise InstrumentTimeout(
-                        f"{self.label}: block stalled after {received} of {len(view)} bytes"
-                    )
-                sock.settimeout(None if math.isinf(remaining_s) else remaining_s)
-                try:
-                    count = sock.recv_into(view[received:])
-                except TimeoutError:
-                    continue  # the deadline check above raises
-                if count == 0:
-                    raise ConnectionLost(
-                        f"{self.label}: connection closed after {received} of {len(view)} bytes"
-                    )
-                received += count
-        finally:
-            sock.settimeout(previous_timeout)
+            skipped += self.resource.read_bytes(1)
+        return b"#" + self.resource.read_bytes(1)
 
     def _read_trailer(self, command: str) -> None:
         """Consume the newline that ends a block reply (a CR before it is tolerated)."""
@@ -558,14 +440,14 @@ class ScpiInstrument:
         resource.read_termination = termination or "\n"
         timeout_s = self._timeout_s()
         deadline = time.monotonic() + timeout_s
-        received = bytearray(self._read_message(command, deadline))
+        received = bytearray(self.transport.read_message(command, deadline))
         quiet_s = QUIET_AFTER_INDEFINITE_BLOCK_MS / 1000.0
         saved_timeout = resource.timeout
         resource.timeout = min(saved_timeout or math.inf, QUIET_AFTER_INDEFINITE_BLOCK_MS)
         try:
             while True:
                 try:
-                    received += self._read_message(
+                    received += self.transport.read_message(
                         command, min(deadline, time.monotonic() + quiet_s)
                     )
                 except InstrumentTimeout:
@@ -590,6 +472,14 @@ class ScpiInstrument:
         """Close the VISA session (once; closing again does nothing)."""
         if not self._closed:
             self._closed = True
+            self.resource.close()
+
+    def abandon(self) -> None:
+        """Let go of the session without sending anything, whatever state it is in (after a
+        dropped connection or a command that never answered): no error escapes, and nothing is
+        switched. Output roles override :meth:`close` to switch off; this never does."""
+        self._closed = True
+        with suppress(Exception):
             self.resource.close()
 
     def __enter__(self) -> Self:

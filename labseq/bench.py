@@ -13,17 +13,19 @@ from contextlib import suppress
 from dataclasses import dataclass, field, replace
 from typing import Any
 
+import pyvisa
+
 from instruments import (
     ElectronicLoad,
     LineSource,
     LoadLimits,
     Oscilloscope,
     PowerMeter,
-    ScpiInstrument,
     SourceLimits,
     load_command_map,
 )
 from instruments.errors import InstrumentError
+from instruments.roles import MappedInstrument
 from labseq.errors import InputError
 from labseq.safety import SAFE_BUS_V
 from labseq.sequence import Sequence
@@ -39,10 +41,10 @@ class Bench:
     """The opened drivers of a run, by role, and how to open each one again after a fault."""
 
     sequence: Sequence
-    drivers: dict[str, ScpiInstrument]
+    drivers: dict[str, MappedInstrument]
     resources: dict[str, str]
     sim: Any = None  # the in-process SimBench for kind = "sim"
-    _openers: dict[str, Callable[[], ScpiInstrument]] = field(default_factory=dict, repr=False)
+    _openers: dict[str, Callable[[], MappedInstrument]] = field(default_factory=dict, repr=False)
 
     @property
     def source(self) -> LineSource:
@@ -73,11 +75,10 @@ class Bench:
             result[role] = {"resource": self.resources[role], **vars(identity)}
         return result
 
-    def reopen(self, role: str) -> ScpiInstrument:
+    def reopen(self, role: str) -> MappedInstrument:
         """Close ``role``'s session without talking to it and open a fresh one (after a drop or a
         command that never answered); clears its error queue."""
-        with suppress(Exception):  # the old session is dead; we only let go of it
-            self.drivers[role].resource.close()
+        self.drivers[role].abandon()  # the old session is dead; we only let go of it
         driver = self._openers[role]()
         self.drivers[role] = driver
         driver.clear()
@@ -87,8 +88,7 @@ class Bench:
         """Close every session (without switching anything: :func:`make_safe` does that first),
         then stop the simulated bench if there is one."""
         for driver in self.drivers.values():
-            with suppress(Exception):  # best effort: make_safe has already switched off
-                driver.resource.close()
+            driver.abandon()  # make_safe has already switched off
         if self.sim is not None:
             self.sim.stop()
 
@@ -131,67 +131,113 @@ def _sim_resources(sequence: Sequence, faults: str, seed: int) -> tuple[Any, dic
 
     design = sim_design(sequence)
     try:
-        sim = SimBench(design, faults=faults, seed=seed).start()
+        sim = SimBench(design, faults=faults, seed=seed, dialect=sequence.bench.sim_dialect).start()
     except FaultSpecError as error:
         raise InputError(str(error)) from None
     return sim, dict(sim.resources)
 
 
-def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -> Bench:
-    """Open the four drivers the sequence names (starting the simulated bench if it says so).
-
-    Every driver gets the limits the sequence declares, so no setpoint beyond them can be sent.
-    """
+def driver_options(sequence: Sequence) -> dict[str, dict[str, Any]]:
+    """Each role's constructor arguments: its command map, and the limits the sequence declares
+    (so no setpoint beyond them can be sent)."""
     spec = sequence.bench
-    sim = None
-    if spec.is_sim:
-        sim, resources = _sim_resources(sequence, sim_faults, sim_seed)
-    else:
-        if sim_faults:
-            raise InputError('fault injection needs the simulated bench (bench.kind = "sim")')
-        resources = dict(spec.resources)
     limits = spec.limits
-    command_map = load_command_map(spec.scope_map)
+    frequencies = (
+        {
+            "min_frequency_hz": limits.source_min_frequency_hz,
+            "max_frequency_hz": limits.source_max_frequency_hz,
+        }
+        if limits.source_min_frequency_hz and limits.source_max_frequency_hz
+        else {}
+    )
     options: dict[str, dict[str, Any]] = {
-        "source": {
-            "limits": SourceLimits(
-                max_voltage_v=limits.source_max_voltage_v,
-                max_current_a=limits.source_max_current_a,
-                **(
-                    {
-                        "min_frequency_hz": limits.source_min_frequency_hz,
-                        "max_frequency_hz": limits.source_max_frequency_hz,
-                    }
-                    if limits.source_min_frequency_hz and limits.source_max_frequency_hz
-                    else {}
-                ),
-            )
-        },
-        "load": {"limits": LoadLimits(max_current_a=limits.load_max_current_a)},
-        "meter": {},
-        "scope": {"command_map": command_map},
+        role: {"command_map": load_command_map(spec.maps[role], role)} for role in ROLES
     }
-    classes: dict[str, type[ScpiInstrument]] = {
-        "source": LineSource,
-        "load": ElectronicLoad,
-        "meter": PowerMeter,
-        "scope": Oscilloscope,
-    }
+    options["source"]["limits"] = SourceLimits(
+        max_voltage_v=limits.source_max_voltage_v,
+        max_current_a=limits.source_max_current_a,
+        **frequencies,
+    )
+    options["load"]["limits"] = LoadLimits(max_current_a=limits.load_max_current_a)
+    return options
 
-    def opener(role: str) -> Callable[[], ScpiInstrument]:
-        return lambda: classes[role].open(
-            resources[role],
-            name=role,
-            visa_library=spec.visa_library,
-            timeout_s=spec.timeout_s,
-            **options[role],
-        )
+
+DRIVER_CLASSES: dict[str, type[MappedInstrument]] = {
+    "source": LineSource,
+    "load": ElectronicLoad,
+    "meter": PowerMeter,
+    "scope": Oscilloscope,
+}
+
+
+def start_resources(
+    sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0
+) -> tuple[Any, dict[str, str]]:
+    """The resource of every role: the sequence's, or those of the simulated bench started
+    here (returned with them, to be stopped by the caller; None for a real bench)."""
+    if sequence.bench.is_sim:
+        return _sim_resources(sequence, sim_faults, sim_seed)
+    if sim_faults:
+        raise InputError('fault injection needs the simulated bench (bench.kind = "sim")')
+    return None, dict(sequence.bench.resources)
+
+
+def lock_names(sequence: Sequence) -> list[str]:
+    """What the instrument locks of a real bench are keyed by: each resource string, with an
+    alias resolved by the VISA library to the resource it stands for (so an instrument named
+    both ways is still one instrument); an alias the library cannot resolve is kept as it is,
+    and opening it reports the problem. A simulated bench has no instruments to lock."""
+    spec = sequence.bench
+    if spec.is_sim:
+        return []
+    names = []
+    for resource in spec.resources.values():
+        if "::" not in resource:
+            with suppress(Exception):  # any failure of the library: keep the alias itself
+                info = pyvisa.ResourceManager(spec.visa_library).resource_info(resource)
+                resource = info.resource_name or resource
+        names.append(resource)
+    return names
+
+
+def open_driver(
+    sequence: Sequence,
+    resources: dict[str, str],
+    role: str,
+    options: dict[str, dict[str, Any]] | None = None,
+) -> MappedInstrument:
+    """Open ``role``'s driver with its command map, connection settings, limits and the
+    sequence's VISA library (nothing is sent to it)."""
+    spec = sequence.bench
+    options = options or driver_options(sequence)
+    return DRIVER_CLASSES[role].open(
+        resources[role],
+        name=role,
+        visa_library=spec.visa_library,
+        timeout_s=spec.timeout_s,
+        connection=spec.connections.get(role),
+        **options[role],
+    )
+
+
+def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -> Bench:
+    """Open the four drivers the sequence names (starting the simulated bench if it says so),
+    then put each in its known state (``*RST`` and its map's set-up commands, where the map has
+    them). A driver reopened after a fault is not reset: the run's settings stay.
+    """
+    sim, resources = start_resources(sequence, sim_faults=sim_faults, sim_seed=sim_seed)
+    options = driver_options(sequence)
+
+    def opener(role: str) -> Callable[[], MappedInstrument]:
+        return lambda: open_driver(sequence, resources, role, options)
 
     bench = Bench(sequence=sequence, drivers={}, resources=resources, sim=sim)
     try:
         for role in ROLES:
             bench._openers[role] = opener(role)
-            bench.drivers[role] = bench._openers[role]()
+            driver = bench._openers[role]()
+            bench.drivers[role] = driver
+            driver.start()
     except BaseException:
         bench.close()
         raise

@@ -20,6 +20,7 @@ from labseq.errors import LabseqError
 COMMAND_MODULES: tuple[str, ...] = (
     "sim",
     "check",
+    "probe",
     "run",
     "resume",
     "runs",

@@ -15,6 +15,7 @@ while the next capture is acquired, so it does not slow the sweep down.
 
 from __future__ import annotations
 
+import socket
 import time
 from collections.abc import Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -27,7 +28,7 @@ from labseq.analysis import CaptureFigures, NoEdgeError, aggregate, analyze_capt
 from labseq.analysis import judge as judge_point
 from labseq.analysis.capture import ClampFigures, clamp_figures
 from labseq.analysis.verdict import worst_verdict
-from labseq.bench import Bench, SafeReport, make_safe, open_bench
+from labseq.bench import Bench, SafeReport, lock_names, make_safe, open_bench
 from labseq.errors import LabseqError
 from labseq.locks import run_locks
 from labseq.progress import Progress
@@ -557,8 +558,7 @@ def start_run(sequence: Sequence, store: Store, *, label: str = "") -> int:
 def bench_locks(sequence: Sequence, store: Store) -> AbstractContextManager[None]:
     """Exclusive use of the store and of every real instrument the sequence names, so a second
     labseq process cannot interleave commands on the bench or write the same store."""
-    resources = [] if sequence.bench.is_sim else list(sequence.bench.resources.values())
-    return run_locks(store.path, resources)
+    return run_locks(store.path, lock_names(sequence))
 
 
 def run_sequence(
@@ -582,16 +582,34 @@ def stored_sequence(store: Store, run_id: int) -> Sequence:
     return parse_sequence(record.sequence_text, record.sequence_path, sha256=record.sequence_sha256)
 
 
-def claim_for_resume(store: Store, run_id: int) -> None:
+#: What ``resume --take-over`` risks, said where the option is offered and where it is used.
+TAKE_OVER_RISK = (
+    "if that process is in fact still running, two processes will command the same "
+    "instruments and write the same run"
+)
+
+
+def claim_for_resume(store: Store, run_id: int, *, take_over: bool = False) -> None:
     """Make this process the owner of a run that may be resumed: not complete, and not still
-    running in another live process (a run whose process died is marked interrupted first)."""
+    running in another live process (a run whose process died is marked interrupted first; a
+    process is the same one only if its id and its start time match). ``take_over`` claims a
+    run recorded as running all the same, for a process on another host that is known gone."""
     store.mark_abandoned_runs()
     record = store.run(run_id)
     if record.status == "running":
-        raise RunStateError(
-            f"run {run_id} is still running (process {record.pid} on {record.host}); "
-            "stop it first, or wait for it to finish"
-        )
+        owner = f"process {record.pid} on {record.host}"
+        if not take_over:
+            checked = (
+                "which is still alive"
+                if record.host == socket.gethostname()
+                else "another host, which labseq cannot check from here"
+            )
+            raise RunStateError(
+                f"run {run_id} is recorded as running in {owner}, {checked}; stop it first or "
+                f"wait for it to finish. If you know it has ended, resume with --take-over "
+                f"(risk: {TAKE_OVER_RISK})"
+            )
+        store.log_event(run_id, "safety", f"run taken over from {owner} (--take-over)")
     if record.points_done == record.points_total:
         raise RunStateError(f"run {run_id} is complete: all {record.points_total} points are done")
     store.claim_run(run_id)

@@ -20,10 +20,11 @@ import re
 import tomllib
 from collections.abc import Callable, Iterable
 from dataclasses import MISSING, dataclass, field, fields
-from importlib import resources
 from pathlib import Path
 from typing import Any, NamedTuple
 
+from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
+from instruments.tomlkeys import find_key_line
 from labseq.errors import InputError
 from labseq.units import UnitError, format_si, parse_quantity
 
@@ -41,6 +42,8 @@ DEFAULT_SETTLING_BAND = 0.05
 
 BENCH_KINDS = ("sim", "visa")
 BENCH_ROLES = ("source", "load", "meter", "scope")
+#: The command sets the simulated bench can speak (sim_instruments.instruments.DIALECTS).
+SIM_DIALECTS = ("generic", "alt")
 LINE_KINDS = ("dc", "ac")
 POINT_ERROR_ACTIONS = ("skip", "abort")
 COUPLINGS = ("dc", "ac")
@@ -52,6 +55,8 @@ NODE_POLARITIES = ("rising", "falling")
 _NODE_NAME = re.compile(r"^[a-z][a-z0-9_-]{0,23}$")
 
 #: VISA interface types (IVI VPP-4.3 resource names) we accept at the start of a resource string.
+#: A VISA alias (VISA 4.3.6: a name the library maps to a resource, as in a visa.ini file).
+_VISA_ALIAS = re.compile(r"[A-Za-z][A-Za-z0-9_.\-]{0,63}")
 _VISA_RESOURCE = re.compile(r"^(TCPIP|USB|GPIB|ASRL|VXI|PXI|VICP)[^:\s]*::\S+$", re.IGNORECASE)
 
 # Relative tolerance under which two grid values count as the same point.
@@ -121,16 +126,23 @@ class Bench:
 
     kind: str  # "sim" or "visa"
     limits: BenchLimits
-    scope_map: str  # a command-map family name, or the path of a command-map file
-    visa_library: str
+    maps: dict[str, str]  # role -> a command-map family name, or the path of a map file
+    visa_library: str  # "" lets PyVISA choose (PYVISA_LIBRARY, .pyvisarc, IVI, pyvisa-py)
     timeout_s: float
-    resources: dict[str, str] = field(default_factory=dict)  # role -> VISA resource string
+    resources: dict[str, str] = field(default_factory=dict)  # role -> VISA resource or alias
+    connections: dict[str, Connection] = field(default_factory=dict)  # role -> link settings
     sim_dut_path: Path | None = None  # the DUT file a simulated bench runs
+    sim_dialect: str = "generic"  # the command set the simulated bench speaks
 
     @property
     def is_sim(self) -> bool:
         """True for the simulated bench."""
         return self.kind == "sim"
+
+    @property
+    def scope_map(self) -> str:
+        """The scope's command map."""
+        return self.maps["scope"]
 
 
 @dataclass(frozen=True)
@@ -337,44 +349,6 @@ class Sequence:
 # --------------------------------------------------------------------------- reading helpers
 
 _MISSING = object()
-
-
-def find_key_line(text: str, key: str) -> int | None:
-    """Line number (1-based) where ``key`` (a dotted path such as ``nodes[1].channel``) is
-    written in ``text``.
-
-    A simple scan of table headers and ``name =`` lines; the n-th ``[[name]]`` header is
-    ``name[n]`` (and so are the ``[name.sub]`` tables under it). Falls back to the nearest parent
-    that is found, then to the same path without indices.
-    """
-    section = ""
-    counts: dict[str, int] = {}
-    found: dict[str, int] = {}
-    for number, raw in enumerate(text.splitlines(), start=1):
-        line = raw.strip()
-        header = re.match(r"^(\[\[?)\s*([^\]]+?)\s*\]\]?", line)
-        if header:
-            name = re.sub(r"\s*\.\s*", ".", header.group(2)).replace('"', "")
-            head, dot, rest = name.partition(".")
-            if header.group(1) == "[[":
-                counts[name] = counts.get(name, -1) + 1
-                found.setdefault(name, number)
-                name = f"{name}[{counts[name]}]"
-            elif head in counts:
-                name = f"{head}[{counts[head]}]{dot}{rest}"
-            section = name
-            found.setdefault(section, number)
-            continue
-        assignment = re.match(r'^([A-Za-z0-9_\-."\' ]+?)\s*=', line)
-        if assignment:
-            name = re.sub(r"\s*\.\s*", ".", assignment.group(1)).replace('"', "").replace("'", "")
-            found.setdefault(f"{section}.{name}" if section else name, number)
-    for target in (key, re.sub(r"\[\d+\]", "", key)):
-        while target:
-            if target in found:
-                return found[target]
-            target = re.sub(r"(\[\d+\]|\.?[^.\[]*)$", "", target, count=1)
-    return None
 
 
 def _example(unit: str) -> str:
@@ -596,12 +570,18 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
         return None, None
     kind = table.text("kind", choices=BENCH_KINDS)
     dut_value = table.raw("dut", kind == "sim", 'a demo DUT name (e.g. "telecom_dc") or a file')
-    scope_map = table.text("scope_map", default="generic")
-    visa_library = table.text("visa_library", default="@py")
+    scope_map = table.text("scope_map", default=None)
+    maps_table = table.table("maps", required=False)
+    visa_library = table.text("visa_library", default="@py" if kind == "sim" else "")
     timeout_s = table.quantity("timeout", "s", default=5.0)
     resources_table = table.table("resources", required=kind == "visa")
+    connections = _read_connections(top.out, table.table("connections", required=False))
+    sim_dialect = table.text("sim_dialect", default="generic", choices=SIM_DIALECTS)
     limits = _read_bench_limits(table.table("limits"))
     table.finish()
+    maps = _read_maps(top.out, table, maps_table, scope_map, seq_dir)
+    if kind == "visa" and "sim_dialect" in table.data:
+        top.out.fail(table.key("sim_dialect"), 'only for kind = "sim"; a real bench speaks its own')
 
     resources_map: dict[str, str] = {}
     if resources_table is not None:
@@ -611,11 +591,12 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
             resource = resources_table.text(role)
             if resource is None:
                 continue
-            if not _VISA_RESOURCE.match(resource):
+            if not (_VISA_RESOURCE.match(resource) or _VISA_ALIAS.fullmatch(resource)):
                 top.out.fail(
                     resources_table.key(role),
-                    f"{resource!r} is not a VISA resource string; expected e.g. "
-                    "'TCPIP0::192.168.1.20::inst0::INSTR' or 'USB0::0x1234::0x5678::SN1::INSTR'",
+                    f"{resource!r} is not a VISA resource string or alias; expected e.g. "
+                    "'TCPIP0::192.168.1.20::inst0::INSTR', 'USB0::0x1234::0x5678::SN1::INSTR', "
+                    "'ASRL3::INSTR' or an alias your VISA library knows, such as 'bench_scope'",
                 )
             resources_map[role] = resource
         resources_table.finish()
@@ -627,21 +608,31 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
         )
     elif kind == "visa" and dut_value is not _MISSING:
         top.out.fail(table.key("dut"), 'only for kind = "sim"; a real bench has a real DUT')
-    if isinstance(scope_map, str):
-        scope_map = _resolve_scope_map(top.out, table.key("scope_map"), scope_map, seq_dir)
+    if kind == "sim" and connections:
+        top.out.fail(table.key("connections"), 'only for kind = "visa"; a sim bench has its own')
+    for role in connections or {}:
+        serial = connections[role].serial
+        resource = resources_map.get(role, "")
+        if serial is not None and "::" in resource and not resource.upper().startswith("ASRL"):
+            top.out.fail(
+                f"{table.key('connections')}.{role}",
+                f"serial settings for {resource!r}, which is not a serial port (ASRL...)",
+            )
 
-    if None in (kind, limits, timeout_s, scope_map, visa_library) or (
+    if None in (kind, limits, timeout_s, maps, visa_library, connections, sim_dialect) or (
         kind == "sim" and sim_dut_path is None
     ):
         return None, sim_line_kind
     bench = Bench(
         kind=kind,
         limits=limits,
-        scope_map=scope_map,
+        maps=maps,
         visa_library=visa_library,
         timeout_s=timeout_s,
         resources=resources_map,
+        connections=connections,
         sim_dut_path=sim_dut_path,
+        sim_dialect=sim_dialect,
     )
     return bench, sim_line_kind
 
@@ -669,30 +660,101 @@ def _resolve_sim_dut(out: _Collector, key: str, value: Any, seq_dir: Path) -> tu
     return path, design.line_kind
 
 
-def _resolve_scope_map(out: _Collector, key: str, value: str, seq_dir: Path) -> str | None:
-    """A scope command-map family shipped in instruments/command_maps, or a file path; a file
-    is loaded and validated here, so a bad map is reported before anything is opened."""
-    if value.endswith(".toml") or "/" in value or "\\" in value:
-        from instruments.command_map import load_command_map
-        from instruments.errors import CommandMapError
+def _read_maps(
+    out: _Collector,
+    bench: _Table,
+    maps_table: _Table | None,
+    scope_map: str | None,
+    seq_dir: Path,
+) -> dict[str, str] | None:
+    """The command map of every role: ``[bench.maps]`` names them (``scope_map`` is the
+    scope's alone, kept from before there were maps for every role); a role not named gets the
+    generic map."""
+    named: dict[str, tuple[str, str]] = {}
+    if maps_table is not None:
+        for role in BENCH_ROLES:
+            value = maps_table.text(role, default=None)
+            if value is not None:
+                named[role] = (maps_table.key(role), value)
+        maps_table.finish()
+    if scope_map is not None:
+        if "scope" in named:
+            out.fail(bench.key("scope_map"), "give the scope's map once: here or in bench.maps")
+        named["scope"] = (bench.key("scope_map"), scope_map)
+    maps: dict[str, str] = {}
+    for role in BENCH_ROLES:
+        key, value = named.get(role, (bench.key(f"maps.{role}"), "generic"))
+        resolved = _resolve_map(out, key, value, role, seq_dir)
+        if resolved is not None:
+            maps[role] = resolved
+    return maps if len(maps) == len(BENCH_ROLES) else None
 
-        path = seq_dir / value
-        if not path.is_file():
-            out.fail(key, f"no command-map file {path}")
-            return None
-        try:
-            load_command_map(path)
-        except CommandMapError as error:
-            out.fail(key, f"the command map cannot be used: {error}")
-            return None
-        return str(path)
-    shipped = resources.files("instruments") / "command_maps"
-    families = sorted(p.name[:-5] for p in shipped.iterdir() if p.name.endswith(".toml"))
-    if value in families:
-        return value
-    shipped_text = ", ".join(families)
-    out.fail(key, f"unknown scope family {value!r}; shipped: {shipped_text}, or a .toml file path")
-    return None
+
+def _resolve_map(out: _Collector, key: str, value: str, role: str, seq_dir: Path) -> str | None:
+    """A ``role`` command map shipped in instruments/command_maps/<role>, or a file path
+    (relative to the sequence file); it is loaded and validated here, so a bad map is reported
+    before anything is opened."""
+    from instruments.command_map import available_families, is_map_path, load_command_map
+    from instruments.errors import CommandMapError
+
+    if not is_map_path(value) and value not in available_families(role):
+        shipped = ", ".join(available_families(role))
+        out.fail(key, f"unknown {role} family {value!r}; shipped: {shipped}, or a .toml file path")
+        return None
+    reference = str(seq_dir / value) if is_map_path(value) else value
+    if is_map_path(value) and not Path(reference).is_file():
+        out.fail(key, f"no command-map file {reference}")
+        return None
+    try:
+        load_command_map(reference, role)
+    except CommandMapError as error:
+        out.fail(key, f"the command map cannot be used: {error}")
+        return None
+    return reference
+
+
+def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connection] | None:
+    """``[bench.connections.<role>]``: terminations and serial line settings per role."""
+    if table is None:
+        return {}
+    connections: dict[str, Connection] = {}
+    failed = False
+    for role in BENCH_ROLES:
+        role_table = table.table(role, required=False)
+        if role_table is None:
+            continue
+        terminations = {
+            name: role_table.text(name, default="lf", choices=TERMINATIONS)
+            for name in ("read_termination", "write_termination")
+        }
+        serial_keys = ("baud_rate", "data_bits", "parity", "stop_bits", "flow_control")
+        serial_values = {
+            "baud_rate": role_table.integer("baud_rate", default=None),
+            "data_bits": role_table.integer("data_bits", default=None, minimum=5),
+            "parity": role_table.text("parity", default=None, choices=PARITIES),
+            "stop_bits": role_table.raw("stop_bits", False, "1, 1.5 or 2"),
+            "flow_control": role_table.text("flow_control", default=None, choices=FLOW_CONTROLS),
+        }
+        role_table.finish()
+        given = {k: v for k, v in serial_values.items() if v is not None and v is not _MISSING}
+        serial = None
+        if any(name in role_table.data for name in serial_keys):
+            try:
+                serial = SerialSettings(**given)
+            except (ValueError, TypeError) as error:
+                out.fail(role_table.prefix, str(error))
+                failed = True
+                continue
+        if None in terminations.values():
+            failed = True
+            continue
+        connections[role] = Connection(
+            read_termination=TERMINATIONS[terminations["read_termination"]],
+            write_termination=TERMINATIONS[terminations["write_termination"]],
+            serial=serial,
+        )
+    table.finish()
+    return None if failed else connections
 
 
 def _read_bench_limits(table: _Table | None) -> BenchLimits | None:

@@ -40,9 +40,10 @@ import sqlite_utils
 from instruments import Waveform
 from labseq import __version__
 from labseq.errors import InputError, LabseqError
+from labseq.process import process_alive, process_start_time
 
 #: Version of the schema below; a file with a higher version is refused, a lower one upgraded.
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 #: The node a capture or figure belongs to when nothing else is said (and in version-1 files).
 PRIMARY_NODE = "primary"
 APPLICATION = "labseq"
@@ -153,7 +154,8 @@ CREATE TABLE runs (
     finished_at TEXT,
     notes TEXT NOT NULL DEFAULT '',
     pid INTEGER,
-    host TEXT
+    host TEXT,
+    process_started REAL
 );
 CREATE TABLE points (
     id INTEGER PRIMARY KEY,
@@ -240,6 +242,15 @@ def _upgrade_to_2() -> list[str]:
     )
 
 
+def _upgrade_statements(version: int) -> list[str]:
+    """Statements that bring a file of schema ``version`` to :data:`SCHEMA_VERSION`, step by
+    step: 1 → 2 (several nodes), 2 → 3 (the owning process's start time, for resume)."""
+    statements = _upgrade_to_2() if version < 2 else []
+    if version < 3:
+        statements.append("ALTER TABLE runs ADD COLUMN process_started REAL")
+    return statements
+
+
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 
@@ -303,6 +314,7 @@ class RunRecord:
     notes: str
     pid: int | None
     host: str | None
+    process_started: float | None  # the owning process's start time (s since the epoch)
     points_total: int
     points_done: int
 
@@ -476,7 +488,7 @@ class Store:
         conn.execute("PRAGMA foreign_keys = OFF")
         try:
             with self.db.atomic():
-                for statement in _upgrade_to_2():  # the only upgrade so far: 1 → 2
+                for statement in _upgrade_statements(version):
                     conn.execute(" ".join(statement.split()))
                 broken = conn.execute("PRAGMA foreign_key_check").fetchall()
                 if broken:
@@ -527,8 +539,7 @@ class Store:
                     "status": "running",
                     "started_at": _now_iso(),
                     "notes": notes,
-                    "pid": os.getpid(),
-                    "host": socket.gethostname(),
+                    **_owner(),
                 }
             )
         return int(table.last_pk)
@@ -563,8 +574,7 @@ class Store:
                 {
                     "status": "running",
                     "finished_at": None,
-                    "pid": os.getpid(),
-                    "host": socket.gethostname(),
+                    **_owner(),
                 },
             )
 
@@ -586,7 +596,9 @@ class Store:
         abandoned = [
             run
             for run in self.runs()
-            if run.status == "running" and run.host == host and not _process_alive(run.pid)
+            if run.status == "running"
+            and run.host == host
+            and not process_alive(run.pid, run.process_started)
         ]
         for run in abandoned:
             self.set_run_status(run.id, "interrupted")
@@ -1016,14 +1028,11 @@ SELECT r.*,
 FROM runs r"""
 
 
-def _process_alive(pid: int | None) -> bool:
-    """True when a process with ``pid`` exists on this host."""
-    if pid is None:
-        return False
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:  # exists, owned by another user
-        pass
-    return True
+def _owner() -> dict[str, Any]:
+    """The columns that name this process as a run's owner: id, host and start time (the id
+    alone could be another process's after the owner died)."""
+    return {
+        "pid": os.getpid(),
+        "host": socket.gethostname(),
+        "process_started": process_start_time(os.getpid()),
+    }

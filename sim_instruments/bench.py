@@ -16,6 +16,8 @@ import numpy as np
 from sim_instruments.faults import ROLES, FaultPlan, FaultSpec, FiredFault, parse_fault_specs
 from sim_instruments.flyback import FlybackDesign, FlybackModel
 from sim_instruments.instruments import (
+    DIALECTS,
+    GENERIC,
     BenchState,
     SimInstrument,
     SimLoad,
@@ -37,8 +39,9 @@ class SimBench:
     """Source, load, meter and scope as SCPI servers, one TCP port each, one shared model.
 
     ``faults`` is a fault spec string (see :mod:`sim_instruments.faults`) or a list of specs;
-    ``seed`` fixes every random draw (reading noise, trigger jitter, line phase), so a test sees
-    the same bench each time; ``ports`` maps roles to fixed ports (default: free ports).
+    ``dialect`` is the command set every instrument speaks (:data:`DIALECTS`: ``generic`` or
+    ``alt``); ``seed`` fixes every random draw (reading noise, trigger jitter, line phase), so a
+    test sees the same bench each time; ``ports`` maps roles to fixed ports (default: free ports).
     Only loopback addresses are served unless ``allow_remote`` is given.
     """
 
@@ -51,19 +54,25 @@ class SimBench:
         allow_remote: bool = False,
         seed: int = 0,
         ports: dict[str, int] | None = None,
+        dialect: str = GENERIC,
     ) -> None:
         check_host(host, allow_remote)
         unknown = sorted(set(ports or {}) - set(ROLES))
         if unknown:
             raise ValueError(f"ports: unknown role(s) {unknown}; valid: {', '.join(ROLES)}")
+        if dialect not in DIALECTS:
+            raise ValueError(f"unknown dialect {dialect!r}; valid: {', '.join(DIALECTS)}")
         specs = _fault_specs(faults)
+        self.dialect = dialect
         self.design = design
         self.host = host
         self.state = BenchState(FlybackModel(design))
         self.fault_plan = FaultPlan(specs, point_count=lambda: self.state.load_setpoints)
         rngs = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(len(ROLES))]
         self.instruments: dict[str, SimInstrument] = {
-            role: INSTRUMENT_CLASSES[role](self.state, rng, serial=f"SIM{seed:04d}-{index}")
+            role: INSTRUMENT_CLASSES[role](
+                self.state, rng, serial=f"SIM{seed:04d}-{index}", dialect=dialect
+            )
             for index, (role, rng) in enumerate(zip(ROLES, rngs, strict=True))
         }
         self.servers: dict[str, ScpiServer] = {

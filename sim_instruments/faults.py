@@ -10,7 +10,8 @@ A fault spec is ``ROLE:KIND@WHEN``; several are separated by commas, for example
   - ``drop``: the server closes that client's connection (new connections are still accepted);
   - ``scpi-error``: the next message carrying a setting command is refused and −300
     "Device-specific error" is queued, as a real instrument does when its hardware refuses;
-  - ``no-trigger`` (scope only): the next ``:SINGle`` acquisition never completes;
+  - ``no-trigger`` (scope only): the next acquisition armed (``:SINGle``, or ``:ACQuire:ARM``
+    in the alt dialect) never completes;
   - ``malformed``: the next query reply is garbage (``9.9.9E+``, or a block whose header is not
     IEEE 488.2).
 
@@ -39,7 +40,7 @@ _TARGETS: dict[str, Callable[[ParsedMessage], bool]] = {
     "malformed": lambda message: message.has_query,
     "drop": lambda message: True,
     "scpi-error": lambda message: message.has_setting,
-    "no-trigger": lambda message: message.has_header("SINGle"),
+    "no-trigger": lambda message: message.has_header("SINGle") or message.has_header("ACQuire:ARM"),
 }
 
 _SPEC = re.compile(r"(?P<role>[a-z]+):(?P<kind>[a-z-]+)@(?P<moment>[a-z]+)=(?P<count>\d+)")

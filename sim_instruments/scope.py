@@ -29,8 +29,26 @@ NOISE_LSB_RMS = 0.4
 NOISE_INPUT_V_RMS = 0.3e-3
 #: Steps per switching period used to look for the trigger crossing before refining it.
 TRIGGER_SEARCH_STEPS = 20_000
-#: Formats of the waveform payload and the numpy dtype of each (big-endian form).
-DATA_FORMATS = {"INT8": np.dtype("i1"), "INT16": np.dtype(">i2"), "FLOAT32": np.dtype(">f4")}
+#: Formats of the waveform payload and the numpy dtype of each (big-endian form). The unsigned
+#: ones carry the same codes as the signed ones, offset by half their range (0…255 around 128).
+DATA_FORMATS = {
+    "INT8": np.dtype("i1"),
+    "UINT8": np.dtype("u1"),
+    "INT16": np.dtype(">i2"),
+    "UINT16": np.dtype(">u2"),
+    "FLOAT32": np.dtype(">f4"),
+}
+
+
+def code_bits(data_format: str) -> int:
+    """Bits of the codes sent in ``data_format`` (FLOAT32 carries 8-bit ADC codes as volts)."""
+    return 16 if data_format in ("INT16", "UINT16") else ADC_BITS
+
+
+def unsigned_offset(data_format: str) -> int:
+    """What is added to a signed code to send it in ``data_format`` (0 for signed formats)."""
+    return 1 << (code_bits(data_format) - 1) if data_format.startswith("U") else 0
+
 
 Waveform = Callable[[np.ndarray], np.ndarray]
 
@@ -157,12 +175,13 @@ def scaling(
 ) -> tuple[float, float, float, float]:
     """(x_increment, x_origin, y_increment, y_origin) of ``channel`` in ``data_format``.
 
-    volts = code × y_increment + y_origin (y_reference 0); FLOAT32 payloads are volts already.
+    volts = (code − y_reference) × y_increment + y_origin, with y_reference the format's
+    :func:`unsigned_offset`; FLOAT32 payloads are volts already.
     """
     if data_format == "FLOAT32":
         return settings.x_increment_s, settings.x_origin_s, 1.0, 0.0
     vertical = settings.channels[channel - 1]
-    bits = 16 if data_format == "INT16" else ADC_BITS
+    bits = code_bits(data_format)
     return (
         settings.x_increment_s,
         settings.x_origin_s,
@@ -226,15 +245,11 @@ class Capture:
     def _encode(self, channel: int, data_format: str, little_endian: bool) -> memoryview:
         vertical = self.settings.channels[channel - 1]
         volts = self.trace_v(channel)
-        if data_format == "INT16":
-            values = quantise(volts, vertical, 16)
+        codes = quantise(volts, vertical, code_bits(data_format))
+        if data_format == "FLOAT32":
+            values = codes * vertical.y_increment_v(ADC_BITS) + vertical.offset_v
         else:
-            codes = quantise(volts, vertical, ADC_BITS)
-            values = (
-                codes * vertical.y_increment_v(ADC_BITS) + vertical.offset_v
-                if data_format == "FLOAT32"
-                else codes
-            )
+            values = codes + unsigned_offset(data_format)
         dtype = DATA_FORMATS[data_format]
         if little_endian:
             dtype = dtype.newbyteorder("<")
@@ -246,20 +261,28 @@ def acquire(
     period_s: float,
     settings: AcquisitionSettings,
     rng: np.random.Generator,
+    *,
+    forced: bool = False,
 ) -> Capture | None:
     """Trigger on the trigger channel's waveform and take one record; None if it cannot fire.
 
     ``probes`` maps channel numbers to the volts at their probe tips, at times relative to the
     primary's turn-off command, each repeating every ``period_s``. A trigger on an unprobed
-    channel (a flat trace) never fires.
+    channel (a flat trace) never fires. A ``forced`` trigger fires at once, wherever the
+    waveform is (an unprobed trigger channel is then a flat 0 V).
     """
     trigger_channel = settings.trigger_channel
     trigger_waveform = probes.get(trigger_channel)
-    if trigger_waveform is None:
+    if forced:
+        trigger_s = 0.0
+        if trigger_waveform is None:
+            trigger_waveform = np.zeros_like
+    elif trigger_waveform is None:
         return None
-    trigger_s = find_trigger_time_s(
-        trigger_waveform, period_s, settings.trigger_level_v, settings.trigger_rising
-    )
+    else:
+        trigger_s = find_trigger_time_s(
+            trigger_waveform, period_s, settings.trigger_level_v, settings.trigger_rising
+        )
     if trigger_s is None:
         return None
     step_s = settings.x_increment_s

@@ -30,7 +30,7 @@ import socket
 import threading
 from collections import deque
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 #: SCPI-1999 volume 2 chapter 21 standard error messages used by the simulated bench.
 ERROR_MESSAGES: dict[int, str] = {
@@ -107,14 +107,16 @@ class ServerConfigError(ValueError):
 
 @dataclass(frozen=True)
 class Block:
-    """A binary reply sent as an IEEE 488.2 definite length arbitrary block (§8.7.9)."""
+    """A binary reply sent as an IEEE 488.2 definite length arbitrary block (§8.7.9), after
+    ``prefix`` (the reply header of an instrument whose headers are on)."""
 
     payload: memoryview
+    prefix: str = ""
 
     def header(self) -> bytes:
         """``#<n><length>``: one digit giving the digit count of the byte length, then it."""
         length = str(self.payload.nbytes)
-        return f"#{len(length)}{length}".encode()
+        return f"{self.prefix}#{len(length)}{length}".encode()
 
 
 Reply = str | Block
@@ -410,6 +412,9 @@ class ScpiInstrument:
     """
 
     identity: tuple[str, str, str, str] = ("labseq-sim", "generic", "0", "1.0")
+    #: Whether replies to queries (all but common commands) start with their header, as
+    #: ``:SYSTem:HEADer ON`` asks of an instrument that has that command.
+    reply_headers = False
 
     def __init__(self) -> None:
         self.lock = threading.RLock()
@@ -513,7 +518,12 @@ class ScpiInstrument:
         if len(unit.params) > high:
             raise CommandError(-108, f"{unit.header} takes at most {high} parameter(s)")
         reply = handler(Call(unit.header, unit.params, suffixes))
-        return reply if unit.is_query else None
+        if not unit.is_query:
+            return None
+        if self.reply_headers and not unit.header.startswith("*"):
+            prefix = ":" + unit.header.lstrip(":").upper() + " "
+            return replace(reply, prefix=prefix) if isinstance(reply, Block) else prefix + reply
+        return reply
 
 
 # --------------------------------------------------------------------------- TCP server

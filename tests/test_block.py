@@ -14,9 +14,11 @@ from instruments.block import (
     decode_payload,
     encode_block,
     length_digit_count,
+    parse_ascii_values,
     parse_block,
     parse_length,
     payload_dtype,
+    signed_codes,
     split_block,
 )
 from instruments.errors import BlockFormatError
@@ -83,7 +85,7 @@ def test_payload_not_a_whole_number_of_items():
 
 
 def test_unknown_format_and_order_are_refused():
-    with pytest.raises(BlockFormatError, match="int8, int16, float32"):
+    with pytest.raises(BlockFormatError, match="int8, uint8, int16, uint16, float32"):
         payload_dtype("int12")
     with pytest.raises(BlockFormatError, match="big, little"):
         payload_dtype("int16", "middle")
@@ -153,3 +155,27 @@ def test_decode_payload_is_a_view_without_swap():
     native = "little" if np.little_endian else "big"
     codes = decode_payload(payload, "int16", native)
     assert np.shares_memory(codes, np.frombuffer(payload, dtype=np.uint8))
+
+
+def test_unsigned_codes_become_signed_codes_with_the_same_volts():
+    # The reported case: bytes 0, 128, 200, 255 around a reference of 128 at 1 V per code are
+    # -128, 0, 72 and 127 V (volts = (code - reference) * increment, IEEE 488.2 leaves the
+    # scaling to the instrument; common practice, no published source).
+    raw = np.array([0, 128, 200, 255], dtype=np.uint8)
+    codes, shift = signed_codes(decode_payload(raw.tobytes(), "uint8"))
+    assert codes.dtype == np.int8 and shift == 128
+    assert (codes.astype(float) - (128 - shift)).tolist() == [-128.0, 0.0, 72.0, 127.0]
+    words = np.array([0, 32768, 65535], dtype=">u2")
+    codes, shift = signed_codes(decode_payload(words.tobytes(), "uint16", "big"))
+    assert codes.dtype == np.int16 and shift == 32768
+    assert codes.tolist() == [-32768, 0, 32767]
+    signed = np.array([-1, 5], dtype=np.int8)
+    assert signed_codes(signed) == (signed, 0)
+
+
+def test_ascii_values_are_parsed_and_garbage_refused():
+    assert parse_ascii_values("1,2.5,-3e-1").tolist() == pytest.approx([1.0, 2.5, -0.3])
+    with pytest.raises(BlockFormatError, match="comma-separated numbers"):
+        parse_ascii_values("1,two,3")
+    with pytest.raises(BlockFormatError, match="finite"):
+        parse_ascii_values("1,nan")

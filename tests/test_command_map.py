@@ -7,14 +7,14 @@ from pathlib import Path
 import pytest
 
 from instruments.command_map import (
-    COMMAND_PLACEHOLDERS,
     MAPS_DIR,
+    ROLE_COMMANDS,
     available_families,
     load_command_map,
 )
 from instruments.errors import CommandMapError
 
-GENERIC_TEXT = (MAPS_DIR / "generic.toml").read_text()
+GENERIC_TEXT = (MAPS_DIR / "scope" / "generic.toml").read_text()
 
 
 def write_map(tmp_path: Path, text: str) -> Path:
@@ -34,7 +34,8 @@ def test_generic_map_loads_by_family_name():
     assert command_map.family == "generic"
     assert command_map.data_format == "int8"
     assert command_map.scaling_fields[:3] == ("points", "x_increment", "x_origin")
-    assert set(COMMAND_PLACEHOLDERS) <= set(command_map.commands)
+    required = {key for key, d in ROLE_COMMANDS["scope"].items() if d.required}
+    assert required <= set(command_map.commands)
     assert command_map.command("channel_scale", channel=2, value="0.5") == ":CHANnel2:SCALe 0.5"
     # The map's own rule: a setting's query is its header followed by "?".
     assert command_map.query("channel_scale", channel=3) == ":CHANnel3:SCALe?"
@@ -50,8 +51,8 @@ def test_map_loads_by_path_with_overrides(tmp_path):
     )
     text = text.replace(
         'channel_probe = ":CHANnel{channel}:PROBe {value}"',
-        'channel_probe = ":CHANnel{channel}:PROBe {value}"\n'
-        'channel_probe_query = ":CHANnel{channel}:PROBe:RATio?"',
+        'channel_probe = { command = ":CHANnel{channel}:PROBe {value}", '
+        'query = ":CHANnel{channel}:PROBe:RATio?" }',
     )
     command_map = load_command_map(write_map(tmp_path, text))
     assert command_map.family == "bench-b"
@@ -91,9 +92,9 @@ def test_map_loads_by_path_with_overrides(tmp_path):
             'single = ":SINGle;*RST"',
             "contains ';'",
         ),
-        ('data_format = "int8"', 'data_format = "int12"', "int8, int16, float32"),
+        ('data_format = "int8"', 'data_format = "int12"', "int8, uint8, int16, uint16, float32"),
         ('byte_order = "big"', 'byte_order = "network"', "big, little"),
-        ("channels = 4", 'channels = "four"', "'channels' must be int"),
+        ("channels = 4", 'channels = "four"', "line 13, channels: must be int"),
         ("code_min = -128", "code_min = 200", "code_min .* must be below code_max"),
         (
             '"y_origin", "y_reference"]',
@@ -118,6 +119,7 @@ def test_invalid_maps_are_refused_naming_file_and_key(tmp_path, old, new, fragme
     with pytest.raises(CommandMapError, match=fragment) as caught:
         load_command_map(path)
     assert str(path) in str(caught.value)
+    assert "line " in str(caught.value) or "not valid TOML" in str(caught.value)
 
 
 def test_unknown_word_and_limit_keys_are_refused(tmp_path):
@@ -144,3 +146,67 @@ def test_unknown_family_lists_shipped_maps(tmp_path):
         load_command_map("nosuch")
     with pytest.raises(CommandMapError, match="not found"):
         load_command_map(tmp_path / "absent.toml")
+
+
+def test_every_problem_is_reported_with_its_line(tmp_path):
+    text = edited("channels = 4", 'channels = "four"')
+    text = text.replace('stop = ":STOP"\n', "")
+    text = text.replace('single = ":SINGle"', 'single = ":SINGle;*RST"')
+    text = text.replace('byte_order = "big"', 'byte_order = "network"')
+    path = write_map(tmp_path, text)
+    with pytest.raises(CommandMapError) as caught:
+        load_command_map(path)
+    message = str(caught.value)
+    assert "4 problems" in message
+    channels_line = text.splitlines().index('channels = "four"') + 1
+    assert f"line {channels_line}, channels" in message
+    assert "commands.stop: missing command commands.stop (needed to stop an acquisition)" in message
+    assert "byte_order = 'network' is not valid" in message and "contains ';'" in message
+
+
+@pytest.mark.parametrize("role", ["source", "load", "meter", "scope"])
+def test_shipped_maps_of_every_role_load(role):
+    assert {"generic", "alt"} <= set(available_families(role))
+    for family in ("generic", "alt"):
+        command_map = load_command_map(family, role)
+        assert command_map.role == role and command_map.family == family
+    other = "meter" if role == "scope" else "scope"
+    with pytest.raises(CommandMapError, match=f"is for the '{other}' role, not the '{role}'"):
+        load_command_map(MAPS_DIR / other / "generic.toml", role)
+
+
+def test_optional_commands_may_be_left_out_and_required_ones_not(tmp_path):
+    # An 8-bit scope has no byte-order command, and one with a fixed format no format command.
+    text = GENERIC_TEXT.replace('waveform_byte_order = ":WAVeform:BORDer {value}"', "")
+    text = text.replace('waveform_format = ":WAVeform:FORMat {value}"', "")
+    command_map = load_command_map(write_map(tmp_path, text))
+    assert not command_map.has("waveform_byte_order") and not command_map.has("waveform_format")
+    with pytest.raises(CommandMapError, match="no commands.waveform_format, which is needed to"):
+        command_map.spec("waveform_format")
+
+
+def test_conversions_tables_and_scaling_sources_are_checked(tmp_path):
+    text = GENERIC_TEXT.replace('convert = "fraction"', 'convert = "furlongs"')
+    text = text.replace(
+        'channel_bandwidth_limit = ":CHANnel{channel}:BANDwidth {value}"',
+        'channel_bandwidth_limit = { command = ":CHANnel{channel}:BANDwidth {value}", '
+        'table = { "twenty" = "ON" } }',
+    )
+    text += "\n[scaling_values]\ny_origin = 0.0\n"
+    with pytest.raises(CommandMapError) as caught:
+        load_command_map(write_map(tmp_path, text))
+    message = str(caught.value)
+    assert "'furlongs' is not a conversion here; valid: fraction, percent" in message
+    assert "each key must be a number" in message
+    assert "y_origin is already given in scaling_fields" in message
+
+
+def test_windows_line_endings_read_the_same(tmp_path):
+    # A map saved on Windows (CR LF): same map, same line numbers in its problems.
+    path = tmp_path / "crlf.toml"
+    path.write_bytes(GENERIC_TEXT.replace("\n", "\r\n").encode("utf-8"))
+    assert load_command_map(path).commands == load_command_map("generic").commands
+    path.write_bytes(edited("channels = 4", "channels = 0").replace("\n", "\r\n").encode())
+    line = GENERIC_TEXT.splitlines().index("channels = 4") + 1
+    with pytest.raises(CommandMapError, match=f"line {line}, channels: channels = 0 must be"):
+        load_command_map(path)

@@ -156,11 +156,11 @@ def test_no_trigger_leaves_that_acquisition_pending(
     load.query("SOUR:CURR 1;INP ON;*OPC?")
     scope.write(":CHAN1:SCAL 20;:CHAN1:OFFS 60;:ACQ:POIN 500;:TRIG:LEV 30;:SING")
     time.sleep(0.3)
-    assert scope.query(":ACQ:COMP?") == "0"
+    assert scope.query(":ACQ:READ?") == "0"
     assert fired(bench) == [("scope", "no-trigger", "point=1", 1)]  # its first message
     scope.write(":SING")  # the next acquisition is normal
     deadline = time.monotonic() + 5
-    while scope.query(":ACQ:COMP?") != "1":
+    while scope.query(":ACQ:READ?") != "1":
         assert time.monotonic() < deadline
         time.sleep(0.01)
     assert len(bench.fired_faults) == 1

@@ -35,7 +35,10 @@ from labseq.cli import main
 from sim_instruments.flyback import DEMO_DUTS, DutFileError, FlybackDesign, load_dut
 
 DUT_TEXT = DEMO_DUTS["telecom_dc"].read_text(encoding="utf-8")
-MAP_TEXT = (MAPS_DIR / "generic.toml").read_text(encoding="utf-8")
+MAP_TEXT = (MAPS_DIR / "scope" / "generic.toml").read_text(encoding="utf-8")
+#: The second shipped scope map uses the rest of the format: tables, scales, a conversion, a
+#: preamble with text fields, set-up commands, words.
+ALT_MAP_TEXT = (MAPS_DIR / "scope" / "alt.toml").read_text(encoding="utf-8")
 FUZZ = settings(
     max_examples=150,
     deadline=None,
@@ -154,7 +157,14 @@ def _sequence_with_map(directory: Path) -> Path:
 
 
 @FUZZ
-@given(text=st.one_of(mutated_toml(MAP_TEXT), mangled_text(MAP_TEXT)))
+@given(
+    text=st.one_of(
+        mutated_toml(MAP_TEXT),
+        mangled_text(MAP_TEXT),
+        mutated_toml(ALT_MAP_TEXT),
+        mangled_text(ALT_MAP_TEXT),
+    )
+)
 def test_command_map_files(
     tmp_path_factory: pytest.TempPathFactory,
     capsys: pytest.CaptureFixture[str],

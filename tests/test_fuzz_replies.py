@@ -43,10 +43,10 @@ GOOD: dict[str, bytes] = {
     "MEAS:CURR?": b"1.0\n",
     "MEAS:POW?": b"50.0\n",
     "MEAS:POW:PFAC?": b"1.0\n",
-    ":ACQuire:COMPlete?": b"1\n",
+    ":ACQuire:READy?": b"1\n",
     ":WAVeform:SCALing?": b"4,1e-9,0,0.1,0,0\n",
     ":WAVeform:DATA?": b"#14\x00\x01\x02\x03\n",
-    ":MEASure:VAVerage? CHANnel1": b"12.5\n",
+    ":MEASure:DCLevel? CHANnel1": b"12.5\n",
 }
 
 
@@ -146,7 +146,7 @@ TARGETS: dict[str, tuple[Callable[[str], ScpiInstrument], Call, str, str]] = {
     "scope.wait_acquisition": (
         _scope,
         lambda d: d.wait_acquisition(TIMEOUT_S, 0.01),
-        ":ACQuire:COMPlete?",
+        ":ACQuire:READy?",
         "done",
     ),
     "scope.fetch_waveform scaling": (
@@ -164,7 +164,7 @@ TARGETS: dict[str, tuple[Callable[[str], ScpiInstrument], Call, str, str]] = {
     "scope.measure_mean_v": (
         _scope,
         lambda d: d.measure_mean_v(1),
-        ":MEASure:VAVerage? CHANnel1",
+        ":MEASure:DCLevel? CHANnel1",
         "number",
     ),
 }

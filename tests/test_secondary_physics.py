@@ -448,7 +448,7 @@ def single(scope: pyvisa.resources.MessageBasedResource, trigger: str) -> None:
     """Arm one acquisition with ``trigger`` settings and wait for it."""
     scope.write(f"{trigger};:SING")
     deadline = time.monotonic() + 10
-    while scope.query(":ACQ:COMP?") != "1":
+    while scope.query(":ACQ:READ?") != "1":
         assert time.monotonic() < deadline, "acquisition never completed"
         time.sleep(0.005)
 
@@ -514,7 +514,7 @@ def test_trigger_on_channel_2_falling(scope: pyvisa.resources.MessageBasedResour
     assert np.mean(primary_v[(times > -150e-9) & (times < -50e-9)]) > 60.0
     assert np.mean(primary_v[(times > 50e-9) & (times < 150e-9)]) < 5.0
     # Volt-second balance on the secondary winding: the diode's mean is −Vout (textbook).
-    assert float(scope.query(":MEAS:VAV? CHAN2")) == pytest.approx(
+    assert float(scope.query(":MEAS:DCL? CHAN2")) == pytest.approx(
         -TELECOM.output_voltage_v, rel=1e-2
     )
     assert read_errors(scope) == []

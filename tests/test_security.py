@@ -393,7 +393,7 @@ def test_scpi_words_from_a_sequence_are_refused_at_validation(
 def test_scope_map_strings_with_separators_are_refused(
     tmp_path: Path, capsys, line: str, hostile: str
 ) -> None:
-    generic = (ROOT / "instruments" / "command_maps" / "generic.toml").read_text()
+    generic = (ROOT / "instruments" / "command_maps" / "scope" / "generic.toml").read_text()
     assert line in generic
     (tmp_path / "map.toml").write_text(generic.replace(line, hostile, 1))
     sequence = demo_sequence(tmp_path)

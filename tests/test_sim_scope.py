@@ -62,7 +62,7 @@ def capture(
     """Arm, wait, transfer channel 1: (times s, volts, raw values, scaling fields)."""
     scope.write(f"{setup};:WAV:SOUR CHAN1;:WAV:FORM {data_format};:SING")
     deadline = time.monotonic() + 10
-    while scope.query(":ACQ:COMP?") != "1":
+    while scope.query(":ACQ:READ?") != "1":
         assert time.monotonic() < deadline, "acquisition never completed"
         time.sleep(0.005)
     return transfer(scope, data_format)
@@ -247,15 +247,15 @@ def test_trigger_that_cannot_fire_stays_pending_until_stop(
     scope = running["scope"]
     scope.write(":CHAN1:SCAL 20;:ACQ:POIN 1000;:TRIG:SLOP POS;:TRIG:LEV 500;:SING")
     time.sleep(0.3)
-    assert scope.query(":ACQ:COMP?") == "0"  # the ring never reaches 500 V
+    assert scope.query(":ACQ:READ?") == "0"  # the ring never reaches 500 V
     scope.write(":STOP")
     running["load"].query("INP OFF;*OPC?")  # converter stopped: the node sits at the bus
     scope.write(":TRIG:LEV 30;:SING")
     time.sleep(0.3)
-    assert scope.query(":ACQ:COMP?") == "0"
+    assert scope.query(":ACQ:READ?") == "0"
     running["load"].query("INP ON;*OPC?")  # the pending acquisition fires once edges return
     deadline = time.monotonic() + 5
-    while scope.query(":ACQ:COMP?") != "1":
+    while scope.query(":ACQ:READ?") != "1":
         assert time.monotonic() < deadline
         time.sleep(0.01)
     assert read_errors(scope) == []
@@ -268,7 +268,7 @@ def test_repeated_transfer_answers_the_same_capture(running: Instruments) -> Non
     second = scope.query_binary_values(":WAV:DATA?", datatype="b", container=np.array)
     assert np.array_equal(first, second)
     scope.write(":SING")  # a new acquisition draws new noise and jitter
-    while scope.query(":ACQ:COMP?") != "1":
+    while scope.query(":ACQ:READ?") != "1":
         time.sleep(0.005)
     third = scope.query_binary_values(":WAV:DATA?", datatype="b", container=np.array)
     assert not np.array_equal(third, first)
@@ -276,11 +276,11 @@ def test_repeated_transfer_answers_the_same_capture(running: Instruments) -> Non
 
 def test_bus_mean_decays_after_the_source_is_off(running: Instruments) -> None:
     scope, source = running["scope"], running["source"]
-    assert float(scope.query(":MEAS:VAV? CHAN1")) == pytest.approx(LINE_V, rel=2e-3)
+    assert float(scope.query(":MEAS:DCL? CHAN1")) == pytest.approx(LINE_V, rel=2e-3)
     source.query("OUTP OFF;*OPC?")
-    start_s, start_v = time.monotonic(), float(scope.query(":MEAS:VAV? CHAN1"))
+    start_s, start_v = time.monotonic(), float(scope.query(":MEAS:DCL? CHAN1"))
     time.sleep(0.3)
-    elapsed_s, end_v = time.monotonic() - start_s, float(scope.query(":MEAS:VAV? CHAN1"))
+    elapsed_s, end_v = time.monotonic() - start_s, float(scope.query(":MEAS:DCL? CHAN1"))
     tau_s = load_dut(DEMO_DUTS["telecom_dc"]).bus_bleed_time_constant_s
     # RC discharge v(t) = V0·exp(−t/τ) (any circuits textbook).
     assert end_v / start_v == pytest.approx(math.exp(-elapsed_s / tau_s), rel=0.01)

@@ -7,7 +7,9 @@ from pathlib import Path
 
 import click
 
+from labseq.commands._options import option_quantity
 from labseq.commands._store import db_option, resolve_run
+from labseq.locks import store_lock
 from labseq.runner import analyse_run
 from labseq.sequence import load_sequence, parse_sequence
 from labseq.store import Store
@@ -22,13 +24,23 @@ from labseq.store import Store
     type=click.Path(path_type=Path),
     help="Judge against this sequence file's limits instead of those the run was made with.",
 )
-def command(run: str, db_path: Path, sequence_path: Path | None) -> None:
+@click.option(
+    "--wait",
+    "wait_text",
+    default="60 s",
+    show_default=True,
+    metavar="DURATION",
+    help="How long to wait for the store while another labseq process writes it (0: do not).",
+)
+def command(run: str, db_path: Path, sequence_path: Path | None, wait_text: str) -> None:
     """Analyse every stored capture of RUN again from its raw codes and re-judge its points.
 
     Use it after changing limits (give the new file with --sequence) or after an analysis
-    update; nothing is re-captured.
+    update; nothing is re-captured. The store is locked meanwhile, as a run locks it: while a
+    run is writing it, this waits (see --wait) rather than fail half-way.
     """
-    with Store(db_path, create=False) as store:
+    wait_s = option_quantity(wait_text, "s", "--wait")
+    with Store(db_path, create=False) as store, store_lock(db_path, wait_s=wait_s or 0.0):
         run_id = resolve_run(store, run)
         record = store.run(run_id)
         sequence = (

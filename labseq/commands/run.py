@@ -7,6 +7,7 @@ from pathlib import Path
 
 import click
 
+from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option
 from labseq.progress import Progress
 from labseq.runner import RunOutcome, bench_locks, execute, start_run
@@ -36,7 +37,15 @@ def report_outcome(outcome: RunOutcome, db_path: Path, progress: Progress) -> No
     metavar="SPEC",
     help="Simulated bench only: inject faults, e.g. 'scope:no-trigger@point=3' (see labseq sim).",
 )
-def command(sequence_path: Path, db_path: Path, label: str, quiet: bool, sim_faults: str) -> None:
+@trace_option
+def command(
+    sequence_path: Path,
+    db_path: Path,
+    label: str,
+    quiet: bool,
+    sim_faults: str,
+    trace_path: Path | None,
+) -> None:
     """Sweep SEQUENCE's grid on its bench (real or simulated) and store the run.
 
     The sequence file is validated completely before any instrument is opened. Every exit —
@@ -44,7 +53,7 @@ def command(sequence_path: Path, db_path: Path, label: str, quiet: bool, sim_fau
     """
     sequence = load_sequence(sequence_path)
     progress = Progress(quiet=quiet)
-    with Store(db_path) as store, bench_locks(sequence, store):
+    with Store(db_path) as store, bench_locks(sequence, store), tracing(trace_path):
         run_id = start_run(sequence, store, label=label)
         progress.message(f"run {run_id}: {sequence.name} — {len(sequence.points())} points")
         outcome = execute(sequence, store, run_id, progress=progress, sim_faults=sim_faults)

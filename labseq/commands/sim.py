@@ -15,6 +15,7 @@ from labseq.safety import Interrupted, signals_raise_interrupted
 from sim_instruments.bench import SimBench
 from sim_instruments.faults import KINDS, ROLES, FaultSpecError
 from sim_instruments.flyback import DEMO_DUTS, DutFileError, load_dut, resolve_dut
+from sim_instruments.instruments import DIALECTS
 from sim_instruments.server import ServerConfigError
 
 SIMULATION_NOTICE = (
@@ -45,11 +46,27 @@ SIMULATION_NOTICE = (
     "--allow-remote", is_flag=True, help="Allow a --host other than loopback (LAN exposure)."
 )
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of every random draw.")
-def command(dut_name: str, faults: str, host: str, allow_remote: bool, seed: int) -> None:
+@click.option(
+    "--dialect",
+    type=click.Choice(DIALECTS),
+    default=DIALECTS[0],
+    show_default=True,
+    help="Command set every instrument speaks: the generic maps', or the second ('alt') one.",
+)
+def command(
+    dut_name: str, faults: str, host: str, allow_remote: bool, seed: int, dialect: str
+) -> None:
     """Serve a simulated source, load, meter and scope on TCP ports until interrupted."""
     try:
         design = load_dut(resolve_dut(dut_name))
-        bench = SimBench(design, faults=faults, host=host, allow_remote=allow_remote, seed=seed)
+        bench = SimBench(
+            design,
+            faults=faults,
+            host=host,
+            allow_remote=allow_remote,
+            seed=seed,
+            dialect=dialect,
+        )
     except (DutFileError, FaultSpecError, ServerConfigError) as error:
         raise InputError(str(error)) from None
     with signals_raise_interrupted():
@@ -58,7 +75,7 @@ def command(dut_name: str, faults: str, host: str, allow_remote: bool, seed: int
         except ServerConfigError as error:
             raise InputError(str(error)) from None
         try:
-            click.echo(f"Simulated bench for {design.label}")
+            click.echo(f"Simulated bench for {design.label} ({dialect} dialect: maps {dialect!r})")
             for role, resource in bench.resources.items():
                 click.echo(f"  {role:<6} {resource}")
             if faults:

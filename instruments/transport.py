@@ -1,0 +1,255 @@
+"""How reply bytes are read from a VISA resource: a generic path for any VISA library, and a
+fast path for pyvisa-py's raw sockets.
+
+:class:`~instruments.scpi.ScpiInstrument` reads every reply through one of these strategies,
+chosen once when the session is opened (:func:`choose_transport`):
+
+* :class:`VisaTransport` uses only public VISA calls (``viRead`` in chunks, device clear), so it
+  works with any VISA library: a vendor's, pyvisa-py's on any interface, or a simulated one;
+* :class:`PyvisaPySocketTransport` reads pyvisa-py's TCPIP SOCKET sessions straight from their
+  socket. pyvisa-py's ``viRead`` copies every byte four times in calls of at most 4096 bytes, each
+  behind a ``select``, which caps a 10 M-sample transfer far below what the socket delivers; here
+  the bytes pyvisa-py has read ahead are taken first, then the socket receives into the caller's
+  buffer directly. It relies on pyvisa-py's session internals and is chosen only when they are
+  all present.
+"""
+
+from __future__ import annotations
+
+import math
+import socket
+import time
+from contextlib import suppress
+from typing import Any
+
+import pyvisa
+from pyvisa import constants
+from pyvisa.resources import MessageBasedResource
+
+from instruments.errors import BlockFormatError, ConnectionLost, InstrumentTimeout, ReplyFormatError
+
+#: Bytes asked of the VISA layer per read while receiving a block payload.
+BLOCK_CHUNK_BYTES = 1 << 20
+#: Bytes asked of the VISA layer per read of a text reply, and the longest text reply accepted
+#: (far above any reply read as text; a peer streaming without a terminator is cut off here).
+TEXT_CHUNK_BYTES = 1 << 14
+MAX_TEXT_REPLY_BYTES = 1 << 20
+#: Silence after which the rest of a broken reply on a socket is taken to have all arrived.
+QUIET_S = 0.05
+
+TIMEOUT_CODES = {constants.StatusCode.error_timeout}
+
+
+class VisaTransport:
+    """Reads through public VISA calls only: works with any VISA library and interface."""
+
+    def __init__(self, resource: MessageBasedResource, label: str) -> None:
+        self.resource = resource
+        self.label = label
+
+    @property
+    def is_socket(self) -> bool:
+        """Whether the resource is a raw TCP socket, where no END marks the end of a reply."""
+        return self.resource.resource_name.upper().endswith("::SOCKET")
+
+    def timeout_s(self) -> float:
+        """The resource's timeout in seconds (infinite when it has none)."""
+        return self.resource.timeout / 1000.0 if self.resource.timeout else math.inf
+
+    def tune(self) -> None:
+        """Turn off Nagle's algorithm on a socket: every configuration step is a write followed
+        by ``SYST:ERR?``, and with Nagle on the second small write waits for the peer's delayed
+        ACK (about 40 ms on Linux). VI_ATTR_TCPIP_NODELAY is the VISA attribute for it."""
+        if self.is_socket:
+            # a library that does not support the attribute: Nagle stays on
+            with suppress(Exception):
+                self.resource.set_visa_attribute(constants.ResourceAttribute.tcpip_nodelay, True)
+
+    def read_message(
+        self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
+    ) -> bytes:
+        """Read one response message, up to its terminator, by ``deadline`` (monotonic s), of
+        at most ``max_bytes``.
+
+        PyVISA's own read goes on for as long as bytes keep coming, so a peer that streams
+        without a terminator would hold it for ever; here the deadline bounds the whole reply
+        and its length is capped. On a socket, where no END marks the end, a reply that stops
+        before its terminator is refused as truncated rather than read as a shorter value.
+        """
+        resource = self.resource
+        data = bytearray()
+        with resource.ignore_warning(constants.StatusCode.success_max_count_read):
+            while True:
+                try:
+                    chunk, status = resource.visalib.read(resource.session, TEXT_CHUNK_BYTES)
+                except pyvisa.errors.VisaIOError as error:
+                    if error.error_code in TIMEOUT_CODES:
+                        raise self.no_reply(command) from None
+                    raise
+                data += chunk
+                if status != constants.StatusCode.success_max_count_read:
+                    break
+                self.check_growing_reply(command, data, deadline, max_bytes)
+        if self.is_socket and not data.endswith(b"\n"):
+            raise self.truncated(command, data)
+        return bytes(data)
+
+    def read_into(self, view: memoryview) -> None:
+        """Fill ``view`` with the next ``len(view)`` bytes, through ``viRead`` in large chunks
+        (one copy per chunk)."""
+        resource = self.resource
+        received = 0
+        # A full chunk is the normal case here, not a warning.
+        with resource.ignore_warning(constants.StatusCode.success_max_count_read):
+            while received < len(view):
+                chunk, _ = resource.visalib.read(
+                    resource.session, min(BLOCK_CHUNK_BYTES, len(view) - received)
+                )
+                if not chunk:
+                    raise BlockFormatError(
+                        f"{self.label}: block ended after {received} of {len(view)} bytes"
+                    )
+                view[received : received + len(chunk)] = chunk
+                received += len(chunk)
+
+    def discard_input(self) -> None:
+        """Throw away what is left of a broken reply: the VISA device clear."""
+        self.resource.clear()
+
+    # -- messages shared by the strategies
+
+    def check_growing_reply(
+        self, command: str, data: bytearray, deadline: float, max_bytes: int
+    ) -> None:
+        """Refuse a reply that is still incomplete at the deadline, or far too long."""
+        if len(data) > max_bytes:
+            raise ReplyFormatError(
+                f"{self.label}: reply to {command!r} runs past {max_bytes} bytes "
+                "without a terminator"
+            )
+        if time.monotonic() >= deadline:
+            raise self.truncated(command, data) if data else self.no_reply(command)
+
+    def no_reply(self, command: str) -> InstrumentTimeout:
+        return InstrumentTimeout(
+            f"{self.label}: no reply within {self.timeout_s():g} s to {command!r}"
+        )
+
+    def truncated(self, command: str, data: bytes | bytearray) -> ReplyFormatError:
+        return ReplyFormatError(
+            f"{self.label}: reply {bytes(data[:40])!r} to {command!r} has no line terminator "
+            "(truncated, or still arriving when the timeout ran out)"
+        )
+
+
+class PyvisaPySocketTransport(VisaTransport):
+    """Reads a pyvisa-py TCPIP SOCKET session straight from its socket (see the module notes).
+
+    Every read leaves the session exactly as a ``viRead`` would: bytes read ahead stay in
+    pyvisa-py's own pending buffer.
+    """
+
+    def __init__(self, resource: MessageBasedResource, label: str, session: Any) -> None:
+        super().__init__(resource, label)
+        self.session = session
+        self.socket: socket.socket = session.interface
+
+    def tune(self) -> None:
+        """Nagle off through pyvisa-py's own helper (0.8 registers no attribute setter)."""
+        self.session._set_tcpip_nodelay(constants.ResourceAttribute.tcpip_nodelay, True)
+
+    def read_message(
+        self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
+    ) -> bytes:
+        """As :meth:`VisaTransport.read_message`, the deadline holding even while bytes trickle
+        in."""
+        pending: bytearray = self.session._pending_buffer
+        terminator = (self.resource.read_termination or "\n").encode("ascii")
+        sock = self.socket
+        previous_timeout = sock.gettimeout()
+        try:
+            while (end := pending.find(terminator)) < 0:
+                self.check_growing_reply(command, pending, deadline, max_bytes)
+                sock.settimeout(max(deadline - time.monotonic(), 1e-3))
+                try:
+                    chunk = sock.recv(TEXT_CHUNK_BYTES)
+                except TimeoutError:
+                    continue  # the deadline check above raises
+                if not chunk:
+                    raise ConnectionLost(
+                        f"{self.label}: connection closed during the reply to {command!r}"
+                    )
+                pending += chunk
+        finally:
+            sock.settimeout(previous_timeout)
+        line = bytes(pending[: end + len(terminator)])
+        del pending[: end + len(terminator)]
+        return line
+
+    def read_into(self, view: memoryview) -> None:
+        """Receive straight into ``view``: read-ahead bytes first, then the socket, within the
+        resource's timeout."""
+        pending: bytearray = self.session._pending_buffer
+        received = min(len(pending), len(view))
+        view[:received] = pending[:received]
+        del pending[:received]
+        sock = self.socket
+        deadline = time.monotonic() + self.timeout_s()
+        previous_timeout = sock.gettimeout()
+        try:
+            while received < len(view):
+                remaining_s = deadline - time.monotonic()
+                if remaining_s <= 0:
+                    raise InstrumentTimeout(
+                        f"{self.label}: block stalled after {received} of {len(view)} bytes"
+                    )
+                sock.settimeout(None if math.isinf(remaining_s) else remaining_s)
+                try:
+                    count = sock.recv_into(view[received:])
+                except TimeoutError:
+                    continue  # the deadline check above raises
+                if count == 0:
+                    raise ConnectionLost(
+                        f"{self.label}: connection closed after {received} of {len(view)} bytes"
+                    )
+                received += count
+        finally:
+            sock.settimeout(previous_timeout)
+
+    def discard_input(self) -> None:
+        """Read and drop what the peer has sent until it goes quiet or closes (pyvisa-py's
+        device clear would spin for ever on a closed connection or an endless stream)."""
+        self.session._pending_buffer.clear()
+        sock = self.socket
+        deadline = time.monotonic() + min(self.timeout_s(), 5.0)
+        previous_timeout = sock.gettimeout()
+        try:
+            sock.settimeout(QUIET_S)
+            while time.monotonic() < deadline:
+                try:
+                    if not sock.recv(BLOCK_CHUNK_BYTES):
+                        return  # closed by the peer
+                except (TimeoutError, OSError):
+                    return  # quiet (or gone): nothing more to drop
+        finally:
+            sock.settimeout(previous_timeout)
+
+
+def _pyvisa_py_socket_session(resource: MessageBasedResource) -> Any | None:
+    """The pyvisa-py TCPIP SOCKET session behind ``resource``, if that is what it is."""
+    sessions = getattr(resource.visalib, "sessions", None)
+    session = sessions.get(resource.session) if isinstance(sessions, dict) else None
+    fields_present = all(
+        hasattr(session, field) for field in ("interface", "_pending_buffer", "_set_tcpip_nodelay")
+    )
+    if fields_present and isinstance(session.interface, socket.socket):
+        return session
+    return None
+
+
+def choose_transport(resource: MessageBasedResource, label: str) -> VisaTransport:
+    """The fast socket path for a pyvisa-py socket session, else the generic VISA path."""
+    session = _pyvisa_py_socket_session(resource)
+    if session is not None:
+        return PyvisaPySocketTransport(resource, label, session)
+    return VisaTransport(resource, label)
