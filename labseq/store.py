@@ -55,9 +55,9 @@ APPLICATION = "labseq"
 #: Page size for new files (an existing file keeps its own). Every table and index costs at
 #: least one page and each capture leaves part of a page unused, so small pages keep a store of
 #: modest runs small; 1 KiB costs 0.4 % in overflow-page pointers on long records. 4 KiB pages
-#: read raw codes 20-40 % faster, but compressed codes (the default) only 5 % faster, and the
-#: demo's compressed 20 k-sample captures then leave most of a page each unused: its store grows
-#: by a fifth (tests/benchmarks/bench_storage.py measures both).
+#: write and read 1 M-sample records 15-35 % faster, but with compressed codes (the default) at
+#: 20-100 k samples they gain at most 6 %, and a compressed 20 k-sample capture then leaves most
+#: of a page unused: the demo's store grows by a fifth (tests/benchmarks/bench_storage.py).
 PAGE_SIZE = 1024
 
 #: How a capture's codes may be stored (``captures.codec``): "raw" is their little-endian bytes,
@@ -65,8 +65,10 @@ PAGE_SIZE = 1024
 #: unless the store is opened with another.
 CODECS = ("raw", "zstd")
 DEFAULT_CODEC = "zstd"
-#: Zstandard's own default level: 3.5-4x on the simulator's records at 150-200 MB/s, where
-#: level 9 gains 4-8 % at a fifth of the speed (tests/benchmarks/bench_storage.py).
+#: Zstandard's own default level. On the demo's records it stores codes 4x smaller (2x with
+#: 1.5 LSB rms of scope noise; tests/benchmarks/bench_storage.py) at 150-200 MB/s; level 9 saves
+#: another 3-8 % at a fifth of that speed. A first difference of the codes before compressing
+#: saves 6-10 % on noisy records but undoing it (a cumulative sum) costs more than decompressing.
 ZSTD_LEVEL = 3
 
 RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed")
@@ -1063,18 +1065,18 @@ class Store:
         query = "SELECT codes, codec FROM captures WHERE id = ?"
         blob, codec = self.db.execute(query, [capture_id]).fetchone()
         size = count * dtype.itemsize
-        problem = None
-        if codec == "zstd":
-            try:  # the frame's own size is checked first: a damaged one may claim any size
+        try:
+            if codec == "zstd":
+                # a damaged frame may claim any size: check it before decompressing
                 if zstandard.frame_content_size(blob) != size:
-                    raise zstandard.ZstdError(f"the frame holds another size than {size} bytes")
+                    raise ValueError(f"its zstd frame does not hold {size} bytes")
                 blob = self._decompressor.decompress(blob)
-            except zstandard.ZstdError as exc:
-                problem = f"its zstd codes do not decompress ({exc})"
-        if problem is None and len(blob) != size:
-            problem = f"{len(blob)} bytes of {codec} codes where {count} {dtype.name} take {size}"
-        if problem is not None:
-            raise StoreError(f"{self.path}: capture {capture_id} is damaged: {problem}")
+            if len(blob) != size:
+                raise ValueError(
+                    f"{len(blob)} bytes of codes where {count} {dtype.name} take {size}"
+                )
+        except (ValueError, zstandard.ZstdError) as exc:
+            raise StoreError(f"{self.path}: capture {capture_id} is damaged: {exc}") from None
         return np.frombuffer(blob, dtype=dtype)
 
     def _require_run(self, run_id: int) -> None:
