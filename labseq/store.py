@@ -271,13 +271,10 @@ def _upgrade_to_3() -> list[str]:
     ]
 
 
-#: The step that brings a file from each version to the next.
-_UPGRADES = {1: _upgrade_to_2, 2: _upgrade_to_3}
-
-
 def _upgrade_statements(version: int) -> list[str]:
-    """Every statement that brings a file of ``version`` to :data:`SCHEMA_VERSION`."""
-    return [statement for step in range(version, SCHEMA_VERSION) for statement in _UPGRADES[step]()]
+    """Every statement that brings a file of ``version`` to :data:`SCHEMA_VERSION`: the steps
+    from each version to the next, in order (a new step goes at the end)."""
+    return (_upgrade_to_2() if version < 2 else []) + (_upgrade_to_3() if version < 3 else [])
 
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
