@@ -208,9 +208,7 @@ def analyse_run(store: Store, sequence: Sequence, run_id: int, *, only_missing: 
     sequence does not declare gets that as its error."""
     analysed = 0
     points = {point.id: point for point in store.points(run_id)}
-    for capture in store.iter_captures(run_id):
-        if only_missing and store.capture_figures(capture.id) is not None:
-            continue
+    for capture in store.iter_captures(run_id, only_unanalysed=only_missing):
         node = sequence.node(capture.node)
         result: NodeResult | Exception = (
             LookupError(f"node {capture.node!r} is not declared in the sequence")

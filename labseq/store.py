@@ -14,6 +14,10 @@ intact and the point pending until it is complete. The schema version is checked
 written by a newer labseq is refused without being touched, and one written by an older labseq is
 upgraded in place (:meth:`Store._upgrade`).
 
+Codes are stored compressed by default (``captures.codec`` says how each capture's are stored:
+``"zstd"``, Zstandard at level 3, or ``"raw"``); reading them back fetches the ordered capture rows
+first and then each capture's codes by id, so no query ever sorts the waveforms themselves.
+
 Several nodes may be captured per acquisition (the primary switch node, a secondary rectifier…):
 each capture names its node, its index counts the point's acquisitions (the captures of one
 acquisition share it and are committed together), and the per-point figures and verdicts are
@@ -36,23 +40,37 @@ from typing import Any
 
 import numpy as np
 import sqlite_utils
+import zstandard
 
 from instruments import Waveform
 from labseq import __version__
 from labseq.errors import InputError, LabseqError
 from labseq.process import process_alive, process_start_time
 
-#: Version of the schema below; a file with a higher version is refused, a lower one upgraded.
+#: Version of the schema; a file with a higher version is refused, a lower one upgraded.
 SCHEMA_VERSION = 3
 #: The node a capture or figure belongs to when nothing else is said (and in version-1 files).
 PRIMARY_NODE = "primary"
 APPLICATION = "labseq"
 
-#: Page size for new files. Every table and index costs at least one page and each capture
-#: leaves part of a page unused, so small pages keep a store of modest runs small; 1 KiB costs
-#: 0.4 % in overflow-page pointers on long records, against 0.8 % for 512 B pages
-#: (tests/benchmarks/bench_storage.py measures the result).
+#: Page size for new files (an existing file keeps its own). Every table and index costs at
+#: least one page and each capture leaves part of a page unused, so small pages keep a store of
+#: modest runs small; 1 KiB costs 0.4 % in overflow-page pointers on long records. 4 KiB pages
+#: write and read 1 M-sample records 15-35 % faster, but with compressed codes (the default) at
+#: 20-100 k samples they gain at most 6 %, and a compressed 20 k-sample capture then leaves most
+#: of a page unused: the demo's store grows by a fifth (tests/benchmarks/bench_storage.py).
 PAGE_SIZE = 1024
+
+#: How a capture's codes may be stored (``captures.codec``): "raw" is their little-endian bytes,
+#: "zstd" those bytes as one Zstandard frame (RFC 8878). New captures use :data:`DEFAULT_CODEC`
+#: unless the store is opened with another.
+CODECS = ("raw", "zstd")
+DEFAULT_CODEC = "zstd"
+#: Zstandard's own default level. On the demo's records it stores codes 4x smaller (2x with
+#: 1.5 LSB rms of scope noise; tests/benchmarks/bench_storage.py) at 150-200 MB/s; level 9 saves
+#: another 3-8 % at a fifth of that speed. A first difference of the codes before compressing
+#: saves 6-10 % on noisy records but undoing it (a cumulative sum) costs more than decompressing.
+ZSTD_LEVEL = 3
 
 RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed")
 POINT_STATUSES = ("pending", "done", "failed", "skipped")
@@ -89,7 +107,7 @@ def _sql_list(values: Iterable[str]) -> str:
     return ", ".join(f"'{value}'" for value in values)
 
 
-#: Tables whose definition changed since version 1, as templates of their name (the upgrade
+#: Tables whose definition changed from version 1 to 2, as templates of their name (the upgrade
 #: builds each under another name first).
 _CAPTURES_TABLE = f"""
 CREATE TABLE {{table}} (
@@ -132,7 +150,9 @@ CREATE TABLE {{table}} (
     PRIMARY KEY (point_id, node)
 ) WITHOUT ROWID"""
 
-_SCHEMA = f"""
+#: The version-2 tables; a new file gets these and then every later upgrade step (as an older
+#: file does), so new and upgraded files have the same tables.
+_SCHEMA_2 = f"""
 CREATE TABLE schema_info (
     version INTEGER NOT NULL,
     application TEXT NOT NULL,
@@ -154,8 +174,7 @@ CREATE TABLE runs (
     finished_at TEXT,
     notes TEXT NOT NULL DEFAULT '',
     pid INTEGER,
-    host TEXT,
-    process_started REAL
+    host TEXT
 );
 CREATE TABLE points (
     id INTEGER PRIMARY KEY,
@@ -242,13 +261,22 @@ def _upgrade_to_2() -> list[str]:
     )
 
 
+def _upgrade_to_3() -> list[str]:
+    """Statements that bring a version-2 file to version 3: each capture says how its codes
+    are stored (compressed codes), those stored so far being raw, and each run records its
+    owning process's start time (so resume can tell a reused pid from a live owner). Columns
+    are added, not tables rebuilt, so the upgrade copies no waveform."""
+    return [
+        "ALTER TABLE captures ADD COLUMN codec TEXT NOT NULL DEFAULT 'raw' "
+        f"CHECK (codec IN ({_sql_list(CODECS)}))",
+        "ALTER TABLE runs ADD COLUMN process_started REAL",
+    ]
+
+
 def _upgrade_statements(version: int) -> list[str]:
-    """Statements that bring a file of schema ``version`` to :data:`SCHEMA_VERSION`, step by
-    step: 1 → 2 (several nodes), 2 → 3 (the owning process's start time, for resume)."""
-    statements = _upgrade_to_2() if version < 2 else []
-    if version < 3:
-        statements.append("ALTER TABLE runs ADD COLUMN process_started REAL")
-    return statements
+    """Every statement that brings a file of ``version`` to :data:`SCHEMA_VERSION`: the steps
+    from each version to the next, in order (a new step goes at the end)."""
+    return (_upgrade_to_2() if version < 2 else []) + (_upgrade_to_3() if version < 3 else [])
 
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
@@ -362,6 +390,10 @@ class StoredCapture(Waveform):
     captured_at: str
 
 
+#: The capture columns read besides the codes: those of :class:`StoredCapture`.
+_CAPTURE_COLUMNS = [f.name for f in fields(StoredCapture) if f.name != "codes"]
+
+
 def _now_iso(unix_s: float | None = None) -> str:
     """UTC time as ISO 8601 text with milliseconds."""
     moment = datetime.fromtimestamp(time.time() if unix_s is None else unix_s, UTC)
@@ -447,11 +479,19 @@ class Store:
     """A labseq SQLite store; use as a context manager.
 
     ``Store(path)`` opens the file, creating it when missing unless ``create=False`` (then a
-    missing file is a :class:`StoreFileError`, exit status 2).
+    missing file is a :class:`StoreFileError`, exit status 2). ``codec`` is how the captures
+    stored from now on keep their codes (one of :data:`CODECS`); every codec reads.
     """
 
-    def __init__(self, path: str | Path, *, create: bool = True) -> None:
+    def __init__(
+        self, path: str | Path, *, create: bool = True, codec: str = DEFAULT_CODEC
+    ) -> None:
+        if codec not in CODECS:
+            raise ValueError(f"codec {codec!r}: give one of {', '.join(CODECS)}")
         self.path = Path(path)
+        self.codec = codec
+        self._compressor = zstandard.ZstdCompressor(level=ZSTD_LEVEL)
+        self._decompressor = zstandard.ZstdDecompressor()
         exists = self.path.is_file() and self.path.stat().st_size > 0
         if not exists and not create:
             raise StoreFileError(f"{self.path}: no such store; give --db the path of a run's file")
@@ -466,9 +506,9 @@ class Store:
         conn.execute("PRAGMA foreign_keys = ON")
         if version is None:
             with self.db.atomic():
-                for statement in _SCHEMA.split(";"):
-                    if statement.strip():
-                        conn.execute(" ".join(statement.split()))  # stored text kept short
+                statements = [text for text in _SCHEMA_2.split(";") if text.strip()]
+                for statement in statements + _upgrade_statements(2):
+                    conn.execute(" ".join(statement.split()))  # stored text kept short
                 self.db["schema_info"].insert(
                     {
                         "version": SCHEMA_VERSION,
@@ -824,10 +864,15 @@ class Store:
         where = "c.point_id = ? AND c.node = ?"
         return list(self._iter_captures(where, [point_id, node], with_codes))
 
-    def iter_captures(self, run_id: int, *, with_codes: bool = True) -> Iterator[StoredCapture]:
-        """A run's captures in point and capture order, read one at a time."""
+    def iter_captures(
+        self, run_id: int, *, with_codes: bool = True, only_unanalysed: bool = False
+    ) -> Iterator[StoredCapture]:
+        """A run's captures in point and capture order, their codes read one capture at a time;
+        ``only_unanalysed`` keeps those that have no stored figures yet."""
         self._require_run(run_id)
-        return self._iter_captures("c.run_id = ?", [run_id], with_codes)
+        return self._iter_captures(
+            "c.run_id = ?", [run_id], with_codes, only_unanalysed=only_unanalysed
+        )
 
     def set_capture_figures(
         self,
@@ -909,6 +954,11 @@ class Store:
     def _insert_capture(self, point_id: int, capture: CaptureRecord) -> int:
         waveform = capture.waveform
         blob, dtype, count = _codes_blob(waveform.codes)
+        codec = self.codec
+        if codec == "zstd":
+            packed = self._compressor.compress(blob)
+            # codes that do not compress (float32 noise) are kept raw rather than grown
+            blob, codec = (packed, codec) if len(packed) < len(blob) else (blob, "raw")
         rows = list(self.db.query("SELECT run_id FROM points WHERE id = ?", [point_id]))
         if not rows:
             raise StoreError(f"no point with id {point_id}")
@@ -936,6 +986,7 @@ class Store:
                 "points": count,
                 "captured_at": _now_iso(capture.captured_at),
                 "codes": blob,
+                "codec": codec,
             }
         )
         return int(table.last_pk)
@@ -986,19 +1037,47 @@ class Store:
         return int(self.db.execute(query, [parent_id]).fetchone()[0])
 
     def _iter_captures(
-        self, where: str, params: list[Any], with_codes: bool
+        self, where: str, params: list[Any], with_codes: bool, *, only_unanalysed: bool = False
     ) -> Iterator[StoredCapture]:
-        columns = [f.name for f in fields(StoredCapture) if f.name != "codes"]
+        """Captures matching ``where`` in point and capture order (``only_unanalysed``: those
+        without stored figures). The rows are sorted without their codes, then each capture's
+        codes are read by id: sorting rows that carry the codes would copy every waveform
+        through a temporary B-tree, spilling to a temporary file as large as the run."""
+        joins = " JOIN points p ON p.id = c.point_id"
+        if only_unanalysed:
+            joins += " LEFT JOIN capture_figures f ON f.capture_id = c.id"
+            where += " AND f.capture_id IS NULL"
         query = (
-            f"SELECT {', '.join('c.' + name for name in columns)}, c.dtype"
-            + (", c.codes" if with_codes else "")
-            + " FROM captures c JOIN points p ON p.id = c.point_id"
-            + f" WHERE {where} ORDER BY p.point_index, c.capture_index, c.id"
+            f"SELECT {', '.join('c.' + name for name in _CAPTURE_COLUMNS)}, c.dtype, c.points"
+            f" FROM captures c{joins} WHERE {where}"
+            " ORDER BY p.point_index, c.capture_index, c.id"
         )
-        for row in self.db.execute(query, params):
+        for row in self.db.execute(query, params).fetchall():
             dtype = np.dtype(row["dtype"]).newbyteorder("<")
-            codes = np.frombuffer(row["codes"], dtype=dtype) if with_codes else np.empty(0, dtype)
+            if with_codes:
+                codes = self._codes(row["id"], dtype, row["points"])
+            else:
+                codes = np.empty(0, dtype)
             yield _record(StoredCapture, row, codes=codes)
+
+    def _codes(self, capture_id: int, dtype: np.dtype, count: int) -> np.ndarray:
+        """One capture's codes as stored (read-only, little-endian), decoded by its codec."""
+        query = "SELECT codes, codec FROM captures WHERE id = ?"
+        blob, codec = self.db.execute(query, [capture_id]).fetchone()
+        size = count * dtype.itemsize
+        try:
+            if codec == "zstd":
+                # a damaged frame may claim any size: check it before decompressing
+                if zstandard.frame_content_size(blob) != size:
+                    raise ValueError(f"its zstd frame does not hold {size} bytes")
+                blob = self._decompressor.decompress(blob)
+            if len(blob) != size:
+                raise ValueError(
+                    f"{len(blob)} bytes of codes where {count} {dtype.name} take {size}"
+                )
+        except (ValueError, zstandard.ZstdError) as exc:
+            raise StoreError(f"{self.path}: capture {capture_id} is damaged: {exc}") from None
+        return np.frombuffer(blob, dtype=dtype)
 
     def _require_run(self, run_id: int) -> None:
         if not list(self.db.query("SELECT 1 FROM runs WHERE id = ?", [run_id])):

@@ -1,5 +1,6 @@
-"""The SQLite store: raw codes round-trip byte for byte, a point commits in one transaction,
-files that are not ours or too new are refused untouched, and exports hold what was stored."""
+"""The SQLite store: raw codes round-trip byte for byte (compressed or not), a point commits in
+one transaction, files that are not ours or too new are refused untouched, older files are
+upgraded without losing anything, and exports hold what was stored."""
 
 from __future__ import annotations
 
@@ -9,14 +10,18 @@ import sqlite3
 import subprocess
 import sys
 import textwrap
+from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pytest
+import zstandard
 from sweeps import run_cli
 
 from labseq.store import (
+    CODECS,
+    PAGE_SIZE,
     SCHEMA_VERSION,
     CaptureRecord,
     PointReadings,
@@ -83,12 +88,18 @@ def db(tmp_path: Path) -> Path:
     ],
     ids=["int8", "int16-big-endian", "float32"],
 )
-def test_capture_round_trip(db: Path, codes: np.ndarray) -> None:
-    with Store(db) as store:
+@pytest.mark.parametrize("codec", CODECS)
+def test_capture_round_trip(db: Path, codes: np.ndarray, codec: str) -> None:
+    with Store(db, codec=codec) as store:
         run_id, points = new_run(store)
         [capture_id] = store.commit_point(points[0], captures=[CaptureRecord(Capture(codes), 2)])
     with Store(db, create=False) as store:
         [stored] = store.captures(points[0])
+        [(stored_codec, blob)] = store.db.execute("SELECT codec, codes FROM captures").fetchall()
+    assert stored_codec == codec
+    if codec == "zstd":  # one standard Zstandard frame (RFC 8878) any zstd tool can read
+        assert zstandard.ZstdDecompressor().decompress(blob) == stored.codes.tobytes()
+        assert len(blob) < stored.codes.nbytes
     assert stored.id == capture_id and stored.channel == 2 and stored.node == "primary"
     assert stored.codes.dtype.name == codes.dtype.name  # the dtype as sent, never float64
     assert stored.codes.tobytes() == codes.astype(codes.dtype.newbyteorder("<")).tobytes()
@@ -98,6 +109,33 @@ def test_capture_round_trip(db: Path, codes: np.ndarray) -> None:
     expected_v = (codes.astype(float) - 0.0) * (250.0 / 256) + 100.0
     assert np.array_equal(stored.volts(), expected_v)
     assert stored.time_s()[0] == -2e-6 and stored.time_s()[1] == pytest.approx(-2e-6 + 1e-9)
+
+
+def test_codes_that_do_not_compress_are_stored_raw(db: Path) -> None:
+    noise = np.random.default_rng(3).integers(-128, 128, 5000).astype(np.int8)
+    with Store(db) as store:
+        _, points = new_run(store)
+        store.commit_point(points[0], captures=[CaptureRecord(Capture(noise))])
+        row = store.db.execute("SELECT codec, length(codes) FROM captures").fetchone()
+        assert tuple(row) == ("raw", 5000)
+        assert np.array_equal(store.captures(points[0])[0].codes, noise)
+    with pytest.raises(ValueError, match="codec 'lz4': give one of raw, zstd"):
+        Store(db, codec="lz4")
+
+
+@pytest.mark.parametrize("codec", CODECS)
+def test_damaged_codes_are_a_clear_error(db: Path, codec: str) -> None:
+    with Store(db, codec=codec) as store:
+        run_id, points = new_run(store)
+        [capture_id] = store.commit_point(
+            points[0], captures=[CaptureRecord(Capture(ringing_codes()))]
+        )
+        store.db.execute("UPDATE captures SET codes = substr(codes, 1, 100)")
+        with pytest.raises(StoreError, match=f"capture {capture_id} is damaged"):
+            store.captures(points[0])
+        assert len(store.captures(points[0], with_codes=False)) == 1
+    code, _, err = run_cli("export", str(run_id), "--db", str(db), "--out", str(db.parent / "x"))
+    assert code == 1 and "is damaged" in err and str(db) in err and "Traceback" not in err
 
 
 def test_float64_codes_refused(db: Path) -> None:
@@ -252,6 +290,38 @@ def test_iter_captures_reads_one_at_a_time(db: Path) -> None:
         assert [h.codes.size for h in headers] == [0, 0]
 
 
+def test_captures_read_in_grid_order_whatever_order_they_were_stored(db: Path) -> None:
+    with Store(db) as store:
+        run_id, points = new_run(store)
+        for point_id in reversed(points):  # e.g. a resumed run filling points in any order
+            records = [
+                CaptureRecord(Capture(ringing_codes(seed=10 * point_id + k))) for k in (0, 1)
+            ]
+            store.commit_point(point_id, captures=records)
+        order = [(c.point_id, c.capture_index) for c in store.iter_captures(run_id)]
+        assert order == [(point_id, k) for point_id in points for k in (0, 1)]
+        for capture in store.iter_captures(run_id):
+            expected = ringing_codes(seed=10 * capture.point_id + capture.capture_index)
+            assert np.array_equal(capture.codes, expected)
+
+
+def test_only_unanalysed_captures(db: Path) -> None:
+    with Store(db) as store:
+        run_id, points = new_run(store, points=2)
+        ids = [
+            capture_id
+            for point_id in points
+            for capture_id in store.commit_point(
+                point_id, captures=[CaptureRecord(Capture(ringing_codes()))] * 2
+            )
+        ]
+        store.set_capture_figures(ids[0], {"peak_v": 150.0})
+        store.set_capture_figures(ids[2], {}, error="no edge found")  # analysed, with an error
+        missing = list(store.iter_captures(run_id, only_unanalysed=True))
+        assert [c.id for c in missing] == [ids[1], ids[3]]
+        assert all(np.array_equal(c.codes, ringing_codes()) for c in missing)
+
+
 # --------------------------------------------------------------------------- opening files
 
 
@@ -270,6 +340,143 @@ def test_newer_schema_refused_and_file_unchanged(db: Path) -> None:
     code, _, err = run_cli("runs", "--db", str(db))
     assert code == 2 and "newer labseq" in err
     assert db.read_bytes() == before
+
+
+#: The version-2 tables as labseq wrote them (codes always raw, no codec column).
+SCHEMA_V2 = """
+CREATE TABLE schema_info ( version INTEGER NOT NULL, application TEXT NOT NULL, created_by TEXT NOT
+    NULL, created_at TEXT NOT NULL );
+CREATE TABLE runs ( id INTEGER PRIMARY KEY, sequence_text TEXT NOT NULL, sequence_sha256 TEXT NOT
+    NULL, sequence_path TEXT NOT NULL, dut_label TEXT NOT NULL, snubber_label TEXT NOT NULL,
+    bench_kind TEXT NOT NULL, instruments TEXT NOT NULL DEFAULT '{}', software_version TEXT NOT
+    NULL, status TEXT NOT NULL CHECK (status IN ('running', 'finished', 'aborted', 'interrupted',
+    'failed')), started_at TEXT NOT NULL, finished_at TEXT, notes TEXT NOT NULL DEFAULT '', pid
+    INTEGER, host TEXT );
+CREATE TABLE points ( id INTEGER PRIMARY KEY, run_id INTEGER NOT NULL REFERENCES runs(id),
+    point_index INTEGER NOT NULL, line_v REAL NOT NULL, line_is_ac INTEGER NOT NULL,
+    line_frequency_hz REAL NOT NULL, load_a REAL NOT NULL, status TEXT NOT NULL DEFAULT 'pending'
+    CHECK (status IN ('pending', 'done', 'failed', 'skipped')), source_voltage_v REAL,
+    source_current_a REAL, load_voltage_v REAL, load_current_a REAL, meter_voltage_v REAL,
+    meter_current_a REAL, meter_power_w REAL, meter_power_factor REAL, output_power_w REAL,
+    efficiency REAL, verdict TEXT CHECK (verdict IS NULL OR verdict IN ('pass', 'fail',
+    'incomplete')), verdict_reasons TEXT, started_at TEXT, finished_at TEXT, duration_s REAL,
+    UNIQUE (run_id, point_index) );
+CREATE TABLE captures ( id INTEGER PRIMARY KEY, point_id INTEGER NOT NULL REFERENCES points(id),
+    run_id INTEGER NOT NULL REFERENCES runs(id), capture_index INTEGER NOT NULL, node TEXT NOT NULL
+    DEFAULT 'primary', channel INTEGER NOT NULL, dtype TEXT NOT NULL CHECK (dtype IN ('int8',
+    'int16', 'float32')), x_increment_s REAL NOT NULL, x_origin_s REAL NOT NULL, y_increment_v
+    REAL NOT NULL, y_origin_v REAL NOT NULL, y_reference REAL NOT NULL, code_min REAL, code_max
+    REAL, points INTEGER NOT NULL, captured_at TEXT NOT NULL, codes BLOB NOT NULL, UNIQUE
+    (point_id, node, capture_index) );
+CREATE TABLE capture_figures ( capture_id INTEGER PRIMARY KEY REFERENCES captures(id), base_v REAL,
+    plateau_v REAL, peak_v REAL, overshoot_v REAL, overshoot_pct REAL, rise_time_s REAL,
+    edge_time_s REAL, ring_frequency_hz REAL, decay_rate_per_s REAL, damping_ratio REAL, q_factor
+    REAL, fit_quality REAL, settling_time_s REAL, snubber_loss_w REAL, stress_margin_v REAL,
+    clamp_level_v REAL, clamp_loss_w REAL, snubber_loss_method TEXT, clamp_loss_method TEXT,
+    clipped INTEGER, edge_count INTEGER, error TEXT, edges_json TEXT );
+CREATE TABLE point_figures ( point_id INTEGER NOT NULL REFERENCES points(id), node TEXT NOT NULL
+    DEFAULT 'primary', figure TEXT NOT NULL, worst REAL, mean REAL, spread REAL, n INTEGER NOT
+    NULL, PRIMARY KEY (point_id, node, figure) ) WITHOUT ROWID;
+CREATE TABLE node_verdicts ( point_id INTEGER NOT NULL REFERENCES points(id), node TEXT NOT NULL,
+    verdict TEXT NOT NULL CHECK (verdict IN ('pass', 'fail', 'incomplete')), verdict_reasons TEXT
+    NOT NULL, PRIMARY KEY (point_id, node) ) WITHOUT ROWID;
+CREATE TABLE events ( id INTEGER PRIMARY KEY, run_id INTEGER NOT NULL REFERENCES runs(id), point_id
+    INTEGER REFERENCES points(id), time TEXT NOT NULL, kind TEXT NOT NULL CHECK (kind IN ('info',
+    'scpi-error', 'retry', 'skip', 'fault', 'timing', 'safety')), message TEXT NOT NULL, data TEXT
+    );
+INSERT INTO schema_info VALUES (2, 'labseq', '0.1.0', '2025-03-01T08:00:00.000+00:00');
+INSERT INTO runs (id, sequence_text, sequence_sha256, sequence_path, dut_label, snubber_label,
+    bench_kind, software_version, status, started_at, finished_at) VALUES (1, 'name = "t"', '',
+    't.toml', 'dut', 'rc', 'sim', '0.1.0', 'finished', '2025-03-01', '2025-03-01');
+INSERT INTO points (id, run_id, point_index, line_v, line_is_ac, line_frequency_hz, load_a, status,
+    verdict, verdict_reasons) VALUES (1, 1, 0, 48.0, 0, 0.0, 1.1, 'done', 'pass', '[]'),
+    (2, 1, 1, 60.0, 0, 0.0, 1.1, 'done', 'fail', '["secondary: peak"]');
+INSERT INTO capture_figures (capture_id, peak_v, edge_count, edges_json) VALUES
+    (1, 101.0, 1, '{"names":["peak_v"],"rows":[[101.0]]}'), (3, 140.5, 0, NULL);
+INSERT INTO point_figures VALUES (1, 'primary', 'peak_v', 101.0, 100.0, 0.5, 3),
+    (2, 'secondary', 'peak_v', -88.0, -87.0, 0.2, 1);
+INSERT INTO node_verdicts VALUES (1, 'primary', 'pass', '[]'), (2, 'secondary', 'fail', '["peak"]');
+INSERT INTO events (run_id, point_id, time, kind, message, data) VALUES
+    (1, 1, '2025-03-01', 'retry', 'scope timeout', '{"try":2}');
+"""
+
+
+def _le_bytes(codes: np.ndarray) -> bytes:
+    return codes.astype(codes.dtype.newbyteorder("<")).tobytes()
+
+
+def _table_definitions(store: Store) -> list[str]:
+    rows = store.db.execute("SELECT sql FROM sqlite_master WHERE sql IS NOT NULL ORDER BY name")
+    return [" ".join(row[0].split()) for row in rows]
+
+
+def _table_rows(
+    conn: sqlite3.Connection, columns: dict[str, list[str]] | None = None
+) -> dict[str, Counter]:
+    """Every row of every table as it stands, restricted to ``columns`` per table (the columns a
+    version-2 file had) where given."""
+    names = [row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")]
+    rows = {}
+    for name in set(names) - {"schema_info"}:
+        selected = ", ".join(columns[name]) if columns else "*"
+        rows[name] = Counter(tuple(row) for row in conn.execute(f"SELECT {selected} FROM {name}"))
+    return rows
+
+
+def _table_columns(conn: sqlite3.Connection) -> dict[str, list[str]]:
+    """Column names per table."""
+    names = [row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")]
+    return {name: [row[1] for row in conn.execute(f"PRAGMA table_info({name})")] for name in names}
+
+
+def test_schema_2_store_is_upgraded_without_loss(tmp_path: Path) -> None:
+    path = tmp_path / "v2.sqlite"
+    # capture id: (point id, capture index, node, codes as the scope sent them)
+    captures = {
+        1: (1, 0, "primary", ringing_codes(seed=1)),
+        2: (1, 0, "secondary", ringing_codes(seed=2).astype(">i2") * 200),
+        3: (2, 0, "primary", np.linspace(-1, 1, 700, dtype=np.float32)),
+    }
+    conn = sqlite3.connect(path)
+    conn.execute("PRAGMA page_size = 4096")  # not labseq's: an upgrade keeps a file's page size
+    conn.executescript(SCHEMA_V2)
+    conn.executemany(
+        "INSERT INTO captures VALUES (?, ?, 1, ?, ?, 1, ?, 1e-9, -2e-6, 0.98, 100.0, 0.0, -128, "
+        "127, ?, '2025-03-01', ?)",
+        [
+            (capture_id, point_id, index, node, codes.dtype.name, codes.size, _le_bytes(codes))
+            for capture_id, (point_id, index, node, codes) in captures.items()
+        ],
+    )
+    conn.commit()
+    before, v2_columns = _table_rows(conn), _table_columns(conn)
+    conn.close()
+
+    with Store(path) as store:
+        assert store.db.execute("SELECT version FROM schema_info").fetchone()[0] == SCHEMA_VERSION
+        assert store.db.execute("PRAGMA page_size").fetchone()[0] == 4096
+        assert (
+            _table_rows(store.db.conn, v2_columns) == before
+        )  # every row of every table, codes included
+        codecs = store.db.execute("SELECT codec FROM captures ORDER BY id").fetchall()
+        assert [row[0] for row in codecs] == ["raw"] * 3
+        for capture in store.iter_captures(1):
+            assert np.array_equal(capture.codes, captures[capture.id][3])
+        assert store.capture_figures(1)["edges"] == [{"peak_v": 101.0}]
+        assert store.node_verdicts(1)[2] == {"secondary": ("fail", ["peak"])}
+        # new captures are compressed beside the old raw ones, and all of them read
+        new_codes = captures[1][3]
+        [new_id] = store.commit_point(2, captures=[CaptureRecord(Capture(new_codes))])
+        assert (
+            store.db.execute("SELECT codec FROM captures WHERE id = ?", [new_id]).fetchone()[0]
+            == "zstd"
+        )
+        assert np.array_equal(store.captures(2, node="primary")[-1].codes, new_codes)
+        assert store.integrity_check() == "ok"
+        assert store.db.execute("PRAGMA foreign_key_check").fetchall() == []
+        upgraded = _table_definitions(store)
+    with Store(tmp_path / "new.sqlite") as store:
+        assert _table_definitions(store) == upgraded  # a new file has the same tables
 
 
 def test_foreign_files_refused_unchanged(tmp_path: Path) -> None:
@@ -301,6 +508,7 @@ def test_file_settings(db: Path) -> None:
         new_run(store)
         assert store.db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
         assert store.db.execute("PRAGMA foreign_keys").fetchone()[0] == 1
+        assert store.db.execute("PRAGMA page_size").fetchone()[0] == PAGE_SIZE
         assert store.integrity_check() == "ok"
 
 
