@@ -42,7 +42,7 @@ from labseq import __version__
 from labseq.errors import InputError, LabseqError
 
 #: Version of the schema below; a file with a higher version is refused, a lower one upgraded.
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 #: The node a capture or figure belongs to when nothing else is said (and in version-1 files).
 PRIMARY_NODE = "primary"
 APPLICATION = "labseq"
@@ -53,7 +53,9 @@ APPLICATION = "labseq"
 #: (tests/benchmarks/bench_storage.py measures the result).
 PAGE_SIZE = 1024
 
-RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed")
+#: How a run ended; "unsafe-end": its shutdown could not confirm the bench safe (outputs not
+#: read back off, or the bus not read below the ES1 limit), whatever else ended it.
+RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed", "unsafe-end")
 POINT_STATUSES = ("pending", "done", "failed", "skipped")
 VERDICTS = ("pass", "fail", "incomplete")
 EVENT_KINDS = ("info", "scpi-error", "retry", "skip", "fault", "timing", "safety")
@@ -131,14 +133,8 @@ CREATE TABLE {{table}} (
     PRIMARY KEY (point_id, node)
 ) WITHOUT ROWID"""
 
-_SCHEMA = f"""
-CREATE TABLE schema_info (
-    version INTEGER NOT NULL,
-    application TEXT NOT NULL,
-    created_by TEXT NOT NULL,
-    created_at TEXT NOT NULL
-);
-CREATE TABLE runs (
+_RUNS_TABLE = f"""
+CREATE TABLE {{table}} (
     id INTEGER PRIMARY KEY,
     sequence_text TEXT NOT NULL,
     sequence_sha256 TEXT NOT NULL,
@@ -146,7 +142,7 @@ CREATE TABLE runs (
     dut_label TEXT NOT NULL,
     snubber_label TEXT NOT NULL,
     bench_kind TEXT NOT NULL,
-    instruments TEXT NOT NULL DEFAULT '{{}}',
+    instruments TEXT NOT NULL DEFAULT '{{{{}}}}',
     software_version TEXT NOT NULL,
     status TEXT NOT NULL CHECK (status IN ({_sql_list(RUN_STATUSES)})),
     started_at TEXT NOT NULL,
@@ -154,7 +150,16 @@ CREATE TABLE runs (
     notes TEXT NOT NULL DEFAULT '',
     pid INTEGER,
     host TEXT
+)"""
+
+_SCHEMA = f"""
+CREATE TABLE schema_info (
+    version INTEGER NOT NULL,
+    application TEXT NOT NULL,
+    created_by TEXT NOT NULL,
+    created_at TEXT NOT NULL
 );
+{_RUNS_TABLE.format(table="runs")};
 CREATE TABLE points (
     id INTEGER PRIMARY KEY,
     run_id INTEGER NOT NULL REFERENCES runs(id),
@@ -239,6 +244,20 @@ def _upgrade_to_2() -> list[str]:
         + [_NODE_VERDICTS_TABLE.format(table="node_verdicts")]
     )
 
+
+_RUN_COLUMNS = (
+    "id, sequence_text, sequence_sha256, sequence_path, dut_label, snubber_label, bench_kind, "
+    "instruments, software_version, status, started_at, finished_at, notes, pid, host"
+)
+
+
+def _upgrade_to_3() -> list[str]:
+    """Statements that bring a version-2 file to version 3: a run may end "unsafe-end"."""
+    return _rebuilt(_RUNS_TABLE, "runs", _RUN_COLUMNS)
+
+
+#: Statements that bring a file of version N to version N + 1.
+_UPGRADES = {1: _upgrade_to_2, 2: _upgrade_to_3}
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
@@ -476,8 +495,9 @@ class Store:
         conn.execute("PRAGMA foreign_keys = OFF")
         try:
             with self.db.atomic():
-                for statement in _upgrade_to_2():  # the only upgrade so far: 1 → 2
-                    conn.execute(" ".join(statement.split()))
+                for step in range(version, SCHEMA_VERSION):
+                    for statement in _UPGRADES[step]():
+                        conn.execute(" ".join(statement.split()))
                 broken = conn.execute("PRAGMA foreign_key_check").fetchall()
                 if broken:
                     raise StoreFileError(
@@ -881,6 +901,16 @@ class Store:
             {**row, "data": None if row["data"] is None else json.loads(row["data"])}
             for row in rows
         ]
+
+    def last_safety_check(self, run_id: int) -> str | None:
+        """What the latest making-safe of the run's bench confirmed (its one-line summary, as
+        the runner logged it), or None if none is recorded."""
+        rows = self.db.query(
+            "SELECT message FROM events WHERE run_id = ? AND kind = 'safety' "
+            "AND json_extract(data, '$.safe') IS NOT NULL ORDER BY id DESC LIMIT 1",
+            [run_id],
+        )
+        return next((row["message"] for row in rows), None)
 
     # ------------------------------------------------------------------- maintenance
 
