@@ -76,14 +76,13 @@ class Progress:
 
     def waiting(self, text: str | None) -> None:
         """Show what the run is waiting for (``None`` ends it), in place of the bar: as a live
-        line on a terminal, else as a printed line at most every :data:`WAIT_PRINT_INTERVAL_S`."""
-        if self.quiet:
-            return
+        line on a terminal, else (and in quiet mode, so that a long wait never looks like a
+        hang) as a printed line at most every :data:`WAIT_PRINT_INTERVAL_S`."""
         if self._bar is not None or text is None:
             self.stop()  # the bar's work is over once the run waits for something else
         if text is None:
             return
-        if self.console.is_terminal:
+        if self.console.is_terminal and not self.quiet:
             if self._status is None:
                 self._status = self.console.status(text)
                 self._status.start()

@@ -458,7 +458,12 @@ def _log_safety(store: Store, run_id: int, report: SafeReport, when: str) -> Non
     with store.transaction():
         for message in report.messages:
             store.log_event(run_id, "safety", message)
-        store.log_event(run_id, "safety", f"{when}: {report.summary()}", data={"safe": report.safe})
+        store.log_event(
+            run_id,
+            "safety",
+            f"{when}: {report.summary()}",
+            data={"safe": report.safe, "when": when},
+        )
 
 
 def _shutdown(
@@ -484,15 +489,17 @@ def _shutdown(
         if latch.count > acknowledged:
             acknowledged = latch.count
             progress.message(
-                f"{latch.last} received: labseq is making the bench safe and exits once the "
-                f"outputs read off and the bus is below {SAFE_BUS_V:g} V; that cannot be cut "
-                "short",
+                f"{latch.last} received: the shutdown goes on to its end (outputs off and read "
+                f"back, the bus watched below {SAFE_BUS_V:g} V); labseq exits after it",
                 error=True,
             )
 
     def on_bus_reading(volts: float) -> None:
         acknowledge()
-        progress.waiting(f"waiting for the bus to fall below {SAFE_BUS_V:g} V: now {volts:.1f} V")
+        if volts >= SAFE_BUS_V:
+            progress.waiting(
+                f"waiting for the bus to fall below {SAFE_BUS_V:g} V: now {volts:.1f} V"
+            )
 
     try:
         report = make_safe(

@@ -256,8 +256,10 @@ def _upgrade_to_3() -> list[str]:
     return _rebuilt(_RUNS_TABLE, "runs", _RUN_COLUMNS)
 
 
-#: Statements that bring a file of version N to version N + 1.
-_UPGRADES = {1: _upgrade_to_2, 2: _upgrade_to_3}
+def _upgrade_from(version: int) -> list[str]:
+    """Statements that bring a file of an older ``version`` to :data:`SCHEMA_VERSION`."""
+    return (_upgrade_to_2() if version < 2 else []) + _upgrade_to_3()
+
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
@@ -495,9 +497,8 @@ class Store:
         conn.execute("PRAGMA foreign_keys = OFF")
         try:
             with self.db.atomic():
-                for step in range(version, SCHEMA_VERSION):
-                    for statement in _UPGRADES[step]():
-                        conn.execute(" ".join(statement.split()))
+                for statement in _upgrade_from(version):
+                    conn.execute(" ".join(statement.split()))
                 broken = conn.execute("PRAGMA foreign_key_check").fetchall()
                 if broken:
                     raise StoreFileError(
@@ -903,14 +904,15 @@ class Store:
         ]
 
     def last_safety_check(self, run_id: int) -> str | None:
-        """What the latest making-safe of the run's bench confirmed (its one-line summary, as
-        the runner logged it), or None if none is recorded."""
+        """What the latest making-safe of the run's bench confirmed: the one-line summary the
+        runner logged (without its "end of run: " heading), or None if none is recorded."""
         rows = self.db.query(
-            "SELECT message FROM events WHERE run_id = ? AND kind = 'safety' "
-            "AND json_extract(data, '$.safe') IS NOT NULL ORDER BY id DESC LIMIT 1",
+            "SELECT message, json_extract(data, '$.when') AS heading FROM events "
+            "WHERE run_id = ? AND kind = 'safety' AND json_extract(data, '$.safe') IS NOT NULL "
+            "ORDER BY id DESC LIMIT 1",
             [run_id],
         )
-        return next((row["message"] for row in rows), None)
+        return next((row["message"].removeprefix(f"{row['heading']}: ") for row in rows), None)
 
     # ------------------------------------------------------------------- maintenance
 

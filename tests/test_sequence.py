@@ -334,9 +334,11 @@ def test_es1_gate_names_the_line_or_a_node_rating(tmp_path: Path) -> None:
         text = low_voltage(text).replace('line_kind = "dc"', 'line_kind = "ac"')
         text = replace_line("line_max", 'line_max = "40 V"')(text)
         text = replace_line("line_values", 'line_values = ["40 V"]')(text)
-        return text.replace("# line_frequency", "line_frequency").replace(
-            "# source_min_frequency", "source_min_frequency"
-        ).replace("# source_max_frequency", "source_max_frequency")
+        return (
+            text.replace("# line_frequency", "line_frequency")
+            .replace("# source_min_frequency", "source_min_frequency")
+            .replace("# source_max_frequency", "source_max_frequency")
+        )
 
     error = problems_of(edited(TEMPLATE, tmp_path, ac_line))
     assert "the line can reach 40 V AC rms (grid.line_values)" in str(error)

@@ -51,8 +51,8 @@ def command(db_path: Path, as_json: bool) -> None:
         return
     for run_id, found in unsafe.items():
         click.echo(
-            f"!! run {run_id}: the bench was NOT confirmed safe at its end — "
-            f"{found or 'see its events'}. `labseq resume {run_id}` makes it safe first."
+            f"!! run {run_id}: {found or 'bench NOT confirmed safe at its end'}. "
+            f"`labseq resume {run_id}` makes it safe first."
         )
     click.echo(f"{'id':>4}  {'started (UTC)':19}  {'status':11}  {'points':>9}  DUT / snubber")
     for run in runs:

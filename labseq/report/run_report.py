@@ -279,11 +279,10 @@ def build_run_report(store: Store, review: RunReview, out_dir: Path) -> ReportFi
     page.add(f"<h1>Run {run.id}: {esc(run.dut_label)}</h1>")
     page.add(f'<p class="sub">Snubber: {esc(run.snubber_label)} · status {esc(run.status)}</p>')
     if run.status == "unsafe-end":
-        found = review.end_safety or "No record of its shutdown."
+        found = review.end_safety or "bench NOT confirmed safe (no record of its shutdown)"
         page.add(
-            '<div class="safety" id="unsafe-end"><p><strong>The bench was NOT confirmed safe at '
-            f"the end of this run.</strong> {esc(found)}. Keep away from the DUT until the outputs "
-            "are off at the instruments and the bus is measured below 60 V with a meter.</p></div>"
+            '<div class="safety" id="unsafe-end"><p><strong>The end of this run left the bench '
+            f"unconfirmed:</strong> {esc(found)}.</p></div>"
         )
 
     page.section("verdict", "Verdict")
