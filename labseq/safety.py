@@ -64,14 +64,15 @@ class Interrupted(BaseException):
 
 
 class SignalLatch:
-    """The handler of SIGINT, SIGTERM and SIGHUP for the whole of a run (a context manager).
+    """The handler of SIGINT, SIGTERM and SIGHUP for the whole of a run: a context manager, or
+    :meth:`install`-ed for the rest of a command's process.
 
     The first signal is latched in :attr:`first`; if it arrives while :attr:`raising` is set, it
     is raised as :class:`Interrupted` — once: the handler clears :attr:`raising` before it raises.
     Every signal, first or later, is counted in :attr:`count` and does nothing else, so the code
-    after :meth:`hold` (the shutdown) runs to its end whatever arrives. The handler only assigns
-    attributes before it raises (no call in between), so a signal handled while another is
-    being handled cannot raise a second exception.
+    after :meth:`hold` (the shutdown) runs to its end whatever arrives. The handler sets its
+    state before it makes any call, so a signal handled while another is being handled (Python
+    may run the handler again at any call) cannot raise a second exception.
 
     Outside the main thread (where Python cannot set handlers, and which signals never reach)
     the latch does nothing.

@@ -148,9 +148,9 @@ def test_unsafe_end_heads_the_runs_list_and_the_report(
 def test_the_discharge_wait_is_shown_and_a_signal_during_it_is_acknowledged(
     tmp_path: Path, make_sim_bench: Callable[..., SimBench]
 ) -> None:
-    # A slower bleed (6 s) keeps the bus above 60 V for 6·ln(75/60) ≈ 1.3 s after the source
-    # goes off from 75 V: long enough to signal during the wait.
-    sim = make_sim_bench(design=replace(demo_design(tmp_path), bus_bleed_time_constant_s=6.0))
+    # A slower bleed (12 s) keeps the bus above 60 V for 12·ln(75/60) ≈ 2.7 s after the source
+    # goes off from 75 V: long enough to signal during the wait, even on a busy machine.
+    sim = make_sim_bench(design=replace(demo_design(tmp_path), bus_bleed_time_constant_s=12.0))
     process = subprocess.Popen(
         [*LABSEQ, "run", str(sweep_file(tmp_path, sim, ["75 V"])), "--db", str(tmp_path / "r")]
         + ["--yes"],
