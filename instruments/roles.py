@@ -231,8 +231,6 @@ class LineSource(_OutputRole):
         """Whether the output is on."""
         return self.read_flag("output")
 
-    output_is_on = is_on
-
     def switch_off(self) -> None:
         """Turn the output off."""
         self.set_output(False)
@@ -267,8 +265,6 @@ class ElectronicLoad(_OutputRole):
     def is_on(self) -> bool:
         """Whether the input is on."""
         return self.read_flag("input")
-
-    input_is_on = is_on
 
     def measure_power_w(self) -> float:
         """Power the load is sinking (volts × amps where the map has no power query)."""

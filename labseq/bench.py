@@ -7,6 +7,7 @@ sequence's resource strings are opened. Either way the runner sees the same four
 
 from __future__ import annotations
 
+import math
 import time
 from collections.abc import Callable
 from contextlib import suppress
@@ -24,7 +25,7 @@ from instruments import (
     SourceLimits,
     load_command_map,
 )
-from instruments.errors import InstrumentError
+from instruments.errors import InstrumentError, ReplyFormatError, ScpiError
 from instruments.roles import MappedInstrument
 from labseq.errors import InputError
 from labseq.safety import SAFE_BUS_V
@@ -244,75 +245,158 @@ def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -
     return bench
 
 
+#: How often an output is told to switch off, and read back, before it counts as refusing.
+OFF_ATTEMPTS = 3
+#: Pause between two attempts (a relay or a firmware busy with the last setting gets time).
+OFF_RETRY_PAUSE_S = 0.2
+
+#: What is known of the bus (the bulk capacitor) when :func:`make_safe` returns.
+BUS_BELOW = "below"  # read below SAFE_BUS_V
+BUS_ABOVE = "above"  # still read above it when the wait ran out
+BUS_UNKNOWN = "unknown"  # no reading could be had
+BUS_HELD = "held"  # not watched: the source is not confirmed off and may hold it up
+BUS_NOT_WATCHED = "not watched"  # simulated bench, or a start-up check: not asked for
+
+
 @dataclass(frozen=True)
 class SafeReport:
-    """What :func:`make_safe` could confirm."""
+    """What :func:`make_safe` could confirm, and nothing more."""
 
     load_off: bool
     source_off: bool
-    bus_v: float | None  # last bus reading (real bench), None when not measured
+    bus: str  # one of the BUS_* words above
+    bus_v: float | None  # the last bus reading, None when there is none
     messages: list[str]
+    bus_timeout_s: float = BUS_DISCHARGE_TIMEOUT_S
+
+    @property
+    def outputs_off(self) -> bool:
+        """Load and source both read back off."""
+        return self.load_off and self.source_off
 
     @property
     def safe(self) -> bool:
-        """Load and source confirmed off and, where measured, the bus below the safe limit."""
-        bus_ok = self.bus_v is None or self.bus_v < SAFE_BUS_V
-        return self.load_off and self.source_off and bus_ok
+        """Outputs read back off and, where the bus is watched, read below the ES1 DC limit."""
+        return self.outputs_off and self.bus in (BUS_BELOW, BUS_NOT_WATCHED)
+
+    def summary(self) -> str:
+        """One line for the user and the run's log: what was confirmed, in plain words.
+
+        A reading alone never makes a bench "safe": even a bus read below the limit is to be
+        verified with a meter before anyone touches the DUT."""
+        bus = self._bus_text()
+        if self.safe:
+            if self.bus == BUS_NOT_WATCHED:
+                return "outputs off (load and source read back off); no bus watched"
+            return (
+                f"outputs off (load and source read back off); {bus} — verify with a meter "
+                "before touching"
+            )
+        parts = [
+            "load off" if self.load_off else "load NOT confirmed off",
+            "source off" if self.source_off else "source NOT confirmed off",
+        ] + ([bus] if bus else [])
+        return (
+            f"bench NOT confirmed safe: {'; '.join(parts)} — keep away from the DUT, switch the "
+            "outputs off at the instruments and measure the bus with a meter"
+        )
+
+    def _bus_text(self) -> str:
+        """What is known of the bus, in words ("" when it was not to be watched)."""
+        if self.bus == BUS_BELOW:
+            return f"bus {self.bus_v:.1f} V, below {SAFE_BUS_V:g} V (ES1)"
+        if self.bus == BUS_ABOVE:
+            return f"bus still {self.bus_v:.1f} V after {self.bus_timeout_s:g} s"
+        if self.bus == BUS_UNKNOWN:
+            return "bus unknown (the scope gave no reading)"
+        if self.bus == BUS_HELD:
+            return "bus not watched: the source is not confirmed off and may hold it up"
+        return ""
 
 
-def _switch_off(bench: Bench, role: str, log: Callable[[str], None]) -> bool:
-    """Switch ``role`` off and read back that it is off; on a dead session reopen once."""
-    for attempt in (1, 2):
+def _switch_off(bench: Bench, role: str, messages: list[str], fresh: bool) -> bool:
+    """Switch ``role`` off and read back that it is off, up to :data:`OFF_ATTEMPTS` times; a
+    session that failed otherwise than by a SCPI error (a timeout, a drop, a garbled reply) is
+    opened afresh before the next attempt, and so is the first with ``fresh``."""
+    reopen = fresh
+    for attempt in range(1, OFF_ATTEMPTS + 1):
         try:
-            driver = bench.drivers[role]
+            driver = bench.reopen(role) if reopen else bench.drivers[role]
+            reopen = False
             driver.switch_off()  # type: ignore[attr-defined]
-            is_on = driver.output_is_on() if role == "source" else driver.input_is_on()  # type: ignore[attr-defined]
-            if not is_on:
+            if not driver.is_on():  # type: ignore[attr-defined]
                 return True
-            log(f"{role} still reports on after the off command")
+            messages.append(f"{role} still reads on after the off command (attempt {attempt})")
         except InstrumentError as error:
-            log(f"{role}: could not switch off (attempt {attempt}): {error}")
-            if attempt == 1:
-                try:
-                    bench.reopen(role)
-                except InstrumentError as reopen_error:
-                    log(f"{role}: could not reconnect: {reopen_error}")
-                    return False
+            messages.append(f"{role}: could not switch off (attempt {attempt}): {error}")
+            reopen = not isinstance(error, ScpiError)
+        if attempt < OFF_ATTEMPTS:
+            time.sleep(OFF_RETRY_PAUSE_S)
     return False
+
+
+def _watch_bus(
+    bench: Bench,
+    messages: list[str],
+    fresh: bool,
+    on_reading: Callable[[float], None] | None,
+    timeout_s: float,
+    poll_s: float,
+) -> tuple[str, float | None]:
+    """Read the bus (the primary switch node's mean with the converter stopped) until it is
+    below the ES1 DC limit or ``timeout_s`` has passed; a failed reading is tried once more on a
+    fresh session."""
+    channel = bench.sequence.scope.channel
+    deadline = time.monotonic() + timeout_s
+    reopen, failures = fresh, 0
+    while True:
+        try:
+            scope = bench.reopen("scope") if reopen else bench.scope
+            reopen = False
+            bus_v = scope.measure_mean_v(channel)
+            if not math.isfinite(bus_v):
+                raise ReplyFormatError(f"{scope.label}: bus reading {bus_v!r} is not finite")
+        except InstrumentError as error:
+            messages.append(f"cannot read the bus voltage: {error}")
+            failures += 1
+            if failures == 2:
+                return BUS_UNKNOWN, None
+            reopen = True
+            continue
+        if on_reading is not None:
+            on_reading(bus_v)
+        if bus_v < SAFE_BUS_V:
+            return BUS_BELOW, bus_v
+        if time.monotonic() > deadline:
+            messages.append(f"bus still at {bus_v:.1f} V after {timeout_s:g} s")
+            return BUS_ABOVE, bus_v
+        time.sleep(poll_s)
 
 
 def make_safe(
     bench: Bench,
-    log: Callable[[str], None],
     *,
-    wait_for_bus: bool,
+    watch_bus: bool,
+    fresh_sessions: bool = False,
+    on_bus_reading: Callable[[float], None] | None = None,
     timeout_s: float = BUS_DISCHARGE_TIMEOUT_S,
     poll_s: float = 0.5,
 ) -> SafeReport:
-    """Load off, then source off, each read back; then, on a real bench, watch the bus (the
-    switch node's mean voltage with the converter stopped) fall below the ES1 DC limit."""
+    """Load off, then source off, each read back; then, with ``watch_bus``, watch the bus fall
+    below the ES1 DC limit — but only once the source reads off: a source still on holds the
+    bus up, and waiting for it would only delay the warning.
+
+    ``fresh_sessions`` opens each session afresh just before it is used (after a signal or an
+    error may have cut a reply in half, no stale reply can then be read as the answer to an off
+    command). Nothing is written anywhere meanwhile: the report's messages are the caller's to
+    log once the outputs are off. ``on_bus_reading`` sees every bus reading (for a live display).
+    """
     messages: list[str] = []
-
-    def note(message: str) -> None:
-        messages.append(message)
-        log(message)
-
-    load_off = _switch_off(bench, "load", note)
-    source_off = _switch_off(bench, "source", note)
-    bus_v = None
-    if wait_for_bus:
-        deadline = time.monotonic() + timeout_s
-        channel = bench.sequence.scope.channel
-        while True:
-            try:
-                bus_v = bench.scope.measure_mean_v(channel)
-            except InstrumentError as error:
-                note(f"cannot read the bus voltage: {error}")
-                bus_v = float("inf")
-                break
-            if bus_v < SAFE_BUS_V or time.monotonic() > deadline:
-                break
-            time.sleep(poll_s)
-        if bus_v >= SAFE_BUS_V:
-            note(f"bus still at {bus_v:.1f} V after {timeout_s:.0f} s: NOT confirmed safe")
-    return SafeReport(load_off, source_off, bus_v, messages)
+    load_off = _switch_off(bench, "load", messages, fresh_sessions)
+    source_off = _switch_off(bench, "source", messages, fresh_sessions)
+    bus, bus_v = BUS_NOT_WATCHED, None
+    if watch_bus and not source_off:
+        bus = BUS_HELD
+    elif watch_bus:
+        bus, bus_v = _watch_bus(bench, messages, fresh_sessions, on_bus_reading, timeout_s, poll_s)
+    return SafeReport(load_off, source_off, bus, bus_v, messages, timeout_s)

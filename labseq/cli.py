@@ -7,6 +7,7 @@ are printed as one line; set ``LABSEQ_DEBUG=1`` to see the traceback of an unexp
 
 from __future__ import annotations
 
+import contextlib
 import importlib
 import os
 import sys
@@ -15,6 +16,7 @@ import click
 
 from labseq import __version__
 from labseq.errors import LabseqError
+from labseq.safety import Interrupted
 
 #: Modules under ``labseq.commands`` that each add one command to the group.
 COMMAND_MODULES: tuple[str, ...] = (
@@ -44,7 +46,37 @@ for _name in COMMAND_MODULES:
 
 
 def main(argv: list[str] | None = None) -> None:
-    """Console entry point: run the group and turn known errors into a message and exit code."""
+    """Console entry point: run the group and turn known errors into a message and exit code.
+
+    Called with ``argv`` (in-process, as the tests do) it raises SystemExit like any click
+    program. As the process's own command line it ends the process itself, see
+    :func:`end_process`."""
+    if argv is not None:
+        _run(argv)
+        return
+    try:
+        _run(None)
+        code = 0
+    except SystemExit as exc:
+        code = exc.code if isinstance(exc.code, int) else int(exc.code is not None)
+    end_process(code)
+
+
+def end_process(code: int) -> None:
+    """Flush stdout and stderr and end the process with ``code``, without Python's teardown.
+
+    While Python tears itself down it puts the default signal handlers back, and threads it
+    did not start (a BLAS library's workers) take any signal then: a SIGTERM would end the
+    process with no exit status of ours. A run ended by SIGTERM must exit 143 even when a
+    second signal reaches it as it ends; every file and session is closed by then."""
+    for stream in (sys.stdout, sys.stderr):
+        with contextlib.suppress(OSError, ValueError):
+            stream.flush()
+    os._exit(code)
+
+
+def _run(argv: list[str] | None) -> None:
+    """Run the group; known errors become a message and an exit status (SystemExit)."""
     from instruments.errors import InstrumentError
 
     try:
@@ -64,6 +96,9 @@ def main(argv: list[str] | None = None) -> None:
     except KeyboardInterrupt:
         click.echo("labseq: interrupted", err=True)
         sys.exit(130)
+    except Interrupted as exc:  # a signal before a run's bench was opened: nothing switched on
+        click.echo(f"labseq: {exc}", err=True)
+        sys.exit(exc.exit_code)
     except Exception as exc:  # last resort: no traceback reaches a user
         if os.environ.get("LABSEQ_DEBUG"):
             raise

@@ -3,6 +3,8 @@ nothing at all in quiet mode (errors still reach stderr)."""
 
 from __future__ import annotations
 
+import time
+
 from rich.console import Console
 from rich.progress import (
     BarColumn,
@@ -12,8 +14,12 @@ from rich.progress import (
     TimeRemainingColumn,
 )
 from rich.progress import Progress as RichProgress
+from rich.status import Status
 
 from labseq.units import format_si
+
+#: Where no live line can be drawn (stderr is not a terminal), a wait is printed this often.
+WAIT_PRINT_INTERVAL_S = 10.0
 
 
 class Progress:
@@ -24,6 +30,8 @@ class Progress:
         self.console = console or Console(stderr=True)
         self._bar: RichProgress | None = None
         self._task = None
+        self._status: Status | None = None
+        self._last_wait_print: float | None = None
 
     def start(self, total: int, done: int = 0) -> None:
         """Show the bar for ``total`` points of which ``done`` are already done."""
@@ -61,13 +69,37 @@ class Progress:
         if self._bar is not None:
             self._bar.advance(self._task)
 
-    def message(self, text: str, *, error: bool = False) -> None:
-        """A line for the user; errors are shown even in quiet mode."""
-        if error or not self.quiet:
+    def message(self, text: str, *, error: bool = False, always: bool = False) -> None:
+        """A line for the user; errors (and ``always`` lines) are shown even in quiet mode."""
+        if error or always or not self.quiet:
             self.console.print(text, style="bold red" if error else None, markup=False)
 
+    def waiting(self, text: str | None) -> None:
+        """Show what the run is waiting for (``None`` ends it), in place of the bar: as a live
+        line on a terminal, else (and in quiet mode, so that a long wait never looks like a
+        hang) as a printed line at most every :data:`WAIT_PRINT_INTERVAL_S`."""
+        if self._bar is not None or text is None:
+            self.stop()  # the bar's work is over once the run waits for something else
+        if text is None:
+            return
+        if self.console.is_terminal and not self.quiet:
+            if self._status is None:
+                self._status = self.console.status(text)
+                self._status.start()
+            else:
+                self._status.update(text)
+            return
+        now = time.monotonic()
+        if self._last_wait_print is None or now - self._last_wait_print >= WAIT_PRINT_INTERVAL_S:
+            self._last_wait_print = now
+            self.console.print(text, markup=False)
+
     def stop(self) -> None:
-        """Remove the live display (the last state stays on screen)."""
+        """Remove the live displays (the last state stays on screen)."""
         if self._bar is not None:
             self._bar.stop()
             self._bar = None
+        if self._status is not None:
+            self._status.stop()
+            self._status = None
+        self._last_wait_print = None

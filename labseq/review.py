@@ -236,6 +236,8 @@ class RunReview:
     load_values_a: tuple[float, ...]
     node_names: tuple[str, ...] = (PRIMARY_NODE,)  # every node of the run, the primary first
     node_name: str = PRIMARY_NODE  # the node whose figures ``points`` and ``worst`` hold
+    #: What the shutdown confirmed when it could not confirm the bench safe (unsafe-end runs).
+    end_safety: str | None = None
 
     @property
     def rated_load_a(self) -> float | None:
@@ -411,6 +413,7 @@ def review_run(store: Store, run_id: int) -> RunReview:
         load_values_a=tuple(sorted({p.point.load_a for p in points})),
         node_names=node_names,
         node_name=node_names[0],
+        end_safety=store.last_safety_check(run_id) if run.status == "unsafe-end" else None,
     )
 
 
@@ -481,6 +484,7 @@ def run_summary(review: RunReview) -> dict[str, Any]:
     return {
         "run": review.run.id,
         "status": review.run.status,
+        "end_safety": review.end_safety,
         "verdict": review.verdict,
         "verdict_counts": review.verdict_counts,
         "dut": review.run.dut_label,

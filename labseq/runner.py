@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import socket
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass, field
@@ -32,25 +32,22 @@ from labseq.bench import Bench, SafeReport, lock_names, make_safe, open_bench
 from labseq.errors import LabseqError
 from labseq.locks import run_locks
 from labseq.progress import Progress
-from labseq.safety import (
-    CAUTIONS,
-    Interrupted,
-    exceeds_es1,
-    signals_ignored,
-    signals_raise_interrupted,
-)
+from labseq.safety import SAFE_BUS_V, Interrupted, SignalLatch, signal_exit_code
 from labseq.sequence import NodeSpec, Sequence, parse_sequence
 from labseq.store import (
     CAPTURE_FIGURES,
     CaptureRecord,
     PointReadings,
     PointRecord,
+    RunRecord,
     Store,
     StoredCapture,
 )
 
 #: How often the scope is asked whether its single acquisition is in.
 ACQUISITION_POLL_S = 0.005
+#: Exit status of a run whose end could not be confirmed safe (it overrides every other one).
+UNSAFE_END_EXIT = 3
 
 
 class PointAbort(LabseqError):
@@ -58,7 +55,7 @@ class PointAbort(LabseqError):
 
 
 class RunStateError(LabseqError):
-    """The run cannot be resumed (finished, or still running in another process)."""
+    """The run cannot be resumed: it is still running in another process."""
 
     exit_code = 2
 
@@ -87,18 +84,23 @@ class RunOutcome:
     """How a run ended."""
 
     run_id: int
-    status: str  # finished | aborted | interrupted | failed
+    status: str  # finished | aborted | interrupted | failed | unsafe-end
     points_done: int
     points_total: int
     safe: SafeReport | None
     timings: Timings
     wall_s: float
+    signal_name: str | None = None  # the signal that ended the run, if one did
 
     @property
     def exit_code(self) -> int:
-        """0 when every point is done, 130 after a signal, else 1."""
+        """:data:`UNSAFE_END_EXIT` when the bench could not be confirmed safe; after a signal,
+        128 + its number (130 SIGINT, 143 SIGTERM, 129 SIGHUP); 0 when every point is done;
+        else 1."""
+        if self.status == "unsafe-end":
+            return UNSAFE_END_EXIT
         if self.status == "interrupted":
-            return 130
+            return signal_exit_code(self.signal_name or "SIGINT")
         return 0 if self.status == "finished" and self.points_done == self.points_total else 1
 
 
@@ -366,12 +368,12 @@ class Sweep:
             self.finish_figures(wait=False)
             self.log("timing", f"point {index}/{total}: {time.time() - started:.2f} s", point.id)
 
-    def finish_figures(self, *, wait: bool) -> None:
-        """Store the figures of finished analyses (of all, with ``wait``), then judge each done
-        point none of whose captures is still being analysed."""
+    def finish_figures(self, *, wait: bool, stop: Callable[[], bool] = lambda: False) -> None:
+        """Store the figures of finished analyses (of all, with ``wait``, until ``stop`` says
+        so), then judge each done point none of whose captures is still being analysed."""
         still_running = []
         for point_id, capture_id, future in self.pending_figures:
-            if not wait and not future.done():
+            if not future.done() and (not wait or stop()):
                 still_running.append((point_id, capture_id, future))
                 continue
             with self.timings.charge("analysis-wait"):
@@ -396,7 +398,8 @@ class Sweep:
         points = [p for p in self.store.points(self.run_id) if p.status != "done"]
         total = len(self.store.points(self.run_id))
         self.progress.start(total, done=total - len(points))
-        self.prepare()
+        if points:
+            self.prepare()
         for point in points:
             index = point.point_index + 1
             try:
@@ -404,8 +407,6 @@ class Sweep:
             except InstrumentError as error:
                 self.point_failed(point, error)
             self.progress.advance()
-        with self.store.transaction():
-            self.finish_figures(wait=True)
 
     def point_failed(self, point: PointRecord, error: InstrumentError) -> None:
         """Log the error; abort, or mark the point failed, recover the bench and go on."""
@@ -435,102 +436,221 @@ class Sweep:
         except InstrumentError as error:
             self.log("retry", f"could not stop the scope: {error}")
 
-    def close(self) -> None:
-        self.analysis.shutdown(wait=True)
+    def finish(self, stop: Callable[[], bool]) -> None:
+        """After the shutdown: store the figures still being analysed and judge their points,
+        until ``stop`` says a signal asked to end; what is left then is analysed by
+        ``labseq resume``, from the stored captures."""
+        try:
+            with self.store.transaction():
+                self.finish_figures(wait=True, stop=stop)
+        finally:
+            self.analysis.shutdown(wait=True, cancel_futures=True)
+
+
+class BenchNotSafe(LabseqError):
+    """The bench could not be confirmed safe before the sweep: nothing is switched on."""
+
+
+def _log_safety(store: Store, run_id: int, report: SafeReport, when: str) -> None:
+    """Record what making the bench safe found, once the outputs are off (a store write could
+    block; it never comes before an off command)."""
+    with store.transaction():
+        for message in report.messages:
+            store.log_event(run_id, "safety", message)
+        store.log_event(
+            run_id,
+            "safety",
+            f"{when}: {report.summary()}",
+            data={"safe": report.safe, "when": when},
+        )
 
 
 def _shutdown(
-    bench: Bench, store: Store, run_id: int, progress: Progress, *, clean: bool
+    bench: Bench,
+    store: Store,
+    run_id: int,
+    progress: Progress,
+    latch: SignalLatch,
+    *,
+    clean: bool,
 ) -> SafeReport:
-    """Make the bench safe and record how it went; signals are ignored meanwhile.
+    """Make the bench safe and record how it went: the first thing after the sweep, before
+    anything that can block. Signals are held meanwhile: latched and acknowledged, never raised.
 
-    After an unclean ending (a signal or an error may have cut a reply in half) every session is
-    opened afresh first, so no stale reply can be read as the answer to an off command."""
-    with signals_ignored():
-        if not clean:
-            for role in list(bench.drivers):
-                try:
-                    bench.reopen(role)
-                except InstrumentError as error:
-                    store.log_event(run_id, "safety", f"could not reconnect {role}: {error}")
+    After an unclean ending (a signal or an error may have cut a reply in half) each session is
+    opened afresh before it is used, so no stale reply can be read as the answer to an off
+    command. Nothing is written to the store or the terminal before the off commands; the
+    discharge wait is shown with the live bus reading."""
+    acknowledged = latch.count
+
+    def acknowledge() -> None:
+        nonlocal acknowledged
+        if latch.count > acknowledged:
+            acknowledged = latch.count
+            progress.message(
+                f"{latch.last} received: the shutdown goes on to its end (outputs off and read "
+                f"back, the bus watched below {SAFE_BUS_V:g} V); labseq exits after it",
+                error=True,
+            )
+
+    def on_bus_reading(volts: float) -> None:
+        acknowledge()
+        if volts >= SAFE_BUS_V:
+            progress.waiting(
+                f"waiting for the bus to fall below {SAFE_BUS_V:g} V: now {volts:.1f} V"
+            )
+
+    try:
         report = make_safe(
             bench,
-            lambda message: store.log_event(run_id, "safety", message),
-            wait_for_bus=not bench.simulated,
+            watch_bus=not bench.simulated,
+            fresh_sessions=not clean,
+            on_bus_reading=on_bus_reading,
         )
-        state = "safe" if report.safe else "NOT CONFIRMED SAFE"
-        bus = "" if report.bus_v is None else f", bus {report.bus_v:.1f} V"
-        summary = (
-            f"bench {state}: load {'off' if report.load_off else 'NOT confirmed off'}, "
-            f"source {'off' if report.source_off else 'NOT confirmed off'}{bus}"
-        )
-        store.log_event(run_id, "safety", summary)
-        progress.message(summary, error=not report.safe)
+        acknowledge()
+        _log_safety(store, run_id, report, "end of run")
+    finally:
         bench.close()
+    progress.stop()
+    progress.message(report.summary(), error=not report.safe, always=True)
     return report
 
 
+def _ending(failure: BaseException | None, report: SafeReport | None, signalled: bool) -> str:
+    """The run's status from what ended it and what the shutdown confirmed: a bench not
+    confirmed safe outweighs everything; a signal, even one that came during the shutdown,
+    makes the run interrupted (``labseq resume`` then does what it skipped)."""
+    if report is not None and not report.safe:
+        return "unsafe-end"
+    if signalled or isinstance(failure, Interrupted):
+        return "interrupted"
+    if isinstance(failure, PointAbort):
+        return "aborted"
+    return "finished" if failure is None else "failed"
+
+
+def _start_safe(bench: Bench, store: Store, run_id: int, progress: Progress) -> None:
+    """Put the freshly opened bench safe first (a run killed earlier may have left the outputs
+    on), then record its instruments; :class:`BenchNotSafe` if the outputs do not read off."""
+    report = make_safe(bench, watch_bus=False)
+    _log_safety(store, run_id, report, "before the sweep")
+    if not report.outputs_off:
+        raise BenchNotSafe(
+            f"the bench could not be confirmed safe before the sweep ({report.summary()}); "
+            "nothing was switched on"
+        )
+    identities = bench.identities()
+    store.set_run_instruments(run_id, identities)
+    for role, identity in identities.items():
+        progress.message(
+            f"{role:>6}: {identity['manufacturer']} {identity['model']} "
+            f"(serial {identity['serial']}) at {identity['resource']}"
+        )
+
+
 def execute(
-    sequence: Sequence, store: Store, run_id: int, *, progress: Progress, sim_faults: str = ""
+    sequence: Sequence,
+    store: Store,
+    run_id: int,
+    *,
+    progress: Progress,
+    sim_faults: str = "",
+    latch: SignalLatch | None = None,
 ) -> RunOutcome:
     """Sweep the run's missing points on the sequence's bench and leave the bench safe.
 
+    One :class:`SignalLatch` covers the whole run (``latch``, installed by the caller for a
+    command's whole life, or one of its own): a signal during the sweep raises
+    :class:`Interrupted` once; from the end of the sweep on, signals are only latched, so the
+    shutdown runs to its end. The shutdown comes first after the sweep; analyses still running
+    are waited for only after it (and not at all after a signal: ``labseq resume`` does them).
+
     Raises what made the run fail (after making the bench safe and recording it); a point
-    abort or a signal is an outcome, not an error.
+    abort, a signal or a shutdown that cannot confirm the bench safe is an outcome, not an
+    error.
     """
+    if latch is None:
+        with SignalLatch() as own:
+            return execute(
+                sequence, store, run_id, progress=progress, sim_faults=sim_faults, latch=own
+            )
     timings = Timings()
     start = time.perf_counter()
-    status = "failed"
     report: SafeReport | None = None
-    error: BaseException | None = None
+    failure: BaseException | None = None
     bench = sweep = None
     try:
-        with signals_raise_interrupted():
-            with timings.charge("instrument"):
-                bench = open_bench(sequence, sim_faults=sim_faults)
-                identities = bench.identities()
-                store.set_run_instruments(run_id, identities)
-                for role, identity in identities.items():
-                    progress.message(
-                        f"{role:>6}: {identity['manufacturer']} {identity['model']} "
-                        f"(serial {identity['serial']}) at {identity['resource']}"
-                    )
-                if not bench.simulated and any(
-                    exceeds_es1(v, sequence.grid.line_is_ac) for v in sequence.grid.line_values_v
-                ):
-                    progress.message(CAUTIONS, error=True)
-                # A run killed earlier may have left the outputs on: start from a safe bench.
-                make_safe(bench, lambda m: store.log_event(run_id, "safety", m), wait_for_bus=False)
-            sweep = Sweep(sequence, store, run_id, bench, progress, timings)
-            sweep.run()
-            status = "finished"
-    except Interrupted as signal_error:
-        status = "interrupted"
-        store.log_event(run_id, "safety", f"run {signal_error}")
-    except PointAbort as abort:
-        status, error = "aborted", abort
-    except BaseException as failure:  # noqa: BLE001 - recorded, the bench made safe, re-raised
-        status, error = "failed", failure
-        store.log_event(run_id, "fault", f"run failed: {type(failure).__name__}: {failure}")
-    finally:
-        if sweep is not None:
-            sweep.close()
-        if bench is not None:
-            with timings.charge("instrument"):
-                report = _shutdown(bench, store, run_id, progress, clean=status == "finished")
-        store.set_run_status(run_id, status)
-        progress.stop()
+        with timings.charge("instrument"):
+            bench = open_bench(sequence, sim_faults=sim_faults)
+            _start_safe(bench, store, run_id, progress)
+        sweep = Sweep(sequence, store, run_id, bench, progress, timings)
+        sweep.run()
+        latch.hold()
+    except BaseException as caught:  # noqa: BLE001 - every ending is recorded below
+        failure = caught
+    try:
+        latch.hold()
+    except Interrupted as late:  # the first signal came as the sweep ended
+        failure = failure or late
+    if isinstance(failure, Interrupted) and bench is None and not sequence.bench.is_sim:
+        bench = _reopen_quietly(sequence, store, run_id)
+    if bench is not None:
+        with timings.charge("instrument"):
+            report = _shutdown(bench, store, run_id, progress, latch, clean=failure is None)
+    if sweep is not None:
+        try:
+            sweep.finish(stop=lambda: latch.first is not None)
+        except Exception as error:  # noqa: BLE001 - the bench is safe; recorded below
+            failure = failure or error
+    progress.stop()
+    status = _ending(failure, report, latch.first is not None)
+    _record_ending(store, run_id, status, failure, latch)
+    if latch.first is not None:
+        progress.message(f"run interrupted by {latch.first}", error=True)
     if status == "failed":
-        raise error  # type: ignore[misc]
-    if error is not None:
-        progress.message(str(error), error=True)
+        raise failure  # type: ignore[misc]
+    if failure is not None and not isinstance(failure, Interrupted):
+        progress.message(str(failure), error=True)
     wall_s = time.perf_counter() - start
     timings.add("total", wall_s)
     store.log_event(run_id, "timing", "run timings", data=timings.seconds)
     record = store.run(run_id)
     return RunOutcome(
-        run_id, status, record.points_done, record.points_total, report, timings, wall_s
+        run_id,
+        status,
+        record.points_done,
+        record.points_total,
+        report,
+        timings,
+        wall_s,
+        signal_name=latch.first,
     )
+
+
+def _reopen_quietly(sequence: Sequence, store: Store, run_id: int) -> Bench | None:
+    """After a signal while the bench was being opened: open it once more (signals are held
+    now) so that the shutdown can put it safe; None if it cannot be opened."""
+    try:
+        return open_bench(sequence)
+    except Exception as error:  # noqa: BLE001 - reported; nothing of ours was switched on
+        store.log_event(run_id, "safety", f"could not open the bench to make it safe: {error}")
+        return None
+
+
+def _record_ending(
+    store: Store, run_id: int, status: str, failure: BaseException | None, latch: SignalLatch
+) -> None:
+    """Log why the run ended and store its status."""
+    if latch.first is not None:
+        store.log_event(run_id, "safety", f"run interrupted by {latch.first}")
+    if failure is not None and not isinstance(failure, Interrupted):
+        kind = "fault" if not isinstance(failure, PointAbort) else "info"
+        store.log_event(run_id, kind, f"run {status}: {type(failure).__name__}: {failure}")
+    if latch.count > 1:
+        store.log_event(
+            run_id, "safety", f"{latch.count} signals in all; the shutdown ran to its end"
+        )
+    store.set_run_status(run_id, status)
 
 
 def start_run(sequence: Sequence, store: Store, *, label: str = "") -> int:
@@ -587,10 +707,11 @@ TAKE_OVER_RISK = (
 )
 
 
-def claim_for_resume(store: Store, run_id: int, *, take_over: bool = False) -> None:
-    """Make this process the owner of a run that may be resumed: not complete, and not still
+def check_resumable(store: Store, run_id: int, *, take_over: bool = False) -> RunRecord:
+    """The run to resume, in whatever state it ended — even a complete run is resumed: its
+    bench is made safe, its missing figures and verdicts filled in. Refused only for a run still
     running in another live process (a run whose process died is marked interrupted first; a
-    process is the same one only if its id and its start time match). ``take_over`` claims a
+    process is the same one only if its id and its start time match). ``take_over`` accepts a
     run recorded as running all the same, for a process on another host that is known gone."""
     store.mark_abandoned_runs()
     record = store.run(run_id)
@@ -608,6 +729,12 @@ def claim_for_resume(store: Store, run_id: int, *, take_over: bool = False) -> N
                 f"(risk: {TAKE_OVER_RISK})"
             )
         store.log_event(run_id, "safety", f"run taken over from {owner} (--take-over)")
-    if record.points_done == record.points_total:
-        raise RunStateError(f"run {run_id} is complete: all {record.points_total} points are done")
+    return record
+
+
+def claim_for_resume(store: Store, run_id: int, *, take_over: bool = False) -> RunRecord:
+    """:func:`check_resumable`, then make this process the run's owner; returns the run as it
+    was before the claim."""
+    record = check_resumable(store, run_id, take_over=take_over)
     store.claim_run(run_id)
+    return record

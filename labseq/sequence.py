@@ -26,11 +26,20 @@ from typing import Any, NamedTuple
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
 from instruments.tomlkeys import find_key_line
 from labseq.errors import InputError
+from labseq.safety import ES1_AC_RMS_V, ES1_DC_V
 from labseq.units import UnitError, format_si, parse_quantity
 
-#: ES1 limits of IEC 62368-1 (from memory): above these a real bench needs the acknowledgement.
-ES1_DC_LIMIT_V = 60.0
-ES1_AC_RMS_LIMIT_V = 30.0
+#: Bounds that keep every value ``check`` accepts runnable to its end (common practice, no
+#: published source): a value beyond them is a typing slip, never a plan, and would otherwise
+#: fail mid-run with the outputs on (a ramp of 10^13 steps filling the memory, a settle of 30
+#: years, a reply timeout the VISA layer refuses).
+MAX_RAMP_STEPS = 1000  # source steps from the lowest to the highest line value
+MAX_REPLY_TIMEOUT_S = 600.0  # bench.timeout: one instrument reply
+MIN_REPLY_TIMEOUT_S = 1e-3
+MAX_ACQUISITION_TIMEOUT_S = 3600.0
+MAX_SETTLE_S = 3600.0  # grid.settle: wait at each point
+MAX_DWELL_S = 600.0  # bench.limits.line_step_dwell: wait on each ramp step
+MAX_CAPTURES_PER_POINT = 1000
 
 #: Switch voltage derating used when the file gives none (from memory of common power-supply
 #: derating guidelines).
@@ -314,6 +323,10 @@ class Sequence:
         """The node called ``name``, or None."""
         return next((node for node in self.nodes if node.name == name), None)
 
+    def above_es1(self) -> ExposedVoltage | None:
+        """The exposed voltage furthest above its ES1 limit (see :func:`above_es1`), or None."""
+        return above_es1(self.dut, self.grid, self.nodes)
+
     def points(self) -> list[GridPoint]:
         """The grid in run order: lines ascending, and loads ascending within each line, so the
         source changes as seldom as possible and the load changes inside a line value."""
@@ -422,12 +435,16 @@ class _Table:
         default: Any = _MISSING,
         minimum: float | None = 0.0,
         allow_equal: bool = False,
+        maximum: float | None = None,
     ) -> float | None:
-        """A quantity in ``unit``, SI float; must be above ``minimum`` (or equal when allowed)."""
+        """A quantity in ``unit``, SI float; must be above ``minimum`` (or equal when allowed)
+        and, when given, at most ``maximum``."""
         value = self.raw(name, default is _MISSING, f"a quantity in {unit}, e.g. {_example(unit)}")
         if value is _MISSING:
             return None if default is _MISSING else default
-        return self._convert(name, value, lambda v, k: _quantity(v, unit, k, minimum, allow_equal))
+        return self._convert(
+            name, value, lambda v, k: _quantity(v, unit, k, minimum, allow_equal, maximum)
+        )
 
     def fraction(self, name: str, *, default: Any = _MISSING, allow_zero: bool = False) -> Any:
         """A fraction written as a number (0.05) or a percentage ('5 %'); 0 < f ≤ 1."""
@@ -436,12 +453,15 @@ class _Table:
             return None if default is _MISSING else default
         return self._convert(name, value, lambda v, k: _fraction(v, k, allow_zero))
 
-    def integer(self, name: str, *, default: Any = _MISSING, minimum: int = 1) -> Any:
-        """A whole number ≥ ``minimum`` (engineering notation such as '20k' accepted)."""
+    def integer(
+        self, name: str, *, default: Any = _MISSING, minimum: int = 1, maximum: int | None = None
+    ) -> Any:
+        """A whole number ≥ ``minimum`` and ≤ ``maximum`` when given (engineering notation such
+        as '20k' accepted)."""
         value = self.raw(name, default is _MISSING, f"a whole number ≥ {minimum}, e.g. 20000")
         if value is _MISSING:
             return None if default is _MISSING else default
-        return self._convert(name, value, lambda v, k: _integer(v, k, minimum))
+        return self._convert(name, value, lambda v, k: _integer(v, k, minimum, maximum))
 
     def text(self, name: str, *, default: Any = _MISSING, choices: Iterable[str] = ()) -> Any:
         """A string, optionally one of ``choices``."""
@@ -491,15 +511,34 @@ def _or_list(choices: Iterable[str]) -> str:
     return " or ".join(f'"{c}"' for c in choices)
 
 
-def _quantity(value: Any, unit: str, key: str, minimum: float | None, allow_equal: bool) -> float:
+def _quantity(
+    value: Any,
+    unit: str,
+    key: str,
+    minimum: float | None,
+    allow_equal: bool,
+    maximum: float | None = None,
+) -> float:
     result = parse_quantity(value, unit, what=key)
+    if unit == "s" and result != 0 and not _names_unit(value, unit):
+        raise ValueError(
+            f"{value!r} has no unit; a duration needs one, e.g. '5 s' or '5000 ms' (a bare "
+            "number could be meant in either)"
+        )
     if minimum is not None and (result < minimum or (result == minimum and not allow_equal)):
         relation = "≥" if allow_equal else ">"
         raise ValueError(
             f"{format_si(result, unit)} is out of range; must be {relation} "
             f"{format_si(minimum, unit)}, e.g. {_example(unit)}"
         )
+    if maximum is not None and result > maximum:
+        raise ValueError(f"{value!r} is out of range; must be ≤ {format_si(maximum, unit)}")
     return result
+
+
+def _names_unit(value: Any, unit: str) -> bool:
+    """Whether ``value`` is text that ends in ``unit`` (after any SI prefix): ``"50 ms"``."""
+    return isinstance(value, str) and value.strip().endswith(unit)
 
 
 def _fraction(value: Any, key: str, allow_zero: bool) -> float:
@@ -516,10 +555,12 @@ def _fraction(value: Any, key: str, allow_zero: bool) -> float:
     return result
 
 
-def _integer(value: Any, key: str, minimum: int) -> int:
+def _integer(value: Any, key: str, minimum: int, maximum: int | None = None) -> int:
     number = parse_quantity(value, "", what=key)
     if number != int(number) or number < minimum:
         raise ValueError(f"{value!r} is not a whole number ≥ {minimum}")
+    if maximum is not None and number > maximum:
+        raise ValueError(f"{value!r} is out of range; must be ≤ {maximum}")
     return int(number)
 
 
@@ -573,7 +614,9 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
     scope_map = table.text("scope_map", default=None)
     maps_table = table.table("maps", required=False)
     visa_library = table.text("visa_library", default="@py" if kind == "sim" else "")
-    timeout_s = table.quantity("timeout", "s", default=5.0)
+    timeout_s = table.quantity(
+        "timeout", "s", default=5.0, minimum=MIN_REPLY_TIMEOUT_S, maximum=MAX_REPLY_TIMEOUT_S
+    )
     resources_table = table.table("resources", required=kind == "visa")
     connections = _read_connections(top.out, table.table("connections", required=False))
     sim_dialect = table.text("sim_dialect", default="generic", choices=SIM_DIALECTS)
@@ -765,7 +808,9 @@ def _read_bench_limits(table: _Table | None) -> BenchLimits | None:
         "source_max_current_a": table.quantity("source_max_current", "A"),
         "load_max_current_a": table.quantity("load_max_current", "A"),
         "line_step_max_v": table.quantity("line_step_max", "V"),
-        "line_step_dwell_s": table.quantity("line_step_dwell", "s", minimum=0.0, allow_equal=True),
+        "line_step_dwell_s": table.quantity(
+            "line_step_dwell", "s", minimum=0.0, allow_equal=True, maximum=MAX_DWELL_S
+        ),
         "source_min_frequency_hz": table.quantity("source_min_frequency", "Hz", default=None),
         "source_max_frequency_hz": table.quantity("source_max_frequency", "Hz", default=None),
         "scope_max_record_length": table.integer("scope_max_record_length", default=None),
@@ -837,13 +882,15 @@ def _read_grid(top: _Table, dut: Dut | None, bench: Bench | None) -> Grid | None
     frequency = table.quantity("line_frequency", "Hz", default=None)
     rated_load_a = dut.rated_load_a if dut is not None else None
     load_values = _values(table, "load_values", lambda v, k: _load_value(v, k, rated_load_a))
-    settle_s = table.quantity("settle", "s", minimum=0.0, allow_equal=True)
-    captures = table.integer("captures_per_point")
+    settle_s = table.quantity("settle", "s", minimum=0.0, allow_equal=True, maximum=MAX_SETTLE_S)
+    captures = table.integer("captures_per_point", maximum=MAX_CAPTURES_PER_POINT)
     table.finish()
 
     out = top.out
     if line_values is not None:
         _check_line_values(out, table.key("line_values"), line_values, dut, bench)
+        if bench is not None:
+            _check_ramp(out, line_values, bench.limits)
     if load_values is not None:
         _check_load_values(out, table.key("load_values"), load_values, dut, bench)
     if line_kind is not None and dut is not None and (line_kind == "ac") != dut.line_is_ac:
@@ -891,6 +938,21 @@ def _check_line_values(
         if bench is not None and line_v > bench.limits.source_max_voltage_v:
             limit = format_si(bench.limits.source_max_voltage_v, "V")
             out.fail(f"{key}[{index}]", f"{shown} is above bench.limits.source_max_voltage {limit}")
+
+
+def _check_ramp(out: _Collector, values_v: list[float], limits: BenchLimits) -> None:
+    """The source's ramp between line values takes at most :data:`MAX_RAMP_STEPS` steps, even
+    from the lowest value to the highest (as a resume may have to)."""
+    steps = (max(values_v) - min(values_v)) / limits.line_step_max_v
+    if steps > MAX_RAMP_STEPS:
+        span = format_si(max(values_v) - min(values_v), "V")
+        shortest = format_si((max(values_v) - min(values_v)) / MAX_RAMP_STEPS * 1.001, "V")
+        out.fail(
+            "bench.limits.line_step_max",
+            f"{format_si(limits.line_step_max_v, 'V')} would ramp the {span} between the lowest "
+            f"and highest line value in {steps:.3g} steps; at most {MAX_RAMP_STEPS} are allowed, "
+            f"so the step must be ≥ {shortest}",
+        )
 
 
 def _check_load_values(
@@ -946,7 +1008,9 @@ def _read_scope(top: _Table) -> ScopeSettings | None:
         "trigger_level_v": table.quantity("trigger_level", "V", minimum=None),
         "trigger_slope": table.text("trigger_slope", default="rising", choices=TRIGGER_SLOPES),
         "trigger_position": table.fraction("trigger_position", default=0.1, allow_zero=True),
-        "acquisition_timeout_s": table.quantity("acquisition_timeout", "s", default=2.0),
+        "acquisition_timeout_s": table.quantity(
+            "acquisition_timeout", "s", default=2.0, maximum=MAX_ACQUISITION_TIMEOUT_S
+        ),
         "node": table.text("node", default="primary"),
     }
     table.finish()
@@ -1203,31 +1267,152 @@ def _check_nodes_on_bench(
         )
 
 
-def _scope_channels(scope_map: str) -> int | None:
-    """The channel count of a scope command map (None when it cannot be loaded: reported
-    elsewhere)."""
+def _scope_map(scope_map: str) -> Any:
+    """The scope command map (None when it cannot be loaded: reported elsewhere)."""
     from instruments.command_map import load_command_map
     from instruments.errors import CommandMapError
 
     try:
-        return load_command_map(scope_map).channels
+        return load_command_map(scope_map)
     except (CommandMapError, OSError):
         return None
 
 
-def _check_hazard(out: _Collector, bench: Bench, grid: Grid, acknowledged: bool) -> None:
-    """A real bench above the ES1 limits of IEC 62368-1 needs the file's acknowledgement."""
+def _scope_channels(scope_map: str) -> int | None:
+    """The channel count of a scope command map (None when it cannot be loaded)."""
+    found = _scope_map(scope_map)
+    return None if found is None else found.channels
+
+
+def _check_scope_limits(
+    out: _Collector, bench: Bench, scope: ScopeSettings | None, nodes: list[NodeSpec]
+) -> None:
+    """The scope settings inside the limits its command map declares (the checks the driver
+    makes again before sending), so the set-up cannot fail once the run has started."""
+    from instruments.errors import LimitError
+    from instruments.limits import check_count, check_setpoint
+
+    command_map = _scope_map(bench.scope_map)
+    if command_map is None or scope is None:
+        return
+    limits = command_map.limits
+    offset_v = limits.max_offset_v
+    ranges: list[tuple[str, float, float, float, str]] = [
+        (
+            "scope.time_per_div",
+            scope.time_per_div_s,
+            limits.min_seconds_per_div,
+            limits.max_seconds_per_div,
+            "s",
+        ),
+        ("scope.trigger_level", scope.trigger_level_v, -offset_v, offset_v, "V"),
+    ]
+    for prefix, channel in [("scope", scope)] + [(f"nodes[{i}]", n) for i, n in enumerate(nodes)]:
+        ranges += [
+            (
+                f"{prefix}.volts_per_div",
+                channel.volts_per_div_v,
+                limits.min_volts_per_div,
+                limits.max_volts_per_div,
+                "V",
+            ),
+            (f"{prefix}.offset", channel.offset_v, -offset_v, offset_v, "V"),
+            (
+                f"{prefix}.probe_ratio",
+                channel.probe_ratio,
+                limits.min_probe_ratio,
+                limits.max_probe_ratio,
+                "",
+            ),
+            (
+                f"{prefix}.bandwidth_limit",
+                channel.bandwidth_limit_hz,
+                0.0,
+                limits.max_bandwidth_limit_hz,
+                "Hz",
+            ),
+        ]
+    where = f"(the limits of bench.scope_map {bench.scope_map!r})"
+    for key, value, low, high, unit in ranges:
+        try:
+            check_setpoint(key.rpartition(".")[2].replace("_", " "), value, low, high, unit)
+        except LimitError as error:
+            out.fail(key, f"{error} {where}")
+    try:
+        check_count(
+            "record length", scope.record_length, limits.min_record_length, limits.max_record_length
+        )
+    except LimitError as error:
+        out.fail("scope.record_length", f"{error} {where}")
+
+
+class ExposedVoltage(NamedTuple):
+    """The highest voltage a run can put on an exposed node, and where it comes from."""
+
+    volts: float
+    limit_v: float  # the ES1 limit it is judged against
+    kind: str  # "DC", "AC rms" or "peak"
+    key: str  # the sequence key that declares it
+    what: str  # what it is, in words
+
+    def describe(self) -> str:
+        """E.g. "the switch node (up to its rating) can reach 150 V peak (dut.switch_rating),
+        above the 60 V DC limit of ES1 (IEC 62368-1)"."""
+        limit_kind = "AC rms" if self.kind == "AC rms" else "DC"
+        return (
+            f"{self.what} can reach {format_si(self.volts, 'V')} {self.kind} ({self.key}), above "
+            f"the {format_si(self.limit_v, 'V')} {limit_kind} limit of ES1 (IEC 62368-1)"
+        )
+
+
+def exposed_voltages(dut: Dut, grid: Grid, nodes: Iterable[NodeSpec]) -> list[ExposedVoltage]:
+    """Every voltage the run can put on a node a person could touch, each against its ES1 limit
+    (IEC 62368-1, from memory): the line (DC, or AC rms against the AC limit), and each probed
+    node up to its declared device rating — the primary switch node swings to the bus plus the
+    reflected voltage plus the leakage spike, so a 60 V DC-input flyback reaches well above
+    60 V. A node's peak limit is validated to be at most its rating, so the rating is the
+    highest value declared; the node's pulsating voltage is judged against the DC limit."""
+    line_v = max(grid.line_values_v)
+    found = [
+        ExposedVoltage(
+            line_v,
+            ES1_AC_RMS_V if grid.line_is_ac else ES1_DC_V,
+            "AC rms" if grid.line_is_ac else "DC",
+            "grid.line_values",
+            "the line",
+        )
+    ]
+    for index, node in enumerate(nodes):
+        key = "dut.switch_rating" if index == 0 else f"nodes[{index - 1}].rating"
+        what = "the switch node (up to its rating)" if index == 0 else f"node {node.name!r}"
+        found.append(ExposedVoltage(node.rating_v, ES1_DC_V, "peak", key, what))
+    return found
+
+
+def above_es1(dut: Dut, grid: Grid, nodes: Iterable[NodeSpec]) -> ExposedVoltage | None:
+    """The exposed voltage that goes furthest above its ES1 limit, or None if none does."""
+    over = [e for e in exposed_voltages(dut, grid, nodes) if e.volts > e.limit_v]
+    return max(over, key=lambda e: e.volts / e.limit_v, default=None)
+
+
+def _check_hazard(
+    out: _Collector,
+    bench: Bench,
+    dut: Dut,
+    grid: Grid,
+    nodes: list[NodeSpec],
+    acknowledged: bool,
+) -> None:
+    """A real bench above the ES1 limits of IEC 62368-1 on any exposed node needs the file's
+    acknowledgement; the message names the value that trips the limit."""
     if bench.is_sim or acknowledged:
         return
-    limit_v = ES1_AC_RMS_LIMIT_V if grid.line_is_ac else ES1_DC_LIMIT_V
-    highest_v = max(grid.line_values_v)
-    if highest_v > limit_v:
-        kind = "AC rms" if grid.line_is_ac else "DC"
+    hazard = above_es1(dut, grid, nodes)
+    if hazard is not None:
         out.fail(
             "safety.hazardous_voltage_acknowledged",
-            f"the grid reaches {format_si(highest_v, 'V')} {kind}, above the "
-            f"{format_si(limit_v, 'V')} {kind} limit of ES1 (IEC 62368-1); set it to true only "
-            "once the bench is set up for hazardous voltage",
+            f"{hazard.describe()}; set it to true only once the bench is set up for hazardous "
+            "voltage",
         )
 
 
@@ -1294,8 +1479,9 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     if bench is not None:
         _check_bench(out, bench, dut, scope)
         _check_nodes_on_bench(out, bench, scope, nodes or [], clamp)
-        if grid is not None and acknowledged is not None:
-            _check_hazard(out, bench, grid, acknowledged)
+        _check_scope_limits(out, bench, scope, nodes or [])
+        if None not in (grid, dut, primary, nodes, acknowledged):
+            _check_hazard(out, bench, dut, grid, [primary, *nodes], acknowledged)
     if (
         dut is not None
         and sim_line_kind is not None

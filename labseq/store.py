@@ -72,7 +72,9 @@ DEFAULT_CODEC = "zstd"
 #: saves 6-10 % on noisy records but undoing it (a cumulative sum) costs more than decompressing.
 ZSTD_LEVEL = 3
 
-RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed")
+#: How a run ended; "unsafe-end": its shutdown could not confirm the bench safe (outputs not
+#: read back off, or the bus not read below the ES1 limit), whatever else ended it.
+RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed", "unsafe-end")
 POINT_STATUSES = ("pending", "done", "failed", "skipped")
 VERDICTS = ("pass", "fail", "incomplete")
 EVENT_KINDS = ("info", "scpi-error", "retry", "skip", "fault", "timing", "safety")
@@ -150,8 +152,35 @@ CREATE TABLE {{table}} (
     PRIMARY KEY (point_id, node)
 ) WITHOUT ROWID"""
 
-#: The version-2 tables; a new file gets these and then every later upgrade step (as an older
-#: file does), so new and upgraded files have the same tables.
+#: The runs table as version 3 has it: a run may end "unsafe-end", and it records its owning
+#: process's start time.
+_RUNS_TABLE = f"""
+CREATE TABLE {{table}} (
+    id INTEGER PRIMARY KEY,
+    sequence_text TEXT NOT NULL,
+    sequence_sha256 TEXT NOT NULL,
+    sequence_path TEXT NOT NULL,
+    dut_label TEXT NOT NULL,
+    snubber_label TEXT NOT NULL,
+    bench_kind TEXT NOT NULL,
+    instruments TEXT NOT NULL DEFAULT '{{{{}}}}',
+    software_version TEXT NOT NULL,
+    status TEXT NOT NULL CHECK (status IN ({_sql_list(RUN_STATUSES)})),
+    started_at TEXT NOT NULL,
+    finished_at TEXT,
+    notes TEXT NOT NULL DEFAULT '',
+    pid INTEGER,
+    host TEXT,
+    process_started REAL
+)"""
+#: The columns of a version-2 runs table, kept when version 3 rebuilds it.
+_RUN_COLUMNS_2 = (
+    "id, sequence_text, sequence_sha256, sequence_path, dut_label, snubber_label, bench_kind, "
+    "instruments, software_version, status, started_at, finished_at, notes, pid, host"
+)
+
+#: The version-2 tables, frozen as that version wrote them; a new file gets these and then every
+#: later upgrade step (as an older file does), so new and upgraded files have the same tables.
 _SCHEMA_2 = f"""
 CREATE TABLE schema_info (
     version INTEGER NOT NULL,
@@ -169,7 +198,8 @@ CREATE TABLE runs (
     bench_kind TEXT NOT NULL,
     instruments TEXT NOT NULL DEFAULT '{{}}',
     software_version TEXT NOT NULL,
-    status TEXT NOT NULL CHECK (status IN ({_sql_list(RUN_STATUSES)})),
+    status TEXT NOT NULL
+        CHECK (status IN ('running', 'finished', 'aborted', 'interrupted', 'failed')),
     started_at TEXT NOT NULL,
     finished_at TEXT,
     notes TEXT NOT NULL DEFAULT '',
@@ -262,15 +292,15 @@ def _upgrade_to_2() -> list[str]:
 
 
 def _upgrade_to_3() -> list[str]:
-    """Statements that bring a version-2 file to version 3: each capture says how its codes
-    are stored (compressed codes), those stored so far being raw, and each run records its
-    owning process's start time (so resume can tell a reused pid from a live owner). Columns
-    are added, not tables rebuilt, so the upgrade copies no waveform."""
+    """Statements that bring a version-2 file to version 3: each capture says how its codes are
+    stored (compressed codes), those stored so far being raw; the runs table is rebuilt so that a
+    run may end "unsafe-end" and records its owning process's start time (so resume can tell a
+    reused pid from a live owner). The captures table gets a column, not a rebuild, so the
+    upgrade copies no waveform."""
     return [
         "ALTER TABLE captures ADD COLUMN codec TEXT NOT NULL DEFAULT 'raw' "
-        f"CHECK (codec IN ({_sql_list(CODECS)}))",
-        "ALTER TABLE runs ADD COLUMN process_started REAL",
-    ]
+        f"CHECK (codec IN ({_sql_list(CODECS)}))"
+    ] + _rebuilt(_RUNS_TABLE, "runs", _RUN_COLUMNS_2)
 
 
 def _upgrade_statements(version: int) -> list[str]:
@@ -938,6 +968,17 @@ class Store:
             {**row, "data": None if row["data"] is None else json.loads(row["data"])}
             for row in rows
         ]
+
+    def last_safety_check(self, run_id: int) -> str | None:
+        """What the latest making-safe of the run's bench confirmed: the one-line summary the
+        runner logged (without its "end of run: " heading), or None if none is recorded."""
+        rows = self.db.query(
+            "SELECT message, json_extract(data, '$.when') AS heading FROM events "
+            "WHERE run_id = ? AND kind = 'safety' AND json_extract(data, '$.safe') IS NOT NULL "
+            "ORDER BY id DESC LIMIT 1",
+            [run_id],
+        )
+        return next((row["message"].removeprefix(f"{row['heading']}: ") for row in rows), None)
 
     # ------------------------------------------------------------------- maintenance
 

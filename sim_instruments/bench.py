@@ -67,7 +67,11 @@ class SimBench:
         self.design = design
         self.host = host
         self.state = BenchState(FlybackModel(design))
-        self.fault_plan = FaultPlan(specs, point_count=lambda: self.state.load_setpoints)
+        self.fault_plan = FaultPlan(
+            specs,
+            point_count=lambda: self.state.load_setpoints,
+            off_count=lambda: _source_offs(self.state.line_history),
+        )
         rngs = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(len(ROLES))]
         self.instruments: dict[str, SimInstrument] = {
             role: INSTRUMENT_CLASSES[role](
@@ -137,3 +141,9 @@ def _fault_specs(faults: str | Iterable[str | FaultSpec]) -> list[FaultSpec]:
     for item in faults:
         specs.extend([item] if isinstance(item, FaultSpec) else parse_fault_specs(item))
     return specs
+
+
+def _source_offs(history: list[tuple[float, bool]]) -> int:
+    """How many times the source's output went from on to off in its history."""
+    states = [on for _, on in list(history)]
+    return sum(1 for before, after in zip(states, states[1:], strict=False) if before and not after)

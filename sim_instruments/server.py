@@ -529,8 +529,9 @@ class ScpiInstrument:
 # --------------------------------------------------------------------------- TCP server
 
 #: A hook consulted before each message: returns an interference name or None.
-#: The server acts out ``drop``, ``no-reply``, ``malformed`` and ``scpi-error`` itself and hands
-#: any other name to :meth:`ScpiInstrument.apply_fault` before executing the message.
+#: The server acts out ``drop``, ``no-reply``, ``malformed``, ``scpi-error`` and ``swallow`` (the
+#: message is read and does nothing, without an error) itself and hands any other name to
+#: :meth:`ScpiInstrument.apply_fault` before executing the message.
 Interceptor = Callable[[ParsedMessage], str | None]
 
 GARBLED_TEXT_REPLY = b"9.9.9E+\n"
@@ -662,6 +663,8 @@ class ScpiServer:
         interference = self.interceptor(message) if self.interceptor else None
         if interference == "drop":
             return False
+        if interference == "swallow":
+            return True
         if interference == "scpi-error":
             with self.instrument.lock:
                 self.instrument.push_error(CommandError(-300, "simulated hardware fault"))

@@ -6,10 +6,12 @@ from __future__ import annotations
 import contextlib
 import io
 import re
+import signal
 import sys
 from pathlib import Path
 
 from labseq.cli import main
+from labseq.safety import HANDLED_SIGNALS
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_DC = ROOT / "sequences" / "demo_dc_flyback.toml"
@@ -70,12 +72,19 @@ def demo_sequence(
 
 
 def run_cli(*args: str) -> tuple[int, str, str]:
-    """Run ``labseq`` in-process as a user would; return (exit status, stdout, stderr)."""
+    """Run ``labseq`` in-process as a user would; return (exit status, stdout, stderr).
+
+    ``run`` and ``resume`` keep their signal handlers for the rest of the process (a command's
+    process ends with them); here the test process's own handlers are put back afterwards."""
     out, err = io.StringIO(), io.StringIO()
     code = 0
+    handlers = {sig: signal.getsignal(sig) for sig in HANDLED_SIGNALS}
     with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
         try:
             main(list(args))
         except SystemExit as exc:
             code = int(exc.code or 0)
+        finally:
+            for sig, handler in handlers.items():
+                signal.signal(sig, handler)
     return code, out.getvalue(), err.getvalue()

@@ -69,7 +69,9 @@ def _sweep(tmp_path: Path, make_sim_bench, dialect: str) -> Store:
         path.write_text(text, encoding="utf-8")
     db = tmp_path / f"{dialect}.sqlite"
     trace = tmp_path / f"{dialect}.trace"
-    code, _out, err = run_cli("run", str(path), "--db", str(db), "--quiet", "--trace", str(trace))
+    code, _out, err = run_cli(
+        "run", str(path), "--db", str(db), "--quiet", "--yes", "--trace", str(trace)
+    )
     assert code == 0, err
     sent = [line.split(" > ", 1)[1] for line in trace.read_text().splitlines() if " > " in line]
     setpoints = [command for command in sent if command.startswith((":LOAD:CC ", "SOUR:CURR "))]
@@ -293,8 +295,17 @@ def test_generic_transport_reads_what_the_fast_socket_path_reads(make_sim_bench)
 # --------------------------------------------------------------------------- sequence keys
 
 
-def test_bench_maps_aliases_and_connections_in_a_sequence(tmp_path):
+def _template_text() -> str:
+    """The real-bench template, with its hazardous-voltage acknowledgement given (its 150 V
+    switch is above ES1, so the file as shipped is refused until someone sets it)."""
     text = (HERE.parent / "sequences" / "template_real_bench.toml").read_text(encoding="utf-8")
+    return text.replace(
+        "hazardous_voltage_acknowledged = false", "hazardous_voltage_acknowledged = true"
+    )
+
+
+def test_bench_maps_aliases_and_connections_in_a_sequence(tmp_path):
+    text = _template_text()
     text = text.replace('meter = "generic"', 'meter = "alt"').replace(
         'scope = "generic"', 'scope = "alt"'
     )
@@ -339,7 +350,7 @@ def test_the_sequence_knows_the_simulator_dialects():
 def test_with_no_library_named_pyvisa_library_is_honoured(tmp_path, monkeypatch):
     # A sequence without visa_library leaves the choice to PyVISA, which reads PYVISA_LIBRARY
     # (then ~/.pyvisarc): here it names pyvisa-sim with our instrument description.
-    text = (HERE.parent / "sequences" / "template_real_bench.toml").read_text(encoding="utf-8")
+    text = _template_text()
     text = text.replace('source = "TCPIP0::192.168.1.21::inst0::INSTR"', 'source = "ASRL7::INSTR"')
     path = tmp_path / "bench.toml"
     path.write_text(text, encoding="utf-8")

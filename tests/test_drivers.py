@@ -406,9 +406,9 @@ def test_source_setpoints_read_back(bench_roles, sim_bench):
     assert source.query_float("SOUR:VOLT?") == 230.0
     assert source.query_float("SOUR:FREQ?") == 60.0
     source.set_dc(TELECOM_INPUT_V)
-    assert not source.output_is_on()
+    assert not source.is_on()
     source.set_output(True)
-    assert source.output_is_on()
+    assert source.is_on()
     # The readback is the programmed voltage within the reading noise (a 1 % bound).
     assert source.measure_voltage_v() == pytest.approx(TELECOM_INPUT_V, rel=0.01)
     source.close()
@@ -420,7 +420,7 @@ def test_load_and_meter_readings_follow_the_converter(bench_roles, sim_bench):
     run_converter(source, load, load_a=1.0)
     assert load.query("SOUR:FUNC?") == "CURR"
     assert load.query_float("SOUR:CURR?") == 1.0
-    assert load.input_is_on()
+    assert load.is_on()
     output_v = sim_bench.design.output_voltage_v
     # The load sees the DUT's regulated output and sinks its setpoint (1 % reading bounds).
     assert load.measure_voltage_v() == pytest.approx(output_v, rel=0.01)

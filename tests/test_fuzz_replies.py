@@ -140,7 +140,7 @@ def _scope(resource: str) -> Oscilloscope:
 TARGETS: dict[str, tuple[Callable[[str], ScpiInstrument], Call, str, str]] = {
     "identify": (_meter, lambda d: d.identify(), "*IDN?", "idn"),
     "source.set_dc error queue": (_source, lambda d: d.set_dc(48.0), "SYST:ERR?", "error"),
-    "source.output_is_on": (_source, lambda d: d.output_is_on(), "OUTP?", "bool"),
+    "source.is_on": (_source, lambda d: d.is_on(), "OUTP?", "bool"),
     "load.measure_voltage_v": (_load, lambda d: d.measure_voltage_v(), "MEAS:VOLT?", "number"),
     "meter.measure": (_meter, lambda d: d.measure(), "MEAS:POW?", "number"),
     "scope.wait_acquisition": (
@@ -355,7 +355,7 @@ def test_malformed_replies_raise_instrument_errors_in_time(counts: Counter[str])
         ("load.measure_voltage_v", b"+4.80000E+01\n", 48.0),  # NR3, IEEE 488.2 8.7.4
         ("load.measure_voltage_v", b"48\r\n", 48.0),  # NR1 with CR LF
         ("load.measure_voltage_v", b"9.9E37\n", 9.9e37),  # SCPI-1999 overflow value
-        ("source.output_is_on", b"ON\n", True),
+        ("source.is_on", b"ON\n", True),
         ("scope.measure_mean_v", b".5\n", 0.5),  # NRf, IEEE 488.2 7.7.2
     ],
 )

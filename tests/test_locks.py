@@ -34,10 +34,12 @@ def test_second_process_is_refused_on_same_store_and_same_bench(tmp_path, make_s
     sequence = tmp_path / "sweep.toml"  # the first runner's own file (VISA resources of the sim)
 
     same_store = subprocess.run(
-        [*LABSEQ, "run", str(sequence), "--db", str(db), "--quiet"], capture_output=True, text=True
+        [*LABSEQ, "run", str(sequence), "--db", str(db), "--quiet", "--yes"],
+        capture_output=True,
+        text=True,
     )
     other_store = subprocess.run(
-        [*LABSEQ, "run", str(sequence), "--db", str(tmp_path / "other.sqlite"), "--quiet"],
+        [*LABSEQ, "run", str(sequence), "--db", str(tmp_path / "other.sqlite"), "--quiet", "--yes"],
         capture_output=True,
         text=True,
     )

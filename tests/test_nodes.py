@@ -373,6 +373,9 @@ def test_schema_1_store_is_upgraded(tmp_path: Path) -> None:
         waveform = capture
         store.add_capture(1, CaptureRecord(waveform, channel=2, node="secondary"))
         assert store.acquisitions(1) == 1
+        # version 3: a run may end with its bench not confirmed safe
+        store.set_run_status(1, "unsafe-end")
+        assert store.run(1).status == "unsafe-end"
         assert store.integrity_check() == "ok"
     with sqlite3.connect(path) as conn:
         conn.execute("UPDATE schema_info SET version = ?", [SCHEMA_VERSION + 1])

@@ -56,17 +56,26 @@ def problems_of(path: Path) -> SequenceError:
 # --------------------------------------------------------------------------- shipped files
 
 
+def acknowledged(text: str) -> str:
+    """The edit a user makes once the bench is set up for hazardous voltage."""
+    return text.replace(
+        "hazardous_voltage_acknowledged = false", "hazardous_voltage_acknowledged = true"
+    )
+
+
 @pytest.mark.parametrize(
     "name", ["demo_dc_flyback.toml", "demo_offline_flyback.toml", "template_real_bench.toml"]
 )
-def test_shipped_files_load(name: str) -> None:
-    sequence = load_sequence(SEQUENCES / name)
+def test_shipped_files_load(name: str, tmp_path: Path) -> None:
+    # The template drives a real bench above ES1 (see the next test): it loads once acknowledged.
+    path = edited(TEMPLATE, tmp_path, acknowledged) if name == TEMPLATE.name else SEQUENCES / name
+    sequence = load_sequence(path)
     points = sequence.points()
     assert len(points) == len(sequence.grid.line_values_v) * len(sequence.grid.load_values_a)
     # Lines ascending, loads ascending inside each line value.
     assert points == sorted(points)
-    assert sequence.sha256 == hashlib.sha256((SEQUENCES / name).read_bytes()).hexdigest()
-    assert sequence.text == (SEQUENCES / name).read_text(encoding="utf-8")
+    assert sequence.sha256 == hashlib.sha256(path.read_bytes()).hexdigest()
+    assert sequence.text == path.read_text(encoding="utf-8")
 
 
 def test_demo_dc_values_in_si() -> None:
@@ -294,22 +303,56 @@ def test_several_problems_reported_at_once(tmp_path: Path) -> None:
 
 
 def test_real_bench_above_es1_needs_acknowledgement(tmp_path: Path) -> None:
-    def raise_line(text: str) -> str:
-        text = replace_line("line_max", 'line_max = "75 V"')(text)
-        text = replace_line("source_max_voltage", 'source_max_voltage = "80 V"')(text)
-        return replace_line("line_values", 'line_values = ["36 V", "48 V", "75 V"]')(text)
-
-    path = edited(TEMPLATE, tmp_path, raise_line)
-    error = problems_of(path)
-    # ES1 limit of IEC 62368-1: 60 V DC (from memory).
+    # ES1 limits of IEC 62368-1: 60 V DC, 30 V AC rms (from memory). The template's line stays
+    # at or below 60 V DC, but its switch node swings to the bus plus the reflected voltage plus
+    # the leakage spike, up to the declared 150 V rating: the value that trips is the rating.
+    error = problems_of(TEMPLATE)
     assert [p.key for p in error.problems] == ["safety.hazardous_voltage_acknowledged"]
-    assert "60 V" in str(error)
-    path.write_text(
-        path.read_text().replace(
-            "hazardous_voltage_acknowledged = false", "hazardous_voltage_acknowledged = true"
+    assert "150 V" in str(error) and "dut.switch_rating" in str(error) and "60 V" in str(error)
+    assert load_sequence(edited(TEMPLATE, tmp_path, acknowledged)).hazardous_voltage_acknowledged
+
+
+def test_es1_gate_names_the_line_or_a_node_rating(tmp_path: Path) -> None:
+    # A 12 V bench whose devices are rated 40 V stays inside ES1 (60 V DC): no acknowledgement.
+    def low_voltage(text: str) -> str:
+        for key, value in [
+            ("line_min", '"9 V"'),
+            ("line_max", '"15 V"'),
+            ("switch_rating", '"40 V"'),
+            ("line_values", '["12 V"]'),
+            ("probe_max_voltage", '"300 V"'),
+        ]:
+            text = replace_line(key, f"{key} = {value}")(text)
+        return text
+
+    low = edited(TEMPLATE, tmp_path, low_voltage)
+    assert not load_sequence(low).hazardous_voltage_acknowledged
+    assert load_sequence(low).above_es1() is None
+
+    # An AC line of 40 V rms is above the 30 V rms limit even with 40 V devices.
+    def ac_line(text: str) -> str:
+        text = low_voltage(text).replace('line_kind = "dc"', 'line_kind = "ac"')
+        text = replace_line("line_max", 'line_max = "40 V"')(text)
+        text = replace_line("line_values", 'line_values = ["40 V"]')(text)
+        return (
+            text.replace("# line_frequency", "line_frequency")
+            .replace("# source_min_frequency", "source_min_frequency")
+            .replace("# source_max_frequency", "source_max_frequency")
         )
-    )
-    assert load_sequence(path).hazardous_voltage_acknowledged is True
+
+    error = problems_of(edited(TEMPLATE, tmp_path, ac_line))
+    assert "the line can reach 40 V AC rms (grid.line_values)" in str(error)
+    assert "30 V AC rms limit" in str(error)
+
+    # A further node rated above ES1 trips it on its own.
+    def secondary(text: str) -> str:
+        return low_voltage(text) + (
+            '\n[[nodes]]\nname = "secondary"\nchannel = 2\nvolts_per_div = "20 V"\n'
+            'probe_ratio = 10\nrating = "100 V"\npolarity = "falling"\n'
+        )
+
+    error = problems_of(edited(TEMPLATE, tmp_path, secondary))
+    assert "node 'secondary' can reach 100 V peak (nodes[0].rating)" in str(error)
 
 
 def test_sim_bench_needs_no_acknowledgement() -> None:
@@ -318,7 +361,8 @@ def test_sim_bench_needs_no_acknowledgement() -> None:
 
 
 def test_visa_resources_checked(tmp_path: Path) -> None:
-    path = edited(TEMPLATE, tmp_path, replace_line("load", 'load = "192.168.1.22"'))
+    bad_load = replace_line("load", 'load = "192.168.1.22"')
+    path = edited(TEMPLATE, tmp_path, lambda text: bad_load(acknowledged(text)))
     error = problems_of(path)
     assert [p.key for p in error.problems] == ["bench.resources.load"]
     assert "VISA resource string" in str(error)

@@ -1,4 +1,4 @@
-"""``labseq resume RUN``: finish an interrupted run with the points it still lacks."""
+"""``labseq resume RUN``: make the bench safe, then finish a run with what it still lacks."""
 
 from __future__ import annotations
 
@@ -8,15 +8,10 @@ import click
 
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option, resolve_run
-from labseq.commands.run import report_outcome
+from labseq.commands.run import confirm_hazard, report_outcome, yes_option
 from labseq.progress import Progress
-from labseq.runner import (
-    TAKE_OVER_RISK,
-    bench_locks,
-    claim_for_resume,
-    execute,
-    stored_sequence,
-)
+from labseq.runner import TAKE_OVER_RISK, bench_locks, check_resumable, execute, stored_sequence
+from labseq.safety import SignalLatch
 from labseq.store import Store
 
 
@@ -31,18 +26,29 @@ from labseq.store import Store
     f"gone). Risk: {TAKE_OVER_RISK}.",
 )
 @trace_option
-def command(run: str, db_path: Path, quiet: bool, take_over: bool, trace_path: Path | None) -> None:
+@yes_option()
+def command(
+    run: str, db_path: Path, quiet: bool, take_over: bool, trace_path: Path | None, yes: bool
+) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
 
-    The bench is first made safe, then only the points not yet done are measured; captures
-    already stored are kept and never taken again. The run's own stored sequence is used.
+    Whatever state the run is in, the bench is first made safe (load and source off, read back).
+    Then only what is missing is done: the points not yet measured (captures already stored are
+    kept and never taken again), the figures and verdicts of stored captures, and the shutdown
+    with its bus watch. The run's own stored sequence is used. Exit status as for `labseq run`.
     """
     progress = Progress(quiet=quiet)
+    latch = SignalLatch().install()
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
         sequence = stored_sequence(store, run_id)
         with bench_locks(sequence, store), tracing(trace_path):
-            claim_for_resume(store, run_id, take_over=take_over)
-            store.log_event(run_id, "info", "run resumed")
-            outcome = execute(sequence, store, run_id, progress=progress)
-    report_outcome(outcome, db_path, progress)
+            before = check_resumable(store, run_id, take_over=take_over)
+            pending = before.points_done < before.points_total
+            start_note = confirm_hazard(sequence, yes=yes, progress=progress) if pending else None
+            store.claim_run(run_id)
+            store.log_event(run_id, "info", f"run resumed (it was {before.status})")
+            if start_note:
+                store.log_event(run_id, "safety", start_note)
+            outcome = execute(sequence, store, run_id, progress=progress, latch=latch)
+        report_outcome(outcome, db_path, progress, latch)

@@ -3,27 +3,86 @@
 from __future__ import annotations
 
 import sys
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import click
 
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option
+from labseq.errors import InputError, LabseqError
 from labseq.progress import Progress
-from labseq.runner import RunOutcome, bench_locks, execute, start_run
-from labseq.sequence import load_sequence
+from labseq.runner import UNSAFE_END_EXIT, RunOutcome, bench_locks, execute, start_run
+from labseq.safety import CAUTIONS, SignalLatch, signal_exit_code
+from labseq.sequence import Sequence, load_sequence
 from labseq.store import Store
 
 
-def report_outcome(outcome: RunOutcome, db_path: Path, progress: Progress) -> None:
-    """Say how the run ended and where its results are; exit with the run's status."""
+def yes_option() -> Callable[[Any], Any]:
+    """``--yes``: start above ES1 without the question at the terminal (recorded in the run)."""
+    return click.option(
+        "--yes",
+        is_flag=True,
+        help="Unattended start: switch outputs on above ES1 without asking at the terminal "
+        "(the sequence must still acknowledge hazardous voltage; recorded in the run).",
+    )
+
+
+def on_terminal() -> bool:
+    """Whether someone at a terminal can answer the question before outputs go on."""
+    return sys.stdin.isatty()
+
+
+def confirm_hazard(sequence: Sequence, *, yes: bool, progress: Progress) -> str | None:
+    """Before outputs go on above ES1 on a real bench: show the cautions and the value that
+    trips ES1, then wait for a confirmation at the terminal; ``yes`` (an unattended start)
+    skips the question. Returns what to record in the run (None: nothing above ES1 is driven).
+
+    Without a terminal and without ``yes`` nothing is opened: an unattended start must say so.
+    """
+    hazard = None if sequence.bench.is_sim else sequence.above_es1()
+    if hazard is None:
+        return None
+    progress.message(f"{CAUTIONS}\n  This run: {hazard.describe()}.", error=True)
+    if yes:
+        return f"started above ES1 with --yes (unattended start): {hazard.describe()}"
+    if not on_terminal():
+        raise InputError(
+            "this run switches outputs on above ES1 and there is no terminal to confirm it at; "
+            "run it from a terminal, or add --yes for an unattended start (recorded in the run)"
+        )
+    if not click.confirm(
+        "Switch the outputs on, above ES1, with the cautions above observed?",
+        default=False,
+        err=True,
+    ):
+        raise LabseqError("not confirmed: nothing was switched on")
+    return f"started above ES1, confirmed at the terminal: {hazard.describe()}"
+
+
+def report_outcome(
+    outcome: RunOutcome, db_path: Path, progress: Progress, latch: SignalLatch
+) -> None:
+    """Say how the run ended and where its results are; exit with the run's status (or, for a
+    signal that came once the run had ended, 128 + its number)."""
     done = f"{outcome.points_done}/{outcome.points_total} points"
     click.echo(f"run {outcome.run_id} {outcome.status}: {done} in {db_path}")
-    if outcome.status in ("interrupted", "aborted", "failed") or (
+    if outcome.status == "unsafe-end":
+        progress.message(
+            f"the bench is NOT confirmed safe (exit status {UNSAFE_END_EXIT}); once the fault is "
+            f"cleared, `labseq resume {outcome.run_id} --db {db_path}` makes the bench safe "
+            "first and reads it back",
+            error=True,
+        )
+    elif outcome.status in ("interrupted", "aborted", "failed") or (
         outcome.points_done < outcome.points_total
     ):
         progress.message(f"finish it with: labseq resume {outcome.run_id} --db {db_path}")
-    sys.exit(outcome.exit_code)
+    code = outcome.exit_code
+    if latch.first is not None and code in (0, 1):
+        code = signal_exit_code(latch.first)
+    sys.exit(code)
 
 
 @click.command("run")
@@ -31,6 +90,7 @@ def report_outcome(outcome: RunOutcome, db_path: Path, progress: Progress) -> No
 @db_option()
 @click.option("--label", default="", help="A note kept with the run (e.g. what changed).")
 @click.option("--quiet", is_flag=True, help="No progress display; errors still go to stderr.")
+@yes_option()
 @click.option(
     "--sim-faults",
     default="",
@@ -43,18 +103,31 @@ def command(
     db_path: Path,
     label: str,
     quiet: bool,
+    yes: bool,
     sim_faults: str,
     trace_path: Path | None,
 ) -> None:
     """Sweep SEQUENCE's grid on its bench (real or simulated) and store the run.
 
-    The sequence file is validated completely before any instrument is opened. Every exit —
-    finished, a point error with abort, Ctrl-C, SIGTERM or an error — leaves load and source off.
+    The sequence file is validated completely before any instrument is opened. On a real bench
+    above ES1 the cautions are shown and a confirmation is asked for at the terminal (--yes for
+    an unattended start). Every exit — finished, a point error with abort, Ctrl-C, SIGTERM,
+    SIGHUP or an error — switches load and source off and reads them back.
+
+    Exit status: 0 every point done; 1 an error or points missing; 2 bad input; 3 the bench
+    could not be confirmed safe at the end; 128 + the signal number after SIGHUP (129),
+    SIGINT (130) or SIGTERM (143).
     """
     sequence = load_sequence(sequence_path)
     progress = Progress(quiet=quiet)
+    latch = SignalLatch().install()
     with Store(db_path) as store, bench_locks(sequence, store), tracing(trace_path):
+        start_note = confirm_hazard(sequence, yes=yes, progress=progress)
         run_id = start_run(sequence, store, label=label)
+        if start_note:
+            store.log_event(run_id, "safety", start_note)
         progress.message(f"run {run_id}: {sequence.name} — {len(sequence.points())} points")
-        outcome = execute(sequence, store, run_id, progress=progress, sim_faults=sim_faults)
-    report_outcome(outcome, db_path, progress)
+        outcome = execute(
+            sequence, store, run_id, progress=progress, sim_faults=sim_faults, latch=latch
+        )
+        report_outcome(outcome, db_path, progress, latch)

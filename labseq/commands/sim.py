@@ -37,7 +37,8 @@ SIMULATION_NOTICE = (
     "--faults",
     default="",
     help=(
-        "Faults to inject, ROLE:KIND@call=N or ROLE:KIND@point=N, comma-separated "
+        "Faults to inject, ROLE:KIND@call=N, @point=N or @off=N (+ after N: every time from "
+        "then on), comma-separated "
         f"(roles: {', '.join(ROLES)}; kinds: {', '.join(KINDS)})."
     ),
 )

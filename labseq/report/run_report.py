@@ -278,6 +278,12 @@ def build_run_report(store: Store, review: RunReview, out_dir: Path) -> ReportFi
     page = Page(out_dir, f"labseq run {run.id}: {run.dut_label}")
     page.add(f"<h1>Run {run.id}: {esc(run.dut_label)}</h1>")
     page.add(f'<p class="sub">Snubber: {esc(run.snubber_label)} · status {esc(run.status)}</p>')
+    if run.status == "unsafe-end":
+        found = review.end_safety or "bench NOT confirmed safe (no record of its shutdown)"
+        page.add(
+            '<div class="safety" id="unsafe-end"><p><strong>The end of this run left the bench '
+            f"unconfirmed:</strong> {esc(found)}.</p></div>"
+        )
 
     page.section("verdict", "Verdict")
     counts = review.verdict_counts
