@@ -63,7 +63,7 @@ from labseq.analysis.levels import (
     reference_level,
     state_changes,
 )
-from labseq.analysis.ringfit import RingFit, RingWindow, fit_rings
+from labseq.analysis.ringfit import NoRingError, RingFit, RingWindow, fit_rings
 from labseq.analysis.snubber import (
     SnubberBranch,
     branch_resistor_power_w,
@@ -96,6 +96,17 @@ SLOW_SWING_FACTOR = 10.0
 QUIET_SAMPLES = 32
 #: Least R² of a final ring fit for its figures to count (see the module notes).
 MIN_RING_FIT_QUALITY = 0.5
+#: ``ring_model`` of an edge: a ring alone, a ring with the snubber branch's real pole, no ring.
+RING_ONLY, RING_AND_POLE, NO_RING = "ring", "ring and real pole", "no ring"
+#: Figures that only a ring has.
+RING_FIGURES = (
+    "ring_frequency_hz",
+    "natural_frequency_hz",
+    "decay_rate_per_s",
+    "damping_ratio",
+    "q_factor",
+    "fit_quality",
+)
 #: Snubber branch start-up: decay time constants skipped before the loss window.
 BRANCH_SETTLE_TIME_CONSTANTS = 5.0
 
@@ -120,9 +131,12 @@ class EdgeFigures:
     rise_time_s: float | None
     edge_time_s: float
     ring_frequency_hz: float | None
+    natural_frequency_hz: float | None
     decay_rate_per_s: float | None
     damping_ratio: float | None
     q_factor: float | None
+    real_pole_decay_rate_per_s: float | None
+    ring_model: str | None
     fit_quality: float | None
     settling_time_s: float | None
     snubber_loss_w: float | None
@@ -145,7 +159,9 @@ FIGURE_UNITS: dict[str, str] = {
     "rise_time_s": "s",
     "edge_time_s": "s",
     "ring_frequency_hz": "Hz",
+    "natural_frequency_hz": "Hz",
     "decay_rate_per_s": "/s",
+    "real_pole_decay_rate_per_s": "/s",
     "settling_time_s": "s",
     "snubber_loss_w": "W",
     "stress_margin_v": "V",
@@ -312,12 +328,29 @@ def _rough_window(rec: _Record, span: _Span) -> tuple[int, int] | None:
     return (start, rough_samples) if rough_samples >= 24 else None
 
 
+def _free_response_start(rec: _Record, rough: RingFit, span: _Span, start: int) -> int:
+    """First sample of the free response: the last upward crossing of the plateau before the peak.
+
+    Until the node reaches the plateau the secondary (or the clamp) does not conduct and the node
+    is charged by the magnetising current; from then on the leakage inductance rings freely with
+    the node. The samples between that crossing and the peak carry most of what a heavily damped
+    ring shows (one overshoot, hardly an undershoot), so the final fit starts there; the rough
+    fit's plateau (its offset) is the level. Without a crossing the window keeps ``start``.
+    """
+    crossing = last_upward_crossing(rec.u, rough.offset_v, span.first_high, span.peak + 1)
+    return start if crossing is None else min(start, math.ceil(crossing))
+
+
 def _final_samples(rec: _Record, rough: RingFit, start: int, high_end: int) -> int:
-    """Length of the final window: about ``FIT_TIME_CONSTANTS`` decay time constants (bounded in
-    ring periods), ending early where the node departs from the plateau after the ring."""
+    """Length of the final window: about ``FIT_TIME_CONSTANTS`` decay time constants of the ring
+    and of the branch's real pole (bounded in ring periods), ending early where the node departs
+    from the plateau after the ring."""
     period_samples = 2 * math.pi / rough.angular_frequency_rad_s / rec.dt
+    slowest = rough.decay_rate_per_s
+    if rough.real_pole_decay_rate_per_s is not None and rough.real_pole_decay_rate_per_s > 0:
+        slowest = min(slowest, rough.real_pole_decay_rate_per_s)
     span_samples = min(
-        max(FIT_TIME_CONSTANTS / rough.decay_rate_per_s / rec.dt, FIT_MIN_PERIODS * period_samples),
+        max(FIT_TIME_CONSTANTS / slowest / rec.dt, FIT_MIN_PERIODS * period_samples),
         FIT_MAX_PERIODS * period_samples,
     )
     step = abs(rough.offset_v - rec.base)
@@ -327,25 +360,28 @@ def _final_samples(rec: _Record, rough: RingFit, start: int, high_end: int) -> i
     return int(min(span_samples, stop - start))
 
 
-def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | None]:
-    """Two-pass fit of the first ring after each edge's peak (see the module notes).
+def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | NoRingError | None]:
+    """Two-pass fit of the first ring after each edge (see the module notes).
 
-    The rough pass (matrix pencil only) sizes each final window; both passes fit every edge of
-    the record in one vectorised call (:func:`labseq.analysis.ringfit.fit_rings`).
+    The rough pass (matrix pencil only, from the peak) sizes each final window, which starts
+    where the free response does; both passes fit every edge of the record in one vectorised call
+    (:func:`labseq.analysis.ringfit.fit_rings`). An edge whose response settles without ringing
+    gets its :class:`NoRingError` (with the real pole's decay); one with no usable fit, None.
     """
     rough_windows = {k: w for k, span in enumerate(spans) if (w := _rough_window(rec, span))}
     roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()], refine=False)
-    found = {
+    found: dict[int, RingFit | NoRingError] = {
         k: fit for k, fit in zip(rough_windows, roughs, strict=True) if isinstance(fit, RingFit)
     }
     final_windows = {}
     for k, rough in found.items():
-        start = rough_windows[k][0]
-        samples = _final_samples(rec, rough, start, spans[k].high_end)
+        peak_start = rough_windows[k][0]
+        start = _free_response_start(rec, rough, spans[k], peak_start)
+        samples = _final_samples(rec, rough, peak_start, spans[k].high_end) + peak_start - start
         final_windows[k] = _window(rec, start, samples, rough)
     finals = fit_rings(list(final_windows.values()))
     for k, fit in zip(final_windows, finals, strict=True):
-        best = fit if isinstance(fit, RingFit) else found[k]
+        best = fit if isinstance(fit, RingFit | NoRingError) else found[k]
         if best.fit_quality >= MIN_RING_FIT_QUALITY:
             found[k] = best
         else:
@@ -367,10 +403,35 @@ def _plateau(rec: _Record, fit: RingFit | None, peak: int, high_end: int) -> flo
     return fit.offset_v
 
 
+def _ring_figures(fit: RingFit | NoRingError | None) -> dict[str, float | str | None]:
+    """The ring's figures of an edge: from a fitted ring, from a response with no ring (only the
+    real pole's decay), or none."""
+    if isinstance(fit, NoRingError):
+        return {
+            **dict.fromkeys(RING_FIGURES),
+            "real_pole_decay_rate_per_s": fit.decay_rate_per_s,
+            "ring_model": NO_RING,
+            "fit_quality": fit.fit_quality,
+        }
+    if fit is None:
+        return dict.fromkeys((*RING_FIGURES, "real_pole_decay_rate_per_s", "ring_model"))
+    return {
+        "ring_frequency_hz": fit.frequency_hz,
+        "natural_frequency_hz": fit.natural_frequency_hz,
+        "decay_rate_per_s": fit.decay_rate_per_s,
+        "damping_ratio": fit.damping_ratio,
+        "q_factor": fit.q_factor,
+        "fit_quality": fit.fit_quality,
+        "real_pole_decay_rate_per_s": fit.real_pole_decay_rate_per_s,
+        "ring_model": RING_AND_POLE if fit.real_pole_decay_rate_per_s is not None else RING_ONLY,
+    }
+
+
 def _edge(
-    rec: _Record, span: _Span, fit: RingFit | None, settling_band: float
-) -> dict[str, float | bool | None] | None:
+    rec: _Record, span: _Span, result: RingFit | NoRingError | None, settling_band: float
+) -> dict[str, float | str | bool | None] | None:
     """Figures of the edge in ``span`` with its fitted ring (None: not measurable)."""
+    fit = result if isinstance(result, RingFit) else None
     u, dt, t0 = rec.u, rec.dt, rec.t0
     search_from, peak, high_end = span.search_from, span.peak, span.high_end
     plateau = _plateau(rec, fit, peak, high_end)
@@ -404,11 +465,7 @@ def _edge(
         "overshoot_pct": 100.0 * overshoot / step,
         "rise_time_s": (t90 - t10) * dt if t10 is not None and t90 is not None else None,
         "edge_time_s": t0 + t50 * dt,
-        "ring_frequency_hz": fit.frequency_hz if fit else None,
-        "decay_rate_per_s": fit.decay_rate_per_s if fit else None,
-        "damping_ratio": fit.damping_ratio if fit else None,
-        "q_factor": fit.q_factor if fit else None,
-        "fit_quality": fit.fit_quality if fit else None,
+        **_ring_figures(result),
         "settling_time_s": (entry - t50) * dt if entry is not None else None,
         "clipped": rec.flagged
         or (rec.any_clipped and bool(np.any(rec.clip[search_from : high_end + 1]))),
@@ -647,7 +704,7 @@ def analyze_capture(
         figures = _edge(rec, span, fit, settling_band)
         if figures is not None:
             edges.append(figures)
-            fits.append(fit)
+            fits.append(fit if isinstance(fit, RingFit) else None)
     if not edges:
         raise NoEdgeError(
             f"no {what} turn-off edge: looked for a transition from below 10 % to above 90 % of "
