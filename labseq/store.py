@@ -42,7 +42,7 @@ from labseq import __version__
 from labseq.errors import InputError, LabseqError
 
 #: Version of the schema below; a file with a higher version is refused, a lower one upgraded.
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 #: The node a capture or figure belongs to when nothing else is said (and in version-1 files).
 PRIMARY_NODE = "primary"
 APPLICATION = "labseq"
@@ -69,7 +69,9 @@ CAPTURE_FIGURES = (
     "rise_time_s",
     "edge_time_s",
     "ring_frequency_hz",
+    "natural_frequency_hz",
     "decay_rate_per_s",
+    "real_pole_decay_rate_per_s",
     "damping_ratio",
     "q_factor",
     "fit_quality",
@@ -80,7 +82,7 @@ CAPTURE_FIGURES = (
     "clamp_loss_w",
 )
 #: Text that says how a capture figure was obtained, one TEXT column each.
-CAPTURE_METHODS = ("snubber_loss_method", "clamp_loss_method")
+CAPTURE_METHODS = ("snubber_loss_method", "clamp_loss_method", "ring_model")
 
 
 def _sql_list(values: Iterable[str]) -> str:
@@ -238,6 +240,17 @@ def _upgrade_to_2() -> list[str]:
         )
         + [_NODE_VERDICTS_TABLE.format(table="node_verdicts")]
     )
+
+
+def _upgrade_to_3() -> list[str]:
+    """Statements that bring a version-2 file to version 3: the ring fit's natural frequency,
+    the snubber branch's real pole and the model the fit chose (ring, ring and real pole, or no
+    ring)."""
+    return [
+        "ALTER TABLE capture_figures ADD COLUMN natural_frequency_hz REAL",
+        "ALTER TABLE capture_figures ADD COLUMN real_pole_decay_rate_per_s REAL",
+        "ALTER TABLE capture_figures ADD COLUMN ring_model TEXT",
+    ]
 
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
@@ -476,7 +489,8 @@ class Store:
         conn.execute("PRAGMA foreign_keys = OFF")
         try:
             with self.db.atomic():
-                for statement in _upgrade_to_2():  # the only upgrade so far: 1 → 2
+                steps = (_upgrade_to_2() if version < 2 else []) + _upgrade_to_3()
+                for statement in steps:
                     conn.execute(" ".join(statement.split()))
                 broken = conn.execute("PRAGMA foreign_key_check").fetchall()
                 if broken:

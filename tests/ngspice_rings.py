@@ -1,14 +1,18 @@
 """ngspice records of a flyback turn-off ring across the RC-damper design space, and their truth.
 
-The netlist is a flyback switch node at turn-off: the magnetising current (a current source, held
-constant over the transient) charges the node through the leakage inductance once the switch (a
-second current source) stops conducting; a stiff clamp diode to the plateau source stands for the
-secondary taking over, after which the leakage inductance rings with the node capacitance and the
-Rs–Cs damper. The node capacitance is either linear or a junction capacitance
+The netlist is a flyback switch node at turn-off: the magnetising inductance (1 mH, its current
+nearly constant over the transient) drives the node through the leakage inductance once the
+switch (a current source) stops conducting. When the node reaches the plateau the secondary
+takes over, here a voltage-controlled switch with a wide hysteresis that ties the magnetising
+end to the plateau source and stays closed (a secondary diode stays on as long as the ring's
+leakage current is below the magnetising current, which holds here). From then on the leakage
+inductance rings with the node capacitance and the Rs–Cs damper. The node capacitance is either linear or a junction capacitance
 C0/√(1 + V/Vj) plus a fixed stray capacitance (the usual abrupt-junction form: common practice, no
-published source). A known series resistance in the leakage path stands for the winding's loss
-and is part of the reference network, and the diode is made stiff (emission coefficient 0.02) so
-that its own incremental resistance, n·Vt/I ≈ 1 mΩ, is negligible beside it.
+published source), given to ngspice as its charge Q(V) = 2·C0·Vj·(√(1 + V/Vj) − 1) (the
+capacitance form stalls ngspice's step control). A known series resistance in the leakage path (the winding's loss, plus the
+switch's on-resistance) is part of the reference network. A clamp diode in the switch's place
+makes ngspice's step control stall on the junction node, and its incremental resistance would
+vary with the current.
 
 The truth is the dominant pole of the network linearised at the plateau: the eigenvalues of the
 state matrix of L (with its series resistance) driving C_node ∥ (Rs + Cs), states (i_L, v, v_Cs).
@@ -34,6 +38,8 @@ NGSPICE = shutil.which("ngspice")
 LEAKAGE_H = 250e-9
 NODE_F = 230e-12
 SERIES_OHM = 0.05
+SWITCH_ON_OHM = 0.001
+MAGNETISING_H = 1e-3
 PEAK_A = 1.5
 PLATEAU_V = 100.0
 #: Junction node: C0/√(1 + V/Vj) + stray, 231 pF small-signal at the 100 V plateau.
@@ -75,14 +81,14 @@ class RingCase:
         node = (
             f"Cnode d 0 {NODE_F}"
             if not self.junction
-            else f"Ccoss d 0 c='{JUNCTION_C0_F}/sqrt(1+max(V(d),0)/{JUNCTION_VJ_V})'\n"
+            else f"Ccoss d 0 Q='{JUNCTION_C0_F}*2*{JUNCTION_VJ_V}*(sqrt(1+V(d)/{JUNCTION_VJ_V})-1)'\n"
             f"Cstray d 0 {JUNCTION_STRAY_F}"
         )
         return f"""* flyback turn-off ring with an RC damper
-Im 0 m DC {PEAK_A}
-Cm m 0 10p
-Dclamp m p DSTIFF
-.model DSTIFF D(IS=1e-12 N=0.02 RS=1m)
+Vbus b 0 DC {PLATEAU_V / 2}
+Lm b m {MAGNETISING_H} IC={PEAK_A}
+Ssec m p d 0 SECONDARY
+.model SECONDARY SW(VT={PLATEAU_V / 2} VH={PLATEAU_V / 2 - 0.01} RON={SWITCH_ON_OHM} ROFF=1e9)
 Vplateau p 0 DC {PLATEAU_V}
 Rseries m x {SERIES_OHM}
 Llk x d {LEAKAGE_H} IC={PEAK_A}
@@ -90,7 +96,7 @@ Llk x d {LEAKAGE_H} IC={PEAK_A}
 Rs d s {self.rs_ohm}
 Cs s 0 {self.cs_f}
 Iswitch d 0 PWL(0 {PEAK_A} 5n 0)
-.ic V(d)=0 V(m)=0 V(s)=0 V(x)=0
+.ic V(d)=0 V(s)=0
 .control
 tran {step_s} {stop_s} 0 {step_s} uic
 wrdata ring.txt v(d)
@@ -104,7 +110,7 @@ quit
         (numpy eigenvalues of the state matrix); a real number when the network has no
         complex pair."""
         return dominant_pole(
-            LEAKAGE_H, SERIES_OHM, self.node_capacitance_f(plateau_v), self.rs_ohm, self.cs_f
+            LEAKAGE_H, SERIES_OHM + SWITCH_ON_OHM, self.node_capacitance_f(plateau_v), self.rs_ohm, self.cs_f
         )
 
 

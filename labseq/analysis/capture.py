@@ -315,30 +315,39 @@ def _window(rec: _Record, start: int, samples: int, rough: RingFit | None = None
 def _rough_window(rec: _Record, span: _Span) -> tuple[int, int] | None:
     """(start, samples) of the rough pass, or None when too little of the ring is in the record.
 
-    The rough window spans sixteen times the delay from the 90 % crossing to the peak, which is
-    at least a quarter ring period, and starts after the last clipped sample near the peak.
+    The rough window runs to sixteen times the delay from the 90 % crossing to the peak (which is
+    at least a quarter ring period) past the peak, and starts where the free response does, taking
+    the record's high state level as the plateau (:func:`_free_response_start`), or after the
+    last clipped sample near the peak.
     """
+    rough_samples = min(
+        max(16 * max(span.peak - span.first_high, 2), 48), span.high_end - span.peak
+    )
     start = span.peak
-    rough_samples = min(max(16 * max(span.peak - span.first_high, 2), 48), span.high_end - start)
     if rec.any_clipped:
         clipped_after = np.flatnonzero(rec.clip[start : start + rough_samples])
         if clipped_after.size:
             start += int(clipped_after[-1]) + 1
-    rough_samples = min(rough_samples, span.high_end - start)
+    start = _free_response_start(rec, rec.top, span, start)
+    rough_samples = min(span.peak + rough_samples, span.high_end) - start
     return (start, rough_samples) if rough_samples >= 24 else None
 
 
-def _free_response_start(rec: _Record, rough: RingFit, span: _Span, start: int) -> int:
+def _free_response_start(rec: _Record, plateau_v: float, span: _Span, start: int) -> int:
     """First sample of the free response: the last upward crossing of the plateau before the peak.
 
     Until the node reaches the plateau the secondary (or the clamp) does not conduct and the node
     is charged by the magnetising current; from then on the leakage inductance rings freely with
     the node. The samples between that crossing and the peak carry most of what a heavily damped
-    ring shows (one overshoot, hardly an undershoot), so the final fit starts there; the rough
-    fit's plateau (its offset) is the level. Without a crossing the window keeps ``start``.
+    ring shows (one overshoot, hardly an undershoot), so the fit starts there. Without a crossing,
+    or with clipped samples after it (the matrix pencil cannot leave them out), the window keeps
+    ``start``.
     """
-    crossing = last_upward_crossing(rec.u, rough.offset_v, span.first_high, span.peak + 1)
-    return start if crossing is None else min(start, math.ceil(crossing))
+    crossing = last_upward_crossing(rec.u, plateau_v, span.first_high, span.peak + 1)
+    if crossing is None or math.ceil(crossing) >= start:
+        return start
+    first = math.ceil(crossing)
+    return start if rec.any_clipped and bool(np.any(rec.clip[first:start])) else first
 
 
 def _final_samples(rec: _Record, rough: RingFit, start: int, high_end: int) -> int:
@@ -363,22 +372,32 @@ def _final_samples(rec: _Record, rough: RingFit, start: int, high_end: int) -> i
 def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | NoRingError | None]:
     """Two-pass fit of the first ring after each edge (see the module notes).
 
-    The rough pass (matrix pencil only, from the peak) sizes each final window, which starts
-    where the free response does; both passes fit every edge of the record in one vectorised call
+    The rough pass sizes each final window, which starts where the free response does; both
+    passes fit every edge of the record in one vectorised call
     (:func:`labseq.analysis.ringfit.fit_rings`). An edge whose response settles without ringing
     gets its :class:`NoRingError` (with the real pole's decay); one with no usable fit, None.
     """
     rough_windows = {k: w for k, span in enumerate(spans) if (w := _rough_window(rec, span))}
-    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()], refine=False)
+    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()])
     found: dict[int, RingFit | NoRingError] = {
-        k: fit for k, fit in zip(rough_windows, roughs, strict=True) if isinstance(fit, RingFit)
+        k: fit
+        for k, fit in zip(rough_windows, roughs, strict=True)
+        if isinstance(fit, RingFit | NoRingError)
     }
     final_windows = {}
     for k, rough in found.items():
-        peak_start = rough_windows[k][0]
-        start = _free_response_start(rec, rough, spans[k], peak_start)
-        samples = _final_samples(rec, rough, peak_start, spans[k].high_end) + peak_start - start
-        final_windows[k] = _window(rec, start, samples, rough)
+        after_peak = max(spans[k].peak, rough_windows[k][0])  # the peak, or after clipping
+        start = _free_response_start(rec, rough.offset_v, spans[k], after_peak)
+        if isinstance(rough, RingFit):
+            samples = _final_samples(rec, rough, after_peak, spans[k].high_end)
+        else:  # about FIT_TIME_CONSTANTS of the real pole; the ring's start from the pencil
+            samples = min(
+                math.ceil(FIT_TIME_CONSTANTS / rough.decay_rate_per_s / rec.dt),
+                spans[k].high_end - after_peak,
+            )
+        final_windows[k] = _window(
+            rec, start, samples + after_peak - start, rough if isinstance(rough, RingFit) else None
+        )
     finals = fit_rings(list(final_windows.values()))
     for k, fit in zip(final_windows, finals, strict=True):
         best = fit if isinstance(fit, RingFit | NoRingError) else found[k]

@@ -42,12 +42,17 @@ PENCIL_MODEL_ORDER = 6
 PENCIL_MAX_SAMPLES = 72
 #: Smallest ring amplitude, relative to the window's peak-to-peak spread, that counts as a ring.
 MIN_RELATIVE_AMPLITUDE = 0.02
+#: Fewest cycles of a fitted ring's damped frequency that the window must span for it to count.
+MIN_RING_CYCLES = 0.5
 #: Fewest samples a window may hold for a fit.
 MIN_FIT_SAMPLES = 12
 #: Refinement stops when a step changes the nonlinear parameters by less than this (relative),
 #: or after ``REFINE_MAX_STEPS`` trial steps; from a matrix-pencil start it usually needs a few.
 REFINE_STEP_TOLERANCE = 1e-9
 REFINE_MAX_STEPS = 60
+#: … or when an accepted step lowers the cost by less than this fraction: a parameter the data
+#: hardly determine (the decay of a real pole of near-zero amplitude) then stops the search.
+REFINE_COST_TOLERANCE = 1e-7
 #: Smallest normalised Gram determinant det(G)/Π diag(G) of the basis: below it the basis is
 #: degenerate (e.g. less than a fraction of a period in the window, or two equal poles) and a step
 #: there is rejected.
@@ -294,22 +299,28 @@ TWO_POLES = _Model(ring=False, real_poles=2)
 def _starts(model: _Model, poles: np.ndarray, ring: tuple[float, float] | None) -> list[np.ndarray]:
     """Start vectors of ``model``'s nonlinear parameters from the pencil's poles (window units).
 
-    ``ring`` is the (σ, ωd) of the ring to start from, if any. Real poles come from the pencil's
-    real poles that decay within a few window lengths (the plateau's pole sits at 0); where it
-    has too few, from ``REAL_POLE_STARTS``.
+    ``ring`` is the (σ, ωd) of the ring to start from; without one (the pencil found no
+    oscillatory pole, as for a heavily damped ring whose undershoot is within a few codes), the
+    ring starts at damping ratios of 0.5 and 0.7 with the natural frequency of the pencil's
+    strongest real pole. Real poles come from the pencil's real poles that decay within a few
+    window lengths (the plateau's pole sits at 0); where it has too few, from
+    ``REAL_POLE_STARTS``.
     """
     real = [float(-p.real) for p in poles if abs(p.imag) < 0.5 and -p.real > 0.3]
-    candidates = real + [
-        rate for rate in REAL_POLE_STARTS if all(abs(rate - r) > 0.5 for r in real)
-    ]
-    if model.ring and ring is None:
-        return []
-    head = list(ring) if model.ring else []
+    candidates = real + [r for r in REAL_POLE_STARTS if all(abs(r - x) > 0.5 for x in real)]
+    if not model.ring:
+        heads = [[]]
+    elif ring is not None:
+        heads = [list(ring)]
+    else:
+        natural = candidates[0]
+        heads = [[zeta * natural, math.sqrt(1 - zeta**2) * natural] for zeta in (0.5, 0.7)]
     if model.real_poles == 0:
-        return [np.array(head)]
+        return [np.array(head) for head in heads]
     if model.real_poles == 1:
-        return [np.array([*head, rate]) for rate in candidates[: 1 + (not real)]]
-    return [np.array([*head, *sorted(candidates[:2])])]
+        rates = candidates[: 1 + (not real)]
+        return [np.array([*head, rate]) for head in heads for rate in rates]
+    return [np.array([*head, *sorted(candidates[:2])]) for head in heads]
 
 
 def _ring_start(poles: np.ndarray) -> tuple[float, float] | None:
@@ -435,7 +446,8 @@ class _VarPro:
         The step solves (JᵀJ + λ·diag(JᵀJ))·δ = −Jᵀr (Marquardt 1963, with the diagonal scaling
         of Moré 1978); each window's λ shrinks after a step that lowers its cost and grows after
         one that does not. Windows drop out of the batch once a step is below
-        ``REFINE_STEP_TOLERANCE`` of the parameters. ``theta`` is updated in place.
+        ``REFINE_STEP_TOLERANCE`` of the parameters or an accepted one gains less than
+        ``REFINE_COST_TOLERANCE`` of the cost. ``theta`` is updated in place.
         """
         best = self.project(np.arange(theta.shape[0]), theta)
         damping = np.full(theta.shape[0], LM_INITIAL_DAMPING)
@@ -454,6 +466,7 @@ class _VarPro:
             step[usable] = -np.linalg.solve(system[usable], gradient[usable][:, :, None])[:, :, 0]
             trial = self.project(index, theta[index] + step)
             accept = usable & (trial.cost <= best.cost[index])  # False for NaN, degenerate
+            gain = np.where(accept, best.cost[index] - trial.cost, np.inf)
             taken = index[accept]
             theta[taken] += step[accept]
             for name in ("ok", "linear", "cost", "normal", "gradient"):
@@ -462,7 +475,9 @@ class _VarPro:
             # A step below the tolerance ends the search whether or not it lowered the cost: at
             # the minimum, rounding decides the comparison.
             size = np.linalg.norm(theta[index], axis=1)
-            converged = np.linalg.norm(step, axis=1) <= REFINE_STEP_TOLERANCE * size
+            converged = (np.linalg.norm(step, axis=1) <= REFINE_STEP_TOLERANCE * size) | (
+                gain <= REFINE_COST_TOLERANCE * best.cost[index]
+            )
             active[index[converged | ~usable | (damping[index] > LM_MAX_DAMPING)]] = False
         return best
 
@@ -529,6 +544,8 @@ def _ring_problem(candidate: _Candidate, samples: int) -> str | None:
     sigma, omega = candidate.theta[:2]
     if not (sigma > 0 and 0 < abs(omega) < math.pi * samples):
         return "the fitted ring is not a decaying oscillation"
+    if abs(omega) < 2 * math.pi * MIN_RING_CYCLES:
+        return "the fitted ring completes too little of a cycle in the window to be a ring"
     if math.hypot(*candidate.linear[:2]) < MIN_RELATIVE_AMPLITUDE:
         return "no oscillation stands out of the window's noise and trend"
     if candidate.model.real_poles and not candidate.theta[2] > 0:
@@ -536,7 +553,9 @@ def _ring_problem(candidate: _Candidate, samples: int) -> str | None:
     return None
 
 
-def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit | RingFitError]:
+def fit_rings(
+    windows: list[RingWindow], *, refine: bool = True, branch: bool = True
+) -> list[RingFit | RingFitError]:
     """Fit the free response (ring, real pole, plateau) of each window, vectorised across windows.
 
     Parameters
@@ -544,6 +563,8 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
     windows : the windows to fit (see :class:`RingWindow`).
     refine : False returns the starts (with their least-squares amplitudes and plateau)
         unrefined, the model chosen among the ring models only.
+    branch : False fits the ring alone (no real pole, no check for "no ring"): a quicker rough
+        fit, e.g. to size a window.
 
     Returns
     -------
@@ -584,8 +605,10 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
     if not members:
         return results
 
-    pencil = _pencil_seeds(ys)
+    # An earlier fit of the same ring (RingWindow.start) gives the ring's start, and its real
+    # pole's if it has one; the matrix pencil gives the rest.
     ring_starts: dict[int, tuple[float, float] | None] = {}
+    pole_starts: dict[int, float] = {}
     for j, k in enumerate(members):
         start = windows[k].start
         if start is not None:
@@ -594,20 +617,29 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
                 start.decay_rate_per_s * per_unit,
                 start.angular_frequency_rad_s * per_unit,
             )
-        elif isinstance(pencil[j], np.ndarray):
-            ring_starts[j] = _ring_start(pencil[j])
-        else:
-            ring_starts[j] = None
-    poles = {
-        j: seed if isinstance(seed, np.ndarray) else np.array([]) for j, seed in enumerate(pencil)
-    }
+            if start.real_pole_decay_rate_per_s is not None:
+                pole_starts[j] = start.real_pole_decay_rate_per_s * per_unit
+    need_pencil = [j for j in range(len(members)) if j not in pole_starts]
+    pencil: dict[int, np.ndarray | RingFitError] = dict(
+        zip(need_pencil, _pencil_seeds([ys[j] for j in need_pencil]), strict=True)
+    )
+    poles = {j: seed for j, seed in pencil.items() if isinstance(seed, np.ndarray)}
+    for j in range(len(members)):
+        if j not in ring_starts:
+            ring_starts[j] = _ring_start(poles[j]) if j in poles else None
 
     def starts_of(model: _Model, chosen: list[int]) -> dict[int, list[np.ndarray]]:
-        return {j: _starts(model, poles[j], ring_starts[j]) for j in chosen}
+        starts = {}
+        for j in chosen:
+            if model is RING_AND_POLE and j in pole_starts and ring_starts[j] is not None:
+                starts[j] = [np.array([*ring_starts[j], pole_starts[j]])]
+            else:
+                starts[j] = _starts(model, poles.get(j, np.array([])), ring_starts[j])
+        return starts
 
     everyone = list(range(len(members)))
     candidates: dict[int, list[_Candidate]] = {j: [] for j in everyone}
-    for model in (RING, RING_AND_POLE):
+    for model in (RING, RING_AND_POLE) if branch else (RING,):
         for j, candidate in _fit_model(model, starts_of(model, everyone), ys, ws, refine).items():
             candidates[j].append(candidate)
 
@@ -627,6 +659,7 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
         j
         for j in everyone
         if refine
+        and branch
         and (
             j not in rings
             or rings[j].theta[0] / math.hypot(*rings[j].theta[:2]) > NO_RING_CHECK_DAMPING
@@ -652,7 +685,7 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
         else:
             results[k] = RingFitError(
                 problems.get(j)
-                or (str(pencil[j]) if isinstance(pencil[j], RingFitError) else "")
+                or (str(pencil[j]) if isinstance(pencil.get(j), RingFitError) else "")
                 or "no decaying oscillation among the matrix pencil poles"
             )
     return results
