@@ -40,6 +40,7 @@ from typing import Any
 import numpy as np
 
 from labseq.analysis.capture import FIGURE_UNITS
+from labseq.analysis.snubber import METHOD_LABELS
 from labseq.analysis.verdict import SIGNED_FIGURES
 from labseq.errors import InputError
 from labseq.sequence import NodeSpec, parse_sequence
@@ -236,6 +237,14 @@ class RunReview:
     load_values_a: tuple[float, ...]
     node_names: tuple[str, ...] = (PRIMARY_NODE,)  # every node of the run, the primary first
     node_name: str = PRIMARY_NODE  # the node whose figures ``points`` and ``worst`` hold
+    #: How each (node, point id)'s snubber loss was obtained: "waveform" and/or "cv2f".
+    loss_methods: dict[tuple[str, int], tuple[str, ...]] = field(default_factory=dict)
+
+    def loss_method(self, point: PointReview) -> str | None:
+        """How the viewed node's snubber loss at ``point`` was obtained, as shown beside it:
+        "waveform", "Cs·V²·fsw" (the record was too short for the waveform), or both."""
+        methods = self.loss_methods.get((self.node_name, point.point.id))
+        return ", ".join(METHOD_LABELS.get(m, m) for m in methods) if methods else None
 
     @property
     def rated_load_a(self) -> float | None:
@@ -292,6 +301,10 @@ class RunReview:
         for (row, column), point in zip(self._cells(), self.points, strict=True):
             cells[row][column] = point.verdict
         return cells
+
+    def cell_points(self) -> dict[tuple[int, int], PointReview]:
+        """The point at each (line row, load column) of the grid."""
+        return dict(zip(self._cells(), self.points, strict=True))
 
     def _cells(self) -> list[tuple[int, int]]:
         return grid_cells(self.points, self.line_values_v, self.load_values_a)
@@ -411,6 +424,7 @@ def review_run(store: Store, run_id: int) -> RunReview:
         load_values_a=tuple(sorted({p.point.load_a for p in points})),
         node_names=node_names,
         node_name=node_names[0],
+        loss_methods=store.capture_methods(run_id, "snubber_loss_method"),
     )
 
 

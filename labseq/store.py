@@ -854,6 +854,22 @@ class Store:
         with self.db.atomic():
             self.db["capture_figures"].insert(record, replace=True)
 
+    def capture_methods(self, run_id: int, name: str) -> dict[tuple[str, int], tuple[str, ...]]:
+        """The distinct values of the capture method ``name`` (one of ``CAPTURE_METHODS``, e.g.
+        how the snubber loss was obtained) at each (node, point id) of a run."""
+        if name not in CAPTURE_METHODS:
+            raise ValueError(f"unknown capture method {name!r}; known: {CAPTURE_METHODS}")
+        rows = self.db.execute(
+            f"SELECT DISTINCT c.node, c.point_id, f.{name} FROM captures c "
+            "JOIN capture_figures f ON f.capture_id = c.id "
+            f"WHERE c.run_id = ? AND f.{name} IS NOT NULL ORDER BY f.{name}",
+            [run_id],
+        ).fetchall()
+        methods: dict[tuple[str, int], tuple[str, ...]] = {}
+        for node, point_id, value in rows:
+            methods[(node, point_id)] = (*methods.get((node, point_id), ()), value)
+        return methods
+
     def capture_figures(self, capture_id: int) -> dict[str, Any] | None:
         """The stored figures of one capture (edges decoded), or None before analysis."""
         rows = list(self.db["capture_figures"].rows_where("capture_id = ?", [capture_id]))

@@ -65,10 +65,15 @@ from labseq.analysis.levels import (
 )
 from labseq.analysis.ringfit import NoRingError, RingFit, RingWindow, fit_rings
 from labseq.analysis.snubber import (
+    BRANCH_SETTLE_TIME_CONSTANTS,
+    CV2F,
+    WAVEFORM,
     SnubberBranch,
     branch_resistor_power_w,
     cv2f_loss_w,
+    noise_power_w,
     period_means_w,
+    waveform_method_record_s,
 )
 
 #: Fraction of the rating that the peak may use. From memory of common power-supply component
@@ -107,8 +112,10 @@ RING_FIGURES = (
     "q_factor",
     "fit_quality",
 )
-#: Snubber branch start-up: decay time constants skipped before the loss window.
-BRANCH_SETTLE_TIME_CONSTANTS = 5.0
+#: Second differences used for the noise level (evenly spaced over the record), and the clip, in
+#: robust standard deviations, that leaves the edges out of it.
+NOISE_MAX_SAMPLES = 1 << 16
+NOISE_CLIP_SIGMAS = 4.0
 
 
 class NoEdgeError(ValueError):
@@ -211,6 +218,7 @@ class _Record:
     base: float
     top: float
     any_clipped: bool  # some sample is in ``clip``
+    noise_v: float  # rms noise of the record (record_noise_rms_v)
 
 
 def _check_inputs(
@@ -498,15 +506,38 @@ def _snubber_losses(
     """Per-edge snubber resistor loss and the method used (see ``analyze_capture``)."""
     record_s = (rec.u.size - 1) * rec.dt
     settle_s = BRANCH_SETTLE_TIME_CONSTANTS * branch.time_constant_s
-    if record_s - branch.period_s < settle_s:
+    if record_s < waveform_method_record_s(branch):
         return [
-            (cv2f_loss_w(branch.cs_f, float(e["plateau_v"]) - rec.base, branch.fsw_hz), "cv2f")
+            (cv2f_loss_w(branch.cs_f, float(e["plateau_v"]) - rec.base, branch.fsw_hz), CV2F)
             for e in edges
         ]
     power = branch_resistor_power_w(rec.u, rec.dt, branch)
     centred = np.array([float(e["edge_time_s"]) - rec.t0 for e in edges]) - 0.5 * branch.period_s
     starts = np.clip(centred, settle_s, record_s - branch.period_s)
-    return [(float(p), "waveform") for p in period_means_w(power, rec.dt, starts, branch.period_s)]
+    bias_w = noise_power_w(rec.noise_v, rec.dt, branch)
+    means = period_means_w(power, rec.dt, starts, branch.period_s)
+    return [(max(float(p) - bias_w, 0.0), WAVEFORM) for p in means]
+
+
+def record_noise_rms_v(u: np.ndarray) -> float:
+    """Rms of the record's white noise, from its second differences d = u[n+1] − 2·u[n] + u[n−1].
+
+    For white noise of variance σ², d has variance 6σ², while the waveform itself — plateaus,
+    on-state ramps, rings of many samples per period — adds little to d except at the few samples
+    of each edge. σ is first estimated robustly from the median absolute d (1.4826·MAD/√6 for a
+    Gaussian), then as the rms of the d within ``NOISE_CLIP_SIGMAS`` of it, which leaves the edges
+    out. At most ``NOISE_MAX_SAMPLES`` evenly spaced d are used. Noise limited to a band below
+    the sample rate (correlated samples) reads low, so less is subtracted and the loss errs high.
+    """
+    d = np.diff(u, 2)
+    d = d[:: max(1, d.size // NOISE_MAX_SAMPLES)]
+    if d.size < MIN_RECORD_SAMPLES:
+        return 0.0
+    rough = 1.4826 * float(np.median(np.abs(d))) / math.sqrt(6.0)
+    if rough == 0.0:  # the noise is below the quantisation step
+        return 0.0
+    quiet = d[np.abs(d) <= NOISE_CLIP_SIGMAS * math.sqrt(6.0) * rough]
+    return float(np.sqrt(np.mean(quiet * quiet) / 6.0))
 
 
 #: Samples above this share of the way from the reflected plateau to the peak count as the clamp's
@@ -702,7 +733,8 @@ def analyze_capture(
     changes = state_changes(
         u, reference_level(base, top, LOW_REFERENCE), reference_level(base, top, HIGH_REFERENCE)
     )
-    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top, bool(np.any(clip)))
+    noise_v = record_noise_rms_v(u) if snubber else 0.0
+    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top, bool(np.any(clip)), noise_v)
 
     durations = changes.rise_to - changes.rise_from
     fast = durations <= SLOW_SWING_FACTOR * max(2, durations.min(initial=u.size))

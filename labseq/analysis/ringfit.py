@@ -413,7 +413,10 @@ class _VarPro:
             ok[ok] = np.linalg.det(basis_gram[ok]) > MIN_BASIS_INDEPENDENCE * scale[ok]
         solved = np.zeros((index.size, basis, basis))
         solved[ok] = np.linalg.solve(basis_gram[ok], gram[ok, :basis, basis:])  # G⁻¹·B·(y, D)
-        projected = gram[:, basis:, basis:] - np.swapaxes(gram[:, :basis, basis:], 1, 2) @ solved
+        with np.errstate(over="ignore", invalid="ignore"):  # rows not ``ok``: cost inf below
+            projected = (
+                gram[:, basis:, basis:] - np.swapaxes(gram[:, :basis, basis:], 1, 2) @ solved
+            )
         linear = solved[:, :, 0]
         p = model.nonlinear
         mix = np.zeros((index.size, p, p))  # J = P·Dᵀ·mix
