@@ -130,7 +130,8 @@ def test_analyze_table_and_plot(tmp_path: Path) -> None:
     )
     assert result.exit_code == 0, result.output
     assert "18 MHz" in result.output and "ring_frequency_hz" in result.output
-    assert "cv2f" in result.output  # a 3 µs record is shorter than a 10 µs period
+    assert "(Cs·V²·fsw)" in result.output  # a 3 µs record is shorter than a 10 µs period
+    assert "probe is across the whole branch" in " ".join(result.output.split())  # assumptions
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
