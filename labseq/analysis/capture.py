@@ -99,6 +99,9 @@ DECAYED_FRACTION = 0.05
 SLOW_SWING_FACTOR = 10.0
 #: Consecutive samples in the settling band that show an edge without a fitted ring has settled.
 QUIET_SAMPLES = 32
+#: A ring damped more than this (by the rough fit) is fitted from the plateau crossing, where its
+#: free response starts; a lighter one from its peak (see :func:`_free_response_start`).
+EARLY_START_DAMPING = 0.3
 #: Least R² of a final ring fit for its figures to count (see the module notes).
 MIN_RING_FIT_QUALITY = 0.5
 #: ``ring_model`` of an edge: a ring alone, a ring with the snubber branch's real pole, no ring.
@@ -395,7 +398,12 @@ def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | NoRi
     final_windows = {}
     for k, rough in found.items():
         after_peak = max(spans[k].peak, rough_windows[k][0])  # the peak, or after clipping
-        start = _free_response_start(rec, rough.offset_v, spans[k], after_peak)
+        heavy = not isinstance(rough, RingFit) or rough.damping_ratio > EARLY_START_DAMPING
+        start = (
+            _free_response_start(rec, rough.offset_v, spans[k], after_peak)
+            if heavy
+            else after_peak
+        )
         if isinstance(rough, RingFit):
             samples = _final_samples(rec, rough, after_peak, spans[k].high_end)
         else:  # about FIT_TIME_CONSTANTS of the real pole; the ring's start from the pencil

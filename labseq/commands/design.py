@@ -323,12 +323,12 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
             ) from None
         peak_v = point_figures.get("peak_v", {}).get("worst")
         peak = peak_v if peak_v is not None else float("-inf")
-        rows.append((peak, point, proposal, plateau_v - base_v, clipped[point.id]))
+        rows.append((peak, point, proposal, plateau_v - base_v, clipped[point.id], zeta))
     if not rows:
         raise InputError(f"design --run {run_id}: no point of the run has a fitted ring")
     rows.sort(key=lambda row: -row[0])
     part_set = propose_part_set(
-        [(prop.l_leak_h, prop.c_par_f, step_v) for _, _, prop, step_v, _ in rows],
+        [(prop.l_leak_h, prop.c_par_f, step_v) for _, _, prop, step_v, _, _ in rows],
         fsw_hz,
         loss_budget_w=budget_w,
         cs_f=cs_f,
@@ -341,10 +341,11 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
                 "peak_v": peak,
                 "step_v": step_v,
                 "clipped": was_clipped,
+                "measured_damping_ratio": measured,
                 **prop.as_dict(),
                 "part_set_damping_ratio": zeta,
             }
-            for (peak, p, prop, step_v, was_clipped), zeta in zip(
+            for (peak, p, prop, step_v, was_clipped, measured), zeta in zip(
                 rows, part_set.damping_ratios, strict=True
             )
         ]
@@ -359,7 +360,7 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
         f"{snubber.label}, fsw = {format_si(fsw_hz, 'Hz')}; L and Cpar of each point from its "
         "ring measured with that damper"
     )
-    for peak_v, point, prop, _, was_clipped in rows:
+    for peak_v, point, prop, _, was_clipped, _ in rows:
         zeta = "—" if prop.damping_ratio is None else f"{prop.damping_ratio:.2f}"
         click.echo(
             f"{format_si(point.line_v, 'V'):>7} / {format_si(point.load_a, 'A'):<8} "
