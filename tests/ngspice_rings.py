@@ -40,7 +40,7 @@ NODE_F = 230e-12
 SERIES_OHM = 0.05
 SWITCH_ON_OHM = 0.001
 MAGNETISING_H = 1e-3
-PEAK_A = 1.5
+PEAK_A = 2.0
 PLATEAU_V = 100.0
 #: Junction node: C0/√(1 + V/Vj) + stray, 231 pF small-signal at the 100 V plateau.
 JUNCTION_C0_F, JUNCTION_VJ_V, JUNCTION_STRAY_F = 600e-12, 5.0, 100e-12
