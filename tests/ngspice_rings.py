@@ -1,23 +1,27 @@
 """ngspice records of a flyback turn-off ring across the RC-damper design space, and their truth.
 
-The netlist is a flyback switch node at turn-off: the magnetising inductance (1 mH, its current
-nearly constant over the transient) drives the node through the leakage inductance once the
-switch (a current source) stops conducting. When the node reaches the plateau the secondary
-takes over, here a voltage-controlled switch with a wide hysteresis that ties the magnetising
-end to the plateau source and stays closed (a secondary diode stays on as long as the ring's
-leakage current is below the magnetising current, which holds here). From then on the leakage
-inductance rings with the node capacitance and the Rs–Cs damper. The node capacitance is either linear or a junction capacitance
-C0/√(1 + V/Vj) plus a fixed stray capacitance (the usual abrupt-junction form: common practice, no
-published source), given to ngspice as its charge Q(V) = 2·C0·Vj·(√(1 + V/Vj) − 1) (the
-capacitance form stalls ngspice's step control). A known series resistance in the leakage path (the winding's loss, plus the
-switch's on-resistance) is part of the reference network. A clamp diode in the switch's place
-makes ngspice's step control stall on the junction node, and its incremental resistance would
-vary with the current.
+The ring netlist is a flyback switch node at turn-off: the magnetising inductance (1 mH, its
+current nearly constant over the transient) drives the node through the leakage inductance once
+the switch (a current source) stops conducting. When the node reaches the plateau the secondary
+takes over, here a voltage-controlled switch with a wide hysteresis that ties the magnetising end
+to the plateau source and stays closed (a secondary diode stays on as long as the ring's leakage
+current is below the magnetising current, which holds here). From then on the leakage inductance
+rings with the node capacitance and the Rs–Cs damper. A clamp diode in the switch's place makes
+ngspice's step control stall on the junction node, and its incremental resistance would vary
+with the current.
+
+The node capacitance is either linear or a junction capacitance C0/√(1 + V/Vj) plus a fixed stray
+capacitance (the usual abrupt-junction form: common practice, no published source), given to
+ngspice as its charge Q(V) = 2·C0·Vj·(√(1 + V/Vj) − 1) (the capacitance form stalls ngspice's step
+control). A known series resistance in the leakage path (the winding's loss, plus the switch's
+on-resistance) is part of the reference network.
 
 The truth is the dominant pole of the network linearised at the plateau: the eigenvalues of the
 state matrix of L (with its series resistance) driving C_node ∥ (Rs + Cs), states (i_L, v, v_Cs).
-Records are resampled uniformly, given Gaussian noise and quantised to 8 bits as a scope would.
-ngspice runs once per distinct netlist in a session (``functools.cache``).
+Records are resampled uniformly, given Gaussian noise and quantised to 8 bits as a scope would,
+the ring filling most of the screen. ngspice runs once per distinct netlist in a session
+(``functools.cache``). :func:`loss_periods` is a whole DCM flyback over several switching periods,
+for the snubber loss.
 """
 
 from __future__ import annotations
@@ -81,7 +85,8 @@ class RingCase:
         node = (
             f"Cnode d 0 {NODE_F}"
             if not self.junction
-            else f"Ccoss d 0 Q='{JUNCTION_C0_F}*2*{JUNCTION_VJ_V}*(sqrt(1+V(d)/{JUNCTION_VJ_V})-1)'\n"
+            else f"Ccoss d 0 Q='{JUNCTION_C0_F}*2*{JUNCTION_VJ_V}*"
+            f"(sqrt(1+V(d)/{JUNCTION_VJ_V})-1)'\n"
             f"Cstray d 0 {JUNCTION_STRAY_F}"
         )
         return f"""* flyback turn-off ring with an RC damper
@@ -109,9 +114,9 @@ quit
         """Dominant (slowest-decaying) eigenvalue of the network linearised at ``plateau_v``
         (numpy eigenvalues of the state matrix); a real number when the network has no
         complex pair."""
-        return dominant_pole(
-            LEAKAGE_H, SERIES_OHM + SWITCH_ON_OHM, self.node_capacitance_f(plateau_v), self.rs_ohm, self.cs_f
-        )
+        capacitance_f = self.node_capacitance_f(plateau_v)
+        series_ohm = SERIES_OHM + SWITCH_ON_OHM
+        return dominant_pole(LEAKAGE_H, series_ohm, capacitance_f, self.rs_ohm, self.cs_f)
 
 
 def state_matrix(l_h: float, r_series_ohm: float, c_f: float, rs_ohm: float, cs_f: float):

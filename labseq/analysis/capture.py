@@ -389,7 +389,7 @@ def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | NoRi
     gets its :class:`NoRingError` (with the real pole's decay); one with no usable fit, None.
     """
     rough_windows = {k: w for k, span in enumerate(spans) if (w := _rough_window(rec, span))}
-    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()])
+    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()], refine=False)
     found: dict[int, RingFit | NoRingError] = {
         k: fit
         for k, fit in zip(rough_windows, roughs, strict=True)
@@ -537,10 +537,10 @@ def record_noise_rms_v(u: np.ndarray) -> float:
     out. At most ``NOISE_MAX_SAMPLES`` evenly spaced d are used. Noise limited to a band below
     the sample rate (correlated samples) reads low, so less is subtracted and the loss errs high.
     """
-    d = np.diff(u, 2)
-    d = d[:: max(1, d.size // NOISE_MAX_SAMPLES)]
-    if d.size < MIN_RECORD_SAMPLES:
+    if u.size < MIN_RECORD_SAMPLES:
         return 0.0
+    middle = np.arange(1, u.size - 1, max(1, (u.size - 2) // NOISE_MAX_SAMPLES))
+    d = u[middle + 1] - 2.0 * u[middle] + u[middle - 1]
     rough = 1.4826 * float(np.median(np.abs(d))) / math.sqrt(6.0)
     if rough == 0.0:  # the noise is below the quantisation step
         return 0.0

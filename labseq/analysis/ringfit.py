@@ -48,11 +48,12 @@ MIN_RING_CYCLES = 0.5
 MIN_FIT_SAMPLES = 12
 #: Refinement stops when a step changes the nonlinear parameters by less than this (relative),
 #: or after ``REFINE_MAX_STEPS`` trial steps; from a matrix-pencil start it usually needs a few.
-REFINE_STEP_TOLERANCE = 1e-9
-REFINE_MAX_STEPS = 60
-#: … or when an accepted step lowers the cost by less than this fraction: a parameter the data
-#: hardly determine (the decay of a real pole of near-zero amplitude) then stops the search.
-REFINE_COST_TOLERANCE = 1e-7
+REFINE_STEP_TOLERANCE = 1e-7
+REFINE_MAX_STEPS = 20
+#: … or when an accepted step lowers the cost by less than this fraction of the mean squared
+#: residual per sample, a change of χ² far below one: a parameter the data hardly determine (the
+#: decay of a real pole of near-zero amplitude) then stops the search.
+REFINE_COST_TOLERANCE = 1e-3
 #: Smallest normalised Gram determinant det(G)/Π diag(G) of the basis: below it the basis is
 #: degenerate (e.g. less than a fraction of a period in the window, or two equal poles) and a step
 #: there is rejected.
@@ -318,7 +319,7 @@ def _starts(model: _Model, poles: np.ndarray, ring: tuple[float, float] | None) 
     if model.real_poles == 0:
         return [np.array(head) for head in heads]
     if model.real_poles == 1:
-        rates = candidates[: 1 + (not real)]
+        rates = candidates[:1]
         return [np.array([*head, rate]) for head in heads for rate in rates]
     return [np.array([*head, *sorted(candidates[:2])]) for head in heads]
 
@@ -450,7 +451,7 @@ class _VarPro:
         of Moré 1978); each window's λ shrinks after a step that lowers its cost and grows after
         one that does not. Windows drop out of the batch once a step is below
         ``REFINE_STEP_TOLERANCE`` of the parameters or an accepted one gains less than
-        ``REFINE_COST_TOLERANCE`` of the cost. ``theta`` is updated in place.
+        ``REFINE_COST_TOLERANCE`` of the mean squared residual. ``theta`` is updated in place.
         """
         best = self.project(np.arange(theta.shape[0]), theta)
         damping = np.full(theta.shape[0], LM_INITIAL_DAMPING)
@@ -479,7 +480,7 @@ class _VarPro:
             # the minimum, rounding decides the comparison.
             size = np.linalg.norm(theta[index], axis=1)
             converged = (np.linalg.norm(step, axis=1) <= REFINE_STEP_TOLERANCE * size) | (
-                gain <= REFINE_COST_TOLERANCE * best.cost[index]
+                gain <= REFINE_COST_TOLERANCE * best.cost[index] / self.size[index]
             )
             active[index[converged | ~usable | (damping[index] > LM_MAX_DAMPING)]] = False
         return best
