@@ -400,9 +400,7 @@ def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | NoRi
         after_peak = max(spans[k].peak, rough_windows[k][0])  # the peak, or after clipping
         heavy = not isinstance(rough, RingFit) or rough.damping_ratio > EARLY_START_DAMPING
         start = (
-            _free_response_start(rec, rough.offset_v, spans[k], after_peak)
-            if heavy
-            else after_peak
+            _free_response_start(rec, rough.offset_v, spans[k], after_peak) if heavy else after_peak
         )
         if isinstance(rough, RingFit):
             samples = _final_samples(rec, rough, after_peak, spans[k].high_end)
