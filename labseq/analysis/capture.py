@@ -13,14 +13,19 @@ The base level is the mode of the lower half of the whole-record histogram (IEEE
 
 The ring
 --------
-The fit covers the first, dominant ring after the peak: the window starts at the peak (or after
-the last clipped sample), spans about three decay time constants (at least 3 and at most 20 ring
-periods), and ends early where the node departs from the plateau by more than 10 % of the step
-after the ring has decayed, so a later, slower ring is not mixed in. The window is decimated to
-at most ``FIT_MAX_SAMPLES`` samples, which keeps at least 20 samples per ring period. A fit that
+The fit covers the first, dominant ring after each edge (:mod:`labseq.analysis.ringfit`: the ring,
+the RC damper's real pole and the plateau, the model order chosen from the data). A rough fit
+sizes the window: about three decay time constants of the ring and of the real pole (at least 3
+and at most 20 ring periods), ending early where the node departs from the plateau by more than
+10 % of the step after the ring has decayed, so a later, slower ring is not mixed in. A ring that
+the rough fit finds damped beyond ζ = 0.3 is fitted from the last crossing of the plateau before
+the peak, where the free response starts and where a heavily damped ring shows most of itself; a
+lighter one from its peak (or after the last clipped sample). The window is decimated to at most
+``FIT_MAX_SAMPLES`` samples, which keeps at least 20 samples per ring period. A fit that
 explains less than ``MIN_RING_FIT_QUALITY`` of the window's variance has found noise, not a ring
 (e.g. a rectifier whose damper leaves a single undershoot and no oscillation): the edge then has
-no ring figures, and its plateau is the record's high state level.
+no ring figures, and its plateau is the record's high state level. An edge whose response is
+better described without a ring reports "no ring" and the real pole's decay rate.
 
 The RCD clamp (:func:`clamp_figures`)
 -------------------------------------
