@@ -353,3 +353,23 @@ def test_design_rc_loss_beside_a_clamp_includes_the_leakage_energy() -> None:
     text = CliRunner().invoke(group, ["design", *rc, "--cs", "100p", *clamp]).output
     assert "leakage energy ½·L·Ipk²·fsw" in text and "RCD clamp energy balance" in text
     assert "AN-4147" not in text and "Fairchild" not in text
+
+
+def test_analyze_says_no_ring_for_a_node_that_settles_without_ringing(tmp_path: Path) -> None:
+    # An overdamped turn-off: a ramp to the 250 V plateau, then two real poles (40 ns and 8 ns)
+    # lift the node by a single bump and let it settle, with no oscillation at all.
+    t = np.arange(-200, 2800) * 1e-9
+    rise = np.clip(t / 20e-9, 0.0, 1.0) * 250.0
+    tau = np.maximum(t - 20e-9, 0.0)
+    tail = 60 * (np.exp(-tau / 40e-9) - np.exp(-tau / 8e-9))
+    path = tmp_path / "overdamped.npz"
+    np.savez(path, time_s=t, volts=rise + tail)
+    result = CliRunner().invoke(group, ["analyze", str(path), "--json"])
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.output)
+    # The closed form has no complex pair: no ζ or frequency, the slower real pole's decay.
+    assert data["ring_model"] == "no ring" and data["damping_ratio"] is None
+    assert data["ring_frequency_hz"] is None
+    assert data["real_pole_decay_rate_per_s"] == pytest.approx(1 / 40e-9, rel=0.02)
+    table = CliRunner().invoke(group, ["analyze", str(path)]).output
+    assert "no ring" in table

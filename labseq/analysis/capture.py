@@ -394,7 +394,7 @@ def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | NoRi
     gets its :class:`NoRingError` (with the real pole's decay); one with no usable fit, None.
     """
     rough_windows = {k: w for k, span in enumerate(spans) if (w := _rough_window(rec, span))}
-    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()], refine=False)
+    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()])
     found: dict[int, RingFit | NoRingError] = {
         k: fit
         for k, fit in zip(rough_windows, roughs, strict=True)

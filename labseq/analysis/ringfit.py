@@ -28,6 +28,7 @@ zero-weight samples). :func:`fit_ring` is the single-window form.
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 
@@ -44,6 +45,8 @@ PENCIL_MAX_SAMPLES = 72
 MIN_RELATIVE_AMPLITUDE = 0.02
 #: Fewest cycles of a fitted ring's damped frequency that the window must span for it to count.
 MIN_RING_CYCLES = 0.5
+#: A fitted pair damped beyond this is not a ring: its one swing is what two real poles give too.
+MAX_RING_DAMPING = 0.9
 #: Fewest samples a window may hold for a fit.
 MIN_FIT_SAMPLES = 12
 #: Refinement stops when a step changes the nonlinear parameters by less than this (relative),
@@ -321,7 +324,22 @@ def _starts(model: _Model, poles: np.ndarray, ring: tuple[float, float] | None) 
     if model.real_poles == 1:
         rates = candidates[:1]
         return [np.array([*head, rate]) for head in heads for rate in rates]
-    return [np.array([*head, *sorted(candidates[:2])]) for head in heads]
+    pairs = itertools.combinations(sorted(candidates[:3]), 2)
+    return [np.array([*head, *pair]) for head in heads for pair in pairs]
+
+
+def _real_pairs_from_rings(candidates: list[_Candidate]) -> list[np.ndarray]:
+    """Starts for two real poles from the ring models' fits: a ring with a real pole that found
+    almost no oscillation is two real poles already (its decay and the real pole's); a heavily
+    damped pair −σ ± jωd lies between the real poles σ ∓ ωd it splits into."""
+    starts = []
+    for candidate in candidates:
+        sigma, omega = abs(candidate.theta[0]), abs(candidate.theta[1])
+        if candidate.model.real_poles:
+            starts.append(np.array(sorted((sigma, abs(candidate.theta[2])))))
+        if sigma > omega:
+            starts.append(np.array([sigma - omega, sigma + omega]))
+    return starts
 
 
 def _ring_start(poles: np.ndarray) -> tuple[float, float] | None:
@@ -429,12 +447,15 @@ class _VarPro:
         for j in range(first, p):
             mix[:, j, j] = -linear[:, j]
         mix_t = np.swapaxes(mix, 1, 2)
+        with np.errstate(over="ignore", invalid="ignore"):  # rows not ``ok``: never stepped from
+            normal = mix_t @ projected[:, 1:, 1:] @ mix
+            gradient = -(mix_t @ projected[:, 1:, :1])[:, :, 0]
         return _Projections(
             ok=ok,
             linear=linear,
             cost=np.where(ok, projected[:, 0, 0], np.inf),
-            normal=mix_t @ projected[:, 1:, 1:] @ mix,
-            gradient=-(mix_t @ projected[:, 1:, :1])[:, :, 0],
+            normal=normal,
+            gradient=gradient,
         )
 
     def residual_cost(self, theta: np.ndarray, linear: np.ndarray) -> np.ndarray:
@@ -456,6 +477,13 @@ class _VarPro:
         best = self.project(np.arange(theta.shape[0]), theta)
         damping = np.full(theta.shape[0], LM_INITIAL_DAMPING)
         active = best.ok.copy()
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):  # wild trial steps
+            return self._levenberg_marquardt(theta, best, damping, active)
+
+    def _levenberg_marquardt(
+        self, theta: np.ndarray, best: _Projections, damping: np.ndarray, active: np.ndarray
+    ) -> _Projections:
+        """The iteration of :meth:`refine`."""
         p = self.model.nonlinear
         eye = np.eye(p)
         for _ in range(REFINE_MAX_STEPS):
@@ -550,6 +578,8 @@ def _ring_problem(candidate: _Candidate, samples: int) -> str | None:
         return "the fitted ring is not a decaying oscillation"
     if abs(omega) < 2 * math.pi * MIN_RING_CYCLES:
         return "the fitted ring completes too little of a cycle in the window to be a ring"
+    if sigma > MAX_RING_DAMPING * math.hypot(sigma, omega):
+        return f"the fitted ring is damped beyond ζ = {MAX_RING_DAMPING:g}: no ring to speak of"
     if math.hypot(*candidate.linear[:2]) < MIN_RELATIVE_AMPLITUDE:
         return "no oscillation stands out of the window's noise and trend"
     if candidate.model.real_poles and not candidate.theta[2] > 0:
@@ -639,6 +669,8 @@ def fit_rings(
                 starts[j] = [np.array([*ring_starts[j], pole_starts[j]])]
             else:
                 starts[j] = _starts(model, poles.get(j, np.array([])), ring_starts[j])
+            if model is TWO_POLES:
+                starts[j] += _real_pairs_from_rings(candidates[j])
         return starts
 
     everyone = list(range(len(members)))
