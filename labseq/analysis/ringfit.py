@@ -587,9 +587,7 @@ def _ring_problem(candidate: _Candidate, samples: int) -> str | None:
     return None
 
 
-def fit_rings(
-    windows: list[RingWindow], *, refine: bool = True, branch: bool = True
-) -> list[RingFit | RingFitError]:
+def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit | RingFitError]:
     """Fit the free response (ring, real pole, plateau) of each window, vectorised across windows.
 
     Parameters
@@ -597,8 +595,6 @@ def fit_rings(
     windows : the windows to fit (see :class:`RingWindow`).
     refine : False returns the starts (with their least-squares amplitudes and plateau)
         unrefined, the model chosen among the ring models only.
-    branch : False fits the ring alone (no real pole, no check for "no ring"): a quicker rough
-        fit, e.g. to size a window.
 
     Returns
     -------
@@ -675,7 +671,7 @@ def fit_rings(
 
     everyone = list(range(len(members)))
     candidates: dict[int, list[_Candidate]] = {j: [] for j in everyone}
-    for model in (RING, RING_AND_POLE) if branch else (RING,):
+    for model in (RING, RING_AND_POLE):
         for j, candidate in _fit_model(model, starts_of(model, everyone), ys, ws, refine).items():
             candidates[j].append(candidate)
 
@@ -695,7 +691,6 @@ def fit_rings(
         j
         for j in everyone
         if refine
-        and branch
         and (
             j not in rings
             or rings[j].theta[0] / math.hypot(*rings[j].theta[:2]) > NO_RING_CHECK_DAMPING
