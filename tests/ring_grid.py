@@ -52,6 +52,7 @@ def main() -> int:
     )
     missed = 0
     worst: dict[str, float] = {}
+    cells: dict[tuple[float, float], list[float]] = {}  # (Rs/Z0, Cs/C) → |dζ|, |dfd|, |dfn|, ζ
     for junction in (False, True):
         for rs in RS_OVER_Z0:
             for cs in CS_OVER_C:
@@ -75,12 +76,26 @@ def main() -> int:
                     for name, value in (("dζ", d_zeta), ("dfd", d_fd), ("dfn", d_fn)):
                         key = f"{region} {name}"
                         worst[key] = max(worst.get(key, 0.0), abs(value))
+                    cell = cells.setdefault((rs, cs), [0.0, 0.0, 0.0, 0.0])
+                    for i, value in enumerate((d_zeta, d_fd, d_fn, zeta)):
+                        cell[i] = max(cell[i], abs(value))
                     print(
                         f"{'junction' if junction else 'linear':<9}{rs:>6g}{cs:>6g}{seed:>5}"
                         f"{zeta:>8.3f}{fit_zeta or float('nan'):>8.3f}{100 * d_zeta:>8.2f}"
                         f"{fd / 1e6:>8.2f}{100 * d_fd:>8.2f}{100 * d_fn:>8.2f}  "
                         f"{edge.ring_model}{'  MISS ' + miss if miss else ''}"
                     )
+    print("\nworst |dζ| % / |dfd| % / |dfn| % (largest true ζ) over both nodes and every seed")
+    print("Rs/Z0 \\ Cs/C" + "".join(f"{cs:>24g}" for cs in CS_OVER_C))
+    for rs in RS_OVER_Z0:
+        row = [
+            "{:>6.1f}/{:>4.1f}/{:>4.1f} ({:.2f})".format(*(100 * x for x in cells[rs, cs][:3]),
+                                                      cells[rs, cs][3])
+            if (rs, cs) in cells
+            else "—"
+            for cs in CS_OVER_C
+        ]  # fmt: skip
+        print(f"{rs:>12g}" + "".join(f"{text:>24}" for text in row))
     print("worst |error|: " + ", ".join(f"{k} {100 * v:.1f} %" for k, v in sorted(worst.items())))
     print(f"{missed} record(s) miss a target")
     return 0
