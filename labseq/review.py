@@ -302,10 +302,6 @@ class RunReview:
             cells[row][column] = point.verdict
         return cells
 
-    def cell_points(self) -> dict[tuple[int, int], PointReview]:
-        """The point at each (line row, load column) of the grid."""
-        return dict(zip(self._cells(), self.points, strict=True))
-
     def _cells(self) -> list[tuple[int, int]]:
         return grid_cells(self.points, self.line_values_v, self.load_values_a)
 

@@ -151,3 +151,7 @@ def test_report_names_the_method_beside_every_loss(tmp_path) -> None:
     html = (tmp_path / "r1" / "report.html").read_text()
     assert "(Cs·V²·fsw)" in html and "probe sits across the whole branch" in html
     assert not math.isnan(short.points[0].value("snubber_loss_w"))
+    code, _, err = run_cli("compare", "1", "2", "--db", str(db), "--report", str(tmp_path / "c"))
+    assert "Traceback" not in err
+    compare_html = " ".join((tmp_path / "c" / "report.html").read_text().split())
+    assert "Each cell names its method" in compare_html

@@ -9,7 +9,7 @@ rectifier — peak reverse voltage against the derated rating") with its own lim
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -132,7 +132,7 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
             continue
         texts = cell_texts(values, lambda v, f=figure: format_figure(f, v))
         if figure == "snubber_loss_w":
-            texts = _with_loss_methods(review, texts)
+            texts = with_loss_methods(review, texts)
         shown = 100 * values if figure == "efficiency" else values
         unit = "%" if figure == "efficiency" else figure_unit(figure)
         fig = plots.heat_map(
@@ -164,14 +164,20 @@ LOSS_ASSUMPTIONS = (
 )
 
 
-def _with_loss_methods(
-    review: RunReview, texts: Callable[[int, int], str]
+def with_loss_methods(
+    review: RunReview,
+    texts: Callable[[int, int], str],
+    lines_v: Sequence[float] | None = None,
+    loads_a: Sequence[float] | None = None,
 ) -> Callable[[int, int], str]:
-    """Cell texts of the snubber-loss map with each point's loss method on a second line."""
-    by_cell = review.cell_points()
+    """Cell texts of a snubber-loss map with each point's loss method on a second line; the map's
+    rows and columns are ``lines_v`` × ``loads_a`` (the review's own grid by default)."""
+    lines_v = review.line_values_v if lines_v is None else lines_v
+    loads_a = review.load_values_a if loads_a is None else loads_a
+    by_setpoint = {(p.point.line_v, p.point.load_a): p for p in review.points}
 
     def text(row: int, column: int) -> str:
-        point = by_cell.get((row, column))
+        point = by_setpoint.get((lines_v[row], loads_a[column]))
         method = review.loss_method(point) if point is not None else None
         return texts(row, column) + (f"\n{method}" if method else "")
 
