@@ -122,7 +122,7 @@ RING_FIGURES = (
 )
 #: Second differences used for the noise level (evenly spaced over the record), and the clip, in
 #: robust standard deviations, that leaves the edges out of it.
-NOISE_MAX_SAMPLES = 1 << 16
+NOISE_MAX_SAMPLES = 1 << 14
 NOISE_CLIP_SIGMAS = 4.0
 
 

@@ -47,6 +47,8 @@ MIN_RELATIVE_AMPLITUDE = 0.02
 MIN_RING_CYCLES = 0.5
 #: A fitted pair damped beyond this is not a ring: its one swing is what two real poles give too.
 MAX_RING_DAMPING = 0.9
+#: Newton steps for the instant the envelope falls below a level (quadratic convergence).
+ENVELOPE_NEWTON_STEPS = 30
 #: Fewest samples a window may hold for a fit.
 MIN_FIT_SAMPLES = 12
 #: Refinement stops when a step changes the nonlinear parameters by less than this (relative),
@@ -143,34 +145,28 @@ class RingFit:
         """Q = 1 / (2ζ)."""
         return 1.0 / (2.0 * self.damping_ratio)
 
-    def _envelope(self, tau_s: float) -> float:
-        envelope = abs(self.amplitude_v) * math.exp(-self.decay_rate_per_s * tau_s)
-        if self.real_pole_decay_rate_per_s is not None:
-            envelope += abs(self.real_pole_amplitude_v) * math.exp(
-                -self.real_pole_decay_rate_per_s * tau_s
-            )
-        return envelope
-
     def time_envelope_below_s(self, level_v: float) -> float:
         """Instant after which the ring's envelope plus the real pole's term stay below
-        ``level_v`` (at least ``t_start_s``; infinite for a level of zero or below, or for a real
-        pole that does not decay)."""
-        if level_v <= 0:
-            return math.inf
-        rates = [self.decay_rate_per_s]
+        ``level_v`` (at least ``t_start_s``; infinite for a level of zero or below, or for a term
+        that does not decay).
+
+        The sum of decaying exponentials A·exp(−σ·τ) + |d|·exp(−ρ·τ) is convex and decreasing, so
+        Newton's method started where either term alone reaches the level (the later of the two
+        instants lies before the root) climbs to the root from below without overshooting.
+        """
+        terms = [(abs(self.amplitude_v), self.decay_rate_per_s)]
         if self.real_pole_decay_rate_per_s is not None and self.real_pole_amplitude_v:
-            rates.append(self.real_pole_decay_rate_per_s)
-        if min(rates) <= 0:
+            terms.append((abs(self.real_pole_amplitude_v), self.real_pole_decay_rate_per_s))
+        if level_v <= 0 or min(rate for _, rate in terms) <= 0:
             return math.inf
-        low, high = 0.0, 1.0 / min(rates)
-        while self._envelope(high) > level_v:
-            low, high = high, 2 * high
-        if self._envelope(0.0) <= level_v:
-            return self.t_start_s
-        for _ in range(60):  # bisection on the decreasing envelope
-            middle = 0.5 * (low + high)
-            low, high = (middle, high) if self._envelope(middle) > level_v else (low, middle)
-        return self.t_start_s + high
+        tau = max(0.0, *(math.log(a / level_v) / rate for a, rate in terms if a > level_v))
+        for _ in range(ENVELOPE_NEWTON_STEPS):
+            excess = sum(a * math.exp(-rate * tau) for a, rate in terms) - level_v
+            if excess <= 1e-12 * level_v:
+                break
+            slope = sum(a * rate * math.exp(-rate * tau) for a, rate in terms)
+            tau += excess / slope
+        return self.t_start_s + tau
 
     def evaluate(self, t_s: np.ndarray) -> np.ndarray:
         """Model voltage at the times ``t_s``."""
@@ -472,7 +468,9 @@ class _VarPro:
         of Moré 1978); each window's λ shrinks after a step that lowers its cost and grows after
         one that does not. Windows drop out of the batch once a step is below
         ``REFINE_STEP_TOLERANCE`` of the parameters or an accepted one gains less than
-        ``REFINE_COST_TOLERANCE`` of the mean squared residual. ``theta`` is updated in place.
+        ``REFINE_COST_TOLERANCE`` of the mean squared residual, or once every real pole's term
+        starts below the rms residual (lost in the noise, its decay is immaterial; the information
+        criterion then keeps or drops it). ``theta`` is updated in place.
         """
         best = self.project(np.arange(theta.shape[0]), theta)
         damping = np.full(theta.shape[0], LM_INITIAL_DAMPING)
@@ -510,6 +508,11 @@ class _VarPro:
             converged = (np.linalg.norm(step, axis=1) <= REFINE_STEP_TOLERANCE * size) | (
                 gain <= REFINE_COST_TOLERANCE * best.cost[index] / self.size[index]
             )
+            if self.model.real_poles:  # a real pole lost in the noise: its decay is immaterial
+                first = 2 * self.model.ring
+                amplitudes = np.abs(best.linear[index, first : self.model.nonlinear])
+                noise = np.sqrt(best.cost[index] / self.size[index])[:, None]
+                converged |= np.all(amplitudes < noise, axis=1)
             active[index[converged | ~usable | (damping[index] > LM_MAX_DAMPING)]] = False
         return best
 
