@@ -9,7 +9,7 @@ import pytest
 from scipy import signal
 from scipy.integrate import solve_ivp
 
-from labseq.analysis import RingFitError, fit_ring
+from labseq.analysis import RingFit, RingFitError, fit_ring
 from labseq.analysis.ringfit import NoRingError, matrix_pencil_poles
 
 
@@ -46,6 +46,18 @@ def test_fit_of_a_clean_ring_is_exact() -> None:
     assert fit.q_factor == pytest.approx(1 / (2 * 0.07), rel=1e-5)
     assert fit.fit_quality == pytest.approx(1.0, abs=1e-9)
     np.testing.assert_allclose(fit.evaluate(t), damped_ring(t, 17e6, 0.07, 60.0, 400.0), atol=1e-3)
+
+
+def test_envelope_falls_below_a_level() -> None:
+    fit = RingFit(1e-6, 50.0, 0.0, 2e7, 1e8, 100.0, 1.0, 20.0, 5e6)
+    t = fit.time_envelope_below_s(1.0) - 1e-6
+    # The closed form of the envelope, 50·exp(−σt) + 20·exp(−ρt), is at the level there.
+    assert 50 * math.exp(-2e7 * t) + 20 * math.exp(-5e6 * t) == pytest.approx(1.0, rel=1e-9)
+    # Already below the level (each term and their sum): from the start.
+    assert RingFit(1e-6, 0.3, 0.0, 2e7, 1e8, 100.0, 1.0, 0.2).time_envelope_below_s(1.0) == 1e-6
+    # A ring alone: ln(A/level)/σ.
+    ring = RingFit(0.0, 50.0, 0.0, 2e7, 1e8, 100.0, 1.0)
+    assert ring.time_envelope_below_s(1.0) == pytest.approx(math.log(50) / 2e7, rel=1e-12)
 
 
 def test_no_oscillation_is_a_clear_error() -> None:

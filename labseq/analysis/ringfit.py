@@ -159,7 +159,7 @@ class RingFit:
             terms.append((abs(self.real_pole_amplitude_v), self.real_pole_decay_rate_per_s))
         if level_v <= 0 or min(rate for _, rate in terms) <= 0:
             return math.inf
-        tau = max(0.0, *(math.log(a / level_v) / rate for a, rate in terms if a > level_v))
+        tau = max([0.0, *(math.log(a / level_v) / rate for a, rate in terms if a > level_v)])
         for _ in range(ENVELOPE_NEWTON_STEPS):
             excess = sum(a * math.exp(-rate * tau) for a, rate in terms) - level_v
             if excess <= 1e-12 * level_v:
