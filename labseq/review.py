@@ -40,6 +40,7 @@ from typing import Any
 import numpy as np
 
 from labseq.analysis.capture import FIGURE_UNITS
+from labseq.analysis.snubber import METHOD_LABELS
 from labseq.analysis.verdict import SIGNED_FIGURES
 from labseq.errors import InputError
 from labseq.sequence import NodeSpec, parse_sequence
@@ -238,6 +239,14 @@ class RunReview:
     node_name: str = PRIMARY_NODE  # the node whose figures ``points`` and ``worst`` hold
     #: What the shutdown confirmed when it could not confirm the bench safe (unsafe-end runs).
     end_safety: str | None = None
+    #: How each (node, point id)'s snubber loss was obtained: "waveform" and/or "cv2f".
+    loss_methods: dict[tuple[str, int], tuple[str, ...]] = field(default_factory=dict)
+
+    def loss_method(self, point: PointReview) -> str | None:
+        """How the viewed node's snubber loss at ``point`` was obtained, as shown beside it:
+        "waveform", "Cs·V²·fsw" (the record was too short for the waveform), or both."""
+        methods = self.loss_methods.get((self.node_name, point.point.id))
+        return ", ".join(METHOD_LABELS.get(m, m) for m in methods) if methods else None
 
     @property
     def rated_load_a(self) -> float | None:
@@ -414,6 +423,7 @@ def review_run(store: Store, run_id: int) -> RunReview:
         node_names=node_names,
         node_name=node_names[0],
         end_safety=store.last_safety_check(run_id) if run.status == "unsafe-end" else None,
+        loss_methods=store.capture_methods(run_id, "snubber_loss_method"),
     )
 
 

@@ -90,7 +90,9 @@ CAPTURE_FIGURES = (
     "rise_time_s",
     "edge_time_s",
     "ring_frequency_hz",
+    "natural_frequency_hz",
     "decay_rate_per_s",
+    "real_pole_decay_rate_per_s",
     "damping_ratio",
     "q_factor",
     "fit_quality",
@@ -101,7 +103,9 @@ CAPTURE_FIGURES = (
     "clamp_loss_w",
 )
 #: Text that says how a capture figure was obtained, one TEXT column each.
-CAPTURE_METHODS = ("snubber_loss_method", "clamp_loss_method")
+CAPTURE_METHODS = ("snubber_loss_method", "clamp_loss_method", "ring_model")
+#: Capture-figure columns that version 3 added (a version-2 file has none of them).
+_CAPTURE_FIGURES_ADDED_3 = ("natural_frequency_hz", "real_pole_decay_rate_per_s", "ring_model")
 
 
 def _sql_list(values: Iterable[str]) -> str:
@@ -235,8 +239,8 @@ CREATE TABLE points (
 {_CAPTURES_TABLE.format(table="captures")};
 CREATE TABLE capture_figures (
     capture_id INTEGER PRIMARY KEY REFERENCES captures(id),
-    {", ".join(f"{name} REAL" for name in CAPTURE_FIGURES)},
-    {", ".join(f"{name} TEXT" for name in CAPTURE_METHODS)},
+    {", ".join(f"{name} REAL" for name in CAPTURE_FIGURES if name not in _CAPTURE_FIGURES_ADDED_3)},
+    {", ".join(f"{name} TEXT" for name in CAPTURE_METHODS if name not in _CAPTURE_FIGURES_ADDED_3)},
     clipped INTEGER,
     edge_count INTEGER,
     error TEXT,
@@ -295,12 +299,21 @@ def _upgrade_to_3() -> list[str]:
     """Statements that bring a version-2 file to version 3: each capture says how its codes are
     stored (compressed codes), those stored so far being raw; the runs table is rebuilt so that a
     run may end "unsafe-end" and records its owning process's start time (so resume can tell a
-    reused pid from a live owner). The captures table gets a column, not a rebuild, so the
-    upgrade copies no waveform."""
-    return [
-        "ALTER TABLE captures ADD COLUMN codec TEXT NOT NULL DEFAULT 'raw' "
-        f"CHECK (codec IN ({_sql_list(CODECS)}))"
-    ] + _rebuilt(_RUNS_TABLE, "runs", _RUN_COLUMNS_2)
+    reused pid from a live owner); the capture figures gain the ring fit's natural frequency,
+    the snubber branch's real pole and the model the fit chose. The captures table gets a
+    column, not a rebuild, so the upgrade copies no waveform."""
+    return (
+        [
+            "ALTER TABLE captures ADD COLUMN codec TEXT NOT NULL DEFAULT 'raw' "
+            f"CHECK (codec IN ({_sql_list(CODECS)}))"
+        ]
+        + _rebuilt(_RUNS_TABLE, "runs", _RUN_COLUMNS_2)
+        + [
+            "ALTER TABLE capture_figures ADD COLUMN natural_frequency_hz REAL",
+            "ALTER TABLE capture_figures ADD COLUMN real_pole_decay_rate_per_s REAL",
+            "ALTER TABLE capture_figures ADD COLUMN ring_model TEXT",
+        ]
+    )
 
 
 def _upgrade_statements(version: int) -> list[str]:
@@ -926,6 +939,22 @@ class Store:
         record.update(edge_count=len(edges), error=error, edges_json=edges_json)
         with self.db.atomic():
             self.db["capture_figures"].insert(record, replace=True)
+
+    def capture_methods(self, run_id: int, name: str) -> dict[tuple[str, int], tuple[str, ...]]:
+        """The distinct values of the capture method ``name`` (one of ``CAPTURE_METHODS``, e.g.
+        how the snubber loss was obtained) at each (node, point id) of a run."""
+        if name not in CAPTURE_METHODS:
+            raise ValueError(f"unknown capture method {name!r}; known: {CAPTURE_METHODS}")
+        rows = self.db.execute(
+            f"SELECT DISTINCT c.node, c.point_id, f.{name} FROM captures c "
+            "JOIN capture_figures f ON f.capture_id = c.id "
+            f"WHERE c.run_id = ? AND f.{name} IS NOT NULL ORDER BY f.{name}",
+            [run_id],
+        ).fetchall()
+        methods: dict[tuple[str, int], tuple[str, ...]] = {}
+        for node, point_id, value in rows:
+            methods[(node, point_id)] = (*methods.get((node, point_id), ()), value)
+        return methods
 
     def capture_figures(self, capture_id: int) -> dict[str, Any] | None:
         """The stored figures of one capture (edges decoded), or None before analysis."""

@@ -70,12 +70,15 @@ OPERATING_POINTS = [(36.0, 1.0), (48.0, 2.2), (75.0, 2.2)]
 
 
 @pytest.mark.parametrize(("bus_v", "load_a"), OPERATING_POINTS)
-@pytest.mark.parametrize("snubber", ["stock", "rs_near_z0"])
+@pytest.mark.parametrize("snubber", ["stock", "rs_near_z0", "matched_q"])
 def test_plateau_and_ring_frequency_match_the_model(
     design: FlybackDesign, bus_v: float, load_a: float, snubber: str
 ) -> None:
-    if snubber == "rs_near_z0":
-        design = design.with_snubber(32.0, 220e-12)
+    # stock 100 Ω / 220 pF (ζ ≈ 0.17); Rs near √(Llk/C) with a small Cs (ζ ≈ 0.17); 68 Ω / 470 pF,
+    # a damper whose real pole reads as ring damping in a sinusoid-only fit (ζ ≈ 0.25).
+    parts = {"stock": None, "rs_near_z0": (32.0, 220e-12), "matched_q": (68.0, 470e-12)}[snubber]
+    if parts is not None:
+        design = design.with_snubber(*parts)
     edge = scope_capture(design, bus_v, load_a)
     # Plateau = Vin + n·(Vout + Vf), the reflected voltage on the bus (flyback textbook relation,
     # e.g. Pressman, "Switching Power Supply Design"); the model's damped ring settles there.
@@ -87,9 +90,10 @@ def test_plateau_and_ring_frequency_match_the_model(
     # peak, where the ring swings tens of volts through the falling Coss(V), so its frequency
     # differs from the small-signal value at the plateau by a few tenths of a percent.
     assert edge.ring_frequency_hz == pytest.approx(fd_hz, rel=0.015)
-    # The damping ratio: 15 %, for the same reason (the amplitude-dependent frequency spreads the
-    # ring, which a single pole pair reads as a little extra decay).
-    assert edge.damping_ratio == pytest.approx(zeta, rel=0.15)
+    # The damping ratio within 10 % (the ring fit's target): the fit models the damper's real pole,
+    # so its slow decay is not read as ring damping; what is left is the amplitude-dependent
+    # frequency through Coss(V), a few percent at full load.
+    assert edge.damping_ratio == pytest.approx(zeta, rel=0.10)
     # f = 1/(2π√(Llk·C)) (Severns, "Design of Snubbers for Power Circuits") brackets the ring:
     # the Rs–Cs branch adds part of Cs to the node, so the ring lies between the bare node's
     # frequency and that of the node with all of Cs across it.
@@ -112,3 +116,21 @@ def test_a_larger_damper_capacitor_with_rs_near_z0_damps_the_ring(design: Flybac
     # the damping grows with Cs towards the parallel-RLC value of about 0.5 (Cs of 3-4 × Cpar).
     assert zetas[0] < zetas[1] < zetas[2]
     assert zetas[2] > 2 * zetas[0]
+
+
+@pytest.mark.parametrize(("bus_v", "load_a"), [(36.0, 0.5), (75.0, 0.5)])
+def test_a_heavily_damped_ring_matches_the_network(
+    design: FlybackDesign, bus_v: float, load_a: float
+) -> None:
+    """33 Ω / 470 pF, Rs ≈ √(Llk/C) and Cs ≈ 2 × C: ζ ≈ 0.36–0.41, one visible overshoot."""
+    design = design.with_snubber(33.0, 470e-12)
+    edge = scope_capture(design, bus_v, load_a)
+    fd_hz, zeta = linearised_ring(design, edge.plateau_v)
+    # Reference: eigenvalues of the network linearised at the plateau (numpy); targets ζ within
+    # 10 % and frequency within 2 %. At light load the ring swings about 12 V, where the
+    # linearisation holds; at full load it swings 27 V through the falling Coss(V) and the
+    # large-signal ring's frequency moves up to 2.5 % from the small-signal pole (measured with
+    # this test at 2.2 A), which is the reference's limit, not the fit's.
+    assert edge.ring_model in ("ring", "ring and real pole")
+    assert edge.damping_ratio == pytest.approx(zeta, rel=0.10)
+    assert edge.ring_frequency_hz == pytest.approx(fd_hz, rel=0.02)

@@ -130,7 +130,8 @@ def test_analyze_table_and_plot(tmp_path: Path) -> None:
     )
     assert result.exit_code == 0, result.output
     assert "18 MHz" in result.output and "ring_frequency_hz" in result.output
-    assert "cv2f" in result.output  # a 3 µs record is shorter than a 10 µs period
+    assert "(Cs·V²·fsw)" in result.output  # a 3 µs record is shorter than a 10 µs period
+    assert "probe is across the whole branch" in " ".join(result.output.split())  # assumptions
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
@@ -292,3 +293,84 @@ def test_absurd_volts_are_refused_with_the_row(tmp_path: Path, capsys) -> None:
     assert code == 2
     # Sample 11 is on line 12, under the header.
     assert "line 12" in err and str(path) in err and "Traceback" not in err
+
+
+def test_design_from_a_ring_measured_with_the_damper_fitted() -> None:
+    l_h, c_f, rs, cs = 250e-9, 230e-12, 33.0, 470e-12
+    state = np.array(
+        [
+            [0.0, -1 / l_h, 0.0],
+            [1 / c_f, -1 / (rs * c_f), 1 / (rs * c_f)],
+            [0.0, 1 / (rs * cs), -1 / (rs * cs)],
+        ]
+    )
+    eig = np.linalg.eigvals(state)
+    pole = eig[eig.imag > 0][0]
+    ring_hz, zeta = pole.imag / (2 * math.pi), -pole.real / abs(pole)
+    args = ["design", "--ring-freq", f"{ring_hz:.9g}", "--damping", f"{zeta:.9g}"]
+    args += ["--snubber-r", "33", "--snubber-c", "470p"]
+    result = CliRunner().invoke(group, [*args, "--json"])
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.output)
+    # The network's state-matrix eigenvalues (numpy) are the truth: the characteristic equation
+    # gives back its L and Cpar.
+    assert data["l_leak_h"] == pytest.approx(l_h, rel=1e-6)
+    assert data["c_par_f"] == pytest.approx(c_f, rel=1e-6)
+    assert data["network_from"] == "loaded ring"
+    text = CliRunner().invoke(group, args).output
+    assert "250 nH" in text and "230 pF" in text and "fitted damper" in text
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["--damping", "0.3", "--snubber-r", "33"], "go together"),
+        (
+            ["--damping", "0.3", "--snubber-r", "33", "--snubber-c", "470p", "--leakage", "250n"],
+            "give one way",
+        ),  # fmt: skip
+        (["--damping", "1.2", "--snubber-r", "33", "--snubber-c", "470p"], "below 1"),
+        (["--damping", "lots", "--snubber-r", "33", "--snubber-c", "470p"], "--damping 'lots'"),
+        (["--damping", "0.3", "--snubber-r", "33 F", "--snubber-c", "470p"], "expected Ω"),
+    ],
+)
+def test_design_loaded_ring_errors_exit_2(
+    capsys: pytest.CaptureFixture[str], args: list[str], message: str
+) -> None:
+    code, stderr = run_main(capsys, "design", "--ring-freq", "15MHz", *args)
+    assert code == 2, stderr
+    assert message in stderr and "Traceback" not in stderr
+
+
+def test_design_rc_loss_beside_a_clamp_includes_the_leakage_energy() -> None:
+    clamp = ["--clamp-voltage", "60V", "--peak-current", "2A", "--reflected-voltage", "25V"]
+    rc = ["--ring-freq", "25MHz", "--leakage", "250n", "--volts", "20V", "--fsw", "200kHz"]
+    data = json.loads(
+        CliRunner().invoke(group, ["design", *rc, "--cs", "100p", *clamp, "--json"]).output
+    )
+    # The damper's resistor takes Cs·V²·fsw (Severns) and the leakage energy ½·L·Ipk²·fsw.
+    leakage_w = 0.5 * 250e-9 * 2.0**2 * 200e3
+    assert data["rc_loss_with_leakage_w"] == pytest.approx(data["loss_w"] + leakage_w)
+    text = CliRunner().invoke(group, ["design", *rc, "--cs", "100p", *clamp]).output
+    assert "leakage energy ½·L·Ipk²·fsw" in text and "RCD clamp energy balance" in text
+    assert "AN-4147" not in text and "Fairchild" not in text
+
+
+def test_analyze_says_no_ring_for_a_node_that_settles_without_ringing(tmp_path: Path) -> None:
+    # An overdamped turn-off: a ramp to the 250 V plateau, then two real poles (40 ns and 8 ns)
+    # lift the node by a single bump and let it settle, with no oscillation at all.
+    t = np.arange(-200, 2800) * 1e-9
+    rise = np.clip(t / 20e-9, 0.0, 1.0) * 250.0
+    tau = np.maximum(t - 20e-9, 0.0)
+    tail = 60 * (np.exp(-tau / 40e-9) - np.exp(-tau / 8e-9))
+    path = tmp_path / "overdamped.npz"
+    np.savez(path, time_s=t, volts=rise + tail)
+    result = CliRunner().invoke(group, ["analyze", str(path), "--json"])
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.output)
+    # The closed form has no complex pair: no ζ or frequency, the slower real pole's decay.
+    assert data["ring_model"] == "no ring" and data["damping_ratio"] is None
+    assert data["ring_frequency_hz"] is None
+    assert data["real_pole_decay_rate_per_s"] == pytest.approx(1 / 40e-9, rel=0.02)
+    table = CliRunner().invoke(group, ["analyze", str(path)]).output
+    assert "no ring" in table

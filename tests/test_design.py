@@ -20,6 +20,12 @@ from labseq.analysis import (
     rcd_clamp_loss_w,
     snubber_damping_ratio,
 )
+from labseq.analysis.design import (
+    best_damping_resistance_ohm,
+    leakage_energy_loss_w,
+    loaded_ring_network,
+    propose_part_set,
+)
 
 
 def ring_frequency_hz(l_h: float, c_f: float) -> float:
@@ -90,6 +96,98 @@ def test_large_snubber_capacitor_gives_the_parallel_rlc_damping() -> None:
     assert snubber_damping_ratio(l_h, cp, r, 1e4 * cp) == pytest.approx(0.5, abs=1e-3)
     # More Cs damps more, up to the conventional 3–4 × Cpar (common practice, no published source).
     assert snubber_damping_ratio(l_h, cp, r, cp) < snubber_damping_ratio(l_h, cp, r, 3 * cp)
+
+
+def network_state_matrix(l_h: float, cp_f: float, r_ohm: float, cs_f: float) -> np.ndarray:
+    """States (i_L, v, v_Cs) of L driving Cpar ∥ (R + Cs)."""
+    return np.array(
+        [
+            [0.0, -1 / l_h, 0.0],
+            [1 / cp_f, -1 / (r_ohm * cp_f), 1 / (r_ohm * cp_f)],
+            [0.0, 1 / (r_ohm * cs_f), -1 / (r_ohm * cs_f)],
+        ]
+    )
+
+
+@pytest.mark.parametrize("rs_over_z0", [0.5, 1.0, 2.0, 4.0, 10.0])
+@pytest.mark.parametrize("cs_over_c", [0.3, 1.0, 3.0, 5.0])
+def test_loaded_ring_gives_back_l_and_cpar(rs_over_z0: float, cs_over_c: float) -> None:
+    l_h, cp_f = 250e-9, 230e-12
+    rs, cs = rs_over_z0 * math.sqrt(l_h / cp_f), cs_over_c * cp_f
+    eig = np.linalg.eigvals(network_state_matrix(l_h, cp_f, rs, cs))
+    pair = eig[eig.imag > 0]
+    if not pair.size:
+        pytest.skip("no complex pair: this damper leaves no ring to measure")
+    pole = pair[0]
+    # Independent truth: the dominant eigenvalue of the network's state matrix (numpy), given as
+    # the ring a scope would show (damped frequency and damping ratio); the characteristic
+    # equation must return the network's own L and Cpar.
+    found_l, found_c = loaded_ring_network(
+        pole.imag / (2 * math.pi), -pole.real / abs(pole), rs, cs
+    )
+    assert found_l == pytest.approx(l_h, rel=1e-9)
+    assert found_c == pytest.approx(cp_f, rel=1e-9)
+
+
+def test_loaded_ring_that_no_network_gives_is_refused() -> None:
+    # 20 MHz at ζ = 0.9 behind 33 Ω / 100 pF: no positive L and Cpar have that pole (the
+    # branch cannot damp a 20 MHz ring that much).
+    with pytest.raises(DesignInputError, match="no positive L and Cpar"):
+        loaded_ring_network(20e6, 0.9, 33.0, 100e-12)
+    with pytest.raises(DesignInputError, match="below 1"):
+        loaded_ring_network(20e6, 1.0, 33.0, 1e-9)
+
+
+@pytest.mark.parametrize("cs_over_c", [0.3, 0.5, 1.0, 2.0, 3.0, 5.0])
+def test_best_resistor_for_a_chosen_capacitor_maximises_the_damping(cs_over_c: float) -> None:
+    l_h, cp_f = 250e-9, 230e-12
+    z0 = math.sqrt(l_h / cp_f)
+    best = best_damping_resistance_ohm(l_h, cp_f, cs_over_c * cp_f)
+    # Brute force on the state matrix's eigenvalues (numpy): the R with the largest ζ of the
+    # dominant pair over a fine logarithmic scan.
+    scan = z0 * np.geomspace(0.1, 10.0, 4001)
+    zetas = []
+    for r in scan:
+        eig = np.linalg.eigvals(network_state_matrix(l_h, cp_f, r, cs_over_c * cp_f))
+        pair = eig[eig.imag > 0]
+        zetas.append(-pair[0].real / abs(pair[0]) if pair.size else 1.0)
+    assert best == pytest.approx(scan[int(np.argmax(zetas))], rel=0.005)
+    if cs_over_c < 1:
+        # For Cs below Cpar the best R is well above √(L/Cpar) (the network's eigenvalues).
+        assert best > 1.5 * z0
+
+
+def test_loss_budget_is_a_cap_not_a_target() -> None:
+    # A 10 W budget at 100 V and 200 kHz would allow Cs = P/(V²·fsw) = 5 nF (Severns); the
+    # proposal keeps the conventional 3 × Cpar (common practice, no published source) instead.
+    proposal = propose_snubber(
+        ring_freq_hz=20e6, leakage_h=250e-9, volts=100.0, fsw_hz=200e3, loss_budget_w=10.0
+    )
+    c_par = parasitic_capacitance_f(20e6, 250e-9)
+    assert proposal.cs_f == pytest.approx(3 * c_par)
+    assert proposal.loss_w == pytest.approx(cv2f_loss_w(3 * c_par, 100.0, 200e3))
+    assert proposal.loss_w < 10.0 and "within the loss budget" in proposal.cs_source
+
+
+def test_one_part_set_is_checked_at_the_worst_step_corner() -> None:
+    # Three points: Coss falls with voltage, so Cpar is largest at the smallest step.
+    networks = [(250e-9, 260e-12, 60.0), (250e-9, 215e-12, 85.0), (250e-9, 190e-12, 110.0)]
+    part_set = propose_part_set(networks, 200e3, loss_budget_w=0.5)
+    # Cs: 3 × the largest Cpar would burn 780 pF·(110 V)²·200 kHz = 1.9 W at the worst step, so
+    # the budget caps it there: Cs = 0.5 W / ((110 V)²·200 kHz) (Severns, P = Cs·V²·fsw).
+    assert part_set.cs_f == pytest.approx(0.5 / (110.0**2 * 200e3))
+    assert part_set.worst_step_v == 110.0 and part_set.worst_step_loss_w == pytest.approx(0.5)
+    # The damping it gives at each point, from the network's eigenvalues (numpy).
+    for (l_h, c_f, _), zeta in zip(networks, part_set.damping_ratios, strict=True):
+        eig = np.linalg.eigvals(network_state_matrix(l_h, c_f, part_set.r_ohm, part_set.cs_f))
+        pair = eig[eig.imag > 0]
+        assert zeta == pytest.approx(-pair[0].real / abs(pair[0]), rel=1e-9)
+    assert part_set.min_damping_ratio == min(part_set.damping_ratios)
+
+
+def test_leakage_energy_per_cycle() -> None:
+    # ½·L·I² per cycle (the energy stored in an inductance), times fsw.
+    assert leakage_energy_loss_w(250e-9, 2.0, 200e3) == pytest.approx(0.5 * 250e-9 * 4 * 200e3)
 
 
 def test_a_small_resistor_budget_forces_cs_below_cpar_and_warns() -> None:

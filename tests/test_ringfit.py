@@ -9,8 +9,8 @@ import pytest
 from scipy import signal
 from scipy.integrate import solve_ivp
 
-from labseq.analysis import RingFitError, fit_ring
-from labseq.analysis.ringfit import matrix_pencil_poles
+from labseq.analysis import RingFit, RingFitError, fit_ring
+from labseq.analysis.ringfit import NoRingError, matrix_pencil_poles
 
 
 def damped_ring(
@@ -46,6 +46,18 @@ def test_fit_of_a_clean_ring_is_exact() -> None:
     assert fit.q_factor == pytest.approx(1 / (2 * 0.07), rel=1e-5)
     assert fit.fit_quality == pytest.approx(1.0, abs=1e-9)
     np.testing.assert_allclose(fit.evaluate(t), damped_ring(t, 17e6, 0.07, 60.0, 400.0), atol=1e-3)
+
+
+def test_envelope_falls_below_a_level() -> None:
+    fit = RingFit(1e-6, 50.0, 0.0, 2e7, 1e8, 100.0, 1.0, 20.0, 5e6)
+    t = fit.time_envelope_below_s(1.0) - 1e-6
+    # The closed form of the envelope, 50·exp(−σt) + 20·exp(−ρt), is at the level there.
+    assert 50 * math.exp(-2e7 * t) + 20 * math.exp(-5e6 * t) == pytest.approx(1.0, rel=1e-9)
+    # Already below the level (each term and their sum): from the start.
+    assert RingFit(1e-6, 0.3, 0.0, 2e7, 1e8, 100.0, 1.0, 0.2).time_envelope_below_s(1.0) == 1e-6
+    # A ring alone: ln(A/level)/σ.
+    ring = RingFit(0.0, 50.0, 0.0, 2e7, 1e8, 100.0, 1.0)
+    assert ring.time_envelope_below_s(1.0) == pytest.approx(math.log(50) / 2e7, rel=1e-12)
 
 
 def test_no_oscillation_is_a_clear_error() -> None:
@@ -111,20 +123,40 @@ def test_rlc_step_response_matches_state_matrix_eigenvalues(r_ohm: float) -> Non
     assert fit_zeta == pytest.approx(zeta, rel=0.01)
 
 
-@pytest.mark.parametrize("cs_ratio", [0.5, 1.0])
-def test_rlc_with_rc_snubber_matches_dominant_eigenvalues(cs_ratio: float) -> None:
-    l_h, cp_f = 200e-9, 200e-12
-    rs = 4 * math.sqrt(l_h / cp_f)  # light damping keeps a clear oscillatory pair
-    a = rlc_snubber_state_matrix(l_h, cp_f, rs, cs_ratio * cp_f)
+@pytest.mark.parametrize("rs_over_z0", [0.5, 1.0, 2.0, 4.0, 10.0])
+@pytest.mark.parametrize("cs_over_c", [0.3, 1.0, 3.0, 5.0])
+def test_rlc_with_rc_snubber_matches_the_network_eigenvalues(
+    rs_over_z0: float, cs_over_c: float
+) -> None:
+    l_h, cp_f = 250e-9, 230e-12
+    rs = rs_over_z0 * math.sqrt(l_h / cp_f)
+    a = rlc_snubber_state_matrix(l_h, cp_f, rs, cs_over_c * cp_f)
+    eig = np.linalg.eigvals(a)
+    pair, real = eig[eig.imag > 0], eig[np.abs(eig.imag) < 1e-6 * np.abs(eig)]
     system = signal.StateSpace(a, [[1 / l_h], [0.0], [0.0]], [[0.0, 1.0, 0.0]], [[0.0]])
-    fd, zeta = dominant_pair(a)
-    t = np.arange(20000) * 0.1e-9
+    pole = pair[0]
+    periods = 2 * math.pi / pole.imag
+    span = min(max(3 / -pole.real, 3 * periods), 20 * periods)
+    t = np.arange(400) * span / 400
     _, v = signal.step(system, T=t)
-    fit_f, fit_zeta = fit_after_peak(t, 400 * v, 8, fd)
-    # scipy.signal step response vs numpy eigenvalues; the RC branch adds a real pole that the
-    # one-sinusoid model absorbs, hence 1 % on f and 10 % on ζ.
-    assert fit_f == pytest.approx(fd, rel=0.01)
-    assert fit_zeta == pytest.approx(zeta, rel=0.10)
+    fit = fit_ring(400 * v, t[1] - t[0])
+    # scipy.signal step response of the network from rest — the pair, the branch's real pole and
+    # the plateau, nothing else — against the eigenvalues of its state matrix (numpy).
+    assert fit.frequency_hz == pytest.approx(pole.imag / (2 * math.pi), rel=1e-5)
+    assert fit.damping_ratio == pytest.approx(-pole.real / abs(pole), rel=1e-4)
+    if fit.real_pole_decay_rate_per_s is not None:
+        assert fit.real_pole_decay_rate_per_s == pytest.approx(-real[0].real, rel=1e-3)
+
+
+def test_a_response_that_settles_without_ringing_is_no_ring() -> None:
+    """Two real poles (an overdamped node): "no ring", with the slower pole's decay."""
+    t = np.arange(400) * 1e-9
+    v = 100 - 60 * np.exp(-t / 40e-9) - 40 * np.exp(-t / 8e-9)
+    with pytest.raises(NoRingError) as caught:
+        fit_ring(v, 1e-9)
+    # The closed form's slower pole decays at 1/40 ns.
+    assert caught.value.decay_rate_per_s == pytest.approx(1 / 40e-9, rel=1e-3)
+    assert caught.value.offset_v == pytest.approx(100.0, abs=1e-3)
 
 
 def test_nonlinear_capacitance_ring_from_solve_ivp() -> None:

@@ -2,8 +2,8 @@
 
 * :func:`analyze_capture` — per-edge figures of a record (IEEE 181 levels, ring fit, settling,
   snubber loss, stress margin).
-* :func:`fit_ring` / :func:`fit_rings` — a decaying sinusoid fitted by matrix pencil and variable
-  projection, one window or many at once.
+* :func:`fit_ring` / :func:`fit_rings` — the free response after an edge (ring, snubber-branch
+  real pole, plateau) fitted by matrix pencil and variable projection, one window or many at once.
 * :func:`aggregate` and :func:`judge` — per-point summaries and verdicts.
 * :func:`propose_snubber`, :func:`propose_clamp` and the design equations of
   :mod:`labseq.analysis.design`.

@@ -13,14 +13,19 @@ The base level is the mode of the lower half of the whole-record histogram (IEEE
 
 The ring
 --------
-The fit covers the first, dominant ring after the peak: the window starts at the peak (or after
-the last clipped sample), spans about three decay time constants (at least 3 and at most 20 ring
-periods), and ends early where the node departs from the plateau by more than 10 % of the step
-after the ring has decayed, so a later, slower ring is not mixed in. The window is decimated to
-at most ``FIT_MAX_SAMPLES`` samples, which keeps at least 20 samples per ring period. A fit that
+The fit covers the first, dominant ring after each edge (:mod:`labseq.analysis.ringfit`: the ring,
+the RC damper's real pole and the plateau, the model order chosen from the data). A rough fit
+sizes the window: about three decay time constants of the ring and of the real pole (at least 3
+and at most 20 ring periods), ending early where the node departs from the plateau by more than
+10 % of the step after the ring has decayed, so a later, slower ring is not mixed in. A ring that
+the rough fit finds damped beyond ζ = 0.3 is fitted from the last crossing of the plateau before
+the peak, where the free response starts and where a heavily damped ring shows most of itself; a
+lighter one from its peak (or after the last clipped sample). The window is decimated to at most
+``FIT_MAX_SAMPLES`` samples, which keeps at least 20 samples per ring period. A fit that
 explains less than ``MIN_RING_FIT_QUALITY`` of the window's variance has found noise, not a ring
 (e.g. a rectifier whose damper leaves a single undershoot and no oscillation): the edge then has
-no ring figures, and its plateau is the record's high state level.
+no ring figures, and its plateau is the record's high state level. An edge whose response is
+better described without a ring reports "no ring" and the real pole's decay rate.
 
 The RCD clamp (:func:`clamp_figures`)
 -------------------------------------
@@ -63,12 +68,17 @@ from labseq.analysis.levels import (
     reference_level,
     state_changes,
 )
-from labseq.analysis.ringfit import RingFit, RingWindow, fit_rings
+from labseq.analysis.ringfit import NoRingError, RingFit, RingWindow, fit_rings
 from labseq.analysis.snubber import (
+    BRANCH_SETTLE_TIME_CONSTANTS,
+    CV2F,
+    WAVEFORM,
     SnubberBranch,
     branch_resistor_power_w,
     cv2f_loss_w,
+    noise_power_w,
     period_means_w,
+    waveform_method_record_s,
 )
 
 #: Fraction of the rating that the peak may use. From memory of common power-supply component
@@ -94,10 +104,26 @@ DECAYED_FRACTION = 0.05
 SLOW_SWING_FACTOR = 10.0
 #: Consecutive samples in the settling band that show an edge without a fitted ring has settled.
 QUIET_SAMPLES = 32
+#: A ring damped more than this (by the rough fit) is fitted from the plateau crossing, where its
+#: free response starts; a lighter one from its peak (see :func:`_free_response_start`).
+EARLY_START_DAMPING = 0.3
 #: Least R² of a final ring fit for its figures to count (see the module notes).
 MIN_RING_FIT_QUALITY = 0.5
-#: Snubber branch start-up: decay time constants skipped before the loss window.
-BRANCH_SETTLE_TIME_CONSTANTS = 5.0
+#: ``ring_model`` of an edge: a ring alone, a ring with the snubber branch's real pole, no ring.
+RING_ONLY, RING_AND_POLE, NO_RING = "ring", "ring and real pole", "no ring"
+#: Figures that only a ring has.
+RING_FIGURES = (
+    "ring_frequency_hz",
+    "natural_frequency_hz",
+    "decay_rate_per_s",
+    "damping_ratio",
+    "q_factor",
+    "fit_quality",
+)
+#: Second differences used for the noise level (evenly spaced over the record), and the clip, in
+#: robust standard deviations, that leaves the edges out of it.
+NOISE_MAX_SAMPLES = 1 << 14
+NOISE_CLIP_SIGMAS = 4.0
 
 
 class NoEdgeError(ValueError):
@@ -120,9 +146,12 @@ class EdgeFigures:
     rise_time_s: float | None
     edge_time_s: float
     ring_frequency_hz: float | None
+    natural_frequency_hz: float | None
     decay_rate_per_s: float | None
     damping_ratio: float | None
     q_factor: float | None
+    real_pole_decay_rate_per_s: float | None
+    ring_model: str | None
     fit_quality: float | None
     settling_time_s: float | None
     snubber_loss_w: float | None
@@ -145,7 +174,9 @@ FIGURE_UNITS: dict[str, str] = {
     "rise_time_s": "s",
     "edge_time_s": "s",
     "ring_frequency_hz": "Hz",
+    "natural_frequency_hz": "Hz",
     "decay_rate_per_s": "/s",
+    "real_pole_decay_rate_per_s": "/s",
     "settling_time_s": "s",
     "snubber_loss_w": "W",
     "stress_margin_v": "V",
@@ -195,6 +226,7 @@ class _Record:
     base: float
     top: float
     any_clipped: bool  # some sample is in ``clip``
+    noise_v: float  # rms noise of the record (record_noise_rms_v)
 
 
 def _check_inputs(
@@ -299,25 +331,51 @@ def _window(rec: _Record, start: int, samples: int, rough: RingFit | None = None
 def _rough_window(rec: _Record, span: _Span) -> tuple[int, int] | None:
     """(start, samples) of the rough pass, or None when too little of the ring is in the record.
 
-    The rough window spans sixteen times the delay from the 90 % crossing to the peak, which is
-    at least a quarter ring period, and starts after the last clipped sample near the peak.
+    The rough window runs to sixteen times the delay from the 90 % crossing to the peak (which is
+    at least a quarter ring period) past the peak, and starts where the free response does, taking
+    the record's high state level as the plateau (:func:`_free_response_start`), or after the
+    last clipped sample near the peak.
     """
+    rough_samples = min(
+        max(16 * max(span.peak - span.first_high, 2), 48), span.high_end - span.peak
+    )
     start = span.peak
-    rough_samples = min(max(16 * max(span.peak - span.first_high, 2), 48), span.high_end - start)
     if rec.any_clipped:
         clipped_after = np.flatnonzero(rec.clip[start : start + rough_samples])
         if clipped_after.size:
             start += int(clipped_after[-1]) + 1
-    rough_samples = min(rough_samples, span.high_end - start)
+    start = _free_response_start(rec, rec.top, span, start)
+    rough_samples = min(span.peak + rough_samples, span.high_end) - start
     return (start, rough_samples) if rough_samples >= 24 else None
 
 
+def _free_response_start(rec: _Record, plateau_v: float, span: _Span, start: int) -> int:
+    """First sample of the free response: the last upward crossing of the plateau before the peak.
+
+    Until the node reaches the plateau the secondary (or the clamp) does not conduct and the node
+    is charged by the magnetising current; from then on the leakage inductance rings freely with
+    the node. The samples between that crossing and the peak carry most of what a heavily damped
+    ring shows (one overshoot, hardly an undershoot), so the fit starts there. Without a crossing,
+    or with clipped samples after it (the matrix pencil cannot leave them out), the window keeps
+    ``start``.
+    """
+    crossing = last_upward_crossing(rec.u, plateau_v, span.first_high, span.peak + 1)
+    if crossing is None or math.ceil(crossing) >= start:
+        return start
+    first = math.ceil(crossing)
+    return start if rec.any_clipped and bool(np.any(rec.clip[first:start])) else first
+
+
 def _final_samples(rec: _Record, rough: RingFit, start: int, high_end: int) -> int:
-    """Length of the final window: about ``FIT_TIME_CONSTANTS`` decay time constants (bounded in
-    ring periods), ending early where the node departs from the plateau after the ring."""
+    """Length of the final window: about ``FIT_TIME_CONSTANTS`` decay time constants of the ring
+    and of the branch's real pole (bounded in ring periods), ending early where the node departs
+    from the plateau after the ring."""
     period_samples = 2 * math.pi / rough.angular_frequency_rad_s / rec.dt
+    slowest = rough.decay_rate_per_s
+    if rough.real_pole_decay_rate_per_s is not None and rough.real_pole_decay_rate_per_s > 0:
+        slowest = min(slowest, rough.real_pole_decay_rate_per_s)
     span_samples = min(
-        max(FIT_TIME_CONSTANTS / rough.decay_rate_per_s / rec.dt, FIT_MIN_PERIODS * period_samples),
+        max(FIT_TIME_CONSTANTS / slowest / rec.dt, FIT_MIN_PERIODS * period_samples),
         FIT_MAX_PERIODS * period_samples,
     )
     step = abs(rough.offset_v - rec.base)
@@ -327,25 +385,41 @@ def _final_samples(rec: _Record, rough: RingFit, start: int, high_end: int) -> i
     return int(min(span_samples, stop - start))
 
 
-def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | None]:
-    """Two-pass fit of the first ring after each edge's peak (see the module notes).
+def _fit_dominant_rings(rec: _Record, spans: list[_Span]) -> list[RingFit | NoRingError | None]:
+    """Two-pass fit of the first ring after each edge (see the module notes).
 
-    The rough pass (matrix pencil only) sizes each final window; both passes fit every edge of
-    the record in one vectorised call (:func:`labseq.analysis.ringfit.fit_rings`).
+    The rough pass sizes each final window, which starts where the free response does; both
+    passes fit every edge of the record in one vectorised call
+    (:func:`labseq.analysis.ringfit.fit_rings`). An edge whose response settles without ringing
+    gets its :class:`NoRingError` (with the real pole's decay); one with no usable fit, None.
     """
     rough_windows = {k: w for k, span in enumerate(spans) if (w := _rough_window(rec, span))}
-    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()], refine=False)
-    found = {
-        k: fit for k, fit in zip(rough_windows, roughs, strict=True) if isinstance(fit, RingFit)
+    roughs = fit_rings([_window(rec, *w) for w in rough_windows.values()])
+    found: dict[int, RingFit | NoRingError] = {
+        k: fit
+        for k, fit in zip(rough_windows, roughs, strict=True)
+        if isinstance(fit, RingFit | NoRingError)
     }
     final_windows = {}
     for k, rough in found.items():
-        start = rough_windows[k][0]
-        samples = _final_samples(rec, rough, start, spans[k].high_end)
-        final_windows[k] = _window(rec, start, samples, rough)
+        after_peak = max(spans[k].peak, rough_windows[k][0])  # the peak, or after clipping
+        heavy = not isinstance(rough, RingFit) or rough.damping_ratio > EARLY_START_DAMPING
+        start = (
+            _free_response_start(rec, rough.offset_v, spans[k], after_peak) if heavy else after_peak
+        )
+        if isinstance(rough, RingFit):
+            samples = _final_samples(rec, rough, after_peak, spans[k].high_end)
+        else:  # about FIT_TIME_CONSTANTS of the real pole; the ring's start from the pencil
+            samples = min(
+                math.ceil(FIT_TIME_CONSTANTS / rough.decay_rate_per_s / rec.dt),
+                spans[k].high_end - after_peak,
+            )
+        final_windows[k] = _window(
+            rec, start, samples + after_peak - start, rough if isinstance(rough, RingFit) else None
+        )
     finals = fit_rings(list(final_windows.values()))
     for k, fit in zip(final_windows, finals, strict=True):
-        best = fit if isinstance(fit, RingFit) else found[k]
+        best = fit if isinstance(fit, RingFit | NoRingError) else found[k]
         if best.fit_quality >= MIN_RING_FIT_QUALITY:
             found[k] = best
         else:
@@ -367,10 +441,35 @@ def _plateau(rec: _Record, fit: RingFit | None, peak: int, high_end: int) -> flo
     return fit.offset_v
 
 
+def _ring_figures(fit: RingFit | NoRingError | None) -> dict[str, float | str | None]:
+    """The ring's figures of an edge: from a fitted ring, from a response with no ring (only the
+    real pole's decay), or none."""
+    if isinstance(fit, NoRingError):
+        return {
+            **dict.fromkeys(RING_FIGURES),
+            "real_pole_decay_rate_per_s": fit.decay_rate_per_s,
+            "ring_model": NO_RING,
+            "fit_quality": fit.fit_quality,
+        }
+    if fit is None:
+        return dict.fromkeys((*RING_FIGURES, "real_pole_decay_rate_per_s", "ring_model"))
+    return {
+        "ring_frequency_hz": fit.frequency_hz,
+        "natural_frequency_hz": fit.natural_frequency_hz,
+        "decay_rate_per_s": fit.decay_rate_per_s,
+        "damping_ratio": fit.damping_ratio,
+        "q_factor": fit.q_factor,
+        "fit_quality": fit.fit_quality,
+        "real_pole_decay_rate_per_s": fit.real_pole_decay_rate_per_s,
+        "ring_model": RING_AND_POLE if fit.real_pole_decay_rate_per_s is not None else RING_ONLY,
+    }
+
+
 def _edge(
-    rec: _Record, span: _Span, fit: RingFit | None, settling_band: float
-) -> dict[str, float | bool | None] | None:
+    rec: _Record, span: _Span, result: RingFit | NoRingError | None, settling_band: float
+) -> dict[str, float | str | bool | None] | None:
     """Figures of the edge in ``span`` with its fitted ring (None: not measurable)."""
+    fit = result if isinstance(result, RingFit) else None
     u, dt, t0 = rec.u, rec.dt, rec.t0
     search_from, peak, high_end = span.search_from, span.peak, span.high_end
     plateau = _plateau(rec, fit, peak, high_end)
@@ -404,11 +503,7 @@ def _edge(
         "overshoot_pct": 100.0 * overshoot / step,
         "rise_time_s": (t90 - t10) * dt if t10 is not None and t90 is not None else None,
         "edge_time_s": t0 + t50 * dt,
-        "ring_frequency_hz": fit.frequency_hz if fit else None,
-        "decay_rate_per_s": fit.decay_rate_per_s if fit else None,
-        "damping_ratio": fit.damping_ratio if fit else None,
-        "q_factor": fit.q_factor if fit else None,
-        "fit_quality": fit.fit_quality if fit else None,
+        **_ring_figures(result),
         "settling_time_s": (entry - t50) * dt if entry is not None else None,
         "clipped": rec.flagged
         or (rec.any_clipped and bool(np.any(rec.clip[search_from : high_end + 1]))),
@@ -422,15 +517,38 @@ def _snubber_losses(
     """Per-edge snubber resistor loss and the method used (see ``analyze_capture``)."""
     record_s = (rec.u.size - 1) * rec.dt
     settle_s = BRANCH_SETTLE_TIME_CONSTANTS * branch.time_constant_s
-    if record_s - branch.period_s < settle_s:
+    if record_s < waveform_method_record_s(branch):
         return [
-            (cv2f_loss_w(branch.cs_f, float(e["plateau_v"]) - rec.base, branch.fsw_hz), "cv2f")
+            (cv2f_loss_w(branch.cs_f, float(e["plateau_v"]) - rec.base, branch.fsw_hz), CV2F)
             for e in edges
         ]
     power = branch_resistor_power_w(rec.u, rec.dt, branch)
     centred = np.array([float(e["edge_time_s"]) - rec.t0 for e in edges]) - 0.5 * branch.period_s
     starts = np.clip(centred, settle_s, record_s - branch.period_s)
-    return [(float(p), "waveform") for p in period_means_w(power, rec.dt, starts, branch.period_s)]
+    bias_w = noise_power_w(rec.noise_v, rec.dt, branch)
+    means = period_means_w(power, rec.dt, starts, branch.period_s)
+    return [(max(float(p) - bias_w, 0.0), WAVEFORM) for p in means]
+
+
+def record_noise_rms_v(u: np.ndarray) -> float:
+    """Rms of the record's white noise, from its second differences d = u[n+1] − 2·u[n] + u[n−1].
+
+    For white noise of variance σ², d has variance 6σ², while the waveform itself — plateaus,
+    on-state ramps, rings of many samples per period — adds little to d except at the few samples
+    of each edge. σ is first estimated robustly from the median absolute d (1.4826·MAD/√6 for a
+    Gaussian), then as the rms of the d within ``NOISE_CLIP_SIGMAS`` of it, which leaves the edges
+    out. At most ``NOISE_MAX_SAMPLES`` evenly spaced d are used. Noise limited to a band below
+    the sample rate (correlated samples) reads low, so less is subtracted and the loss errs high.
+    """
+    if u.size < MIN_RECORD_SAMPLES:
+        return 0.0
+    middle = np.arange(1, u.size - 1, max(1, (u.size - 2) // NOISE_MAX_SAMPLES))
+    d = u[middle + 1] - 2.0 * u[middle] + u[middle - 1]
+    rough = 1.4826 * float(np.median(np.abs(d))) / math.sqrt(6.0)
+    if rough == 0.0:  # the noise is below the quantisation step
+        return 0.0
+    quiet = d[np.abs(d) <= NOISE_CLIP_SIGMAS * math.sqrt(6.0) * rough]
+    return float(np.sqrt(np.mean(quiet * quiet) / 6.0))
 
 
 #: Samples above this share of the way from the reflected plateau to the peak count as the clamp's
@@ -626,7 +744,8 @@ def analyze_capture(
     changes = state_changes(
         u, reference_level(base, top, LOW_REFERENCE), reference_level(base, top, HIGH_REFERENCE)
     )
-    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top, bool(np.any(clip)))
+    noise_v = record_noise_rms_v(u) if snubber else 0.0
+    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top, bool(np.any(clip)), noise_v)
 
     durations = changes.rise_to - changes.rise_from
     fast = durations <= SLOW_SWING_FACTOR * max(2, durations.min(initial=u.size))
@@ -647,7 +766,7 @@ def analyze_capture(
         figures = _edge(rec, span, fit, settling_band)
         if figures is not None:
             edges.append(figures)
-            fits.append(fit)
+            fits.append(fit if isinstance(fit, RingFit) else None)
     if not edges:
         raise NoEdgeError(
             f"no {what} turn-off edge: looked for a transition from below 10 % to above 90 % of "

@@ -17,6 +17,8 @@ from labseq.analysis import (
     SnubberBranch,
     analyze_capture,
 )
+from labseq.analysis.capture import NO_RING
+from labseq.analysis.snubber import METHOD_LABELS
 from labseq.commands._options import option_fraction_or_quantity, option_quantity
 from labseq.errors import InputError
 from labseq.units import format_si
@@ -33,6 +35,16 @@ COLOURS = {
 #: Figures that clipping turns into lower (≥) or upper (≤) bounds.
 LOWER_BOUND_WHEN_CLIPPED = {"peak_v", "overshoot_v", "overshoot_pct"}
 UPPER_BOUND_WHEN_CLIPPED = {"stress_margin_v"}
+#: What the snubber loss from the waveform assumes, printed with it.
+LOSS_ASSUMPTIONS = (
+    "Snubber loss, waveform method: the nominal Rs–Cs branch driven by the measured voltage, Rs·i²"
+    " averaged over one switching period around each edge, less the scope noise measured in the"
+    " record; it assumes the probe is across the whole branch and Rs, Cs are nominal. Cs·V²·fsw:"
+    " the record is shorter than one switching period plus 5·Rs·Cs, so the usual estimate is"
+    " used, which ignores the ring and a partial discharge at light load."
+)
+#: Ring figures that read "no ring" when the edge settles without oscillating.
+RING_ONLY_FIGURES = {"ring_frequency_hz", "natural_frequency_hz", "damping_ratio", "q_factor"}
 
 
 def _settling_band(text: str) -> float:
@@ -65,10 +77,16 @@ def _snubber(fsw: str | None, cs: str | None, rs: str | None) -> SnubberBranch |
 def format_figure(edge: EdgeFigures, name: str) -> str:
     """One figure of an edge in engineering notation, with ≥/≤ when clipping bounds it."""
     value = getattr(edge, name)
+    if value is None and name in RING_ONLY_FIGURES and edge.ring_model == NO_RING:
+        return NO_RING
+    if name == "snubber_loss_method" and value is not None:
+        return METHOD_LABELS.get(value, value)
     if isinstance(value, bool | str) or value is None:
         return "—" if value is None else str(value).lower()
     unit = FIGURE_UNITS.get(name)
     text = format_si(value, unit) if unit else f"{value:.3g}"
+    if name == "snubber_loss_w" and edge.snubber_loss_method is not None:
+        text += f" ({METHOD_LABELS.get(edge.snubber_loss_method, edge.snubber_loss_method)})"
     if edge.clipped and name in LOWER_BOUND_WHEN_CLIPPED:
         return f"≥ {text}"
     if edge.clipped and name in UPPER_BOUND_WHEN_CLIPPED:
@@ -93,6 +111,8 @@ def _print_table(path: Path, figures: CaptureFigures) -> None:
     console.print(table)
     if figures.clipped:
         console.print("The record reached full scale: peak and overshoot are lower bounds.")
+    if figures.worst.snubber_loss_w is not None:
+        console.print(LOSS_ASSUMPTIONS)
 
 
 def _plot(path: Path, waveform: Waveform, figures: CaptureFigures) -> None:
@@ -214,6 +234,7 @@ def command(
     if plot is not None:
         _plot(plot, waveform, figures)
     if as_json:
-        click.echo(json.dumps({"file": str(file), **figures.as_dict()}, indent=2))
+        note = {"snubber_loss_assumptions": LOSS_ASSUMPTIONS} if snubber is not None else {}
+        click.echo(json.dumps({"file": str(file), **figures.as_dict(), **note}, indent=2))
     else:
         _print_table(file, figures)

@@ -6,8 +6,39 @@ from pathlib import Path
 
 import click
 
-from labseq.sequence import load_sequence
+from labseq.analysis.snubber import SnubberBranch, waveform_method_record_s
+from labseq.sequence import Sequence, load_sequence
 from labseq.units import format_si
+
+#: Horizontal divisions of a scope screen: the record spans ten times the time per division
+#: (common practice, no published source).
+SCREEN_DIVISIONS = 10
+
+
+def loss_method_warnings(sequence: Sequence) -> list[str]:
+    """One warning per node with an RC damper whose record is too short for the waveform loss
+    method: its snubber loss would be the Cs·V²·fsw estimate at every point."""
+    record_s = SCREEN_DIVISIONS * sequence.scope.time_per_div_s
+    warnings = []
+    for node in sequence.nodes:
+        if node.snubber is None:
+            continue
+        branch = SnubberBranch(
+            node.snubber.resistance_ohm,
+            node.snubber.capacitance_f,
+            sequence.dut.switching_frequency_hz,
+        )
+        needed_s = waveform_method_record_s(branch)
+        if record_s < needed_s:
+            warnings.append(
+                f"node {node.name}: the record spans {format_si(record_s, 's')} "
+                f"({SCREEN_DIVISIONS} × scope.time_per_div); measuring the snubber loss from the "
+                f"waveform needs one switching period plus 5·Rs·Cs, {format_si(needed_s, 's')}. "
+                "Every point's snubber loss will be the Cs·V²·fsw estimate instead (marked so in "
+                f"the report); set scope.time_per_div to at least "
+                f"{format_si(needed_s / SCREEN_DIVISIONS, 's')} to measure it"
+            )
+    return warnings
 
 
 @click.command("check")
@@ -38,6 +69,8 @@ def command(sequence_file: Path) -> None:
         f"  grid:    {len(grid.line_values_v)} line × {len(grid.load_values_a)} load values, "
         f"{grid.captures_per_point} captures per point, settle {format_si(grid.settle_s, 's')}"
     )
+    for warning in loss_method_warnings(sequence):
+        click.echo(f"  warning: {warning}")
     points = sequence.points()
     click.echo(f"  {len(points)} points:")
     for index, point in enumerate(points, start=1):

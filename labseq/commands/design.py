@@ -16,6 +16,7 @@ from labseq.analysis import (
     propose_clamp,
     propose_snubber,
 )
+from labseq.analysis.design import PartSet, leakage_energy_loss_w, propose_part_set
 from labseq.commands._options import option_fraction_or_quantity, option_quantity
 from labseq.commands._store import db_option, resolve_run
 from labseq.errors import InputError
@@ -27,6 +28,9 @@ OPTIONS: dict[str, tuple[str, str]] = {
     "leakage_h": ("--leakage", "H"),
     "added_cap_f": ("--added-cap", "F"),
     "ring_freq_added_hz": ("--ring-freq-added", "Hz"),
+    "damping_ratio": ("--damping", ""),
+    "snubber_r_ohm": ("--snubber-r", "Ω"),
+    "snubber_c_f": ("--snubber-c", "F"),
     "volts": ("--volts", "V"),
     "fsw_hz": ("--fsw", "Hz"),
     "loss_budget_w": ("--loss-budget", "W"),
@@ -48,10 +52,17 @@ REPORT_LINES = (
     ("ring frequency", "ring_freq_hz", "Hz"),
     ("node capacitance Cpar", "c_par_f", "F"),
     ("leakage inductance L", "l_leak_h", "H"),
-    ("Rs = √(L/Cpar)", "r_ohm", "Ω"),
+    ("Z0 = √(L/Cpar)", "z0_ohm", "Ω"),
     ("Cs", "cs_f", "F"),
+    ("Rs for this Cs", "r_ohm", "Ω"),
     ("Rs loss Cs·V²·fsw", "loss_w", "W"),
 )
+#: How L and Cpar were found, as the text output says it.
+NETWORK_FROM = {
+    "leakage": "from the ring and the given leakage inductance",
+    "added capacitance": "from the rings with and without the added capacitance",
+    "loaded ring": "from the ring measured with the fitted damper (characteristic equation)",
+}
 CLAMP_LINES = (
     ("clamp voltage over bus", "clamp_voltage_v", "V"),
     ("clamp ripple", "clamp_ripple_v", "V"),
@@ -72,6 +83,8 @@ def _with_option_names(message: str) -> str:
 def report_text(proposal: SnubberProposal) -> str:
     """The RC proposal as aligned lines in engineering notation."""
     lines = []
+    if proposal.network_from is not None:
+        lines.append(f"L and Cpar {NETWORK_FROM[proposal.network_from]}")
     for label, name, unit in REPORT_LINES:
         value = getattr(proposal, name)
         suffix = f"  ({proposal.cs_source})" if name == "cs_f" and value is not None else ""
@@ -84,19 +97,45 @@ def report_text(proposal: SnubberProposal) -> str:
 
 def clamp_text(clamp: ClampProposal) -> str:
     """The RCD clamp sizing as aligned lines in engineering notation."""
-    lines = ["RCD clamp (Fairchild AN-4147 method)"]
+    lines = ["RCD clamp energy balance"]
     lines.extend(
         f"{label:<24}{format_si(getattr(clamp, name), unit)}" for label, name, unit in CLAMP_LINES
     )
     return "\n".join(lines)
 
 
-def comparison_text(rc_loss_w: float, clamp_loss_w: float) -> str:
-    """One line saying which tool dissipates less at these operating conditions."""
-    rc, clamp = format_si(rc_loss_w, "W"), format_si(clamp_loss_w, "W")
-    if cheaper_tool(rc_loss_w, clamp_loss_w) == "rcd clamp":
-        return f"the RCD clamp is the cheaper tool: {clamp} against {rc} in the RC damper"
+def comparison_text(rc_loss_w: float, clamp_loss_w: float, leakage_w: float) -> str:
+    """Which tool dissipates less at these operating conditions. The RC damper's resistor takes
+    Cs·V²·fsw and also the leakage energy ½·L·Ipk²·fsw that the clamp would otherwise take, so
+    the damper's figure here includes it."""
+    total = rc_loss_w + leakage_w
+    rc = (
+        f"{format_si(total, 'W')} in the RC damper (Cs·V²·fsw {format_si(rc_loss_w, 'W')} + "
+        f"leakage energy ½·L·Ipk²·fsw {format_si(leakage_w, 'W')})"
+    )
+    clamp = format_si(clamp_loss_w, "W")
+    if cheaper_tool(total, clamp_loss_w) == "rcd clamp":
+        return f"the RCD clamp is the cheaper tool: {clamp} against {rc}"
     return f"the RC damper is the cheaper tool: {rc} against {clamp} in the RCD clamp"
+
+
+def clamp_leakage_h(proposal: SnubberProposal | None, values: dict) -> float | None:
+    """The leakage inductance for the clamp: the RC proposal's L, else --leakage."""
+    if proposal is not None and proposal.l_leak_h is not None:
+        return proposal.l_leak_h
+    return values["leakage_h"]
+
+
+def _damping(text: str | None) -> float | None:
+    """--damping as a number (a damping ratio, no unit)."""
+    if text is None:
+        return None
+    try:
+        return float(text)
+    except ValueError:
+        raise InputError(
+            f"--damping {text!r}: give the damping ratio ζ as a number such as 0.3"
+        ) from None
 
 
 def _ripple_v(ripple: str | None, clamp_voltage_v: float | None) -> float | None:
@@ -115,6 +154,11 @@ def _ripple_v(ripple: str | None, clamp_voltage_v: float | None) -> float | None
 @click.option("--leakage", help="Known leakage inductance, e.g. 200n.")
 @click.option("--added-cap", help="Capacitance added for a second measurement, e.g. 100p.")
 @click.option("--ring-freq-added", help="Ring frequency with --added-cap fitted.")
+@click.option(
+    "--damping", help="Damping ratio of the ring measured with a damper fitted, e.g. 0.3."
+)
+@click.option("--snubber-r", help="Resistor of the damper fitted when the ring was measured.")
+@click.option("--snubber-c", help="Capacitor of the damper fitted when the ring was measured.")
 @click.option("--volts", help="Step voltage at the node, e.g. 400V.")
 @click.option("--fsw", help="Switching frequency, e.g. 100kHz.")
 @click.option("--loss-budget", help="Allowed snubber resistor loss, e.g. 0.5W.")
@@ -136,12 +180,17 @@ def _ripple_v(ripple: str | None, clamp_voltage_v: float | None) -> float | None
 def command(
     as_json: bool, clamp_ripple: str | None, run: str | None, db_path: Path, **options: str | None
 ) -> None:
-    """Propose Rs and Cs from the ring frequency and L (or an added-capacitance measurement),
-    and size an RCD clamp when --clamp-voltage, --peak-current and --reflected-voltage are given.
+    """Propose Rs and Cs from a measured ring, and size an RCD clamp when --clamp-voltage,
+    --peak-current and --reflected-voltage are given.
 
-    With --run, the ring frequency and step voltage of every point of a stored run are used,
-    with the run's switching frequency, leakage inductance (or --leakage) and resistor budget
-    (or --loss-budget / --cs).
+    L and Cpar come from the ring frequency and a known --leakage, or from the rings with and
+    without --added-cap, or from one ring measured with a damper fitted (--ring-freq, --damping,
+    --snubber-r, --snubber-c). A --loss-budget caps Cs; Rs is the one that damps the ring most
+    with that Cs.
+
+    With --run, every point of a stored run gives its own L and Cpar from its measured ring and
+    the run's damper (or from the run's leakage inductance when it has no damper), and one part
+    set for every point is proposed, checked at the point with the largest step.
     """
     if run is not None:
         _run_proposals(run, db_path, options, as_json)
@@ -149,8 +198,9 @@ def command(
     values = {
         keyword: option_quantity(options[option.lstrip("-").replace("-", "_")], unit, option)
         for keyword, (option, unit) in {**OPTIONS, **CLAMP_OPTIONS}.items()
-        if keyword != "clamp_ripple_v"
+        if keyword not in ("clamp_ripple_v", "damping_ratio")
     }
+    values["damping_ratio"] = _damping(options["damping"])
     wants_clamp = clamp_ripple is not None or any(
         values[keyword] is not None for keyword in CLAMP_OPTIONS if keyword != "clamp_ripple_v"
     )
@@ -160,9 +210,8 @@ def command(
         if wants_rc:
             proposal = propose_snubber(**{keyword: values[keyword] for keyword in OPTIONS})
         if wants_clamp:
-            leakage_h = proposal.l_leak_h if proposal is not None else values["leakage_h"]
             clamp = propose_clamp(
-                leakage_h=leakage_h,
+                leakage_h=clamp_leakage_h(proposal, values),
                 peak_current_a=values["peak_current_a"],
                 fsw_hz=values["fsw_hz"],
                 reflected_voltage_v=values["reflected_voltage_v"],
@@ -172,9 +221,12 @@ def command(
     except DesignInputError as exc:
         raise InputError(f"design: {_with_option_names(str(exc))}") from None
 
-    tool = None
+    tool = leakage_w = None
     if proposal is not None and clamp is not None and proposal.loss_w is not None:
-        tool = cheaper_tool(proposal.loss_w, clamp.clamp_loss_w)
+        leakage_w = leakage_energy_loss_w(
+            clamp_leakage_h(proposal, values), values["peak_current_a"], values["fsw_hz"]
+        )
+        tool = cheaper_tool(proposal.loss_w + leakage_w, clamp.clamp_loss_w)
     if as_json:
         rc_dict = (
             proposal.as_dict()
@@ -184,38 +236,64 @@ def command(
         clamp_dict = (
             clamp.as_dict() if clamp is not None else {f.name: None for f in fields(ClampProposal)}
         )
-        click.echo(json.dumps({**rc_dict, **clamp_dict, "cheaper_tool": tool}, indent=2))
+        rc_total = None if leakage_w is None else proposal.loss_w + leakage_w
+        click.echo(
+            json.dumps(
+                {**rc_dict, **clamp_dict, "rc_loss_with_leakage_w": rc_total, "cheaper_tool": tool},
+                indent=2,
+            )
+        )
         return
     blocks = [report_text(proposal)] if proposal is not None else []
     if clamp is not None:
         blocks.append(clamp_text(clamp))
     if tool is not None:
-        blocks.append(comparison_text(proposal.loss_w, clamp.clamp_loss_w))
+        blocks.append(comparison_text(proposal.loss_w, clamp.clamp_loss_w, leakage_w))
     click.echo("\n".join(blocks))
 
 
+def _point_clipped(store: object, point_id: int) -> bool:
+    """True when any primary capture of the point reached the scope's full scale."""
+    from labseq.store import PRIMARY_NODE
+
+    for capture in store.captures(point_id, with_codes=False, node=PRIMARY_NODE):
+        figures = store.capture_figures(capture.id)
+        if figures and figures.get("clipped"):
+            return True
+    return False
+
+
 def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_json: bool) -> None:
-    """``design --run``: one RC proposal per measured point of a stored run, worst peak first."""
+    """``design --run``: one proposal per measured point of a stored run, worst peak first, and
+    one part set for all of them.
+
+    Each point's L and Cpar come from its mean ring frequency and damping ratio measured with the
+    run's own damper fitted (:func:`labseq.analysis.design.loaded_ring_network`). Points whose
+    captures clipped are flagged: their peak is a lower bound, their ring was fitted without the
+    clipped samples.
+    """
     from labseq.runner import stored_sequence
     from labseq.store import Store
 
     given = {k: option_quantity(options[k], unit, f"--{k.replace('_', '-')}") for k, unit in
-             (("leakage", "H"), ("loss_budget", "W"), ("cs", "F"))}  # fmt: skip
+             (("loss_budget", "W"), ("cs", "F"))}  # fmt: skip
+    for name in ("leakage", "damping", "snubber_r", "snubber_c"):
+        if options.get(name) is not None:
+            raise InputError(
+                f"design --run: --{name.replace('_', '-')} is not used with --run: every point's "
+                "L and Cpar come from its ring measured with the run's own damper"
+            )
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
         sequence = stored_sequence(store, run_id)
         points = store.points(run_id, status="done")
         figures = store.point_figures(run_id)
-    leakage_h = given["leakage"] or sequence.dut.leakage_inductance_h
-    if leakage_h is None:
-        raise InputError(
-            f"design --run {run_id}: the run's sequence declares no leakage inductance; give "
-            "--leakage, or measure the ring with and without a known added capacitance and use "
-            "--ring-freq, --added-cap and --ring-freq-added"
-        )
+        clipped = {point.id: _point_clipped(store, point.id) for point in points}
+    snubber = sequence.snubber
+    fsw_hz = sequence.dut.switching_frequency_hz
     cs_f = given["cs"]
     budget_w = None if cs_f is not None else given["loss_budget"]
-    budget_w = budget_w or (None if cs_f is not None else sequence.snubber.resistor_power_budget_w)
+    budget_w = budget_w or (None if cs_f is not None else snubber.resistor_power_budget_w)
     rows = []
     for point in points:
         point_figures = figures.get(point.id, {})
@@ -223,47 +301,94 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
         def mean(name: str, figures_of_point: dict = point_figures) -> float | None:
             return figures_of_point.get(name, {}).get("mean")
 
-        ring_hz, plateau_v, base_v = mean("ring_frequency_hz"), mean("plateau_v"), mean("base_v")
-        if ring_hz is None or plateau_v is None or base_v is None:
+        ring_hz, zeta = mean("ring_frequency_hz"), mean("damping_ratio")
+        plateau_v, base_v = mean("plateau_v"), mean("base_v")
+        if ring_hz is None or zeta is None or plateau_v is None or base_v is None:
             continue  # no ring fitted at this point: nothing to size from
         try:
             proposal = propose_snubber(
                 ring_freq_hz=ring_hz,
-                leakage_h=leakage_h,
+                damping_ratio=zeta,
+                snubber_r_ohm=snubber.resistance_ohm,
+                snubber_c_f=snubber.capacitance_f,
                 volts=plateau_v - base_v,
-                fsw_hz=sequence.dut.switching_frequency_hz,
+                fsw_hz=fsw_hz,
                 loss_budget_w=budget_w,
                 cs_f=cs_f,
             )
         except DesignInputError as exc:
-            raise InputError(f"design --run {run_id}: {_with_option_names(str(exc))}") from None
+            raise InputError(
+                f"design --run {run_id}, point {format_si(point.line_v, 'V')} / "
+                f"{format_si(point.load_a, 'A')}: {_with_option_names(str(exc))}"
+            ) from None
         peak_v = point_figures.get("peak_v", {}).get("worst")
-        rows.append((peak_v if peak_v is not None else float("-inf"), point, proposal))
+        peak = peak_v if peak_v is not None else float("-inf")
+        rows.append((peak, point, proposal, plateau_v - base_v, clipped[point.id], zeta))
     if not rows:
         raise InputError(f"design --run {run_id}: no point of the run has a fitted ring")
     rows.sort(key=lambda row: -row[0])
+    part_set = propose_part_set(
+        [(prop.l_leak_h, prop.c_par_f, step_v) for _, _, prop, step_v, _, _ in rows],
+        fsw_hz,
+        loss_budget_w=budget_w,
+        cs_f=cs_f,
+    )
     if as_json:
+        point_rows = [
+            {
+                "line_v": p.line_v,
+                "load_a": p.load_a,
+                "peak_v": peak,
+                "step_v": step_v,
+                "clipped": was_clipped,
+                "measured_damping_ratio": measured,
+                **prop.as_dict(),
+                "part_set_damping_ratio": zeta,
+            }
+            for (peak, p, prop, step_v, was_clipped, measured), zeta in zip(
+                rows, part_set.damping_ratios, strict=True
+            )
+        ]
         click.echo(
             json.dumps(
-                [
-                    {"line_v": p.line_v, "load_a": p.load_a, "peak_v": peak, **prop.as_dict()}
-                    for peak, p, prop in rows
-                ],
-                indent=2,
+                {"run": run_id, "points": point_rows, "part_set": part_set.as_dict()}, indent=2
             )
         )
         return
     click.echo(
-        f"run {run_id}: {len(rows)} points, worst peak first; L = {format_si(leakage_h, 'H')}, "
-        f"fsw = {format_si(sequence.dut.switching_frequency_hz, 'Hz')}"
+        f"run {run_id}: {len(rows)} points, worst peak first; damper fitted "
+        f"{snubber.label}, fsw = {format_si(fsw_hz, 'Hz')}; L and Cpar of each point from its "
+        "ring measured with that damper"
     )
-    for peak_v, point, prop in rows:
+    for peak_v, point, prop, _, was_clipped, _ in rows:
         zeta = "—" if prop.damping_ratio is None else f"{prop.damping_ratio:.2f}"
         click.echo(
             f"{format_si(point.line_v, 'V'):>7} / {format_si(point.load_a, 'A'):<8} "
-            f"peak {format_si(peak_v, 'V'):>7}  ring {format_si(prop.ring_freq_hz, 'Hz'):>9}  "
+            f"peak {format_si(peak_v, 'V'):>7}{' (clipped)' if was_clipped else ''}  "
+            f"ring {format_si(prop.ring_freq_hz, 'Hz'):>9}  L {format_si(prop.l_leak_h, 'H'):>7}  "
             f"Cpar {format_si(prop.c_par_f, 'F'):>7}  Rs {format_si(prop.r_ohm, 'Ω'):>7}  "
             f"Cs {format_si(prop.cs_f, 'F'):>7}  loss {format_si(prop.loss_w, 'W'):>7}  ζ {zeta}"
         )
         for warning in prop.warnings:
             click.echo(f"    warning: {warning}")
+    if any(row[4] for row in rows):
+        click.echo(
+            "clipped: the scope reached full scale at these points; their peak is a lower bound "
+            "(the ring was fitted without the clipped samples)"
+        )
+    click.echo(part_set_text(part_set, budget_w))
+
+
+def part_set_text(part_set: PartSet, budget_w: float | None) -> str:
+    """The one part set for every point, as lines."""
+    budget = "" if budget_w is None else f" (budget {format_si(budget_w, 'W')})"
+    return "\n".join(
+        [
+            "one part set for every point:",
+            f"  Rs {format_si(part_set.r_ohm, 'Ω')}, Cs {format_si(part_set.cs_f, 'F')} "
+            f"({part_set.cs_source})",
+            f"  loss at the worst-step corner ({format_si(part_set.worst_step_v, 'V')} step): "
+            f"{format_si(part_set.worst_step_loss_w, 'W')}{budget}",
+            f"  smallest damping ratio over the points: {part_set.min_damping_ratio:.2f}",
+        ]
+    )

@@ -12,7 +12,7 @@ import numpy as np
 
 from labseq.report import plots
 from labseq.report.html import Markup, Page, cell, esc, table
-from labseq.report.run_report import ReportFiles, cell_texts
+from labseq.report.run_report import LOSS_ASSUMPTIONS, ReportFiles, cell_texts, with_loss_methods
 from labseq.report.traces import point_traces
 from labseq.review import (
     FIGURE_DIRECTIONS,
@@ -149,7 +149,13 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
     colour_label = title + (f" ({unit})" if unit else "")
     images = []
     for side, values in (("baseline", baseline), ("candidate", candidate)):
-        run_id = getattr(comparison, side).run.id
+        review = getattr(comparison, side)
+        run_id = review.run.id
+        texts = cell_texts(values, lambda v: format_figure(figure, v))
+        if figure == "snubber_loss_w":
+            texts = with_loss_methods(
+                review, texts, comparison.line_values_v, comparison.load_values_a
+            )
         fig = plots.heat_map(
             values,
             lines,
@@ -157,7 +163,7 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
             colour_values=values * scale,
             title=f"{title.capitalize()}: {side} (run {run_id})",
             colour_label=colour_label,
-            cell_text=cell_texts(values, lambda v: format_figure(figure, v)),
+            cell_text=texts,
             limits=limits,
             cmap_name=plots.value_map(FIGURE_DIRECTIONS[figure]),
             colour_format=formatted(format_figure),
@@ -165,6 +171,8 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
         caption = (
             f"{title.capitalize()} of the {side} run; both runs share the scale, brighter is worse."
         )
+        if figure == "snubber_loss_w":
+            caption += " Each cell names its method. " + LOSS_ASSUMPTIONS
         images.append(page.image(f"map_{figure}_{side}", plots.png_bytes(fig), caption))
     page.add('<div class="maps">' + "".join(images) + "</div>")
 

@@ -9,7 +9,7 @@ rectifier — peak reverse voltage against the derated rating") with its own lim
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -130,6 +130,9 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
         values = review.grid(figure)
         if not np.isfinite(values).any():
             continue
+        texts = cell_texts(values, lambda v, f=figure: format_figure(f, v))
+        if figure == "snubber_loss_w":
+            texts = with_loss_methods(review, texts)
         shown = 100 * values if figure == "efficiency" else values
         unit = "%" if figure == "efficiency" else figure_unit(figure)
         fig = plots.heat_map(
@@ -141,12 +144,44 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
             + ("" if figure == "efficiency" else " (worst over the captures)"),
             cmap_name=plots.value_map(figure_direction(figure, review.polarity)),
             colour_label=f"{FIGURE_TITLES[figure]}" + (f" ({unit})" if unit else ""),
-            cell_text=cell_texts(values, lambda v, f=figure: format_figure(f, v)),
+            cell_text=texts,
             colour_format=None if figure == "efficiency" else _colour_format(figure),
         )
         caption = f"{FIGURE_TITLES[figure].capitalize()} at each point; brighter is worse."
+        if figure == "snubber_loss_w":
+            caption += " Each cell names its method. " + LOSS_ASSUMPTIONS
         maps.append((_prefix(review) + name, caption, plots.png_bytes(fig)))
     return maps
+
+
+#: What the snubber loss figure assumes, shown where it is.
+LOSS_ASSUMPTIONS = (
+    "Waveform: the nominal Rs–Cs branch driven by the measured node voltage, Rs·i² averaged over "
+    "one switching period, less the scope noise measured in the record; it assumes the probe "
+    "sits across the whole branch and Rs and Cs have their nominal values. Cs·V²·fsw: the record "
+    "was shorter than a switching period plus 5·Rs·Cs, so the loss is the usual estimate, which "
+    "ignores the ring and a partial discharge at light load."
+)
+
+
+def with_loss_methods(
+    review: RunReview,
+    texts: Callable[[int, int], str],
+    lines_v: Sequence[float] | None = None,
+    loads_a: Sequence[float] | None = None,
+) -> Callable[[int, int], str]:
+    """Cell texts of a snubber-loss map with each point's loss method on a second line; the map's
+    rows and columns are ``lines_v`` × ``loads_a`` (the review's own grid by default)."""
+    lines_v = review.line_values_v if lines_v is None else lines_v
+    loads_a = review.load_values_a if loads_a is None else loads_a
+    by_setpoint = {(p.point.line_v, p.point.load_a): p for p in review.points}
+
+    def text(row: int, column: int) -> str:
+        point = by_setpoint.get((lines_v[row], loads_a[column]))
+        method = review.loss_method(point) if point is not None else None
+        return texts(row, column) + (f"\n{method}" if method else "")
+
+    return text
 
 
 def _colour_format(figure: str) -> Callable[[float], str]:
@@ -171,10 +206,12 @@ def _worst_rows(review: RunReview) -> list[list[str]]:
     rows = []
     for figure, worst in review.worst.items():
         relation, limit = limit_of.get(figure, ("", None))
+        value = format_figure(figure, worst.value)
+        method = review.loss_method(worst.point) if figure == "snubber_loss_w" else None
         rows.append(
             [
                 review.peak_word if figure == "peak_v" else FIGURE_TITLES[figure],
-                format_figure(figure, worst.value),
+                f"{value} ({method})" if method else value,
                 review.label(worst.point),
                 f"{relation} {format_figure(figure, limit)}" if limit is not None else "—",
                 verdict_cell(worst.point.verdict),
