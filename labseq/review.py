@@ -43,7 +43,8 @@ from labseq.analysis.capture import FIGURE_UNITS
 from labseq.analysis.snubber import METHOD_LABELS
 from labseq.analysis.verdict import SIGNED_FIGURES
 from labseq.errors import InputError
-from labseq.sequence import NodeSpec, parse_sequence
+from labseq.pipeline import stored_sequence
+from labseq.sequence import NodeSpec
 from labseq.sequence import Sequence as SequenceFile
 from labseq.store import PRIMARY_NODE, PointRecord, RunRecord, Store
 from labseq.units import format_si
@@ -390,19 +391,13 @@ def _point_reviews(store: Store, run_id: int, primary: str) -> list[PointReview]
     return reviews
 
 
-def stored_sequence(run: RunRecord) -> tuple[SequenceFile | None, str | None]:
-    """The run's sequence as stored, validated again; (None, why) when it no longer validates
-    (e.g. a DUT file it named has moved)."""
-    try:
-        return parse_sequence(run.sequence_text, run.sequence_path), None
-    except InputError as exc:
-        return None, str(exc)
-
-
 def review_run(store: Store, run_id: int) -> RunReview:
     """Read run ``run_id`` and its points and work out its verdict, grid and worst points."""
     run = store.run(run_id)
-    sequence, problem = stored_sequence(run)
+    try:
+        sequence, problem = stored_sequence(run), None
+    except InputError as exc:  # the stored text no longer validates (a DUT file has moved)
+        sequence, problem = None, str(exc)
     stored_nodes = store.node_names(run_id)
     declared = [node.name for node in sequence.nodes] if sequence else []
     node_names = tuple(dict.fromkeys([*declared, *stored_nodes])) or (PRIMARY_NODE,)

@@ -340,24 +340,6 @@ class Sequence:
         """The primary node's verdict limits as :class:`labseq.analysis.verdict.Limits`."""
         return self.primary.verdict_limits()
 
-    def analysis_options(self, node: NodeSpec) -> dict[str, Any]:
-        """Keyword arguments of :func:`labseq.analysis.analyze_capture` for ``node``'s captures:
-        its polarity, settling band, snubber (at the DUT's switching frequency) and rating."""
-        from labseq.analysis import SnubberBranch
-
-        snubber = node.snubber
-        return {
-            "polarity": node.polarity,
-            "settling_band": node.limits.settling_band,
-            "snubber": None
-            if snubber is None
-            else SnubberBranch(
-                snubber.resistance_ohm, snubber.capacitance_f, self.dut.switching_frequency_hz
-            ),
-            "rating_v": node.rating_v,
-            "derating": node.derating,
-        }
-
 
 # --------------------------------------------------------------------------- reading helpers
 

@@ -14,8 +14,9 @@ import numpy as np
 import pytest
 from sweeps import demo_sequence
 
+from labseq.pipeline import analyse_run
 from labseq.progress import Progress
-from labseq.runner import analyse_run, claim_for_resume, execute, run_sequence, start_run
+from labseq.runner import claim_for_resume, execute, run_sequence, start_run
 from labseq.sequence import load_sequence
 from labseq.store import Store
 from sim_instruments.flyback import DEMO_DUTS, load_dut

@@ -272,7 +272,7 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
     captures clipped are flagged: their peak is a lower bound, their ring was fitted without the
     clipped samples.
     """
-    from labseq.runner import stored_sequence
+    from labseq.pipeline import stored_sequence
     from labseq.store import Store
 
     given = {k: option_quantity(options[k], unit, f"--{k.replace('_', '-')}") for k, unit in
@@ -285,7 +285,7 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
             )
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
-        sequence = stored_sequence(store, run_id)
+        sequence = stored_sequence(store.run(run_id))
         points = store.points(run_id, status="done")
         figures = store.point_figures(run_id)
         clipped = {point.id: _point_clipped(store, point.id) for point in points}

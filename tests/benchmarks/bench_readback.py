@@ -28,7 +28,7 @@ import zstandard
 from bench_storage import ringing_capture
 from paired import interleaved_times, paired
 
-from labseq.runner import analyse_run
+from labseq.pipeline import analyse_run
 from labseq.sequence import load_sequence
 from labseq.store import CAPTURE_FIGURES, CaptureRecord, Store
 
