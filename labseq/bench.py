@@ -346,7 +346,7 @@ def _watch_bus(
     """Read the bus (the primary switch node's mean with the converter stopped) until it is
     below the ES1 DC limit or ``timeout_s`` has passed; a failed reading is tried once more on a
     fresh session."""
-    channel = bench.sequence.scope.channel
+    channel = bench.sequence.primary.channel
     deadline = time.monotonic() + timeout_s
     reopen, failures = fresh, 0
     while True:

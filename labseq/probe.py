@@ -159,7 +159,7 @@ def _probe_meter(probe: _RoleProbe, sequence: Sequence) -> None:
 def _probe_scope(probe: _RoleProbe, sequence: Sequence) -> None:
     scope = probe.driver
     assert isinstance(scope, Oscilloscope)
-    node, settings = sequence.primary, sequence.scope
+    node, settings = sequence.primary, sequence.acquisition
     channel = node.channel
     for key, value in (
         ("channel_enable", "on"),

@@ -44,9 +44,9 @@ from labseq.analysis.snubber import METHOD_LABELS
 from labseq.analysis.verdict import SIGNED_FIGURES
 from labseq.errors import InputError
 from labseq.pipeline import stored_sequence
-from labseq.sequence import NodeSpec
+from labseq.sequence import DEFAULT_PRIMARY_NAME, NodeSpec
 from labseq.sequence import Sequence as SequenceFile
-from labseq.store import PRIMARY_NODE, PointRecord, RunRecord, Store
+from labseq.store import PointRecord, RunRecord, Store
 from labseq.units import format_si
 
 #: Figures a review reports, in the order a reviewer reads them, with their direction:
@@ -236,8 +236,8 @@ class RunReview:
     worst: dict[str, WorstPoint]
     line_values_v: tuple[float, ...]
     load_values_a: tuple[float, ...]
-    node_names: tuple[str, ...] = (PRIMARY_NODE,)  # every node of the run, the primary first
-    node_name: str = PRIMARY_NODE  # the node whose figures ``points`` and ``worst`` hold
+    node_names: tuple[str, ...]  # every node of the run, the primary first
+    node_name: str  # the node whose figures ``points`` and ``worst`` hold
     #: What the shutdown confirmed when it could not confirm the bench safe (unsafe-end runs).
     end_safety: str | None = None
     #: How each (node, point id)'s snubber loss was obtained: "waveform" and/or "cv2f".
@@ -400,7 +400,8 @@ def review_run(store: Store, run_id: int) -> RunReview:
         sequence, problem = None, str(exc)
     stored_nodes = store.node_names(run_id)
     declared = [node.name for node in sequence.nodes] if sequence else []
-    node_names = tuple(dict.fromkeys([*declared, *stored_nodes])) or (PRIMARY_NODE,)
+    # a run with neither a valid sequence nor a capture has no node to name but the default
+    node_names = tuple(dict.fromkeys([*declared, *stored_nodes])) or (DEFAULT_PRIMARY_NAME,)
     points = _point_reviews(store, run_id, node_names[0])
     counts = {word: 0 for word in VERDICT_ORDER}
     for point in points:
@@ -499,7 +500,7 @@ def run_summary(review: RunReview) -> dict[str, Any]:
             None
             if sequence is None
             else {
-                **vars(sequence.limits),
+                **vars(sequence.primary.limits),
                 "switch_rating_v": sequence.dut.switch_rating_v,
                 "derating": sequence.dut.derating,
                 "nodes": {node.name: _node_limits(node) for node in sequence.nodes},

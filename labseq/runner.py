@@ -123,7 +123,7 @@ class Sweep:
 
     def prepare(self) -> None:
         """Load off, source off, current limit, scope set-up (every node's channel)."""
-        bench, scope = self.bench, self.sequence.scope
+        bench, acquisition = self.bench, self.sequence.acquisition
         with self.timings.charge("instrument"):
             bench.load.set_input(False)
             bench.source.set_output(False)
@@ -137,9 +137,12 @@ class Sweep:
                     node.bandwidth_limit_hz,
                     node.probe_ratio,
                 )
-            bench.scope.configure_timebase(scope.time_per_div_s, scope.record_length)
+            bench.scope.configure_timebase(acquisition.time_per_div_s, acquisition.record_length)
             bench.scope.configure_trigger(
-                scope.channel, scope.trigger_level_v, scope.trigger_slope, scope.trigger_position
+                self.sequence.primary.channel,
+                acquisition.trigger_level_v,
+                acquisition.trigger_slope,
+                acquisition.trigger_position,
             )
 
     def _set_line(self, line_v: float) -> None:
@@ -170,7 +173,7 @@ class Sweep:
 
     def acquire(self) -> list[Waveform]:
         """One single-shot acquisition: every node's channel, in the sequence's node order."""
-        scope, settings = self.bench.scope, self.sequence.scope
+        scope, settings = self.bench.scope, self.sequence.acquisition
         with self.timings.charge("instrument"):
             scope.single()
             scope.wait_acquisition(settings.acquisition_timeout_s, ACQUISITION_POLL_S)

@@ -62,6 +62,8 @@ TRIGGER_SLOPES = ("rising", "falling")
 NODE_POLARITIES = ("rising", "falling")
 #: A node's name: a short lower-case word, used in reports, the store and exported file names.
 _NODE_NAME = re.compile(r"^[a-z][a-z0-9_-]{0,23}$")
+#: The primary node's name when ``[scope] node`` gives none.
+DEFAULT_PRIMARY_NAME = "primary"
 
 #: VISA interface types (IVI VPP-4.3 resource names) we accept at the start of a resource string.
 #: A VISA alias (VISA 4.3.6: a name the library maps to a resource, as in a visa.ini file).
@@ -198,27 +200,17 @@ class Grid:
 
 
 @dataclass(frozen=True)
-class ScopeSettings:
-    """Scope set-up for the switch-node capture (volts at the probe tip)."""
+class Acquisition:
+    """How the scope acquires every node at once: its timebase and record, the trigger on the
+    primary node's channel, and how long one acquisition may take. Each node's channel settings
+    are the node's own (:class:`NodeSpec`)."""
 
-    channel: int
-    volts_per_div_v: float
-    offset_v: float
-    probe_ratio: float
-    coupling: str
-    bandwidth_limit_hz: float  # 0 = full bandwidth
     time_per_div_s: float
     record_length: int
     trigger_level_v: float
     trigger_slope: str
     trigger_position: float  # fraction of the record before the trigger
     acquisition_timeout_s: float
-    node: str
-
-    @property
-    def polarity(self) -> int:
-        """+1 when the node rises at turn-off (rising trigger), −1 otherwise."""
-        return 1 if self.trigger_slope == "rising" else -1
 
 
 @dataclass(frozen=True)
@@ -307,8 +299,7 @@ class Sequence:
     dut: Dut
     snubber: Snubber
     grid: Grid
-    scope: ScopeSettings
-    limits: VerdictLimits
+    acquisition: Acquisition
     on_point_error: str  # "skip" or "abort"
     hazardous_voltage_acknowledged: bool
     nodes: tuple[NodeSpec, ...]  # every node captured per acquisition, the primary first
@@ -335,10 +326,6 @@ class Sequence:
             for line_v in sorted(self.grid.line_values_v)
             for load_a in sorted(self.grid.load_values_a)
         ]
-
-    def verdict_limits(self) -> Any:
-        """The primary node's verdict limits as :class:`labseq.analysis.verdict.Limits`."""
-        return self.primary.verdict_limits()
 
 
 # --------------------------------------------------------------------------- reading helpers
@@ -979,12 +966,30 @@ def _channel_values(table: _Table) -> dict[str, Any]:
     }
 
 
-def _read_scope(top: _Table) -> ScopeSettings | None:
+class _PrimaryChannel(NamedTuple):
+    """The primary node's channel as [scope] gives it, before the node itself is built (its
+    rating, snubber and limits come from other tables, which may hold problems of their own)."""
+
+    name: str
+    polarity: int  # from the trigger's slope: the primary rises at turn-off when it triggers so
+    channel: int
+    volts_per_div_v: float
+    offset_v: float
+    probe_ratio: float
+    coupling: str
+    bandwidth_limit_hz: float
+
+
+def _read_scope(top: _Table) -> tuple[_PrimaryChannel | None, Acquisition | None]:
+    """[scope]: the primary node's channel and name, and the acquisition settings."""
     table = top.table("scope")
     if table is None:
-        return None
-    values = {
+        return None, None
+    channel = {
         **_channel_values(table),
+        "name": table.text("node", default=DEFAULT_PRIMARY_NAME),
+    }
+    acquisition = {
         "time_per_div_s": table.quantity("time_per_div", "s"),
         "record_length": table.integer("record_length", minimum=2),
         "trigger_level_v": table.quantity("trigger_level", "V", minimum=None),
@@ -993,12 +998,13 @@ def _read_scope(top: _Table) -> ScopeSettings | None:
         "acquisition_timeout_s": table.quantity(
             "acquisition_timeout", "s", default=2.0, maximum=MAX_ACQUISITION_TIMEOUT_S
         ),
-        "node": table.text("node", default="primary"),
     }
     table.finish()
-    if any(value is None for value in values.values()):
-        return None
-    return ScopeSettings(**values)
+    if any(value is None for value in (*channel.values(), *acquisition.values())):
+        return None, None
+    read = Acquisition(**acquisition)
+    polarity = 1 if read.trigger_slope == "rising" else -1
+    return _PrimaryChannel(polarity=polarity, **channel), read
 
 
 def _read_limits(
@@ -1052,23 +1058,16 @@ def _read_limits(
 
 
 def _primary_node(
-    scope: ScopeSettings, dut: Dut, snubber: Snubber, limits: VerdictLimits
+    channel: _PrimaryChannel, dut: Dut, snubber: Snubber, limits: VerdictLimits
 ) -> NodeSpec:
-    """The primary switch node from today's tables: [scope], [dut], [snubber], [limits]."""
+    """The primary switch node from [scope], [dut], [snubber] and [limits]."""
     return NodeSpec(
-        name=scope.node,
         label="Primary switch",
-        channel=scope.channel,
-        polarity=scope.polarity,
-        volts_per_div_v=scope.volts_per_div_v,
-        offset_v=scope.offset_v,
-        probe_ratio=scope.probe_ratio,
-        coupling=scope.coupling,
-        bandwidth_limit_hz=scope.bandwidth_limit_hz,
         rating_v=dut.switch_rating_v,
         derating=dut.derating,
         snubber=snubber if snubber.capacitance_f > 0 and snubber.resistance_ohm > 0 else None,
         limits=limits,
+        **channel._asdict(),
     )
 
 
@@ -1173,18 +1172,18 @@ def _kind_word(is_ac: bool) -> str:
 
 
 def _check_bench(
-    out: _Collector, bench: Bench, dut: Dut | None, scope: ScopeSettings | None
+    out: _Collector, bench: Bench, dut: Dut | None, acquisition: Acquisition | None
 ) -> None:
     """Scope and probe limits of the bench against the settings and the DUT."""
     limits = bench.limits
     if (
-        scope is not None
+        acquisition is not None
         and limits.scope_max_record_length is not None
-        and (scope.record_length > limits.scope_max_record_length)
+        and (acquisition.record_length > limits.scope_max_record_length)
     ):
         out.fail(
             "scope.record_length",
-            f"{scope.record_length} is above bench.limits.scope_max_record_length "
+            f"{acquisition.record_length} is above bench.limits.scope_max_record_length "
             f"{limits.scope_max_record_length}",
         )
     if (
@@ -1203,15 +1202,15 @@ def _check_bench(
 def _check_nodes_on_bench(
     out: _Collector,
     bench: Bench,
-    scope: ScopeSettings | None,
+    primary: _PrimaryChannel | None,
     nodes: list[NodeSpec],
     clamp: Clamp | None,
 ) -> None:
     """Every node's channel on the scope, its rating within the probe's; on the simulated bench,
     each node probed by the simulated scope and a clamp the DUT file can take."""
     channels = _scope_channels(bench.scope_map)
-    if channels is not None and scope is not None and scope.channel > channels:
-        out.fail("scope.channel", f"channel {scope.channel} is beyond the scope's {channels}")
+    if channels is not None and primary is not None and primary.channel > channels:
+        out.fail("scope.channel", f"channel {primary.channel} is beyond the scope's {channels}")
     probe_v = bench.limits.probe_max_voltage_v
     for index, node in enumerate(nodes):
         key = f"nodes[{index}]"
@@ -1267,7 +1266,11 @@ def _scope_channels(scope_map: str) -> int | None:
 
 
 def _check_scope_limits(
-    out: _Collector, bench: Bench, scope: ScopeSettings | None, nodes: list[NodeSpec]
+    out: _Collector,
+    bench: Bench,
+    primary: _PrimaryChannel | None,
+    acquisition: Acquisition | None,
+    nodes: list[NodeSpec],
 ) -> None:
     """The scope settings inside the limits its command map declares (the checks the driver
     makes again before sending), so the set-up cannot fail once the run has started."""
@@ -1275,21 +1278,21 @@ def _check_scope_limits(
     from instruments.limits import check_count, check_setpoint
 
     command_map = _scope_map(bench.scope_map)
-    if command_map is None or scope is None:
+    if command_map is None or primary is None or acquisition is None:
         return
     limits = command_map.limits
     offset_v = limits.max_offset_v
     ranges: list[tuple[str, float, float, float, str]] = [
         (
             "scope.time_per_div",
-            scope.time_per_div_s,
+            acquisition.time_per_div_s,
             limits.min_seconds_per_div,
             limits.max_seconds_per_div,
             "s",
         ),
-        ("scope.trigger_level", scope.trigger_level_v, -offset_v, offset_v, "V"),
+        ("scope.trigger_level", acquisition.trigger_level_v, -offset_v, offset_v, "V"),
     ]
-    for prefix, channel in [("scope", scope)] + [(f"nodes[{i}]", n) for i, n in enumerate(nodes)]:
+    for prefix, channel in [("scope", primary)] + [(f"nodes[{i}]", n) for i, n in enumerate(nodes)]:
         ranges += [
             (
                 f"{prefix}.volts_per_div",
@@ -1322,7 +1325,10 @@ def _check_scope_limits(
             out.fail(key, f"{error} {where}")
     try:
         check_count(
-            "record length", scope.record_length, limits.min_record_length, limits.max_record_length
+            "record length",
+            acquisition.record_length,
+            limits.min_record_length,
+            limits.max_record_length,
         )
     except LimitError as error:
         out.fail("scope.record_length", f"{error} {where}")
@@ -1434,7 +1440,7 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     dut = _read_dut(top)
     snubber = _read_snubber(top.table("snubber"))
     grid = _read_grid(top, dut, bench)
-    scope = _read_scope(top)
+    primary_channel, acquisition = _read_scope(top)
     limits = _read_limits(
         top.table("limits", required=False) or _Table({}, "limits", out),
         None
@@ -1445,8 +1451,8 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     )
     primary = (
         None
-        if None in (scope, dut, snubber, limits)
-        else _primary_node(scope, dut, snubber, limits)  # type: ignore[arg-type]
+        if None in (primary_channel, dut, snubber, limits)
+        else _primary_node(primary_channel, dut, snubber, limits)  # type: ignore[arg-type]
     )
     nodes = _read_nodes(top, primary)
     clamp = _read_clamp(top)
@@ -1459,9 +1465,9 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     top.finish()
 
     if bench is not None:
-        _check_bench(out, bench, dut, scope)
-        _check_nodes_on_bench(out, bench, scope, nodes or [], clamp)
-        _check_scope_limits(out, bench, scope, nodes or [])
+        _check_bench(out, bench, dut, acquisition)
+        _check_nodes_on_bench(out, bench, primary_channel, nodes or [], clamp)
+        _check_scope_limits(out, bench, primary_channel, acquisition, nodes or [])
         if None not in (grid, dut, primary, nodes, acknowledged):
             _check_hazard(out, bench, dut, grid, [primary, *nodes], acknowledged)
     if (
@@ -1474,7 +1480,18 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
             f'the simulated DUT file (bench.dut) takes "{sim_line_kind}" but dut.line_kind is '
             f"{_kind_word(dut.line_is_ac)}; they must match",
         )
-    parts = (name, description, on_point_error, bench, dut, snubber, grid, scope, limits, nodes)
+    parts = (
+        name,
+        description,
+        on_point_error,
+        bench,
+        dut,
+        snubber,
+        grid,
+        acquisition,
+        primary,
+        nodes,
+    )
     if out.problems or any(part is None for part in parts) or acknowledged is None:
         if not out.problems:  # every None above comes with a recorded problem
             out.fail("(file)", "incomplete sequence")
@@ -1489,8 +1506,7 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
         dut=dut,
         snubber=snubber,
         grid=grid,
-        scope=scope,
-        limits=limits,
+        acquisition=acquisition,
         on_point_error=on_point_error,
         hazardous_voltage_acknowledged=acknowledged,
         nodes=(primary, *nodes),

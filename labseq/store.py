@@ -49,8 +49,9 @@ from labseq.process import process_alive, process_start_time
 
 #: Version of the schema; a file with a higher version is refused, a lower one upgraded.
 SCHEMA_VERSION = 3
-#: The node a capture or figure belongs to when nothing else is said (and in version-1 files).
-PRIMARY_NODE = "primary"
+#: The node of every capture and figure of a version-1 file, which knew only one node (the
+#: upgrade fills it in). Everything else names its node: the store has no default of its own.
+_VERSION_1_NODE = "primary"
 APPLICATION = "labseq"
 
 #: Page size for new files (an existing file keeps its own). Every table and index costs at
@@ -121,7 +122,7 @@ CREATE TABLE {{table}} (
     point_id INTEGER NOT NULL REFERENCES points(id),
     run_id INTEGER NOT NULL REFERENCES runs(id),
     capture_index INTEGER NOT NULL,
-    node TEXT NOT NULL DEFAULT 'primary',
+    node TEXT NOT NULL DEFAULT '{_VERSION_1_NODE}',
     channel INTEGER NOT NULL,
     dtype TEXT NOT NULL CHECK (dtype IN ({_sql_list(CODE_DTYPES)})),
     x_increment_s REAL NOT NULL,
@@ -139,7 +140,7 @@ CREATE TABLE {{table}} (
 _POINT_FIGURES_TABLE = f"""
 CREATE TABLE {{table}} (
     point_id INTEGER NOT NULL REFERENCES points(id),
-    node TEXT NOT NULL DEFAULT '{PRIMARY_NODE}',
+    node TEXT NOT NULL DEFAULT '{_VERSION_1_NODE}',
     figure TEXT NOT NULL,
     worst REAL,
     mean REAL,
@@ -342,11 +343,11 @@ class UnknownRunError(StoreError, InputError):
 
 @dataclass(frozen=True)
 class CaptureRecord:
-    """A capture to store: the waveform plus where and when it was taken."""
+    """A capture to store: the waveform plus which node it is, on which channel, and when."""
 
     waveform: Waveform
+    node: str
     channel: int = 1
-    node: str = PRIMARY_NODE
     captured_at: float = field(default_factory=time.time)  # Unix time, s
 
 
@@ -815,7 +816,7 @@ class Store:
         point_id: int,
         figures: Mapping[str, Mapping[str, float | int | None]],
         *,
-        node: str = PRIMARY_NODE,
+        node: str,
     ) -> None:
         """Replace one node's aggregated figures at a point: figure → {worst, mean, spread, n}."""
         with self.db.atomic():
@@ -853,11 +854,9 @@ class Store:
                 self.db["node_verdicts"].insert_all(rows)
             self.set_point_verdict(point_id, verdict, reasons)
 
-    def point_figures(
-        self, run_id: int, *, node: str = PRIMARY_NODE
-    ) -> dict[int, dict[str, dict[str, Any]]]:
-        """One node's aggregated figures at every point of a run (the primary's by default):
-        point id → figure → {worst, mean, spread, n}."""
+    def point_figures(self, run_id: int, *, node: str) -> dict[int, dict[str, dict[str, Any]]]:
+        """One node's aggregated figures at every point of a run: point id → figure → {worst,
+        mean, spread, n}."""
         return {
             point_id: nodes[node]
             for point_id, nodes in self.node_figures(run_id).items()

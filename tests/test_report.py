@@ -108,14 +108,17 @@ def make_run(
         if (line_v, load_a) == worse_at:
             figures["peak_v"]["worst"] += 60.0
         records = [
-            CaptureRecord(Ringing(line_v + 25, 20 * load_a * peak_scale, damping, index * 7 + k))
+            CaptureRecord(
+                Ringing(line_v + 25, 20 * load_a * peak_scale, damping, index * 7 + k),
+                node="primary",
+            )
             for k in range(captures)
         ]
         efficiency = 0.9 - 0.01 * load_a
         store.commit_point(
             point_id, captures=records, readings=PointReadings(efficiency=efficiency)
         )
-        store.set_point_figures(point_id, figures)
+        store.set_point_figures(point_id, figures, node="primary")
         peak_v = figures["peak_v"]["worst"]
         if (line_v, load_a) == incomplete_at:
             store.set_point_verdict(point_id, "incomplete", ["damping_ratio: not determined"])

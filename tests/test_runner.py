@@ -84,7 +84,7 @@ def test_sim_kind_runs_in_process_and_figures_are_stored(tmp_path):
     with Store(tmp_path / "run.sqlite") as store:
         run_id = run_sequence(sequence, store)
         (point,) = store.points(run_id)
-        figures = store.point_figures(run_id)[point.id]
+        figures = store.point_figures(run_id, node=sequence.primary.name)[point.id]
         # The plateau is the reflected voltage above the bus: Vin + n·(Vout + Vf) (flyback
         # relation; any power-electronics text, e.g. Erickson & Maksimović, ch. 6).
         design = load_dut(DEMO_DUTS["telecom_dc"])
@@ -100,7 +100,9 @@ def test_analyze_run_rejudges_without_the_bench(tmp_path):
     with Store(tmp_path / "run.sqlite") as store:
         run_id = run_sequence(sequence, store)
         (point,) = store.points(run_id)
-        peak_v = store.point_figures(run_id)[point.id]["peak_v"]["worst"]
+        peak_v = store.point_figures(run_id, node=sequence.primary.name)[point.id]["peak_v"][
+            "worst"
+        ]
         digests = _capture_digests(store, run_id)
         # Tighter limits: the same captures now fail on peak.
         strict = demo_sequence(tmp_path, lines=["75 V"], loads=["2.2 A"], name="strict.toml")

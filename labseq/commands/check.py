@@ -18,7 +18,7 @@ SCREEN_DIVISIONS = 10
 def loss_method_warnings(sequence: Sequence) -> list[str]:
     """One warning per node with an RC damper whose record is too short for the waveform loss
     method: its snubber loss would be the Cs·V²·fsw estimate at every point."""
-    record_s = SCREEN_DIVISIONS * sequence.scope.time_per_div_s
+    record_s = SCREEN_DIVISIONS * sequence.acquisition.time_per_div_s
     warnings = []
     for node in sequence.nodes:
         if node.snubber is None:

@@ -23,7 +23,7 @@ import click
 import numpy as np
 
 from labseq.commands._store import db_option, resolve_run
-from labseq.store import PRIMARY_NODE, PointRecord, Store, StoredCapture
+from labseq.store import PointRecord, Store, StoredCapture
 
 _POINT_COLUMNS = [f.name for f in fields(PointRecord) if f.name not in ("id", "run_id")]
 _FIGURE_STATS = ("worst", "mean", "spread", "n")
@@ -56,7 +56,10 @@ def write_points_csv(store: Store, run_id: int, path: Path) -> int:
     points = store.points(run_id)
     figures = store.node_figures(run_id)
     verdicts = store.node_verdicts(run_id)
-    nodes = store.node_names(run_id) or [PRIMARY_NODE]
+    # the nodes captured, the primary first, and any that holds figures but no capture
+    nodes = list(
+        dict.fromkeys([*store.node_names(run_id), *(n for f in figures.values() for n in f)])
+    )
     names = {
         node: sorted({name for per_point in figures.values() for name in per_point.get(node, {})})
         for node in nodes

@@ -65,7 +65,7 @@ def store_finished_run(path: Path, codec: str) -> int:
         grid = [(36.0 + 13 * (i // 4), 0.55 * (1 + i % 4)) for i in range(POINTS)]
         for index, point_id in enumerate(store.add_points(run_id, grid, line_is_ac=False)):
             captures = [
-                CaptureRecord(records[(index + k) % len(records)])
+                CaptureRecord(records[(index + k) % len(records)], node="primary")
                 for k in range(CAPTURES_PER_POINT)
             ]
             for capture_id in store.commit_point(point_id, captures=captures):

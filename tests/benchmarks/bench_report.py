@@ -105,7 +105,9 @@ def build_store(path: Path) -> int:
         review = review_run(store, run_id)
         worst_ids = {worst.point.point.id for worst in review.worst.values()}
         for seed, point_id in enumerate(sorted(worst_ids)[:CAPTURED_POINTS]):
-            store.commit_point(point_id, captures=[CaptureRecord(ringing_capture(seed))])
+            store.commit_point(
+                point_id, captures=[CaptureRecord(ringing_capture(seed), node="primary")]
+            )
         store.set_run_status(run_id, "finished")
     return run_id
 

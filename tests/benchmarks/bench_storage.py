@@ -114,7 +114,9 @@ def store_realistic_run(path: Path, waveforms: list[Waveform], codec: str = DEFA
         for point_id in store.add_points(run_id, grid, line_is_ac=False):
             started = time.time()
             store.log_event(run_id, "info", "settled", point_id=point_id, data={"settle_s": 0.05})
-            captures = [CaptureRecord(next(records)) for _ in range(CAPTURES_PER_POINT)]
+            captures = [
+                CaptureRecord(next(records), node="primary") for _ in range(CAPTURES_PER_POINT)
+            ]
             stored += sum(capture.waveform.codes.size for capture in captures)
             readings = PointReadings(*(float(value) for value in rng.uniform(0.1, 100.0, size=10)))
             capture_ids = store.commit_point(
@@ -127,6 +129,7 @@ def store_realistic_run(path: Path, waveforms: list[Waveform], codec: str = DEFA
             store.set_point_figures(
                 point_id,
                 {name: {**{s: rng.uniform() for s in stats}, "n": 3} for name in CAPTURE_FIGURES},
+                node="primary",
             )
             store.set_point_verdict(point_id, "pass", [])
             store.log_event(run_id, "timing", "point done", point_id=point_id, data={"s": 0.41})
