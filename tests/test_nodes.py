@@ -16,7 +16,7 @@ import pytest
 
 from labseq.analysis.verdict import Limits, aggregate, judge
 from labseq.bench import sim_design
-from labseq.commands.export import write_captures_npz, write_points_csv
+from labseq.export import write_captures_npz, write_points_csv
 from labseq.report import build_run_report
 from labseq.review import compare_runs, comparison_summary, review_run, run_summary
 from labseq.runner import run_sequence

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from labseq.commands.export import write_points_csv
+from labseq.export import write_points_csv
 from labseq.report import plots
 from labseq.report.html import Markup, Page, esc, table, verdict_cell
 from labseq.report.traces import point_traces

@@ -9,6 +9,7 @@ import numpy as np
 
 from instruments import Waveform as ScopeRecord
 from labseq.errors import InputError
+from labseq.export import SCALING_FIELDS, SCALING_KEY, codes_key
 from labseq.waveform_files.record import (
     Column,
     Waveform,
@@ -21,18 +22,9 @@ from labseq.waveform_files.record import (
 )
 
 CANONICAL_NAMES = ("time_s", "volts")
-#: Fields of the ``scaling`` table of ``labseq export``'s ``captures.npz`` (see
-#: :mod:`labseq.commands.export`) that reading a capture needs.
-EXPORT_SCALING_FIELDS = (
-    "name",
-    "x_increment_s",
-    "x_origin_s",
-    "y_increment_v",
-    "y_origin_v",
-    "y_reference",
-    "code_min",
-    "code_max",
-)
+#: Fields of the scaling table of ``labseq export``'s ``captures.npz`` (:mod:`labseq.export`)
+#: that reading a capture needs: its name and its scaling.
+EXPORT_SCALING_FIELDS = ("name", *SCALING_FIELDS)
 
 
 def _real(path: Path, name: str, values: np.ndarray) -> np.ndarray:
@@ -114,13 +106,13 @@ def read_npz(
             if time_s.size != volts.size:
                 raise InputError(f"{path}: time_s has {time_s.size} values but volts {volts.size}")
             return check_uniform(path, time_s, volts)
-        if "scaling" in archive.files:
+        if SCALING_KEY in archive.files:
             refuse(path, "--channel", channel, "choose a capture of the export with --capture")
             _seconds_only(path, time_unit, "labseq's export")
             return _read_export(path, archive, capture)
         raise InputError(
             f"{path}: holds arrays {listing(archive.files)}; expected {list(CANONICAL_NAMES)}, "
-            "or labseq export's 'scaling' table with its '<name>_codes' arrays"
+            f"or labseq export's {SCALING_KEY!r} table with its {codes_key('<name>')!r} arrays"
         )
 
 
@@ -146,7 +138,7 @@ def _choose_capture(path: Path, names: list[str], capture: str | None) -> int:
 def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None) -> Waveform:
     """One capture of ``labseq export``'s ``captures.npz`` as the store holds it: raw codes,
     their scaling and the screen's limits, so the samples that clipped are known."""
-    scaling = np.atleast_1d(archive["scaling"])
+    scaling = np.atleast_1d(archive[SCALING_KEY])
     fields = scaling.dtype.names or ()
     missing = [name for name in EXPORT_SCALING_FIELDS if name not in fields]
     if missing:
@@ -174,7 +166,7 @@ def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None)
             f"{path}: scaling of {quoted(name)}: x_increment_s is {numbers['x_increment_s']:g}; "
             "a sample interval must be positive"
         )
-    key = f"{name}_codes"
+    key = codes_key(name)
     if key not in archive.files:
         raise InputError(f"{path}: the scaling table names {quoted(name)} but {key} is missing")
     codes = archive[key]
