@@ -463,7 +463,7 @@ def execute(
         latch.hold()
     except Interrupted as late:  # the first signal came as the sweep ended
         failure = failure or late
-    if isinstance(failure, Interrupted) and bench is None and not sequence.bench.is_sim:
+    if isinstance(failure, Interrupted) and bench is None and not sequence.bench.simulated:
         bench = _reopen_quietly(sequence, store, run_id)
     if bench is not None:
         with timings.charge("instrument"):

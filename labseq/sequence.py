@@ -25,6 +25,7 @@ from typing import Any, NamedTuple
 
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
 from instruments.tomlkeys import find_key_line
+from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
 from labseq.errors import InputError
 from labseq.safety import ES1_AC_RMS_V, ES1_DC_V
 from labseq.units import UnitError, format_si, parse_quantity
@@ -49,10 +50,7 @@ DEFAULT_DERATING = 0.8
 #: the user; 5 % is common practice, no published source).
 DEFAULT_SETTLING_BAND = 0.05
 
-BENCH_KINDS = ("sim", "visa")
 BENCH_ROLES = ("source", "load", "meter", "scope")
-#: The command sets the simulated bench can speak (sim_instruments.instruments.DIALECTS).
-SIM_DIALECTS = ("generic", "alt")
 LINE_KINDS = ("dc", "ac")
 POINT_ERROR_ACTIONS = ("skip", "abort")
 COUPLINGS = ("dc", "ac")
@@ -132,23 +130,20 @@ class BenchLimits:
 
 
 @dataclass(frozen=True)
-class Bench:
-    """The instruments of a run: simulated, or real ones reached by VISA resource strings."""
+class BenchSpec:
+    """The instruments of a run as the sequence file describes them: its bench kind
+    (:mod:`labseq.bench_kinds`: simulated, or real ones reached by VISA resource strings), the
+    command map and limits of each role, and how to reach them."""
 
-    kind: str  # "sim" or "visa"
+    kind: str  # a word of labseq.bench_kinds.BENCH_KINDS: "visa" or "sim"
+    simulated: bool  # no hardware behind it: no ES1 gate, no bus to watch, no locks
     limits: BenchLimits
     maps: dict[str, str]  # role -> a command-map family name, or the path of a map file
     visa_library: str  # "" lets PyVISA choose (PYVISA_LIBRARY, .pyvisarc, IVI, pyvisa-py)
     timeout_s: float
     resources: dict[str, str] = field(default_factory=dict)  # role -> VISA resource or alias
     connections: dict[str, Connection] = field(default_factory=dict)  # role -> link settings
-    sim_dut_path: Path | None = None  # the DUT file a simulated bench runs
-    sim_dialect: str = "generic"  # the command set the simulated bench speaks
-
-    @property
-    def is_sim(self) -> bool:
-        """True for the simulated bench."""
-        return self.kind == "sim"
+    settings: Any = None  # the kind's own settings (the simulated DUT file, its dialect)
 
     @property
     def scope_map(self) -> str:
@@ -295,7 +290,7 @@ class Sequence:
     sha256: str
     name: str
     description: str
-    bench: Bench
+    bench: BenchSpec
     dut: Dut
     snubber: Snubber
     grid: Grid
@@ -385,7 +380,9 @@ class _Table:
         if value is _MISSING:
             return None
         if not isinstance(value, dict):
-            self.out.fail(self.key(name), f"expected a table of settings, got {_kind(value)}")
+            self.out.fail(
+                self.key(name), f"expected a table of settings, got {describe_value(value)}"
+            )
             return None
         return _Table(value, self.key(name), self.out)
 
@@ -446,7 +443,7 @@ class _Table:
         if value is _MISSING:
             return None if default is _MISSING else default
         if not isinstance(value, bool):
-            self.out.fail(self.key(name), f"expected true or false, got {_kind(value)}")
+            self.out.fail(self.key(name), f"expected true or false, got {describe_value(value)}")
             return None
         return value
 
@@ -461,7 +458,7 @@ class _Table:
             self.out.fail(self.key(name), f"unknown key; {hint}")
 
 
-def _kind(value: Any) -> str:
+def describe_value(value: Any) -> str:
     """How a TOML value reads in a message: 'a string', 'an array', ..."""
     if isinstance(value, bool):
         return "a boolean"
@@ -535,7 +532,7 @@ def _integer(value: Any, key: str, minimum: int, maximum: int | None = None) -> 
 
 def _text(value: Any, choices: tuple[str, ...]) -> str:
     if not isinstance(value, str):
-        raise ValueError(f"expected a string, got {_kind(value)}")
+        raise ValueError(f"expected a string, got {describe_value(value)}")
     if choices and value.lower() not in choices:
         raise ValueError(f"{value!r} is not valid; expected {_or_list(choices)}")
     return value.lower() if choices else value
@@ -547,7 +544,9 @@ def _values(table: _Table, name: str, convert: Callable[[Any, str], float]) -> l
     if raw is _MISSING:
         return None
     if not isinstance(raw, list) or not raw:
-        table.out.fail(table.key(name), f"expected a non-empty array of values, got {_kind(raw)}")
+        table.out.fail(
+            table.key(name), f"expected a non-empty array of values, got {describe_value(raw)}"
+        )
         return None
     results: list[float] = []
     for index, value in enumerate(raw):
@@ -573,32 +572,43 @@ def _values(table: _Table, name: str, convert: Callable[[Any, str], float]) -> l
 # --------------------------------------------------------------------------- sections
 
 
-def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
-    """The [bench] table; also returns the simulated DUT's line kind for the AC/DC check."""
+def _read_bench(top: _Table, seq_dir: Path) -> tuple[BenchSpec | None, BenchKind | None, Any]:
+    """The [bench] table: the generic keys here, the kind's own through its :class:`BenchKind`;
+    the kind and its settings are returned too, for its checks against the rest of the file."""
     table = top.table("bench")
     if table is None:
-        return None, None
-    kind = table.text("kind", choices=BENCH_KINDS)
-    dut_value = table.raw("dut", kind == "sim", 'a demo DUT name (e.g. "telecom_dc") or a file')
+        return None, None, None
+    name = table.text("kind", choices=BENCH_KINDS)
+    kind = None if name is None else bench_kind(name)
+    settings = None if kind is None else kind.read(table, seq_dir)
+    for key in (key for entry in BENCH_KINDS.values() for key in entry.keys):
+        if key in table.data and key not in table.known:  # another kind's key
+            table.known.append(key)
+            if kind is not None:
+                top.out.fail(
+                    table.key(key), f'only for kind = "{owner_of(key)}"; a "{name}" bench has none'
+                )
+    real = kind is not None and not kind.simulated
     scope_map = table.text("scope_map", default=None)
     maps_table = table.table("maps", required=False)
-    visa_library = table.text("visa_library", default="@py" if kind == "sim" else "")
+    visa_library = table.text(
+        "visa_library", default="" if kind is None else kind.default_visa_library
+    )
     timeout_s = table.quantity(
         "timeout", "s", default=5.0, minimum=MIN_REPLY_TIMEOUT_S, maximum=MAX_REPLY_TIMEOUT_S
     )
-    resources_table = table.table("resources", required=kind == "visa")
+    resources_table = table.table("resources", required=real)
     connections = _read_connections(top.out, table.table("connections", required=False))
-    sim_dialect = table.text("sim_dialect", default="generic", choices=SIM_DIALECTS)
     limits = _read_bench_limits(table.table("limits"))
     table.finish()
     maps = _read_maps(top.out, table, maps_table, scope_map, seq_dir)
-    if kind == "visa" and "sim_dialect" in table.data:
-        top.out.fail(table.key("sim_dialect"), 'only for kind = "sim"; a real bench speaks its own')
 
     resources_map: dict[str, str] = {}
     if resources_table is not None:
-        if kind == "sim":
-            top.out.fail(resources_table.prefix, 'only for kind = "visa"; a sim bench has its own')
+        if kind is not None and kind.simulated:
+            top.out.fail(
+                resources_table.prefix, f'only for real instruments; a "{name}" bench has its own'
+            )
         for role in BENCH_ROLES:
             resource = resources_table.text(role)
             if resource is None:
@@ -612,16 +622,10 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
                 )
             resources_map[role] = resource
         resources_table.finish()
-
-    sim_dut_path, sim_line_kind = None, None
-    if kind == "sim" and dut_value is not _MISSING:
-        sim_dut_path, sim_line_kind = _resolve_sim_dut(
-            top.out, table.key("dut"), dut_value, seq_dir
+    if kind is not None and kind.simulated and connections:
+        top.out.fail(
+            table.key("connections"), f'only for real instruments; a "{name}" bench has its own'
         )
-    elif kind == "visa" and dut_value is not _MISSING:
-        top.out.fail(table.key("dut"), 'only for kind = "sim"; a real bench has a real DUT')
-    if kind == "sim" and connections:
-        top.out.fail(table.key("connections"), 'only for kind = "visa"; a sim bench has its own')
     for role in connections or {}:
         serial = connections[role].serial
         resource = resources_map.get(role, "")
@@ -631,45 +635,22 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
                 f"serial settings for {resource!r}, which is not a serial port (ASRL...)",
             )
 
-    if None in (kind, limits, timeout_s, maps, visa_library, connections, sim_dialect) or (
-        kind == "sim" and sim_dut_path is None
+    if None in (kind, limits, timeout_s, maps, visa_library, connections) or (
+        BENCH_KINDS[name].keys and settings is None
     ):
-        return None, sim_line_kind
-    bench = Bench(
-        kind=kind,
+        return None, kind, settings
+    bench = BenchSpec(
+        kind=name,
+        simulated=kind.simulated,
         limits=limits,
         maps=maps,
         visa_library=visa_library,
         timeout_s=timeout_s,
         resources=resources_map,
         connections=connections,
-        sim_dut_path=sim_dut_path,
-        sim_dialect=sim_dialect,
+        settings=settings,
     )
-    return bench, sim_line_kind
-
-
-def _resolve_sim_dut(out: _Collector, key: str, value: Any, seq_dir: Path) -> tuple[Any, Any]:
-    """The DUT file of a simulated bench: a demo name or a path relative to the sequence file."""
-    from sim_instruments.flyback import DEMO_DUTS, load_dut
-
-    if not isinstance(value, str):
-        out.fail(key, f"expected a demo DUT name or a file path, got {_kind(value)}")
-        return None, None
-    path = DEMO_DUTS[value] if value in DEMO_DUTS else seq_dir / value
-    if not path.is_file():
-        out.fail(
-            key,
-            f"no demo DUT named {value!r} and no file {path}; demo DUTs: "
-            f"{', '.join(sorted(DEMO_DUTS))}, or a DUT file path relative to the sequence file",
-        )
-        return None, None
-    try:
-        design = load_dut(path)
-    except (ValueError, OSError) as exc:
-        out.fail(key, f"the DUT file cannot be used: {exc}")
-        return None, None
-    return path, design.line_kind
+    return bench, kind, settings
 
 
 def _read_maps(
@@ -841,7 +822,7 @@ def _read_snubber(table: _Table | None) -> Snubber | None:
     return Snubber(label, resistance, capacitance, budget)
 
 
-def _read_grid(top: _Table, dut: Dut | None, bench: Bench | None) -> Grid | None:
+def _read_grid(top: _Table, dut: Dut | None, bench: BenchSpec | None) -> Grid | None:
     """[grid], with every value checked against the DUT's declared range and the bench."""
     table = top.table("grid")
     if table is None:
@@ -893,7 +874,7 @@ def _read_grid(top: _Table, dut: Dut | None, bench: Bench | None) -> Grid | None
 
 
 def _check_line_values(
-    out: _Collector, key: str, values_v: list[float], dut: Dut | None, bench: Bench | None
+    out: _Collector, key: str, values_v: list[float], dut: Dut | None, bench: BenchSpec | None
 ) -> None:
     """Each line value inside the DUT's declared range and under the source's maximum."""
     for index, line_v in enumerate(values_v):
@@ -925,7 +906,7 @@ def _check_ramp(out: _Collector, values_v: list[float], limits: BenchLimits) -> 
 
 
 def _check_load_values(
-    out: _Collector, key: str, values_a: list[float], dut: Dut | None, bench: Bench | None
+    out: _Collector, key: str, values_a: list[float], dut: Dut | None, bench: BenchSpec | None
 ) -> None:
     """Each load under the DUT's rated load × (1 + margin) and the electronic load's maximum."""
     for index, load_a in enumerate(values_a):
@@ -1123,7 +1104,7 @@ def _read_nodes(top: _Table, primary: NodeSpec | None) -> list[NodeSpec] | None:
     if raw is _MISSING:
         return []
     if not isinstance(raw, list) or not all(isinstance(item, dict) for item in raw):
-        top.out.fail("nodes", f"expected an array of tables [[nodes]], got {_kind(raw)}")
+        top.out.fail("nodes", f"expected an array of tables [[nodes]], got {describe_value(raw)}")
         return None
     nodes = [_read_node(_Table(item, f"nodes[{index}]", top.out)) for index, item in enumerate(raw)]
     names = {primary.name: "the primary node ([scope] node)"} if primary else {}
@@ -1172,7 +1153,7 @@ def _kind_word(is_ac: bool) -> str:
 
 
 def _check_bench(
-    out: _Collector, bench: Bench, dut: Dut | None, acquisition: Acquisition | None
+    out: _Collector, bench: BenchSpec, dut: Dut | None, acquisition: Acquisition | None
 ) -> None:
     """Scope and probe limits of the bench against the settings and the DUT."""
     limits = bench.limits
@@ -1200,14 +1181,9 @@ def _check_bench(
 
 
 def _check_nodes_on_bench(
-    out: _Collector,
-    bench: Bench,
-    primary: _PrimaryChannel | None,
-    nodes: list[NodeSpec],
-    clamp: Clamp | None,
+    out: _Collector, bench: BenchSpec, primary: _PrimaryChannel | None, nodes: list[NodeSpec]
 ) -> None:
-    """Every node's channel on the scope, its rating within the probe's; on the simulated bench,
-    each node probed by the simulated scope and a clamp the DUT file can take."""
+    """Every node's channel on the scope, its rating within the probe's."""
     channels = _scope_channels(bench.scope_map)
     if channels is not None and primary is not None and primary.channel > channels:
         out.fail("scope.channel", f"channel {primary.channel} is beyond the scope's {channels}")
@@ -1226,26 +1202,6 @@ def _check_nodes_on_bench(
                 f"{format_si(node.rating_v, 'V')} is above bench.limits.probe_max_voltage "
                 f"{format_si(probe_v, 'V')}; use a probe rated at least as high as the device",
             )
-    if not bench.is_sim or bench.sim_dut_path is None:
-        return
-    from sim_instruments.flyback import load_dut
-    from sim_instruments.instruments import SECONDARY_CHANNEL
-
-    design = load_dut(bench.sim_dut_path)
-    for index, node in enumerate(nodes):
-        if node.channel != SECONDARY_CHANNEL or design.secondary is None:
-            out.fail(
-                f"nodes[{index}].channel",
-                f"the simulated scope probes only the primary and, when the DUT file declares "
-                f"[secondary], the output rectifier on channel {SECONDARY_CHANNEL}; channel "
-                f"{node.channel} would be a flat trace",
-            )
-    if clamp is not None and not design.has_clamp:
-        out.fail(
-            "clamp",
-            "the simulated DUT file (bench.dut) declares no [clamp] whose values this table "
-            "could replace; remove [clamp] or use a DUT file with one",
-        )
 
 
 def _scope_map(scope_map: str) -> Any:
@@ -1267,7 +1223,7 @@ def _scope_channels(scope_map: str) -> int | None:
 
 def _check_scope_limits(
     out: _Collector,
-    bench: Bench,
+    bench: BenchSpec,
     primary: _PrimaryChannel | None,
     acquisition: Acquisition | None,
     nodes: list[NodeSpec],
@@ -1385,7 +1341,7 @@ def above_es1(dut: Dut, grid: Grid, nodes: Iterable[NodeSpec]) -> ExposedVoltage
 
 def _check_hazard(
     out: _Collector,
-    bench: Bench,
+    bench: BenchSpec,
     dut: Dut,
     grid: Grid,
     nodes: list[NodeSpec],
@@ -1393,7 +1349,7 @@ def _check_hazard(
 ) -> None:
     """A real bench above the ES1 limits of IEC 62368-1 on any exposed node needs the file's
     acknowledgement; the message names the value that trips the limit."""
-    if bench.is_sim or acknowledged:
+    if bench.simulated or acknowledged:
         return
     hazard = above_es1(dut, grid, nodes)
     if hazard is not None:
@@ -1436,7 +1392,7 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     name = top.text("name", default=path.stem)
     description = top.text("description", default="")
     on_point_error = top.text("on_point_error", default="skip", choices=POINT_ERROR_ACTIONS)
-    bench, sim_line_kind = _read_bench(top, path.parent)
+    bench, kind, bench_settings = _read_bench(top, path.parent)
     dut = _read_dut(top)
     snubber = _read_snubber(top.table("snubber"))
     grid = _read_grid(top, dut, bench)
@@ -1466,20 +1422,12 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
 
     if bench is not None:
         _check_bench(out, bench, dut, acquisition)
-        _check_nodes_on_bench(out, bench, primary_channel, nodes or [], clamp)
+        _check_nodes_on_bench(out, bench, primary_channel, nodes or [])
         _check_scope_limits(out, bench, primary_channel, acquisition, nodes or [])
         if None not in (grid, dut, primary, nodes, acknowledged):
             _check_hazard(out, bench, dut, grid, [primary, *nodes], acknowledged)
-    if (
-        dut is not None
-        and sim_line_kind is not None
-        and sim_line_kind != _kind_word(dut.line_is_ac).strip('"')
-    ):
-        out.fail(
-            "dut.line_kind",
-            f'the simulated DUT file (bench.dut) takes "{sim_line_kind}" but dut.line_kind is '
-            f"{_kind_word(dut.line_is_ac)}; they must match",
-        )
+    if bench_settings is not None:
+        kind.check(bench_settings, out.fail, dut=dut, nodes=nodes or [], clamp=clamp)
     parts = (
         name,
         description,

@@ -17,6 +17,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from sim_instruments import DIALECTS, PRIMARY_CHANNEL, SECONDARY_CHANNEL
 from sim_instruments import scope as acquisition
 from sim_instruments.flyback import FlybackModel, LineReading, OperatingPoint
 from sim_instruments.server import Block, Call, Command, CommandError, ScpiInstrument, format_number
@@ -24,10 +25,6 @@ from sim_instruments.server import Block, Call, Command, CommandError, ScpiInstr
 MANUFACTURER = "labseq-sim"
 FIRMWARE = "1.0"
 
-#: The command sets the simulated instruments can speak, chosen when the bench starts:
-#: ``generic`` (the generic maps) and ``alt``, a second dialect deliberately unlike it (other
-#: command trees, headers on replies, unsigned codes, values in other units).
-DIALECTS = ("generic", "alt")
 GENERIC, ALT = DIALECTS
 #: The alt scope's bandwidth-limit filter, switched ON or OFF.
 ALT_FILTER_HZ = 20e6
@@ -38,10 +35,6 @@ SOURCE_FREQUENCY_RANGE_HZ = (40.0, 500.0)
 SOURCE_CURRENT_LIMIT_MAX_A = 20.0
 LOAD_CURRENT_MAX_A = 30.0
 SCOPE_CHANNELS = 4
-#: What the scope's probes see: the primary switch node, and the output rectifier (anode to
-#: cathode) when the DUT declares one; the other channels are unprobed.
-PRIMARY_CHANNEL = 1
-SECONDARY_CHANNEL = 2
 SCOPE_SCALE_RANGE_V_PER_DIV = (1e-3, 10.0)  # at the BNC; times the probe ratio at the tip
 SCOPE_OFFSET_DIVS_MAX = 100.0  # offset range in divisions of the largest scale, at the BNC
 SCOPE_PROBE_RANGE = (0.1, 10_000.0)

@@ -15,12 +15,12 @@ import numpy as np
 import pytest
 
 from labseq.analysis.verdict import Limits, aggregate, judge
-from labseq.bench import sim_design
 from labseq.export import write_captures_npz, write_points_csv
 from labseq.report import build_run_report
 from labseq.review import compare_runs, comparison_summary, review_run, run_summary
 from labseq.runner import run_sequence
 from labseq.sequence import SequenceError, find_key_line, load_sequence
+from labseq.sim_bench import sim_design
 from labseq.store import SCHEMA_VERSION, CaptureRecord, Store, StoreFileError
 from sim_instruments.flyback import DEMO_DUTS, load_dut
 

@@ -92,7 +92,7 @@ def test_demo_dc_values_in_si() -> None:
     # derating guidelines); loss limit = the resistor's budget.
     assert sequence.primary.limits.max_peak_v == pytest.approx(150.0 * 0.8)
     assert sequence.primary.limits.max_snubber_loss_w == pytest.approx(0.5)
-    assert sequence.bench.is_sim and sequence.bench.sim_dut_path.is_file()
+    assert sequence.bench.simulated and sequence.bench.settings.dut_path.is_file()
     assert sequence.points()[0] == GridPoint(36.0, pytest.approx(0.55))
 
 
@@ -380,7 +380,7 @@ def test_sim_dut_path_relative_to_sequence_file(tmp_path: Path) -> None:
     (tmp_path / "duts").mkdir()
     (tmp_path / "duts" / "mine.toml").write_text(dut_text.read_text())
     path = edited(DEMO_DC, tmp_path, replace_line("dut", 'dut = "duts/mine.toml"'))
-    assert load_sequence(path).bench.sim_dut_path == tmp_path / "duts" / "mine.toml"
+    assert load_sequence(path).bench.settings.dut_path == tmp_path / "duts" / "mine.toml"
 
 
 def test_parse_sequence_without_file_hashes_text() -> None:
