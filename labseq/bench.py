@@ -26,13 +26,12 @@ from instruments import (
     SourceLimits,
     load_command_map,
 )
+from instruments.command_map import ROLES
 from instruments.errors import InstrumentError, ReplyFormatError, ScpiError
 from instruments.roles import MappedInstrument
 from labseq.bench_kinds import Started, bench_kind
 from labseq.safety import SAFE_BUS_V
 from labseq.sequence import Sequence
-
-ROLES = ("source", "load", "meter", "scope")
 
 #: How long the runner waits for a real bench's bus to fall below the safe limit.
 BUS_DISCHARGE_TIMEOUT_S = 300.0

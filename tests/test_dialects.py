@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 from sweeps import DEMO_DC, demo_sequence, run_cli
 
-from instruments.command_map import MAPS_DIR, ROLE_COMMANDS, load_command_map
+from instruments.command_map import MAPS_DIR, ROLE_COMMANDS, ROLES, load_command_map
 from instruments.connection import Connection, SerialSettings
 from instruments.errors import CommandMapError, LimitError, ScpiError
 from instruments.limits import SourceLimits
@@ -29,7 +29,6 @@ from sim_instruments.flyback import DEMO_DUTS, load_dut
 
 HERE = Path(__file__).resolve().parent
 ALT_MAPS = 'maps = { source = "alt", load = "alt", meter = "alt", scope = "alt" }'
-ROLES = ("source", "load", "meter", "scope")
 
 
 def _alt_scope_map(tmp_path: Path, old: str, new: str) -> Path:
