@@ -19,9 +19,9 @@ from instruments import Waveform
 from labseq.analysis import CaptureFigures, NoEdgeError, SnubberBranch, aggregate, analyze_capture
 from labseq.analysis import judge as judge_point
 from labseq.analysis.capture import ClampFigures, clamp_figures
-from labseq.analysis.verdict import worst_verdict
+from labseq.figures import CAPTURE_FIGURES, worst_verdict
 from labseq.sequence import NodeSpec, Sequence, parse_sequence
-from labseq.store import CAPTURE_FIGURES, PointRecord, RunRecord, Store
+from labseq.store import PointRecord, RunRecord, Store
 
 
 @dataclass(frozen=True)
@@ -48,7 +48,7 @@ def analysis_options(sequence: Sequence | None, node: NodeSpec | None) -> dict[s
     snubber = node.snubber
     return {
         "polarity": node.polarity,
-        "settling_band": node.limits.settling_band,
+        "settling_band": node.settling_band,
         "snubber": None
         if snubber is None
         else SnubberBranch(
@@ -139,7 +139,7 @@ def judge_stored_point(store: Store, sequence: Sequence, point: PointRecord) -> 
             for name, s in summary.figures.items()
         }
         efficiency = point.efficiency if node is sequence.primary else None
-        verdict = judge_point(summary, node.verdict_limits(), efficiency, polarity=node.polarity)
+        verdict = judge_point(summary, node.limits, efficiency, polarity=node.polarity)
         node_verdicts[node.name] = (verdict.status, verdict.reasons)
         reasons += [f"{node.name}: {r}" if several else r for r in verdict.reasons]
     status = worst_verdict(status for status, _ in node_verdicts.values())

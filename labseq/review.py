@@ -39,112 +39,32 @@ from typing import Any
 
 import numpy as np
 
-from labseq.analysis.capture import FIGURE_UNITS
 from labseq.analysis.snubber import METHOD_LABELS
-from labseq.analysis.verdict import SIGNED_FIGURES
 from labseq.errors import InputError
+from labseq.figures import (
+    FIGURE_DIRECTIONS,
+    FIGURE_TITLES,
+    LIMIT_FIGURES,
+    NOISE_FLOORS,
+    VERDICTS_WORST_FIRST,
+    figure_direction,
+    format_change,
+    format_figure,
+    worst_verdict,
+)
 from labseq.pipeline import stored_sequence
 from labseq.sequence import DEFAULT_PRIMARY_NAME, NodeSpec
 from labseq.sequence import Sequence as SequenceFile
 from labseq.store import PointRecord, RunRecord, Store
 from labseq.units import format_si
 
-#: Figures a review reports, in the order a reviewer reads them, with their direction:
-#: +1 when a higher value is better, −1 when a lower value is better.
-FIGURE_DIRECTIONS: dict[str, int] = {
-    "peak_v": -1,
-    "stress_margin_v": +1,
-    "overshoot_v": -1,
-    "overshoot_pct": -1,
-    "damping_ratio": +1,
-    "q_factor": -1,
-    "settling_time_s": -1,
-    "snubber_loss_w": -1,
-    "clamp_level_v": -1,
-    "clamp_loss_w": -1,
-    "efficiency": +1,
-}
-
-#: Plain names for tables and sentences.
-FIGURE_TITLES: dict[str, str] = {
-    "peak_v": "peak stress",
-    "stress_margin_v": "stress margin",
-    "overshoot_v": "overshoot",
-    "overshoot_pct": "overshoot (% of step)",
-    "damping_ratio": "damping ratio",
-    "q_factor": "Q",
-    "settling_time_s": "settling time",
-    "snubber_loss_w": "snubber loss",
-    "efficiency": "efficiency",
-    "ring_frequency_hz": "ring frequency",
-    "clamp_level_v": "clamp level",
-    "clamp_loss_w": "clamp loss",
-}
-
-#: Smallest change taken as real, per figure: about one 8-bit code on a 250 V screen for volts,
-#: two samples at 1 GS/s for times, and what the figures' printed precision resolves otherwise
-#: (common practice, no published source).
-NOISE_FLOORS: dict[str, float] = {
-    "peak_v": 1.0,
-    "stress_margin_v": 1.0,
-    "overshoot_v": 1.0,
-    "overshoot_pct": 0.5,
-    "damping_ratio": 0.005,
-    "q_factor": 0.05,
-    "settling_time_s": 2e-9,
-    "snubber_loss_w": 1e-3,
-    "clamp_level_v": 1.0,
-    "clamp_loss_w": 1e-3,
-    "efficiency": 1e-3,
-}
-
 #: Coverage factor k of the significance rule.
 DEFAULT_COVERAGE = 2.0
 #: Setpoints within this fraction of each other are the same point.
 DEFAULT_MATCH_TOLERANCE = 0.005
 
-VERDICT_ORDER = ("fail", "incomplete", "pass")
-MINUS = "\u2212"
-
 
 # --------------------------------------------------------------------------- text helpers
-
-
-def figure_direction(figure: str, polarity: int = 1) -> int:
-    """+1 when a higher value of ``figure`` is better, −1 when lower is; turned round for a
-    signed figure (the peak) of a falling node, whose worse peak is the more negative."""
-    direction = FIGURE_DIRECTIONS[figure]
-    return -direction if polarity < 0 and figure in SIGNED_FIGURES else direction
-
-
-def figure_unit(figure: str) -> str:
-    """Unit symbol of a figure ("" for ratios; efficiency is shown in %)."""
-    return FIGURE_UNITS.get(figure, "")
-
-
-def format_figure(figure: str, value: float | None) -> str:
-    """A figure in engineering notation: ``112 V``, ``0.31``, ``91.2 %``."""
-    if value is None or not math.isfinite(value):
-        return "—"
-    if figure == "efficiency":
-        return f"{100 * value:.3g} %"
-    if figure == "overshoot_pct":
-        return f"{value:.3g} %"
-    unit = figure_unit(figure)
-    return format_si(value, unit) if unit else f"{value:.3g}"
-
-
-def format_change(figure: str, delta: float | None) -> str:
-    """A signed change: ``+41 mW``, ``−38 V``, ``−0.2 pt`` (efficiency in percentage points)."""
-    if delta is None or not math.isfinite(delta):
-        return "—"
-    sign = "+" if delta > 0 else MINUS if delta < 0 else "±"
-    if figure == "efficiency":
-        return f"{sign}{abs(100 * delta):.2g} pt"
-    if figure == "overshoot_pct":
-        return f"{sign}{abs(delta):.2g} pt"
-    unit = figure_unit(figure)
-    return sign + (format_si(abs(delta), unit) if unit else f"{abs(delta):.2g}")
 
 
 def line_text(line_v: float, line_is_ac: bool) -> str:
@@ -333,17 +253,6 @@ def grid_values(
     return values
 
 
-def run_verdict(verdicts: Iterable[str]) -> str:
-    """Fail if any point fails; else incomplete if any is incomplete (or there are none); else
-    pass."""
-    seen = set(verdicts)
-    if "fail" in seen:
-        return "fail"
-    if "incomplete" in seen or not seen:
-        return "incomplete"
-    return "pass"
-
-
 def node_polarity(review: RunReview, node: str) -> int:
     """A node's polarity: from the sequence, else −1 when its stored peaks are negative."""
     spec = review.sequence.node(node) if review.sequence else None
@@ -403,7 +312,7 @@ def review_run(store: Store, run_id: int) -> RunReview:
     # a run with neither a valid sequence nor a capture has no node to name but the default
     node_names = tuple(dict.fromkeys([*declared, *stored_nodes])) or (DEFAULT_PRIMARY_NAME,)
     points = _point_reviews(store, run_id, node_names[0])
-    counts = {word: 0 for word in VERDICT_ORDER}
+    counts = {word: 0 for word in VERDICTS_WORST_FIRST}
     for point in points:
         counts[point.verdict] += 1
     return RunReview(
@@ -411,7 +320,7 @@ def review_run(store: Store, run_id: int) -> RunReview:
         sequence=sequence,
         sequence_problem=problem,
         points=points,
-        verdict=run_verdict(p.verdict for p in points),
+        verdict=worst_verdict(p.verdict for p in points),
         verdict_counts=counts,
         worst=worst_points(points),
         line_values_v=tuple(sorted({p.point.line_v for p in points})),
@@ -441,18 +350,12 @@ def limit_rows(review: RunReview) -> list[tuple[str, str]]:
             f"{format_si(spec.derated_rating_v, 'V')}",
         )
     )
-    for name, relation, figure in (
-        ("min_stress_margin_v", "≥", "stress_margin_v"),
-        ("min_damping_ratio", "≥", "damping_ratio"),
-        ("max_q_factor", "≤", "q_factor"),
-        ("max_settling_time_s", "≤", "settling_time_s"),
-        ("max_snubber_loss_w", "≤", "snubber_loss_w"),
-        ("min_efficiency", "≥", "efficiency"),
-    ):
+    for name, (figure, is_max) in LIMIT_FIGURES.items():
         value = getattr(limits, name)
-        if value is not None:
+        if value is not None and figure != "peak_v":
+            relation = "≤" if is_max else "≥"
             rows.append((f"{FIGURE_TITLES[figure]} {relation}", format_figure(figure, value)))
-    rows.append(("settling band", f"±{100 * limits.settling_band:.3g} % of the step"))
+    rows.append(("settling band", f"±{100 * spec.settling_band:.3g} % of the step"))
     if spec.snubber is not None:
         rows.append(("snubber", spec.snubber.label))
     clamp = review.sequence.clamp
@@ -464,6 +367,7 @@ def limit_rows(review: RunReview) -> list[tuple[str, str]]:
 def _node_limits(spec: NodeSpec) -> dict[str, Any]:
     return {
         **vars(spec.limits),
+        "settling_band": spec.settling_band,
         "rating_v": spec.rating_v,
         "derating": spec.derating,
         "polarity": "rising" if spec.polarity > 0 else "falling",
@@ -501,6 +405,7 @@ def run_summary(review: RunReview) -> dict[str, Any]:
             if sequence is None
             else {
                 **vars(sequence.primary.limits),
+                "settling_band": sequence.primary.settling_band,
                 "switch_rating_v": sequence.dut.switch_rating_v,
                 "derating": sequence.dut.derating,
                 "nodes": {node.name: _node_limits(node) for node in sequence.nodes},

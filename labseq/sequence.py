@@ -23,10 +23,12 @@ from dataclasses import MISSING, dataclass, field, fields
 from pathlib import Path
 from typing import Any, NamedTuple
 
+from instruments.command_map import ROLES
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
 from instruments.tomlkeys import find_key_line
 from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
 from labseq.errors import InputError
+from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND, Limits
 from labseq.safety import ES1_AC_RMS_V, ES1_DC_V
 from labseq.units import UnitError, format_si, parse_quantity
 
@@ -42,15 +44,6 @@ MAX_SETTLE_S = 3600.0  # grid.settle: wait at each point
 MAX_DWELL_S = 600.0  # bench.limits.line_step_dwell: wait on each ramp step
 MAX_CAPTURES_PER_POINT = 1000
 
-#: Switch voltage derating used when the file gives none (from memory of common power-supply
-#: derating guidelines).
-DEFAULT_DERATING = 0.8
-
-#: Settling band as a fraction of the step when the file gives none (IEEE 181 leaves the band to
-#: the user; 5 % is common practice, no published source).
-DEFAULT_SETTLING_BAND = 0.05
-
-BENCH_ROLES = ("source", "load", "meter", "scope")
 LINE_KINDS = ("dc", "ac")
 POINT_ERROR_ACTIONS = ("skip", "abort")
 COUPLINGS = ("dc", "ac")
@@ -209,20 +202,6 @@ class Acquisition:
 
 
 @dataclass(frozen=True)
-class VerdictLimits:
-    """Limits a point is judged against (None = not judged on that figure)."""
-
-    max_peak_v: float | None
-    min_stress_margin_v: float | None
-    min_damping_ratio: float | None
-    max_q_factor: float | None
-    max_settling_time_s: float | None
-    max_snubber_loss_w: float | None
-    min_efficiency: float | None
-    settling_band: float
-
-
-@dataclass(frozen=True)
 class Clamp:
     """The RCD clamp across the primary: its resistor and capacitor (the diode is not judged)."""
 
@@ -253,7 +232,8 @@ class NodeSpec:
     rating_v: float
     derating: float
     snubber: Snubber | None
-    limits: VerdictLimits
+    limits: Limits  # what the node is judged against (None in a field: not judged on it)
+    settling_band: float  # half-width of the settling band, a fraction of the step
 
     @property
     def derated_rating_v(self) -> float:
@@ -264,21 +244,6 @@ class NodeSpec:
     def peak_word(self) -> str:
         """How a reviewer names the node's peak: stress on a switch, reverse voltage on a diode."""
         return "peak stress" if self.polarity > 0 else "peak reverse voltage"
-
-    def verdict_limits(self) -> Any:
-        """The node's limits as :class:`labseq.analysis.verdict.Limits`."""
-        from labseq.analysis.verdict import Limits
-
-        limits = self.limits
-        return Limits(
-            max_peak_v=limits.max_peak_v,
-            min_stress_margin_v=limits.min_stress_margin_v,
-            min_damping_ratio=limits.min_damping_ratio,
-            max_q_factor=limits.max_q_factor,
-            max_settling_time_s=limits.max_settling_time_s,
-            max_snubber_loss_w=limits.max_snubber_loss_w,
-            min_efficiency=limits.min_efficiency,
-        )
 
 
 @dataclass(frozen=True)
@@ -609,7 +574,7 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[BenchSpec | None, BenchKind
             top.out.fail(
                 resources_table.prefix, f'only for real instruments; a "{name}" bench has its own'
             )
-        for role in BENCH_ROLES:
+        for role in ROLES:
             resource = resources_table.text(role)
             if resource is None:
                 continue
@@ -665,7 +630,7 @@ def _read_maps(
     generic map."""
     named: dict[str, tuple[str, str]] = {}
     if maps_table is not None:
-        for role in BENCH_ROLES:
+        for role in ROLES:
             value = maps_table.text(role, default=None)
             if value is not None:
                 named[role] = (maps_table.key(role), value)
@@ -675,12 +640,12 @@ def _read_maps(
             out.fail(bench.key("scope_map"), "give the scope's map once: here or in bench.maps")
         named["scope"] = (bench.key("scope_map"), scope_map)
     maps: dict[str, str] = {}
-    for role in BENCH_ROLES:
+    for role in ROLES:
         key, value = named.get(role, (bench.key(f"maps.{role}"), "generic"))
         resolved = _resolve_map(out, key, value, role, seq_dir)
         if resolved is not None:
             maps[role] = resolved
-    return maps if len(maps) == len(BENCH_ROLES) else None
+    return maps if len(maps) == len(ROLES) else None
 
 
 def _resolve_map(out: _Collector, key: str, value: str, role: str, seq_dir: Path) -> str | None:
@@ -712,7 +677,7 @@ def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connec
         return {}
     connections: dict[str, Connection] = {}
     failed = False
-    for role in BENCH_ROLES:
+    for role in ROLES:
         role_table = table.table(role, required=False)
         if role_table is None:
             continue
@@ -994,10 +959,11 @@ def _read_limits(
     snubber: Snubber | None,
     *,
     point_limits: bool,
-) -> VerdictLimits | None:
+) -> tuple[Limits, float] | None:
     """A limits table, all optional: [limits] (``point_limits``: efficiency is judged there) or
-    [nodes.limits]. The peak defaults to rating × derating and the snubber loss to the
-    resistor's budget; ``rating`` is (rating, derating, its name, the key that declares it)."""
+    [nodes.limits]: the limits and the settling band. The peak defaults to rating × derating and
+    the snubber loss to the resistor's budget; ``rating`` is (rating, derating, its name, the
+    key that declares it)."""
     values = {
         "max_peak_v": table.quantity("max_peak", "V", default=None),
         "min_stress_margin_v": table.quantity(
@@ -1035,19 +1001,22 @@ def _read_limits(
             )
     if values["max_snubber_loss_w"] is None and snubber is not None:
         values["max_snubber_loss_w"] = snubber.resistor_power_budget_w
-    return VerdictLimits(**values)
+    band = values.pop("settling_band")
+    return Limits(**values), band
 
 
 def _primary_node(
-    channel: _PrimaryChannel, dut: Dut, snubber: Snubber, limits: VerdictLimits
+    channel: _PrimaryChannel, dut: Dut, snubber: Snubber, judged: tuple[Limits, float]
 ) -> NodeSpec:
     """The primary switch node from [scope], [dut], [snubber] and [limits]."""
+    limits, settling_band = judged
     return NodeSpec(
         label="Primary switch",
         rating_v=dut.switch_rating_v,
         derating=dut.derating,
         snubber=snubber if snubber.capacitance_f > 0 and snubber.resistance_ohm > 0 else None,
         limits=limits,
+        settling_band=settling_band,
         **channel._asdict(),
     )
 
@@ -1072,7 +1041,7 @@ def _read_node(table: _Table) -> NodeSpec | None:
         if values["rating_v"] is None or values["derating"] is None
         else (values["rating_v"], values["derating"], "rating", table.key("rating"))
     )
-    limits = _read_limits(limits_table, rating, snubber, point_limits=False)
+    judged = _read_limits(limits_table, rating, snubber, point_limits=False)
     table.finish()
     if isinstance(name, str) and not _NODE_NAME.match(name):
         table.out.fail(
@@ -1082,7 +1051,7 @@ def _read_node(table: _Table) -> NodeSpec | None:
         )
         return None
     if (
-        None in (name, label, polarity, limits)
+        None in (name, label, polarity, judged)
         or any(value is None for value in values.values())
         or (snubber_table is not None and snubber is None)
     ):
@@ -1092,7 +1061,8 @@ def _read_node(table: _Table) -> NodeSpec | None:
         label=label or name.capitalize(),
         polarity=1 if polarity == "rising" else -1,
         snubber=snubber,
-        limits=limits,
+        limits=judged[0],
+        settling_band=judged[1],
         **values,
     )
 
@@ -1397,7 +1367,7 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     snubber = _read_snubber(top.table("snubber"))
     grid = _read_grid(top, dut, bench)
     primary_channel, acquisition = _read_scope(top)
-    limits = _read_limits(
+    judged = _read_limits(
         top.table("limits", required=False) or _Table({}, "limits", out),
         None
         if dut is None
@@ -1407,8 +1377,8 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     )
     primary = (
         None
-        if None in (primary_channel, dut, snubber, limits)
-        else _primary_node(primary_channel, dut, snubber, limits)  # type: ignore[arg-type]
+        if None in (primary_channel, dut, snubber, judged)
+        else _primary_node(primary_channel, dut, snubber, judged)  # type: ignore[arg-type]
     )
     nodes = _read_nodes(top, primary)
     clamp = _read_clamp(top)

@@ -45,6 +45,7 @@ import zstandard
 from instruments import Waveform
 from labseq import __version__
 from labseq.errors import InputError, LabseqError
+from labseq.figures import CAPTURE_FIGURES, CAPTURE_METHODS, VERDICTS
 from labseq.process import process_alive, process_start_time
 
 #: Version of the schema; a file with a higher version is refused, a lower one upgraded.
@@ -77,12 +78,13 @@ ZSTD_LEVEL = 3
 #: read back off, or the bus not read below the ES1 limit), whatever else ended it.
 RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed", "unsafe-end")
 POINT_STATUSES = ("pending", "done", "failed", "skipped")
-VERDICTS = ("pass", "fail", "incomplete")
 EVENT_KINDS = ("info", "scpi-error", "retry", "skip", "fault", "timing", "safety")
 CODE_DTYPES = ("int8", "int16", "float32")
 
-#: Per-capture figures, one REAL column each (the analysis' names).
-CAPTURE_FIGURES = (
+#: A capture's figures are stored one column each, named and typed as the figure catalogue
+#: (:mod:`labseq.figures`) says: :data:`CAPTURE_FIGURES` REAL, :data:`CAPTURE_METHODS` TEXT.
+#: The columns a version-2 file has, as that version wrote them; later versions add theirs.
+_CAPTURE_FIGURES_2 = (
     "base_v",
     "plateau_v",
     "peak_v",
@@ -91,9 +93,7 @@ CAPTURE_FIGURES = (
     "rise_time_s",
     "edge_time_s",
     "ring_frequency_hz",
-    "natural_frequency_hz",
     "decay_rate_per_s",
-    "real_pole_decay_rate_per_s",
     "damping_ratio",
     "q_factor",
     "fit_quality",
@@ -103,10 +103,7 @@ CAPTURE_FIGURES = (
     "clamp_level_v",
     "clamp_loss_w",
 )
-#: Text that says how a capture figure was obtained, one TEXT column each.
-CAPTURE_METHODS = ("snubber_loss_method", "clamp_loss_method", "ring_model")
-#: Capture-figure columns that version 3 added (a version-2 file has none of them).
-_CAPTURE_FIGURES_ADDED_3 = ("natural_frequency_hz", "real_pole_decay_rate_per_s", "ring_model")
+_CAPTURE_METHODS_2 = ("snubber_loss_method", "clamp_loss_method")
 
 
 def _sql_list(values: Iterable[str]) -> str:
@@ -240,8 +237,8 @@ CREATE TABLE points (
 {_CAPTURES_TABLE.format(table="captures")};
 CREATE TABLE capture_figures (
     capture_id INTEGER PRIMARY KEY REFERENCES captures(id),
-    {", ".join(f"{name} REAL" for name in CAPTURE_FIGURES if name not in _CAPTURE_FIGURES_ADDED_3)},
-    {", ".join(f"{name} TEXT" for name in CAPTURE_METHODS if name not in _CAPTURE_FIGURES_ADDED_3)},
+    {", ".join(f"{name} REAL" for name in _CAPTURE_FIGURES_2)},
+    {", ".join(f"{name} TEXT" for name in _CAPTURE_METHODS_2)},
     clipped INTEGER,
     edge_count INTEGER,
     error TEXT,

@@ -11,9 +11,9 @@ from pathlib import Path
 import pytest
 from test_report import LINES_V, LOADS_A, ROOT, make_run, parse_page, run_cli
 
+from labseq.figures import NOISE_FLOORS
 from labseq.review import (
     DEFAULT_COVERAGE,
-    NOISE_FLOORS,
     FigureStats,
     compare_figure,
     compare_runs,

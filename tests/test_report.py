@@ -18,7 +18,8 @@ import numpy as np
 import pytest
 from sweeps import run_cli
 
-from labseq.review import review_run, run_verdict
+from labseq.figures import worst_verdict
+from labseq.review import review_run
 from labseq.store import CaptureRecord, PointReadings, Store
 from labseq.units import format_si
 
@@ -283,10 +284,10 @@ def test_user_text_is_escaped(db: Path, tmp_path: Path) -> None:
 def test_run_verdict_rule() -> None:
     # The rule of the run verdict: fail if any point fails; incomplete if any is incomplete and
     # none fails; pass only when every point passes.
-    assert run_verdict(["pass", "pass"]) == "pass"
-    assert run_verdict(["pass", "incomplete"]) == "incomplete"
-    assert run_verdict(["incomplete", "fail", "pass"]) == "fail"
-    assert run_verdict([]) == "incomplete"
+    assert worst_verdict(["pass", "pass"]) == "pass"
+    assert worst_verdict(["pass", "incomplete"]) == "incomplete"
+    assert worst_verdict(["incomplete", "fail", "pass"]) == "fail"
+    assert worst_verdict([]) == "incomplete"
 
 
 def test_report_verdicts_and_json(db: Path) -> None:

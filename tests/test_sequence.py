@@ -107,10 +107,12 @@ def test_demo_scope_settings_cover_a_switching_period() -> None:
         assert 10_000 <= scope.record_length <= 20_000
 
 
-def test_verdict_limits_map_onto_analysis_limits() -> None:
+def test_node_limits_are_the_analysis_limits() -> None:
     verdict = pytest.importorskip("labseq.analysis.verdict")
-    limits = load_sequence(DEMO_DC).primary.verdict_limits()
+    primary = load_sequence(DEMO_DC).primary
+    limits = primary.limits
     assert isinstance(limits, verdict.Limits)
+    assert primary.settling_band == pytest.approx(0.05)
     assert limits.max_peak_v == pytest.approx(120.0)
     assert limits.min_damping_ratio == pytest.approx(0.1)
     assert limits.max_q_factor is None

@@ -10,9 +10,7 @@
 """
 
 from labseq.analysis.capture import (
-    DEFAULT_DERATING,
     EDGE_FIGURE_NAMES,
-    FIGURE_UNITS,
     MIN_RECORD_SAMPLES,
     CaptureFigures,
     EdgeFigures,
@@ -36,7 +34,8 @@ from labseq.analysis.design import (
 from labseq.analysis.levels import histogram_state_levels
 from labseq.analysis.ringfit import RingFit, RingFitError, RingWindow, fit_ring, fit_rings
 from labseq.analysis.snubber import SnubberBranch, cv2f_loss_w
-from labseq.analysis.verdict import Limits, PointFigures, Verdict, aggregate, judge
+from labseq.analysis.verdict import PointFigures, Verdict, aggregate, judge
+from labseq.figures import DEFAULT_DERATING, FIGURE_UNITS, Limits
 
 __all__ = [
     "DEFAULT_DERATING",

@@ -13,34 +13,25 @@ the magnitude.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, fields
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
 
-from labseq.analysis.capture import FIGURE_UNITS
+from labseq.figures import (
+    BOUNDED_BY_CLIPPING,
+    FIGURE_UNITS,
+    LIMIT_FIGURES,
+    SIGNED_FIGURES,
+    WORST_IS_MAX,
+    WORST_IS_MIN,
+    Limits,
+    worst_verdict,
+)
 from labseq.units import format_si
 
-#: Figures whose worst value is the largest.
-WORST_IS_MAX = frozenset(
-    {
-        "peak_v",
-        "overshoot_v",
-        "overshoot_pct",
-        "settling_time_s",
-        "snubber_loss_w",
-        "q_factor",
-        "clamp_level_v",
-        "clamp_loss_w",
-    }
-)
-#: Figures kept in the node's own sign: on a falling node their worst is the most negative.
-SIGNED_FIGURES = frozenset({"peak_v"})
-#: Figures whose worst value is the smallest.
-WORST_IS_MIN = frozenset({"damping_ratio", "stress_margin_v", "efficiency", "fit_quality"})
-#: Figures that clipping turns into a bound on the safe side (their true value may be worse).
-BOUNDED_BY_CLIPPING = frozenset({"peak_v", "overshoot_v", "overshoot_pct", "stress_margin_v"})
+__all__ = ["Limits", "PointFigures", "Verdict", "aggregate", "judge", "worst_verdict"]
 
 
 @dataclass(frozen=True)
@@ -105,40 +96,11 @@ def aggregate(captures: Sequence[Mapping[str, object]], *, polarity: int = 1) ->
 
 
 @dataclass(frozen=True)
-class Limits:
-    """Limits of a point; each is optional and checked only when set."""
-
-    max_peak_v: float | None = None
-    min_stress_margin_v: float | None = None
-    min_damping_ratio: float | None = None
-    max_q_factor: float | None = None
-    max_settling_time_s: float | None = None
-    max_snubber_loss_w: float | None = None
-    min_efficiency: float | None = None
-
-
-#: Limit field → (figure, True when the limit is a maximum).
-LIMIT_FIGURES: dict[str, tuple[str, bool]] = {
-    f.name: (f.name.removeprefix("max_").removeprefix("min_"), f.name.startswith("max_"))
-    for f in fields(Limits)
-}
-
-
-@dataclass(frozen=True)
 class Verdict:
     """Outcome of a point: ``status`` and one reason per failed or undetermined limit."""
 
     status: Literal["pass", "fail", "incomplete"]
     reasons: list[str]
-
-
-def worst_verdict(verdicts: Iterable[str]) -> Literal["pass", "fail", "incomplete"]:
-    """The verdict of several (a point's nodes): fail if any fails, else incomplete if any is
-    incomplete (or there are none), else pass."""
-    seen = set(verdicts)
-    if "fail" in seen:
-        return "fail"
-    return "incomplete" if "incomplete" in seen or not seen else "pass"
 
 
 def _text(name: str, value: float) -> str:

@@ -16,10 +16,10 @@ import click
 
 from labseq.commands._store import db_option, resolve_run
 from labseq.errors import InputError
+from labseq.figures import FIGURE_DIRECTIONS
 from labseq.review import (
     DEFAULT_COVERAGE,
     DEFAULT_MATCH_TOLERANCE,
-    FIGURE_DIRECTIONS,
     Comparison,
     compare_runs,
     comparison_summary,

@@ -16,19 +16,17 @@ from pathlib import Path
 import numpy as np
 
 from labseq.export import write_points_csv
+from labseq.figures import (
+    FIGURE_TITLES,
+    LIMIT_FIGURES,
+    figure_direction,
+    format_figure,
+    shown_unit,
+)
 from labseq.report import plots
 from labseq.report.html import Markup, Page, esc, table, verdict_cell
 from labseq.report.traces import point_traces
-from labseq.review import (
-    FIGURE_TITLES,
-    PointReview,
-    RunReview,
-    figure_direction,
-    figure_unit,
-    format_figure,
-    limit_rows,
-    line_text,
-)
+from labseq.review import PointReview, RunReview, limit_rows, line_text
 from labseq.store import Store
 from labseq.units import format_si
 
@@ -134,7 +132,7 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
         if figure == "snubber_loss_w":
             texts = with_loss_methods(review, texts)
         shown = 100 * values if figure == "efficiency" else values
-        unit = "%" if figure == "efficiency" else figure_unit(figure)
+        unit = shown_unit(figure)
         fig = plots.heat_map(
             values,
             lines,
@@ -190,18 +188,13 @@ def _colour_format(figure: str) -> Callable[[float], str]:
 
 def _worst_rows(review: RunReview) -> list[list[str]]:
     spec = review.node_spec
-    limits = spec.limits if spec else None
     limit_of = {
-        "peak_v": (
-            "|peak| ≤" if review.polarity < 0 else "≤",
-            limits.max_peak_v if limits else None,
-        ),
-        "stress_margin_v": ("≥", limits.min_stress_margin_v if limits else None),
-        "damping_ratio": ("≥", limits.min_damping_ratio if limits else None),
-        "q_factor": ("≤", limits.max_q_factor if limits else None),
-        "settling_time_s": ("≤", limits.max_settling_time_s if limits else None),
-        "snubber_loss_w": ("≤", limits.max_snubber_loss_w if limits else None),
-        "efficiency": ("≥", limits.min_efficiency if limits else None),
+        figure: (
+            ("|peak| " if figure == "peak_v" and review.polarity < 0 else "")
+            + ("≤" if is_max else "≥"),
+            getattr(spec.limits, name) if spec else None,
+        )
+        for name, (figure, is_max) in LIMIT_FIGURES.items()
     }
     rows = []
     for figure, worst in review.worst.items():

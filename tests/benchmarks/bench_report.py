@@ -20,8 +20,9 @@ import pytest
 from paired import interleaved_times, paired
 
 from instruments import Waveform
+from labseq.figures import FIGURE_DIRECTIONS
 from labseq.report import build_run_report
-from labseq.review import FIGURE_DIRECTIONS, review_run
+from labseq.review import review_run
 from labseq.store import CaptureRecord, Store
 
 SEQUENCE = Path(__file__).resolve().parents[2] / "sequences" / "demo_dc_flyback.toml"
