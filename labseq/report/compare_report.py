@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
+from labseq.compare import Comparison, FigureChange, PointChange, shared_nodes
 from labseq.figures import (
     FIGURE_DIRECTIONS,
     FIGURE_TITLES,
@@ -22,14 +23,7 @@ from labseq.report import plots
 from labseq.report.html import Markup, Page, cell, esc, table
 from labseq.report.run_report import LOSS_ASSUMPTIONS, ReportFiles, cell_texts, with_loss_methods
 from labseq.report.traces import point_traces
-from labseq.review import (
-    Comparison,
-    FigureChange,
-    PointChange,
-    RunReview,
-    line_text,
-    shared_nodes,
-)
+from labseq.review import RunReview, line_text
 from labseq.store import Store
 
 #: Figures with maps and table columns, in reading order.
