@@ -13,24 +13,24 @@ run stored in the database can always be traced back to the exact file that drov
 
 from __future__ import annotations
 
-import difflib
+import dataclasses
 import hashlib
 import math
 import re
-import tomllib
-from collections.abc import Callable, Iterable
-from dataclasses import MISSING, dataclass, field, fields
+from collections.abc import Iterable
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any, NamedTuple
 
 from instruments.command_map import ROLES
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
-from instruments.tomlkeys import find_key_line
+from instruments.tomlkeys import Problem, Problems, describe_value, report
 from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
 from labseq.errors import InputError
 from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND, Limits
 from labseq.safety import ES1_AC_RMS_V, ES1_DC_V
-from labseq.units import UnitError, format_si, parse_quantity
+from labseq.tomlread import MISSING, SAME_VALUE_RTOL, Table, quantity
+from labseq.units import format_si
 
 #: Bounds that keep every value ``check`` accepts runnable to its end (common practice, no
 #: published source): a value beyond them is a typing slip, never a plan, and would otherwise
@@ -61,30 +61,15 @@ DEFAULT_PRIMARY_NAME = "primary"
 _VISA_ALIAS = re.compile(r"[A-Za-z][A-Za-z0-9_.\-]{0,63}")
 _VISA_RESOURCE = re.compile(r"^(TCPIP|USB|GPIB|ASRL|VXI|PXI|VICP)[^:\s]*::\S+$", re.IGNORECASE)
 
-# Relative tolerance under which two grid values count as the same point.
-_SAME_VALUE_RTOL = 1e-9
-
-
-class Problem(NamedTuple):
-    """One thing wrong in a sequence file."""
-
-    key: str
-    message: str
-    line: int | None
-
 
 class SequenceError(InputError):
-    """A sequence file that cannot be used; ``problems`` lists every problem found."""
+    """A sequence file that cannot be used; ``problems`` lists every problem found, each with
+    its key and line (:class:`instruments.tomlkeys.Problem`)."""
 
     def __init__(self, path: Path, problems: list[Problem]) -> None:
         self.path = path
         self.problems = problems
-        count = f"{len(problems)} problems" if len(problems) > 1 else "1 problem"
-        lines = [f"{path}: {count}:"]
-        for problem in problems:
-            where = f"line {problem.line}, " if problem.line else ""
-            lines.append(f"  {where}{problem.key}: {problem.message}")
-        super().__init__("\n".join(lines))
+        super().__init__(report(path, problems))
 
 
 # --------------------------------------------------------------------------- the result tree
@@ -288,256 +273,10 @@ class Sequence:
         ]
 
 
-# --------------------------------------------------------------------------- reading helpers
-
-_MISSING = object()
-
-
-def _example(unit: str) -> str:
-    """A short example of a quantity in ``unit`` for error messages."""
-    return {
-        "V": "'75 V'",
-        "A": "'2.5 A'",
-        "W": "'0.5 W'",
-        "F": "'470pF'",
-        "H": "'1.2uH'",
-        "Hz": "'200kHz'",
-        "s": "'50 ms'",
-        "Ω": "'47 ohm'",
-    }.get(unit, "'1.5'")
-
-
-class _Collector:
-    """Gathers every problem of one file so they are reported together."""
-
-    def __init__(self, path: Path, text: str) -> None:
-        self.path = path
-        self.text = text
-        self.problems: list[Problem] = []
-
-    def fail(self, key: str, message: str) -> None:
-        self.problems.append(Problem(key, message, find_key_line(self.text, key)))
-
-
-class _Table:
-    """One TOML table being read; remembers which keys were read to report unknown ones."""
-
-    def __init__(self, data: dict[str, Any], prefix: str, out: _Collector) -> None:
-        self.data = data
-        self.prefix = prefix
-        self.out = out
-        self.known: list[str] = []
-
-    def key(self, name: str) -> str:
-        return f"{self.prefix}.{name}" if self.prefix else name
-
-    def raw(self, name: str, required: bool, what: str) -> Any:
-        """The value of ``name``, or _MISSING (recording a problem when it is required)."""
-        self.known.append(name)
-        if name in self.data:
-            return self.data[name]
-        if required:
-            self.out.fail(self.key(name), f"missing; expected {what}")
-        return _MISSING
-
-    def table(self, name: str, required: bool = True) -> _Table | None:
-        value = self.raw(name, required, "a table of settings")
-        if value is _MISSING:
-            return None
-        if not isinstance(value, dict):
-            self.out.fail(
-                self.key(name), f"expected a table of settings, got {describe_value(value)}"
-            )
-            return None
-        return _Table(value, self.key(name), self.out)
-
-    def _convert(self, name: str, value: Any, convert: Callable[[Any, str], Any]) -> Any:
-        try:
-            return convert(value, self.key(name))
-        except (UnitError, ValueError, OverflowError, TypeError) as exc:
-            self.out.fail(self.key(name), str(exc).removeprefix(f"{self.key(name)}: "))
-            return None
-
-    def quantity(
-        self,
-        name: str,
-        unit: str,
-        *,
-        default: Any = _MISSING,
-        minimum: float | None = 0.0,
-        allow_equal: bool = False,
-        maximum: float | None = None,
-    ) -> float | None:
-        """A quantity in ``unit``, SI float; must be above ``minimum`` (or equal when allowed)
-        and, when given, at most ``maximum``."""
-        value = self.raw(name, default is _MISSING, f"a quantity in {unit}, e.g. {_example(unit)}")
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        return self._convert(
-            name, value, lambda v, k: _quantity(v, unit, k, minimum, allow_equal, maximum)
-        )
-
-    def fraction(self, name: str, *, default: Any = _MISSING, allow_zero: bool = False) -> Any:
-        """A fraction written as a number (0.05) or a percentage ('5 %'); 0 < f ≤ 1."""
-        value = self.raw(name, default is _MISSING, "a fraction such as 0.8 or '80 %'")
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        return self._convert(name, value, lambda v, k: _fraction(v, k, allow_zero))
-
-    def integer(
-        self, name: str, *, default: Any = _MISSING, minimum: int = 1, maximum: int | None = None
-    ) -> Any:
-        """A whole number ≥ ``minimum`` and ≤ ``maximum`` when given (engineering notation such
-        as '20k' accepted)."""
-        value = self.raw(name, default is _MISSING, f"a whole number ≥ {minimum}, e.g. 20000")
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        return self._convert(name, value, lambda v, k: _integer(v, k, minimum, maximum))
-
-    def text(self, name: str, *, default: Any = _MISSING, choices: Iterable[str] = ()) -> Any:
-        """A string, optionally one of ``choices``."""
-        choices = tuple(choices)
-        what = f"one of {_or_list(choices)}" if choices else "a string"
-        value = self.raw(name, default is _MISSING, what)
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        return self._convert(name, value, lambda v, k: _text(v, choices))
-
-    def boolean(self, name: str, *, default: bool) -> bool | None:
-        value = self.raw(name, False, "true or false")
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        if not isinstance(value, bool):
-            self.out.fail(self.key(name), f"expected true or false, got {describe_value(value)}")
-            return None
-        return value
-
-    def finish(self) -> None:
-        """Report keys nobody asked for, with the closest known name as a suggestion."""
-        for name in self.data:
-            if name in self.known:
-                continue
-            close = difflib.get_close_matches(name, self.known, n=1, cutoff=0.6)
-            known = ", ".join(self.known)
-            hint = f"did you mean {close[0]!r}?" if close else f"known keys: {known}"
-            self.out.fail(self.key(name), f"unknown key; {hint}")
-
-
-def describe_value(value: Any) -> str:
-    """How a TOML value reads in a message: 'a string', 'an array', ..."""
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, str):
-        return f"the string {value!r}"
-    if isinstance(value, int | float):
-        return f"the number {value!r}"
-    if isinstance(value, list):
-        return "an array"
-    if isinstance(value, dict):
-        return "a table"
-    return f"a {type(value).__name__}"
-
-
-def _or_list(choices: Iterable[str]) -> str:
-    return " or ".join(f'"{c}"' for c in choices)
-
-
-def _quantity(
-    value: Any,
-    unit: str,
-    key: str,
-    minimum: float | None,
-    allow_equal: bool,
-    maximum: float | None = None,
-) -> float:
-    result = parse_quantity(value, unit, what=key)
-    if unit == "s" and result != 0 and not _names_unit(value, unit):
-        raise ValueError(
-            f"{value!r} has no unit; a duration needs one, e.g. '5 s' or '5000 ms' (a bare "
-            "number could be meant in either)"
-        )
-    if minimum is not None and (result < minimum or (result == minimum and not allow_equal)):
-        relation = "≥" if allow_equal else ">"
-        raise ValueError(
-            f"{format_si(result, unit)} is out of range; must be {relation} "
-            f"{format_si(minimum, unit)}, e.g. {_example(unit)}"
-        )
-    if maximum is not None and result > maximum:
-        raise ValueError(f"{value!r} is out of range; must be ≤ {format_si(maximum, unit)}")
-    return result
-
-
-def _names_unit(value: Any, unit: str) -> bool:
-    """Whether ``value`` is text that ends in ``unit`` (after any SI prefix): ``"50 ms"``."""
-    return isinstance(value, str) and value.strip().endswith(unit)
-
-
-def _fraction(value: Any, key: str, allow_zero: bool) -> float:
-    if isinstance(value, str) and "%" in value:
-        result = parse_quantity(value, "%", what=key) / 100.0
-    else:
-        result = parse_quantity(value, "", what=key)
-    if not (0.0 <= result <= 1.0) or (result == 0.0 and not allow_zero):
-        low = "0" if allow_zero else "above 0"
-        raise ValueError(
-            f"{value!r} is not a valid fraction; write a value {low} up to 1 (e.g. 0.8) or a "
-            f"percentage up to 100 % (e.g. '80 %')"
-        )
-    return result
-
-
-def _integer(value: Any, key: str, minimum: int, maximum: int | None = None) -> int:
-    number = parse_quantity(value, "", what=key)
-    if number != int(number) or number < minimum:
-        raise ValueError(f"{value!r} is not a whole number ≥ {minimum}")
-    if maximum is not None and number > maximum:
-        raise ValueError(f"{value!r} is out of range; must be ≤ {maximum}")
-    return int(number)
-
-
-def _text(value: Any, choices: tuple[str, ...]) -> str:
-    if not isinstance(value, str):
-        raise ValueError(f"expected a string, got {describe_value(value)}")
-    if choices and value.lower() not in choices:
-        raise ValueError(f"{value!r} is not valid; expected {_or_list(choices)}")
-    return value.lower() if choices else value
-
-
-def _values(table: _Table, name: str, convert: Callable[[Any, str], float]) -> list[float] | None:
-    """A non-empty array, each element converted; problems name the element's index."""
-    raw = table.raw(name, True, "an array of values, e.g. ['36 V', '48 V']")
-    if raw is _MISSING:
-        return None
-    if not isinstance(raw, list) or not raw:
-        table.out.fail(
-            table.key(name), f"expected a non-empty array of values, got {describe_value(raw)}"
-        )
-        return None
-    results: list[float] = []
-    for index, value in enumerate(raw):
-        key = f"{table.key(name)}[{index}]"
-        try:
-            results.append(convert(value, key))
-        except (UnitError, ValueError, OverflowError, TypeError) as exc:
-            table.out.fail(key, str(exc).removeprefix(f"{key}: "))
-    if len(results) != len(raw):
-        return None
-    for index, value in enumerate(results):
-        for earlier in results[:index]:
-            if math.isclose(value, earlier, rel_tol=_SAME_VALUE_RTOL):
-                table.out.fail(
-                    f"{table.key(name)}[{index}]",
-                    f"duplicate point: {raw[index]!r} is the same value as an earlier entry; "
-                    "each value may appear once",
-                )
-                break
-    return results
-
-
 # --------------------------------------------------------------------------- sections
 
 
-def _read_bench(top: _Table, seq_dir: Path) -> tuple[BenchSpec | None, BenchKind | None, Any]:
+def _read_bench(top: Table, seq_dir: Path) -> tuple[BenchSpec | None, BenchKind | None, Any]:
     """The [bench] table: the generic keys here, the kind's own through its :class:`BenchKind`;
     the kind and its settings are returned too, for its checks against the rest of the file."""
     table = top.table("bench")
@@ -619,9 +358,9 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[BenchSpec | None, BenchKind
 
 
 def _read_maps(
-    out: _Collector,
-    bench: _Table,
-    maps_table: _Table | None,
+    out: Problems,
+    bench: Table,
+    maps_table: Table | None,
     scope_map: str | None,
     seq_dir: Path,
 ) -> dict[str, str] | None:
@@ -648,7 +387,7 @@ def _read_maps(
     return maps if len(maps) == len(ROLES) else None
 
 
-def _resolve_map(out: _Collector, key: str, value: str, role: str, seq_dir: Path) -> str | None:
+def _resolve_map(out: Problems, key: str, value: str, role: str, seq_dir: Path) -> str | None:
     """A ``role`` command map shipped in instruments/command_maps/<role>, or a file path
     (relative to the sequence file); it is loaded and validated here, so a bad map is reported
     before anything is opened."""
@@ -671,7 +410,7 @@ def _resolve_map(out: _Collector, key: str, value: str, role: str, seq_dir: Path
     return reference
 
 
-def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connection] | None:
+def _read_connections(out: Problems, table: Table | None) -> dict[str, Connection] | None:
     """``[bench.connections.<role>]``: terminations and serial line settings per role."""
     if table is None:
         return {}
@@ -694,7 +433,7 @@ def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connec
             "flow_control": role_table.text("flow_control", default=None, choices=FLOW_CONTROLS),
         }
         role_table.finish()
-        given = {k: v for k, v in serial_values.items() if v is not None and v is not _MISSING}
+        given = {k: v for k, v in serial_values.items() if v is not None and v is not MISSING}
         serial = None
         if any(name in role_table.data for name in serial_keys):
             try:
@@ -715,7 +454,7 @@ def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connec
     return None if failed else connections
 
 
-def _read_bench_limits(table: _Table | None) -> BenchLimits | None:
+def _read_bench_limits(table: Table | None) -> BenchLimits | None:
     if table is None:
         return None
     values = {
@@ -739,10 +478,11 @@ def _read_bench_limits(table: _Table | None) -> BenchLimits | None:
 
 def _required_fields(cls: type) -> list[str]:
     """Names of a dataclass's fields without defaults (the ones a None means 'failed')."""
-    return [f.name for f in fields(cls) if f.default is MISSING and f.default_factory is MISSING]
+    unset = dataclasses.MISSING
+    return [f.name for f in fields(cls) if f.default is unset and f.default_factory is unset]
 
 
-def _read_dut(top: _Table) -> Dut | None:
+def _read_dut(top: Table) -> Dut | None:
     table = top.table("dut")
     if table is None:
         return None
@@ -772,7 +512,7 @@ def _read_dut(top: _Table) -> Dut | None:
     return Dut(**values)
 
 
-def _read_snubber(table: _Table | None) -> Snubber | None:
+def _read_snubber(table: Table | None) -> Snubber | None:
     """An RC snubber table: [snubber] across the switch, or [nodes.snubber] across a device."""
     if table is None:
         return None
@@ -787,16 +527,16 @@ def _read_snubber(table: _Table | None) -> Snubber | None:
     return Snubber(label, resistance, capacitance, budget)
 
 
-def _read_grid(top: _Table, dut: Dut | None, bench: BenchSpec | None) -> Grid | None:
+def _read_grid(top: Table, dut: Dut | None, bench: BenchSpec | None) -> Grid | None:
     """[grid], with every value checked against the DUT's declared range and the bench."""
     table = top.table("grid")
     if table is None:
         return None
     line_kind = table.text("line_kind", choices=LINE_KINDS)
-    line_values = _values(table, "line_values", lambda v, k: _quantity(v, "V", k, 0.0, False))
+    line_values = table.values("line_values", lambda v, k: quantity(v, "V", k, 0.0, False))
     frequency = table.quantity("line_frequency", "Hz", default=None)
     rated_load_a = dut.rated_load_a if dut is not None else None
-    load_values = _values(table, "load_values", lambda v, k: _load_value(v, k, rated_load_a))
+    load_values = table.values("load_values", lambda v, k: _load_value(v, k, rated_load_a))
     settle_s = table.quantity("settle", "s", minimum=0.0, allow_equal=True, maximum=MAX_SETTLE_S)
     captures = table.integer("captures_per_point", maximum=MAX_CAPTURES_PER_POINT)
     table.finish()
@@ -839,7 +579,7 @@ def _read_grid(top: _Table, dut: Dut | None, bench: BenchSpec | None) -> Grid | 
 
 
 def _check_line_values(
-    out: _Collector, key: str, values_v: list[float], dut: Dut | None, bench: BenchSpec | None
+    out: Problems, key: str, values_v: list[float], dut: Dut | None, bench: BenchSpec | None
 ) -> None:
     """Each line value inside the DUT's declared range and under the source's maximum."""
     for index, line_v in enumerate(values_v):
@@ -855,7 +595,7 @@ def _check_line_values(
             out.fail(f"{key}[{index}]", f"{shown} is above bench.limits.source_max_voltage {limit}")
 
 
-def _check_ramp(out: _Collector, values_v: list[float], limits: BenchLimits) -> None:
+def _check_ramp(out: Problems, values_v: list[float], limits: BenchLimits) -> None:
     """The source's ramp between line values takes at most :data:`MAX_RAMP_STEPS` steps, even
     from the lowest value to the highest (as a resume may have to)."""
     steps = (max(values_v) - min(values_v)) / limits.line_step_max_v
@@ -871,12 +611,12 @@ def _check_ramp(out: _Collector, values_v: list[float], limits: BenchLimits) -> 
 
 
 def _check_load_values(
-    out: _Collector, key: str, values_a: list[float], dut: Dut | None, bench: BenchSpec | None
+    out: Problems, key: str, values_a: list[float], dut: Dut | None, bench: BenchSpec | None
 ) -> None:
     """Each load under the DUT's rated load × (1 + margin) and the electronic load's maximum."""
     for index, load_a in enumerate(values_a):
         shown = format_si(load_a, "A")
-        if dut is not None and load_a > dut.max_load_a * (1 + _SAME_VALUE_RTOL):
+        if dut is not None and load_a > dut.max_load_a * (1 + SAME_VALUE_RTOL):
             out.fail(
                 f"{key}[{index}]",
                 f"{shown} is above the DUT's rated load {format_si(dut.rated_load_a, 'A')} × "
@@ -893,11 +633,11 @@ def _load_value(value: Any, key: str, rated_load_a: float | None) -> float:
     if isinstance(value, str) and "%" in value:
         if rated_load_a is None:
             raise ValueError("a percentage needs dut.rated_load, which is missing or invalid")
-        return _quantity(value, "%", key, 0.0, False) / 100.0 * rated_load_a
-    return _quantity(value, "A", key, 0.0, False)
+        return quantity(value, "%", key, 0.0, False) / 100.0 * rated_load_a
+    return quantity(value, "A", key, 0.0, False)
 
 
-def _channel_values(table: _Table) -> dict[str, Any]:
+def _channel_values(table: Table) -> dict[str, Any]:
     """The scope-channel keys a node is captured with (the primary's in [scope], the others' in
     their [[nodes]] entry)."""
     return {
@@ -926,7 +666,7 @@ class _PrimaryChannel(NamedTuple):
     bandwidth_limit_hz: float
 
 
-def _read_scope(top: _Table) -> tuple[_PrimaryChannel | None, Acquisition | None]:
+def _read_scope(top: Table) -> tuple[_PrimaryChannel | None, Acquisition | None]:
     """[scope]: the primary node's channel and name, and the acquisition settings."""
     table = top.table("scope")
     if table is None:
@@ -954,7 +694,7 @@ def _read_scope(top: _Table) -> tuple[_PrimaryChannel | None, Acquisition | None
 
 
 def _read_limits(
-    table: _Table,
+    table: Table,
     rating: tuple[float, float, str, str] | None,
     snubber: Snubber | None,
     *,
@@ -1021,7 +761,7 @@ def _primary_node(
     )
 
 
-def _read_node(table: _Table) -> NodeSpec | None:
+def _read_node(table: Table) -> NodeSpec | None:
     """One ``[[nodes]]`` entry: a further node captured on the primary's trigger."""
     name = table.text("name")
     label = table.text("label", default="")
@@ -1033,7 +773,7 @@ def _read_node(table: _Table) -> NodeSpec | None:
     }
     snubber_table = table.table("snubber", required=False)
     snubber = _read_snubber(snubber_table)
-    limits_table = table.table("limits", required=False) or _Table(
+    limits_table = table.table("limits", required=False) or Table(
         {}, table.key("limits"), table.out
     )
     rating = (
@@ -1067,16 +807,16 @@ def _read_node(table: _Table) -> NodeSpec | None:
     )
 
 
-def _read_nodes(top: _Table, primary: NodeSpec | None) -> list[NodeSpec] | None:
+def _read_nodes(top: Table, primary: NodeSpec | None) -> list[NodeSpec] | None:
     """The optional ``[[nodes]]`` array, each node checked against the primary and the others:
     names and channels unique, and no node on the primary's channel (the trigger's)."""
     raw = top.raw("nodes", False, "an array of tables [[nodes]]")
-    if raw is _MISSING:
+    if raw is MISSING:
         return []
     if not isinstance(raw, list) or not all(isinstance(item, dict) for item in raw):
         top.out.fail("nodes", f"expected an array of tables [[nodes]], got {describe_value(raw)}")
         return None
-    nodes = [_read_node(_Table(item, f"nodes[{index}]", top.out)) for index, item in enumerate(raw)]
+    nodes = [_read_node(Table(item, f"nodes[{index}]", top.out)) for index, item in enumerate(raw)]
     names = {primary.name: "the primary node ([scope] node)"} if primary else {}
     channels = {primary.channel: "the primary node's, where the scope triggers"} if primary else {}
     for index, node in enumerate(nodes):
@@ -1100,7 +840,7 @@ def _read_nodes(top: _Table, primary: NodeSpec | None) -> list[NodeSpec] | None:
     return None if any(node is None for node in nodes) else nodes  # type: ignore[return-value]
 
 
-def _read_clamp(top: _Table) -> Clamp | None:
+def _read_clamp(top: Table) -> Clamp | None:
     """The optional [clamp]: the RCD clamp across the primary."""
     table = top.table("clamp", required=False)
     if table is None:
@@ -1123,7 +863,7 @@ def _kind_word(is_ac: bool) -> str:
 
 
 def _check_bench(
-    out: _Collector, bench: BenchSpec, dut: Dut | None, acquisition: Acquisition | None
+    out: Problems, bench: BenchSpec, dut: Dut | None, acquisition: Acquisition | None
 ) -> None:
     """Scope and probe limits of the bench against the settings and the DUT."""
     limits = bench.limits
@@ -1151,7 +891,7 @@ def _check_bench(
 
 
 def _check_nodes_on_bench(
-    out: _Collector, bench: BenchSpec, primary: _PrimaryChannel | None, nodes: list[NodeSpec]
+    out: Problems, bench: BenchSpec, primary: _PrimaryChannel | None, nodes: list[NodeSpec]
 ) -> None:
     """Every node's channel on the scope, its rating within the probe's."""
     channels = _scope_channels(bench.scope_map)
@@ -1192,7 +932,7 @@ def _scope_channels(scope_map: str) -> int | None:
 
 
 def _check_scope_limits(
-    out: _Collector,
+    out: Problems,
     bench: BenchSpec,
     primary: _PrimaryChannel | None,
     acquisition: Acquisition | None,
@@ -1310,7 +1050,7 @@ def above_es1(dut: Dut, grid: Grid, nodes: Iterable[NodeSpec]) -> ExposedVoltage
 
 
 def _check_hazard(
-    out: _Collector,
+    out: Problems,
     bench: BenchSpec,
     dut: Dut,
     grid: Grid,
@@ -1335,30 +1075,30 @@ def _check_hazard(
 
 def load_sequence(path: str | Path) -> Sequence:
     """Read and validate the sequence file at ``path``; raise :class:`SequenceError` if unusable."""
-    path = Path(path)
+    out = Problems(path)
     try:
-        data = path.read_bytes()
+        data = out.path.read_bytes()
     except OSError as exc:
-        problem = Problem("(file)", f"cannot read: {exc.strerror}", None)
-        raise SequenceError(path, [problem]) from None
-    try:
-        text = data.decode("utf-8")
-    except UnicodeDecodeError:
-        raise SequenceError(path, [Problem("(file)", "not UTF-8 text", None)]) from None
-    return parse_sequence(text, path, sha256=hashlib.sha256(data).hexdigest())
+        out.fail("(file)", f"cannot read: {exc.strerror}")
+        raise SequenceError(out.path, out.sorted()) from None
+    document = out.load(data)
+    return _sequence(out, document, hashlib.sha256(data).hexdigest())
 
 
 def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) -> Sequence:
     """Validate sequence ``text`` read from ``path`` (relative file names resolve beside it)."""
-    path = Path(path)
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        match = re.search(r"line (\d+)", str(exc))
-        line = int(match.group(1)) if match else None
-        raise SequenceError(path, [Problem("(syntax)", f"not valid TOML: {exc}", line)]) from None
-    out = _Collector(path, text)
-    top = _Table(data, "", out)
+    out = Problems(path)
+    document = out.parse(text)
+    return _sequence(out, document, sha256 or hashlib.sha256(text.encode("utf-8")).hexdigest())
+
+
+def _sequence(out: Problems, document: dict[str, Any] | None, sha256: str) -> Sequence:
+    """The sequence ``document`` (None: it could not be read, as ``out`` records) describes;
+    :class:`SequenceError` with every problem found."""
+    if document is None:
+        raise SequenceError(out.path, out.sorted())
+    path, text = out.path, out.text
+    top = Table(document, "", out)
     name = top.text("name", default=path.stem)
     description = top.text("description", default="")
     on_point_error = top.text("on_point_error", default="skip", choices=POINT_ERROR_ACTIONS)
@@ -1368,7 +1108,7 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     grid = _read_grid(top, dut, bench)
     primary_channel, acquisition = _read_scope(top)
     judged = _read_limits(
-        top.table("limits", required=False) or _Table({}, "limits", out),
+        top.table("limits", required=False) or Table({}, "limits", out),
         None
         if dut is None
         else (dut.switch_rating_v, dut.derating, "switch rating", "dut.switch_rating"),
@@ -1410,14 +1150,14 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
         primary,
         nodes,
     )
-    if out.problems or any(part is None for part in parts) or acknowledged is None:
-        if not out.problems:  # every None above comes with a recorded problem
+    if out or any(part is None for part in parts) or acknowledged is None:
+        if not out:  # every None above comes with a recorded problem
             out.fail("(file)", "incomplete sequence")
-        raise SequenceError(path, sorted(out.problems, key=lambda p: p.line or 0))
+        raise SequenceError(path, out.sorted())
     return Sequence(
         path=path,
         text=text,
-        sha256=sha256 or hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        sha256=sha256,
         name=name,
         description=description,
         bench=bench,

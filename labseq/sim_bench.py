@@ -14,9 +14,9 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from instruments.tomlkeys import describe_value
 from labseq.bench_kinds import BenchKind, Fail, Started
 from labseq.errors import InputError
-from labseq.sequence import describe_value
 from sim_instruments import DIALECTS, SECONDARY_CHANNEL
 from sim_instruments.faults import KINDS as FAULT_KINDS
 from sim_instruments.faults import ROLES as FAULT_ROLES
@@ -85,8 +85,9 @@ class SimulatedBench(BenchKind):
             return None
         try:
             design = load_dut(path)
-        except (ValueError, OSError) as exc:
-            table.out.fail(key, f"the DUT file cannot be used: {exc}")
+        except (ValueError, OSError) as exc:  # its problems, indented under this one
+            nested = str(exc).replace("\n", "\n    ")
+            table.out.fail(key, f"the DUT file cannot be used: {nested}")
             return None
         return None if dialect is None else SimSettings(path, design, dialect)
 

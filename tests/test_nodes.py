@@ -14,13 +14,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from instruments.tomlkeys import find_key_line
 from labseq.analysis.verdict import Limits, aggregate, judge
 from labseq.compare import compare_runs, comparison_summary
 from labseq.export import write_captures_npz, write_points_csv
 from labseq.report import build_run_report
 from labseq.review import review_run, run_summary
 from labseq.runner import run_sequence
-from labseq.sequence import SequenceError, find_key_line, load_sequence
+from labseq.sequence import SequenceError, load_sequence
 from labseq.sim_bench import sim_design
 from labseq.store import SCHEMA_VERSION, CaptureRecord, Store, StoreFileError
 from sim_instruments.flyback import DEMO_DUTS, load_dut

@@ -11,12 +11,12 @@ from pathlib import Path
 import pytest
 from sweeps import run_cli
 
+from instruments.tomlkeys import find_key_line
 from labseq.errors import InputError
 from labseq.sequence import (
     BenchLimits,
     GridPoint,
     SequenceError,
-    find_key_line,
     load_sequence,
     parse_sequence,
 )
