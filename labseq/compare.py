@@ -156,10 +156,6 @@ class Comparison:
     def regressed(self) -> bool:
         return bool(self.regressions)
 
-    @property
-    def missing(self) -> list[PointChange]:
-        return [p for p in self.points if not p.matched]
-
     def label(self, change: PointChange) -> str:
         """The setpoints of a change as text (the candidate's when both runs have the point)."""
         return self.label_of(change.either)

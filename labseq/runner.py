@@ -223,12 +223,12 @@ class Sweep:
                 for node, waveform in zip(seq.nodes, waveforms, strict=True)
             ]
             with self.timings.charge("store"):
-                capture_ids = self.store.add_captures(
+                capture_ids = self.store.commit_point(
                     point.id,
-                    records,
-                    point_status="done" if last else None,
+                    captures=records,
+                    status="done" if last else None,
                     readings=readings,
-                    started_at=started,
+                    started_at=started if last else None,
                 )
             for node, waveform, capture_id in zip(seq.nodes, waveforms, capture_ids, strict=True):
                 future = self.analysis.submit(analyse_or_error, seq, waveform, node, point)

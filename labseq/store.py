@@ -747,80 +747,29 @@ class Store:
         *,
         captures: Iterable[CaptureRecord] = (),
         readings: PointReadings | None = None,
-        status: str = "done",
+        status: str | None = "done",
         started_at: float | None = None,
     ) -> list[int]:
-        """Store a point's captures and readings and set its status, all in ONE transaction.
+        """Store a point's new captures and, unless ``status`` is None, its readings and status:
+        the one way captures and a point's state are written, all in ONE transaction.
 
+        The captures of one acquisition (one per node) go in together, so a point never holds
+        part of an acquisition; the runner gives the point's state with its last acquisition.
         Either everything is stored or (on any error) nothing is. ``started_at`` (Unix time, s)
         is when the point began; the finish time is now. Returns the new capture ids.
         """
+        if status is None and (readings is not None or started_at is not None):
+            raise ValueError("readings and started_at are stored with a status")
         with self.db.atomic():
             ids = [self._insert_capture(point_id, capture) for capture in captures]
-            self._update_point(point_id, status, readings, started_at)
-        return ids
-
-    def add_capture(
-        self,
-        point_id: int,
-        capture: CaptureRecord,
-        *,
-        point_status: str | None = None,
-        readings: PointReadings | None = None,
-        started_at: float | None = None,
-    ) -> int:
-        """Store one capture in its own transaction; with ``point_status`` (given with the last
-        capture) the point's state is set in that same transaction. Returns the capture id."""
-        return self.add_captures(
-            point_id,
-            [capture],
-            point_status=point_status,
-            readings=readings,
-            started_at=started_at,
-        )[0]
-
-    def add_captures(
-        self,
-        point_id: int,
-        captures: Iterable[CaptureRecord],
-        *,
-        point_status: str | None = None,
-        readings: PointReadings | None = None,
-        started_at: float | None = None,
-    ) -> list[int]:
-        """Store the captures of one acquisition (one per node) in one transaction, so a point
-        never holds part of an acquisition; ``point_status`` as for :meth:`add_capture`."""
-        with self.db.atomic():
-            ids = [self._insert_capture(point_id, capture) for capture in captures]
-            if point_status is not None:
-                self._update_point(point_id, point_status, readings, started_at)
+            if status is not None:
+                self._update_point(point_id, status, readings, started_at)
         return ids
 
     def acquisitions(self, point_id: int) -> int:
         """How many acquisitions a point holds (distinct capture indices over its nodes)."""
         query = "SELECT COUNT(DISTINCT capture_index) FROM captures WHERE point_id = ?"
         return int(self.db.execute(query, [point_id]).fetchone()[0])
-
-    def set_point_verdict(self, point_id: int, verdict: str, reasons: Iterable[str]) -> None:
-        """Record a point's (combined) verdict and the reasons behind it."""
-        with self.db.atomic():
-            self.db["points"].update(
-                point_id, {"verdict": verdict, "verdict_reasons": json.dumps(list(reasons))}
-            )
-
-    def set_point_figures(
-        self,
-        point_id: int,
-        figures: Mapping[str, Mapping[str, float | int | None]],
-        *,
-        node: str,
-    ) -> None:
-        """Replace one node's aggregated figures at a point: figure → {worst, mean, spread, n}."""
-        with self.db.atomic():
-            self.db.execute(
-                "DELETE FROM point_figures WHERE point_id = ? AND node = ?", [point_id, node]
-            )
-            self._insert_point_figures(point_id, node, figures)
 
     def set_point_judgement(
         self,
@@ -830,9 +779,10 @@ class Store:
         verdict: str,
         reasons: Iterable[str],
     ) -> None:
-        """Replace everything a point was judged on in one transaction: each node's figures
-        (node → figure → stats) and verdict (node → (verdict, reasons)), and the point's
-        combined verdict. Nodes not given lose their old figures and verdicts."""
+        """Replace everything a point was judged on in one transaction — the one way a point's
+        figures and verdicts are written: each node's figures (node → figure → {worst, mean,
+        spread, n}) and verdict (node → (verdict, reasons)), and the point's combined verdict.
+        Nodes not given lose their old figures and verdicts."""
         with self.db.atomic():
             self.db.execute("DELETE FROM point_figures WHERE point_id = ?", [point_id])
             self.db.execute("DELETE FROM node_verdicts WHERE point_id = ?", [point_id])
@@ -849,7 +799,9 @@ class Store:
             ]
             if rows:
                 self.db["node_verdicts"].insert_all(rows)
-            self.set_point_verdict(point_id, verdict, reasons)
+            self.db["points"].update(
+                point_id, {"verdict": verdict, "verdict_reasons": json.dumps(list(reasons))}
+            )
 
     def point_figures(self, run_id: int, *, node: str) -> dict[int, dict[str, dict[str, Any]]]:
         """One node's aggregated figures at every point of a run: point id → figure → {worst,

@@ -373,7 +373,9 @@ def test_schema_1_store_is_upgraded(tmp_path: Path) -> None:
         assert store.capture_figures(1)["peak_v"] == 101.0
         # a second node's capture of the same acquisition now fits beside it
         waveform = capture
-        store.add_capture(1, CaptureRecord(waveform, channel=2, node="secondary"))
+        store.commit_point(
+            1, captures=[CaptureRecord(waveform, channel=2, node="secondary")], status=None
+        )
         assert store.acquisitions(1) == 1
         # version 3: a run may end with its bench not confirmed safe
         store.set_run_status(1, "unsafe-end")

@@ -119,15 +119,16 @@ def make_run(
         store.commit_point(
             point_id, captures=records, readings=PointReadings(efficiency=efficiency)
         )
-        store.set_point_figures(point_id, figures, node="primary")
         peak_v = figures["peak_v"]["worst"]
         if (line_v, load_a) == incomplete_at:
-            store.set_point_verdict(point_id, "incomplete", ["damping_ratio: not determined"])
+            verdict, reasons = "incomplete", ["damping_ratio: not determined"]
         elif peak_v > MAX_PEAK_V:
-            reasons = [f"peak_v {format_si(peak_v, 'V')} breaks limit ≤ 120 V"]
-            store.set_point_verdict(point_id, "fail", reasons)
+            verdict, reasons = "fail", [f"peak_v {format_si(peak_v, 'V')} breaks limit ≤ 120 V"]
         else:
-            store.set_point_verdict(point_id, "pass", [])
+            verdict, reasons = "pass", []
+        store.set_point_judgement(
+            point_id, {"primary": figures}, {"primary": (verdict, reasons)}, verdict, reasons
+        )
     store.set_run_status(run_id, "finished")
     return run_id
 

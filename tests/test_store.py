@@ -208,14 +208,16 @@ def test_process_killed_mid_commit_leaves_nothing_half_written(db: Path) -> None
         assert store.integrity_check() == "ok"
 
 
-def test_add_capture_sets_point_state_with_the_last(db: Path) -> None:
+def test_captures_set_point_state_with_the_last(db: Path) -> None:
     with Store(db) as store:
         run_id, points = new_run(store)
         record = CaptureRecord(Capture(ringing_codes()), node="primary")
-        store.add_capture(points[0], record)
+        store.commit_point(points[0], captures=[record], status=None)
         assert store.point(points[0]).status == "pending"
+        with pytest.raises(ValueError, match="stored with a status"):
+            store.commit_point(points[0], readings=PointReadings(), status=None)
         readings = PointReadings(meter_power_w=31.5, efficiency=0.87)
-        store.add_capture(points[0], record, point_status="done", readings=readings)
+        store.commit_point(points[0], captures=[record], readings=readings)
         point = store.point(points[0])
         assert point.status == "done" and point.meter_power_w == 31.5
         assert [c.capture_index for c in store.captures(points[0])] == [0, 1]
@@ -252,14 +254,17 @@ def test_figures_and_events_round_trip(db: Path) -> None:
         assert stored["edges"] == edges and stored["edge_count"] == 2 and stored["clipped"] == 0
         with pytest.raises(ValueError, match="peak"):
             store.set_capture_figures(capture_id, {"peak": 1.0})
-        store.set_point_figures(
+        reasons = ["peak 151 V > 120 V"]
+        store.set_point_judgement(
             points[0],
-            {"peak_v": {"worst": 151.2, "mean": 150.0, "spread": 0.8, "n": 3}},
-            node="primary",
+            {"primary": {"peak_v": {"worst": 151.2, "mean": 150.0, "spread": 0.8, "n": 3}}},
+            {"primary": ("fail", reasons)},
+            "fail",
+            reasons,
         )
         assert store.point_figures(run_id, node="primary")[points[0]]["peak_v"]["worst"] == 151.2
-        store.set_point_verdict(points[0], "fail", ["peak 151 V > 120 V"])
         assert store.point(points[0]).verdict_reasons == ["peak 151 V > 120 V"]
+        assert store.node_verdicts(run_id)[points[0]] == {"primary": ("fail", reasons)}
         store.log_event(run_id, "retry", "scope timeout", point_id=points[0], data={"try": 2})
         [event] = store.events(run_id)
         assert event["kind"] == "retry" and event["data"] == {"try": 2}
@@ -541,12 +546,10 @@ def filled_db(db: Path) -> tuple[Path, int, list[int]]:
             ]
             readings = PointReadings(source_voltage_v=36.1, meter_power_w=20.0 + index)
             store.commit_point(point_id, captures=records, readings=readings)
-            store.set_point_figures(
-                point_id,
-                {"peak_v": {"worst": 140.0 + index, "mean": 139.0, "spread": 0.5, "n": 2}},
-                node="primary",
+            peak = {"peak_v": {"worst": 140.0 + index, "mean": 139.0, "spread": 0.5, "n": 2}}
+            store.set_point_judgement(
+                point_id, {"primary": peak}, {"primary": ("pass", [])}, "pass", []
             )
-            store.set_point_verdict(point_id, "pass", [])
         store.commit_point(points[2], status="skipped")
     return db, run_id, points
 

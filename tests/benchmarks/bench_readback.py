@@ -70,7 +70,7 @@ def store_finished_run(path: Path, codec: str) -> int:
             ]
             for capture_id in store.commit_point(point_id, captures=captures):
                 store.set_capture_figures(capture_id, dict.fromkeys(CAPTURE_FIGURES, 1.0))
-            store.set_point_verdict(point_id, "pass", [])
+            store.set_point_judgement(point_id, {}, {}, "pass", [])
         store.set_run_status(run_id, "finished")
         store.checkpoint()
     return run_id

@@ -126,12 +126,12 @@ def store_realistic_run(path: Path, waveforms: list[Waveform], codec: str = DEFA
                 edges = [figures(rng) for _ in range(EDGES_PER_CAPTURE)]
                 store.set_capture_figures(capture_id, edges[0], edges=edges)
             stats = ("worst", "mean", "spread")
-            store.set_point_figures(
-                point_id,
-                {name: {**{s: rng.uniform() for s in stats}, "n": 3} for name in CAPTURE_FIGURES},
-                node="primary",
+            stored_figures = {
+                name: {**{s: rng.uniform() for s in stats}, "n": 3} for name in CAPTURE_FIGURES
+            }
+            store.set_point_judgement(
+                point_id, {"primary": stored_figures}, {"primary": ("pass", [])}, "pass", []
             )
-            store.set_point_verdict(point_id, "pass", [])
             store.log_event(run_id, "timing", "point done", point_id=point_id, data={"s": 0.41})
         store.set_run_status(run_id, "finished")
         store.checkpoint()
