@@ -29,6 +29,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "run",
     "resume",
     "runs",
+    "log",
     "export",
     "analyze",
     "analyze_run",
