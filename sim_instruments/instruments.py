@@ -20,7 +20,14 @@ import numpy as np
 from sim_instruments import DIALECTS, PRIMARY_CHANNEL, SECONDARY_CHANNEL
 from sim_instruments import scope as acquisition
 from sim_instruments.flyback import FlybackModel, LineReading, OperatingPoint
-from sim_instruments.server import Block, Call, Command, CommandError, ScpiInstrument, format_number
+from sim_instruments.server import (
+    Block,
+    Call,
+    Command,
+    CommandError,
+    SimulatedInstrument,
+    format_number,
+)
 
 MANUFACTURER = "labseq-sim"
 FIRMWARE = "1.0"
@@ -176,7 +183,7 @@ class BenchState:
 
     def probed_nodes(
         self, rng: np.random.Generator
-    ) -> tuple[dict[int, acquisition.Waveform], float] | None:
+    ) -> tuple[dict[int, acquisition.NodeVoltage], float] | None:
         """The waveforms the scope's probes see in one acquisition, and their period.
 
         Channel :data:`PRIMARY_CHANNEL` probes the switch node, :data:`SECONDARY_CHANNEL` the
@@ -191,7 +198,9 @@ class BenchState:
             return None
         period_s = 1.0 / self.model.design.switching_frequency_hz
 
-        def probe(node: Callable[[OperatingPoint, np.ndarray], np.ndarray]) -> acquisition.Waveform:
+        def probe(
+            node: Callable[[OperatingPoint, np.ndarray], np.ndarray],
+        ) -> acquisition.NodeVoltage:
             def waveform(t_s: np.ndarray) -> np.ndarray:
                 with self.lock:  # the model caches its solutions; one caller at a time
                     return node(point, t_s)
@@ -204,9 +213,9 @@ class BenchState:
         return probes, period_s
 
 
-class SimInstrument(ScpiInstrument):
-    """A simulated instrument on the shared bench state, with its own seeded reading noise,
-    speaking one of the :data:`DIALECTS`."""
+class SimulatedRole(SimulatedInstrument):
+    """One of the four roles of the simulated bench: a simulated instrument on the shared bench
+    state, with its own seeded reading noise, speaking one of the :data:`DIALECTS`."""
 
     model_name = "instrument"
 
@@ -268,7 +277,7 @@ class SimInstrument(ScpiInstrument):
         ]
 
 
-class SimSource(SimInstrument):
+class SimSource(SimulatedRole):
     """Programmable AC/DC line source."""
 
     model_name = "line-source"
@@ -377,7 +386,7 @@ class SimSource(SimInstrument):
         ]
 
 
-class SimLoad(SimInstrument):
+class SimLoad(SimulatedRole):
     """Electronic load in constant-current mode on the converter's output."""
 
     model_name = "electronic-load"
@@ -443,7 +452,7 @@ class SimLoad(SimInstrument):
         ]
 
 
-class SimMeter(SimInstrument):
+class SimMeter(SimulatedRole):
     """Power meter on the line input."""
 
     model_name = "power-meter"
@@ -471,7 +480,7 @@ class SimMeter(SimInstrument):
         ]
 
 
-class SimScope(SimInstrument):
+class SimScope(SimulatedRole):
     """Four-channel digital storage scope; channel 1 probes the switch node, channel 2 the
     output rectifier (anode to cathode) when the DUT declares one.
 

@@ -21,7 +21,7 @@ from labseq.commands._options import option_fraction_or_quantity, option_quantit
 from labseq.errors import InputError
 from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND, FIGURE, FIGURE_UNITS
 from labseq.units import format_si
-from labseq.waveform_files import Waveform, read_waveform
+from labseq.waveform_files import FileRecord, read_waveform
 
 #: Okabe & Ito colour-blind-safe palette (Color Universal Design, 2002).
 COLOURS = {
@@ -110,7 +110,7 @@ def _print_table(path: Path, figures: CaptureFigures) -> None:
         console.print(LOSS_ASSUMPTIONS)
 
 
-def _plot(path: Path, waveform: Waveform, figures: CaptureFigures) -> None:
+def _plot(path: Path, waveform: FileRecord, figures: CaptureFigures) -> None:
     import matplotlib
 
     matplotlib.use("Agg")

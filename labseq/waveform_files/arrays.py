@@ -7,12 +7,12 @@ from pathlib import Path
 
 import numpy as np
 
-from instruments import Waveform as ScopeRecord
+from instruments import Waveform
 from labseq.errors import InputError
 from labseq.export import SCALING_FIELDS, SCALING_KEY, codes_key
 from labseq.waveform_files.record import (
     Column,
-    Waveform,
+    FileRecord,
     check_uniform,
     check_volts,
     listing,
@@ -53,7 +53,7 @@ def _seconds_only(path: Path, time_unit: str | None, where: str) -> None:
 
 def read_npy(
     path: Path, channel: str | None, time_unit: str | None, capture: str | None
-) -> Waveform:
+) -> FileRecord:
     """An N×2 array (time, volts), an N×k one (time and k − 1 voltage columns), or a structured
     array with fields ``time_s`` and ``volts``."""
     refuse(path, "--capture", capture, "it picks a capture of labseq's NPZ export")
@@ -94,7 +94,7 @@ def read_npy(
 
 def read_npz(
     path: Path, channel: str | None, time_unit: str | None, capture: str | None
-) -> Waveform:
+) -> FileRecord:
     """Arrays ``time_s`` and ``volts``, or one capture of labseq's export."""
     with np.load(path, allow_pickle=False) as archive:
         if all(name in archive.files for name in CANONICAL_NAMES):
@@ -135,7 +135,7 @@ def _choose_capture(path: Path, names: list[str], capture: str | None) -> int:
     return names.index(capture)
 
 
-def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None) -> Waveform:
+def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None) -> FileRecord:
     """One capture of ``labseq export``'s ``captures.npz`` as the store holds it: raw codes,
     their scaling and the screen's limits, so the samples that clipped are known."""
     scaling = np.atleast_1d(archive[SCALING_KEY])
@@ -176,7 +176,7 @@ def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None)
             "of integer or float codes"
         )
     code_min, code_max = (numbers.pop(k) for k in ("code_min", "code_max"))
-    record = ScopeRecord(
+    record = Waveform(
         codes=codes,
         **numbers,
         code_min=None if np.isnan(code_min) else code_min,
@@ -185,7 +185,7 @@ def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None)
     volts = record.volts()
     check_volts(path, volts, volts_name=f"{name} (codes with their scaling)")
     node = f" (node {row['node']})" if "node" in fields and str(row["node"]) else ""
-    return Waveform(
+    return FileRecord(
         volts=volts,
         sample_interval_s=numbers["x_increment_s"],
         t0_s=numbers["x_origin_s"],
