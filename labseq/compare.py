@@ -51,11 +51,6 @@ from labseq.review import (
     worst_points,
 )
 
-#: Coverage factor k of the significance rule.
-DEFAULT_COVERAGE = 2.0
-#: Setpoints within this fraction of each other are the same point.
-DEFAULT_MATCH_TOLERANCE = 0.005
-
 
 @dataclass(frozen=True)
 class FigureChange:
@@ -240,6 +235,12 @@ class Comparison:
         """The change the way an engineer says it, e.g. "peak stress −38 V at the worst
         corner, damping ratio up from 0.06 to 0.31, snubber loss +41 mW at 75 V / 2.2 A"."""
         return summary_sentence(self)
+
+
+#: Coverage factor k of the significance rule.
+DEFAULT_COVERAGE = 2.0
+#: Setpoints within this fraction of each other are the same point.
+DEFAULT_MATCH_TOLERANCE = 0.005
 
 
 def _change_text(change: FigureChange) -> str:

@@ -9,9 +9,9 @@ worst-value directions of :func:`labseq.analysis.aggregate`, :data:`SIGNED_FIGUR
 order a reviewer reads them), :data:`FIGURE_TITLES`, :data:`NOISE_FLOORS`, and the capture
 columns of the store (:data:`CAPTURE_FIGURES`, :data:`CAPTURE_METHODS`).
 
-Beside them: the limits a node is judged against (:class:`Limits`), the verdict words and how
-several combine (:func:`worst_verdict`), the defaults a sequence and the analysis share, and the
-figures in words (:func:`format_figure`, :func:`format_change`).
+Beside them: the verdict words, the defaults a sequence and the analysis share, and the figures
+in words (:func:`format_figure`, :func:`format_change`). The limits a node is judged against
+are :class:`labseq.analysis.verdict.Limits`, whose fields are named after these figures.
 
 Pure data and pure functions: importing this module costs nothing.
 """
@@ -19,8 +19,7 @@ Pure data and pure functions: importing this module costs nothing.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from typing import Literal
 
 from labseq.units import format_si
@@ -174,40 +173,9 @@ def format_change(figure: str, delta: float | None) -> str:
     return sign + (format_si(abs(delta), unit) if unit else f"{abs(delta):.2g}")
 
 
-# --------------------------------------------------------------------------- limits, verdicts
+# --------------------------------------------------------------------------- verdicts
 
-
-@dataclass(frozen=True)
-class Limits:
-    """Limits a node is judged against; each is optional and checked only when set. A field's
-    name is its figure's with ``max_`` or ``min_`` before it."""
-
-    max_peak_v: float | None = None
-    min_stress_margin_v: float | None = None
-    min_damping_ratio: float | None = None
-    max_q_factor: float | None = None
-    max_settling_time_s: float | None = None
-    max_snubber_loss_w: float | None = None
-    min_efficiency: float | None = None
-
-
-#: Limit field → (figure, True when the limit is a maximum).
-LIMIT_FIGURES: dict[str, tuple[str, bool]] = {
-    f.name: (f.name.removeprefix("max_").removeprefix("min_"), f.name.startswith("max_"))
-    for f in fields(Limits)
-}
-
-#: The verdict words (in the order the store has always listed them).
+#: The verdict words (in the order the store has always listed them), and worst first (several
+#: verdicts combine into their worst: :func:`labseq.analysis.verdict.worst_verdict`).
 VERDICTS = ("pass", "fail", "incomplete")
-_SEVERITY = {"pass": 0, "incomplete": 1, "fail": 2}
-#: The verdict words, worst first.
-VERDICTS_WORST_FIRST = tuple(sorted(VERDICTS, key=_SEVERITY.__getitem__, reverse=True))
-
-
-def worst_verdict(verdicts: Iterable[str]) -> Literal["pass", "fail", "incomplete"]:
-    """The verdict of several (a point's nodes, a run's points): fail if any fails, else
-    incomplete if any is incomplete (or there are none), else pass."""
-    seen = set(verdicts)
-    if not seen:
-        return "incomplete"
-    return max(seen, key=_SEVERITY.__getitem__)  # type: ignore[return-value]
+VERDICTS_WORST_FIRST = ("fail", "incomplete", "pass")

@@ -19,7 +19,8 @@ from instruments import Waveform
 from labseq.analysis import CaptureFigures, NoEdgeError, SnubberBranch, aggregate, analyze_capture
 from labseq.analysis import judge as judge_point
 from labseq.analysis.capture import ClampFigures, clamp_figures
-from labseq.figures import CAPTURE_FIGURES, worst_verdict
+from labseq.analysis.verdict import worst_verdict
+from labseq.figures import CAPTURE_FIGURES
 from labseq.sequence import NodeSpec, Sequence, parse_sequence
 from labseq.store import PointRecord, RunRecord, Store
 

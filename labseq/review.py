@@ -23,15 +23,14 @@ from typing import Any
 import numpy as np
 
 from labseq.analysis.snubber import METHOD_LABELS
+from labseq.analysis.verdict import LIMIT_FIGURES, worst_verdict
 from labseq.errors import InputError
 from labseq.figures import (
     FIGURE_DIRECTIONS,
     FIGURE_TITLES,
-    LIMIT_FIGURES,
     VERDICTS_WORST_FIRST,
     figure_direction,
     format_figure,
-    worst_verdict,
 )
 from labseq.pipeline import stored_sequence
 from labseq.sequence import DEFAULT_PRIMARY_NAME, NodeSpec

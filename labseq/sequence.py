@@ -25,9 +25,10 @@ from typing import Any, NamedTuple
 from instruments.command_map import ROLES
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
 from instruments.tomlkeys import Problem, Problems, describe_value, report
+from labseq.analysis.verdict import Limits
 from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
 from labseq.errors import InputError
-from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND, Limits
+from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND
 from labseq.safety import ES1_AC_RMS_V, ES1_DC_V
 from labseq.tomlread import MISSING, SAME_VALUE_RTOL, Table, quantity
 from labseq.units import format_si

@@ -9,6 +9,7 @@ from pathlib import Path
 import pytest
 
 from labseq.analysis.capture import EDGE_FIGURE_NAMES, ClampFigures
+from labseq.analysis.verdict import LIMIT_FIGURES
 from labseq.figures import (
     CAPTURE_FIGURES,
     CAPTURE_METHODS,
@@ -16,7 +17,6 @@ from labseq.figures import (
     FIGURE_DIRECTIONS,
     FIGURES,
     HIGHER,
-    LIMIT_FIGURES,
     LOWER,
     NOISE_FLOORS,
     REVIEWED,

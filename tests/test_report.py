@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 from sweeps import run_cli
 
-from labseq.figures import worst_verdict
+from labseq.analysis.verdict import worst_verdict
 from labseq.review import review_run
 from labseq.store import CaptureRecord, PointReadings, Store
 from labseq.units import format_si

@@ -34,8 +34,8 @@ from labseq.analysis.design import (
 from labseq.analysis.levels import histogram_state_levels
 from labseq.analysis.ringfit import RingFit, RingFitError, RingWindow, fit_ring, fit_rings
 from labseq.analysis.snubber import SnubberBranch, cv2f_loss_w
-from labseq.analysis.verdict import PointFigures, Verdict, aggregate, judge
-from labseq.figures import DEFAULT_DERATING, FIGURE_UNITS, Limits
+from labseq.analysis.verdict import Limits, PointFigures, Verdict, aggregate, judge
+from labseq.figures import DEFAULT_DERATING, FIGURE_UNITS
 
 __all__ = [
     "DEFAULT_DERATING",

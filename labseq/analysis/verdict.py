@@ -13,8 +13,8 @@ the magnitude.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, fields
 from typing import Literal
 
 import numpy as np
@@ -22,16 +22,11 @@ import numpy as np
 from labseq.figures import (
     BOUNDED_BY_CLIPPING,
     FIGURE_UNITS,
-    LIMIT_FIGURES,
     SIGNED_FIGURES,
     WORST_IS_MAX,
     WORST_IS_MIN,
-    Limits,
-    worst_verdict,
 )
 from labseq.units import format_si
-
-__all__ = ["Limits", "PointFigures", "Verdict", "aggregate", "judge", "worst_verdict"]
 
 
 @dataclass(frozen=True)
@@ -96,11 +91,41 @@ def aggregate(captures: Sequence[Mapping[str, object]], *, polarity: int = 1) ->
 
 
 @dataclass(frozen=True)
+class Limits:
+    """Limits of a point (or of one node of it); each is optional and checked only when set. A
+    field's name is its figure's (:mod:`labseq.figures`) with ``max_`` or ``min_`` before it."""
+
+    max_peak_v: float | None = None
+    min_stress_margin_v: float | None = None
+    min_damping_ratio: float | None = None
+    max_q_factor: float | None = None
+    max_settling_time_s: float | None = None
+    max_snubber_loss_w: float | None = None
+    min_efficiency: float | None = None
+
+
+#: Limit field → (figure, True when the limit is a maximum).
+LIMIT_FIGURES: dict[str, tuple[str, bool]] = {
+    f.name: (f.name.removeprefix("max_").removeprefix("min_"), f.name.startswith("max_"))
+    for f in fields(Limits)
+}
+
+
+@dataclass(frozen=True)
 class Verdict:
     """Outcome of a point: ``status`` and one reason per failed or undetermined limit."""
 
     status: Literal["pass", "fail", "incomplete"]
     reasons: list[str]
+
+
+def worst_verdict(verdicts: Iterable[str]) -> Literal["pass", "fail", "incomplete"]:
+    """The verdict of several (a point's nodes): fail if any fails, else incomplete if any is
+    incomplete (or there are none), else pass."""
+    seen = set(verdicts)
+    if "fail" in seen:
+        return "fail"
+    return "incomplete" if "incomplete" in seen or not seen else "pass"
 
 
 def _text(name: str, value: float) -> str:

@@ -16,10 +16,10 @@ from pathlib import Path
 
 import numpy as np
 
+from labseq.analysis.verdict import LIMIT_FIGURES
 from labseq.export import write_points_csv
 from labseq.figures import (
     FIGURE_TITLES,
-    LIMIT_FIGURES,
     figure_direction,
     format_figure,
     shown_unit,
