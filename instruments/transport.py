@@ -17,10 +17,12 @@ chosen once when the session is opened (:func:`choose_transport`):
 from __future__ import annotations
 
 import math
+import re
 import socket
 import time
-from contextlib import suppress
-from typing import Any
+from collections.abc import Callable, Iterator
+from contextlib import AbstractContextManager, contextmanager, nullcontext, suppress
+from typing import Any, TypeVar
 
 import pyvisa
 from pyvisa import constants
@@ -34,10 +36,37 @@ BLOCK_CHUNK_BYTES = 1 << 20
 #: (far above any reply read as text; a peer streaming without a terminator is cut off here).
 TEXT_CHUNK_BYTES = 1 << 14
 MAX_TEXT_REPLY_BYTES = 1 << 20
+#: Bytes asked of the socket per read of the short parts of a reply to several queries (its
+#: first replies, a block's header and what ends it): a block's payload that comes with them
+#: is copied twice, the rest is received straight into its buffer.
+UNIT_CHUNK_BYTES = 1 << 10
 #: Silence after which the rest of a broken reply on a socket is taken to have all arrived.
 QUIET_S = 0.05
 
 TIMEOUT_CODES = {constants.StatusCode.error_timeout}
+#: The flag that makes one ``recv`` or ``send`` return at once rather than wait, where the
+#: platform has it (not Windows): bytes already received are then taken without switching the
+#: socket's timeout on and off around the call.
+_DONTWAIT = getattr(socket, "MSG_DONTWAIT", 0)
+
+T = TypeVar("T")
+
+#: What ends a response message unit: the unit separator ``;`` or a newline (the terminator),
+#: outside IEEE 488.2 string response data (8.7.8), which is double-quoted and may hold either.
+_UNIT_END = re.compile(rb'"[^"]*"?|[;\n]')
+
+
+def find_unit_end(data: bytes | bytearray) -> int:
+    """The index of the ``;`` or newline that ends the response message unit at the start of
+    ``data`` (IEEE 488.2 8.4: units are separated by ``;``, the message ends with a newline),
+    or -1 if it has not all arrived. A ``;`` inside a quoted string does not end the unit."""
+    for match in _UNIT_END.finditer(data):
+        token = match.group()
+        if not token.startswith(b'"'):
+            return match.start()
+        if len(token) == 1 or not token.endswith(b'"'):
+            return -1  # a string still open
+    return -1
 
 
 class VisaTransport:
@@ -56,6 +85,18 @@ class VisaTransport:
         """The resource's timeout in seconds (infinite when it has none)."""
         return self.resource.timeout / 1000.0 if self.resource.timeout else math.inf
 
+    @contextmanager
+    def binary_reads(self) -> Iterator[str | None]:
+        """Line termination off while a block is read, so a ``0x0A`` byte inside its payload
+        does not end a ``viRead``; yields the read termination in force before."""
+        resource = self.resource
+        saved_termination = resource.read_termination
+        resource.read_termination = None
+        try:
+            yield saved_termination
+        finally:
+            resource.read_termination = saved_termination
+
     def tune(self) -> None:
         """Turn off Nagle's algorithm on a socket: every configuration step is a write followed
         by ``SYST:ERR?``, and with Nagle on the second small write waits for the peer's delayed
@@ -64,6 +105,15 @@ class VisaTransport:
             # a library that does not support the attribute: Nagle stays on
             with suppress(Exception):
                 self.resource.set_visa_attribute(constants.ResourceAttribute.tcpip_nodelay, True)
+
+    def write(self, message: str) -> None:
+        """Send one program message with the resource's write termination (``viWrite``)."""
+        self.resource.write(message)
+
+    def read_bytes(self, count: int, command: str) -> bytes:
+        """The next ``count`` bytes of the reply to ``command``, within the resource's
+        timeout."""
+        return self.resource.read_bytes(count)
 
     def read_message(
         self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
@@ -93,6 +143,16 @@ class VisaTransport:
         if self.is_socket and not data.endswith(b"\n"):
             raise self.truncated(command, data)
         return bytes(data)
+
+    def read_unit(self, command: str, deadline: float, max_bytes: int) -> tuple[bytes, bytes]:
+        """Read one response message unit of a reply to several queries, by ``deadline``:
+        its bytes, and what ended it (``b";"``: more units follow; ``b"\n"``: the message
+        ended). Byte by byte through ``viRead``: units read this way are short."""
+        data = bytearray()
+        while (end := find_unit_end(data)) < 0:
+            self.check_growing_reply(command, data, deadline, max_bytes)
+            data += self.read_bytes(1, command)
+        return bytes(data[:end]), bytes(data[end : end + 1])
 
     def read_into(self, view: memoryview) -> None:
         """Fill ``view`` with the next ``len(view)`` bytes, through ``viRead`` in large chunks
@@ -158,33 +218,129 @@ class PyvisaPySocketTransport(VisaTransport):
         """Nagle off through pyvisa-py's own helper (0.8 registers no attribute setter)."""
         self.session._set_tcpip_nodelay(constants.ResourceAttribute.tcpip_nodelay, True)
 
+    def timeout_s(self) -> float:
+        """The session's timeout, as pyvisa-py keeps it (seconds, None for none)."""
+        timeout = self.session.timeout
+        return math.inf if timeout is None else timeout
+
+    def binary_reads(self) -> AbstractContextManager[str | None]:
+        """Nothing to switch: these reads never stop at a termination character."""
+        return nullcontext(self.resource.read_termination)
+
+    def write(self, message: str) -> None:
+        """Send the message and the write termination, encoded as PyVISA would, within the
+        resource's timeout."""
+        resource = self.resource
+        data = memoryview((message + (resource.write_termination or "")).encode(resource.encoding))
+        deadline = time.monotonic() + self.timeout_s()
+        while data:
+            try:
+                sent = self._socket_call(deadline, self.socket.send, data)
+            except TimeoutError:
+                raise InstrumentTimeout(
+                    f"{self.label}: could not send {message!r} within {self.timeout_s():g} s "
+                    "(the instrument is not reading)"
+                ) from None
+            data = data[sent:]
+
+    def read_bytes(self, count: int, command: str) -> bytes:
+        """The next ``count`` bytes: read-ahead bytes first, then from the socket in whole
+        chunks (what follows stays read ahead), within the resource's timeout."""
+        if len(self.session._pending_buffer) < count:
+            deadline = time.monotonic() + self.timeout_s()
+
+            def check(data: bytearray) -> None:
+                if time.monotonic() >= deadline:
+                    raise InstrumentTimeout(
+                        f"{self.label}: reply to {command!r} stalled after {bytes(data)!r}, "
+                        f"{count} bytes expected"
+                    )
+
+            self._receive_until(
+                lambda data: count if len(data) >= count else -1,
+                check,
+                deadline,
+                command,
+                UNIT_CHUNK_BYTES,
+            )
+        return self._take(count)
+
     def read_message(
         self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
     ) -> bytes:
         """As :meth:`VisaTransport.read_message`, the deadline holding even while bytes trickle
         in."""
-        pending: bytearray = self.session._pending_buffer
         terminator = (self.resource.read_termination or "\n").encode("ascii")
+        end = self._receive_until(
+            lambda data: data.find(terminator),
+            lambda data: self.check_growing_reply(command, data, deadline, max_bytes),
+            deadline,
+            command,
+        )
+        return self._take(end + len(terminator))
+
+    def read_unit(self, command: str, deadline: float, max_bytes: int) -> tuple[bytes, bytes]:
+        """As :meth:`VisaTransport.read_unit`, from the bytes received in whole chunks."""
+        end = self._receive_until(
+            find_unit_end,
+            lambda data: self.check_growing_reply(command, data, deadline, max_bytes),
+            deadline,
+            command,
+            UNIT_CHUNK_BYTES,
+        )
+        unit = self._take(end + 1)
+        return unit[:end], unit[end:]
+
+    def _socket_call(self, deadline: float, operation: Callable[..., T], *args: Any) -> T:
+        """``operation(*args, flags)``, a socket call: at once where it need not wait, else
+        waiting until ``deadline`` at most (TimeoutError then)."""
+        if _DONTWAIT:
+            try:
+                return operation(*args, _DONTWAIT)
+            except BlockingIOError:
+                pass  # nothing yet: wait for it below
         sock = self.socket
         previous_timeout = sock.gettimeout()
+        remaining_s = deadline - time.monotonic()
+        sock.settimeout(None if math.isinf(remaining_s) else max(remaining_s, 1e-3))
         try:
-            while (end := pending.find(terminator)) < 0:
-                self.check_growing_reply(command, pending, deadline, max_bytes)
-                sock.settimeout(max(deadline - time.monotonic(), 1e-3))
-                try:
-                    chunk = sock.recv(TEXT_CHUNK_BYTES)
-                except TimeoutError:
-                    continue  # the deadline check above raises
-                if not chunk:
-                    raise ConnectionLost(
-                        f"{self.label}: connection closed during the reply to {command!r}"
-                    )
-                pending += chunk
+            return operation(*args, 0)
         finally:
             sock.settimeout(previous_timeout)
-        line = bytes(pending[: end + len(terminator)])
-        del pending[: end + len(terminator)]
-        return line
+
+    def _receive_until(
+        self,
+        locate: Callable[[bytearray], int],
+        check: Callable[[bytearray], None],
+        deadline: float,
+        command: str,
+        chunk_bytes: int = TEXT_CHUNK_BYTES,
+    ) -> int:
+        """Receive into pyvisa-py's pending buffer, ``chunk_bytes`` at most at a time, until
+        ``locate`` finds its place in it (an index ≥ 0); return that index. Before each wait
+        ``check`` raises if the bytes so far are too many or ``deadline`` (monotonic s) has
+        passed."""
+        pending: bytearray = self.session._pending_buffer
+        sock = self.socket
+        while (found := locate(pending)) < 0:
+            check(pending)
+            try:
+                chunk = self._socket_call(deadline, sock.recv, chunk_bytes)
+            except TimeoutError:
+                continue  # the check above raises
+            if not chunk:
+                raise ConnectionLost(
+                    f"{self.label}: connection closed during the reply to {command!r}"
+                )
+            pending += chunk
+        return found
+
+    def _take(self, count: int) -> bytes:
+        """The first ``count`` bytes of the pending buffer, removed from it."""
+        pending: bytearray = self.session._pending_buffer
+        taken = bytes(pending[:count])
+        del pending[:count]
+        return taken
 
     def read_into(self, view: memoryview) -> None:
         """Receive straight into ``view``: read-ahead bytes first, then the socket, within the
@@ -195,26 +351,21 @@ class PyvisaPySocketTransport(VisaTransport):
         del pending[:received]
         sock = self.socket
         deadline = time.monotonic() + self.timeout_s()
-        previous_timeout = sock.gettimeout()
-        try:
-            while received < len(view):
-                remaining_s = deadline - time.monotonic()
-                if remaining_s <= 0:
-                    raise InstrumentTimeout(
-                        f"{self.label}: block stalled after {received} of {len(view)} bytes"
-                    )
-                sock.settimeout(None if math.isinf(remaining_s) else remaining_s)
-                try:
-                    count = sock.recv_into(view[received:])
-                except TimeoutError:
-                    continue  # the deadline check above raises
-                if count == 0:
-                    raise ConnectionLost(
-                        f"{self.label}: connection closed after {received} of {len(view)} bytes"
-                    )
-                received += count
-        finally:
-            sock.settimeout(previous_timeout)
+        while received < len(view):
+            if time.monotonic() >= deadline:
+                raise InstrumentTimeout(
+                    f"{self.label}: block stalled after {received} of {len(view)} bytes"
+                )
+            rest = view[received:]
+            try:
+                count = self._socket_call(deadline, sock.recv_into, rest, 0)
+            except TimeoutError:
+                continue  # the deadline check above raises
+            if count == 0:
+                raise ConnectionLost(
+                    f"{self.label}: connection closed after {received} of {len(view)} bytes"
+                )
+            received += count
 
     def discard_input(self) -> None:
         """Read and drop what the peer has sent until it goes quiet or closes (pyvisa-py's
@@ -240,7 +391,8 @@ def _pyvisa_py_socket_session(resource: MessageBasedResource) -> Any | None:
     sessions = getattr(resource.visalib, "sessions", None)
     session = sessions.get(resource.session) if isinstance(sessions, dict) else None
     fields_present = all(
-        hasattr(session, field) for field in ("interface", "_pending_buffer", "_set_tcpip_nodelay")
+        hasattr(session, field)
+        for field in ("interface", "_pending_buffer", "_set_tcpip_nodelay", "timeout")
     )
     if fields_present and isinstance(session.interface, socket.socket):
         return session
