@@ -133,7 +133,7 @@ def decode_items(payload: bytes | bytearray | memoryview, dtype: np.dtype) -> np
     """:func:`decode_payload` with the item type already looked up (:func:`payload_dtype`)."""
     check_item_size(len(payload), dtype)
     values = np.frombuffer(payload, dtype=dtype)
-    return values.astype(dtype.newbyteorder("="), copy=False)
+    return values if dtype.isnative else values.astype(dtype.newbyteorder("="))
 
 
 def parse_block(

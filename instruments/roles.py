@@ -9,7 +9,6 @@ byte is sent.
 from __future__ import annotations
 
 import math
-import re
 import time
 from abc import ABC, abstractmethod
 from collections.abc import Sequence
@@ -40,7 +39,7 @@ from instruments.limits import (
     check_word,
     format_number,
 )
-from instruments.scpi import NRF, ScpiInstrument, is_response_token, parse_number
+from instruments.scpi import ScpiInstrument, is_response_token, parse_number
 
 #: Relative tolerance under which a number matches an entry of a map's number table.
 _TABLE_RTOL = 1e-9
@@ -391,13 +390,7 @@ class Oscilloscope(MappedInstrument):
             [self.map.command(key) for key in fields_query] + [*self.map.scaling_queries.values()]
         )
         self._transfer_commands: dict[int, dict[str, str]] = {}
-        # The fields reply in one match: a number (NRf) captured where a value is read,
-        # anything but a comma where a field is skipped. A reply it does not match is read
-        # field by field, to say which field is wrong.
-        self._fields_pattern = re.compile(
-            ",".join(r"[^,]*" if name == "_" else rf"\s*({NRF})\s*" for name in fields)
-        )
-        self._numeric_fields = [name for name in fields if name != "_"]
+        self._numeric_fields = [(index, name) for index, name in enumerate(fields) if name != "_"]
         self._data_query = self.map.command("waveform_data_query")
         self._payload_dtype = (
             None
@@ -596,7 +589,10 @@ class Oscilloscope(MappedInstrument):
         differs, all are sent again, in order, so a scope that resets its format on a new
         source still gets the right one.
         """
-        commands = self.transfer_settings(self._channel(channel))
+        self._select(self._channel(channel))
+
+    def _select(self, channel: int) -> None:
+        commands = self.transfer_settings(channel)
         if commands.items() <= self.known_settings.items():
             return
         self._configure(*commands.values())
@@ -615,8 +611,7 @@ class Oscilloscope(MappedInstrument):
         Unsigned codes are returned as the signed codes of the same width, with the reference
         and the code limits moved to match (:func:`~instruments.block.signed_codes`).
         """
-        channel = self._channel(channel)
-        self.select_waveform(channel)
+        self._select(self._channel(channel))
         if self.map.compound_queries and self._payload_dtype is not None:
             replies, payload = self.query_with_block(self._scaling_queries, self._data_query)
             scaling = self.scaling_from(replies)
@@ -686,26 +681,30 @@ class Oscilloscope(MappedInstrument):
         """The scaling values from the replies to :meth:`scaling_queries`, wherever the map
         says each comes from: fields of one reply (text fields skipped by name ``_``), replies
         of their own, or constants."""
-        values = dict(self.map.scaling_values)
         queries = self._scaling_queries
         first = 1 if self.map.scaling_fields else 0
-        if first:
-            values.update(self._fields(queries[0], replies[0]))
-        own = zip(self.map.scaling_queries, queries[first:], replies[first:], strict=True)
-        for name, query, reply in own:
-            values[name] = self._scaling_number(query, name, reply)
+        values = self._fields(queries[0], replies[0]) if first else {}
+        values.update(self.map.scaling_values)  # each value comes from one place only
+        if self.map.scaling_queries:
+            own = zip(self.map.scaling_queries, queries[first:], replies[first:], strict=True)
+            for name, query, reply in own:
+                values[name] = self._scaling_number(query, name, reply)
         return values
 
     def _fields(self, query: str, reply: str) -> dict[str, float]:
         """The values in the reply to the fields query: in one match where it is well formed,
         else field by field, to say which field is wrong."""
-        match = self._fields_pattern.fullmatch(reply)
-        if match:
-            numbers = [float(text) for text in match.groups()]
-            if all(map(math.isfinite, numbers)):
-                return dict(zip(self._numeric_fields, numbers, strict=True))
         names = self.map.scaling_fields
         parts = reply.split(",")
+        # Python's float() of ASCII text without underscores takes exactly the NRf forms
+        # (IEEE 488.2 7.7.2) with spaces around, and the INF and NAN keywords, refused below.
+        if len(parts) == len(names) and reply.isascii() and "_" not in reply:
+            try:
+                values = {name: float(parts[index]) for index, name in self._numeric_fields}
+            except ValueError:
+                values = {}
+            if values and all(map(math.isfinite, values.values())):
+                return values
         if len(parts) != len(names):
             raise self.reply_error(
                 f"{query!r} answered {len(parts)} fields, the {self.map.family!r} map "

@@ -55,8 +55,7 @@ trace_log = logging.getLogger("instruments.trace")
 
 #: IEEE 488.2 decimal numeric data in its flexible form (NRf, 7.7.2: NR1, NR2 and NR3), and the
 #: INFinity, NINFinity and NAN keywords of SCPI-1999 vol. 1, 7.2.1.5.
-NRF = r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"
-_NRF = re.compile(NRF)
+_NRF = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
 _NUMBER_KEYWORDS = {
     "INF": math.inf,
     "INFINITY": math.inf,
@@ -362,6 +361,8 @@ class ScpiInstrument:
         one entry; the first error found is raised as :class:`ScpiError` with its code, its
         message and ``command``, the command that caused it. The loop is bounded.
         """
+        if first_reply is not None and first_reply.startswith("0,"):
+            return  # 0,"No error": the usual case, read at once
         first: tuple[int, str] | None = None
         reply = first_reply
         for _ in range(MAX_QUEUED_ERRORS):
@@ -445,7 +446,7 @@ class ScpiInstrument:
         trace_log.debug("%s > %s", self.name, command)
         with self._translated(command):
             self.transport.write(command)
-            payload, _ = self._read_block(command, last=True)
+            payload = self._read_block(command, last=True)
         trace_log.debug(
             "%s < block of %d bytes  (%.1f ms)",
             self.name,
@@ -474,7 +475,9 @@ class ScpiInstrument:
         """
         message = ";".join([*queries, block_query, ERROR_QUERY])
         start = time.monotonic()
-        trace_log.debug("%s > %s", self.name, message)
+        tracing = trace_log.isEnabledFor(logging.DEBUG)
+        if tracing:
+            trace_log.debug("%s > %s", self.name, message)
         replies: list[str] = []
         payload = memoryview(b"")
         error_reply: str | None = None
@@ -485,16 +488,25 @@ class ScpiInstrument:
             ended = b";"
             for query in queries:
                 unit, ended = self.transport.read_unit(message, deadline, MAX_TEXT_REPLY_BYTES)
-                replies.append(self._without_header(query, unit.decode("ascii").strip()))
+                reply = unit.decode("ascii").strip()
+                replies.append(self._without_header(query, reply) if self.reply_headers else reply)
                 answered += 1
                 if ended != b";":
                     break
             if ended == b";":
-                payload, ended = self._read_block(message, last=False)
+                payload = self._read_block(message, last=False)
                 answered += 1
-            if ended == b";":
-                error_reply = self.transport.read_message(message, deadline).decode("ascii")
-        if trace_log.isEnabledFor(logging.DEBUG):
+                # After the block: ";" and the error query's reply, or the message's end.
+                rest = self.transport.read_message(message, deadline)
+                if rest[:1] == b";":
+                    error_reply = rest[1:].decode("ascii")
+                elif rest.strip():
+                    self.transport.discard_input()
+                    raise BlockFormatError(
+                        f"{self.label}: block reply to {message!r} continues with {rest[:1]!r} "
+                        "after its announced length"
+                    )
+        if tracing:
             shown = [*replies, f"block of {len(payload)} bytes", (error_reply or "").strip()]
             elapsed_ms = (time.monotonic() - start) * 1e3
             trace_log.debug("%s < %s  (%.1f ms)", self.name, ";".join(shown), elapsed_ms)
@@ -507,15 +519,17 @@ class ScpiInstrument:
         self.check_errors(message, first_reply=error_reply.strip())
         return replies, payload
 
-    def _read_block(self, command: str, *, last: bool) -> tuple[memoryview, bytes]:
-        """Read one block reply unit; return its payload and what ended it: the newline that
-        ends the response message, or (when not ``last``) a ``;`` before further replies.
+    def _read_block(self, command: str, *, last: bool) -> memoryview:
+        """Read one block reply unit and return its payload.
 
-        A definite block is read straight into a preallocated buffer; an indefinite one, which
-        always ends its response message (IEEE 488.2 8.7.9), only where it is ``last``.
+        ``last``: the block ends the response message, and the newline after it is consumed;
+        an indefinite block is taken only then, as it always ends its message (IEEE 488.2
+        8.7.9). Otherwise what follows the block is left for the caller. A definite block is
+        read straight into a preallocated buffer.
         """
+        termination = self.resource.read_termination
         try:
-            with self.transport.binary_reads() as termination:
+            with self.transport.binary_reads():
                 digit_count = block.length_digit_count(self._read_block_start(command))
                 if digit_count == 0:
                     if not last:
@@ -525,13 +539,15 @@ class ScpiInstrument:
                             "it cannot be asked with other queries; set compound_queries = "
                             "false in the map"
                         )
-                    return self._read_indefinite_payload(command, termination), b"\n"
+                    return self._read_indefinite_payload(command, termination)
                 length = block.parse_length(self.transport.read_bytes(digit_count, command))
                 # np.empty maps pages only as bytes arrive: a garbled header announcing a
                 # gigabyte costs no more memory than what is actually received
                 payload = memoryview(np.empty(length, dtype=np.uint8))
                 self.transport.read_into(payload)
-                return payload, self._read_block_end(command, last)
+                if last:
+                    self._read_block_end(command)
+                return payload
         except BlockFormatError:
             self.transport.discard_input()  # drop the rest of the malformed reply
             raise
@@ -552,18 +568,16 @@ class ScpiInstrument:
             skipped += self.transport.read_bytes(1, command)
         return b"#" + self.transport.read_bytes(1, command)
 
-    def _read_block_end(self, command: str, last: bool) -> bytes:
-        """Consume what follows a block's announced length: the newline that ends the response
-        message (a CR before it is tolerated), or, when more replies may follow, a ``;``."""
+    def _read_block_end(self, command: str) -> None:
+        """Consume the newline that ends a block reply (a CR before it is tolerated)."""
         trailer = self.transport.read_bytes(1, command)
         if trailer == b"\r":
             trailer = self.transport.read_bytes(1, command)
-        if trailer == b"\n" or (trailer == b";" and not last):
-            return trailer
-        raise BlockFormatError(
-            f"{self.label}: block reply to {command!r} continues with {trailer!r} "
-            "after its announced length"
-        )
+        if trailer != b"\n":
+            raise BlockFormatError(
+                f"{self.label}: block reply to {command!r} continues with {trailer!r} "
+                "after its announced length"
+            )
 
     def _read_indefinite_payload(self, command: str, termination: str | None) -> memoryview:
         """Read a ``#0`` payload: messages up to each newline until the reply has no more.

@@ -50,6 +50,7 @@ TIMEOUT_CODES = {constants.StatusCode.error_timeout}
 _DONTWAIT = getattr(socket, "MSG_DONTWAIT", 0)
 
 T = TypeVar("T")
+_NOTHING_TO_SWITCH = nullcontext()
 
 #: What ends a response message unit: the unit separator ``;`` or a newline (the terminator),
 #: outside IEEE 488.2 string response data (8.7.8), which is double-quoted and may hold either.
@@ -86,14 +87,14 @@ class VisaTransport:
         return self.resource.timeout / 1000.0 if self.resource.timeout else math.inf
 
     @contextmanager
-    def binary_reads(self) -> Iterator[str | None]:
+    def binary_reads(self) -> Iterator[None]:
         """Line termination off while a block is read, so a ``0x0A`` byte inside its payload
-        does not end a ``viRead``; yields the read termination in force before."""
+        does not end a ``viRead``."""
         resource = self.resource
         saved_termination = resource.read_termination
         resource.read_termination = None
         try:
-            yield saved_termination
+            yield
         finally:
             resource.read_termination = saved_termination
 
@@ -223,9 +224,9 @@ class PyvisaPySocketTransport(VisaTransport):
         timeout = self.session.timeout
         return math.inf if timeout is None else timeout
 
-    def binary_reads(self) -> AbstractContextManager[str | None]:
+    def binary_reads(self) -> AbstractContextManager[None]:
         """Nothing to switch: these reads never stop at a termination character."""
-        return nullcontext(self.resource.read_termination)
+        return _NOTHING_TO_SWITCH
 
     def write(self, message: str) -> None:
         """Send the message and the write termination, encoded as PyVISA would, within the
@@ -246,24 +247,19 @@ class PyvisaPySocketTransport(VisaTransport):
     def read_bytes(self, count: int, command: str) -> bytes:
         """The next ``count`` bytes: read-ahead bytes first, then from the socket in whole
         chunks (what follows stays read ahead), within the resource's timeout."""
-        if len(self.session._pending_buffer) < count:
+        pending: bytearray = self.session._pending_buffer
+        if len(pending) < count:
             deadline = time.monotonic() + self.timeout_s()
-
-            def check(data: bytearray) -> None:
+            while len(pending) < count:
                 if time.monotonic() >= deadline:
                     raise InstrumentTimeout(
-                        f"{self.label}: reply to {command!r} stalled after {bytes(data)!r}, "
+                        f"{self.label}: reply to {command!r} stalled after {bytes(pending)!r}, "
                         f"{count} bytes expected"
                     )
-
-            self._receive_until(
-                lambda data: count if len(data) >= count else -1,
-                check,
-                deadline,
-                command,
-                UNIT_CHUNK_BYTES,
-            )
-        return self._take(count)
+                self._receive(pending, deadline, command, UNIT_CHUNK_BYTES)
+        taken = bytes(pending[:count])
+        del pending[:count]
+        return taken
 
     def read_message(
         self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
@@ -271,25 +267,27 @@ class PyvisaPySocketTransport(VisaTransport):
         """As :meth:`VisaTransport.read_message`, the deadline holding even while bytes trickle
         in."""
         terminator = (self.resource.read_termination or "\n").encode("ascii")
-        end = self._receive_until(
-            lambda data: data.find(terminator),
-            lambda data: self.check_growing_reply(command, data, deadline, max_bytes),
-            deadline,
-            command,
-        )
-        return self._take(end + len(terminator))
+        pending: bytearray = self.session._pending_buffer
+        while (end := pending.find(terminator)) < 0:
+            self.check_growing_reply(command, pending, deadline, max_bytes)
+            self._receive(pending, deadline, command, TEXT_CHUNK_BYTES)
+        end += len(terminator)
+        message = bytes(pending[:end])
+        del pending[:end]
+        return message
 
     def read_unit(self, command: str, deadline: float, max_bytes: int) -> tuple[bytes, bytes]:
         """As :meth:`VisaTransport.read_unit`, from the bytes received in whole chunks."""
-        end = self._receive_until(
-            find_unit_end,
-            lambda data: self.check_growing_reply(command, data, deadline, max_bytes),
-            deadline,
-            command,
-            UNIT_CHUNK_BYTES,
-        )
-        unit = self._take(end + 1)
-        return unit[:end], unit[end:]
+        pending: bytearray = self.session._pending_buffer
+        end = find_unit_end(pending) if pending else -1
+        while end < 0:
+            self.check_growing_reply(command, pending, deadline, max_bytes)
+            self._receive(pending, deadline, command, UNIT_CHUNK_BYTES)
+            end = find_unit_end(pending)
+        unit = bytes(pending[:end])
+        separator = bytes(pending[end : end + 1])
+        del pending[: end + 1]
+        return unit, separator
 
     def _socket_call(self, deadline: float, operation: Callable[..., T], *args: Any) -> T:
         """``operation(*args, flags)``, a socket call: at once where it need not wait, else
@@ -308,64 +306,59 @@ class PyvisaPySocketTransport(VisaTransport):
         finally:
             sock.settimeout(previous_timeout)
 
-    def _receive_until(
-        self,
-        locate: Callable[[bytearray], int],
-        check: Callable[[bytearray], None],
-        deadline: float,
-        command: str,
-        chunk_bytes: int = TEXT_CHUNK_BYTES,
-    ) -> int:
-        """Receive into pyvisa-py's pending buffer, ``chunk_bytes`` at most at a time, until
-        ``locate`` finds its place in it (an index ≥ 0); return that index. Before each wait
-        ``check`` raises if the bytes so far are too many or ``deadline`` (monotonic s) has
-        passed."""
-        pending: bytearray = self.session._pending_buffer
-        sock = self.socket
-        while (found := locate(pending)) < 0:
-            check(pending)
-            try:
-                chunk = self._socket_call(deadline, sock.recv, chunk_bytes)
-            except TimeoutError:
-                continue  # the check above raises
-            if not chunk:
-                raise ConnectionLost(
-                    f"{self.label}: connection closed during the reply to {command!r}"
-                )
-            pending += chunk
-        return found
-
-    def _take(self, count: int) -> bytes:
-        """The first ``count`` bytes of the pending buffer, removed from it."""
-        pending: bytearray = self.session._pending_buffer
-        taken = bytes(pending[:count])
-        del pending[:count]
-        return taken
+    def _receive(self, pending: bytearray, deadline: float, command: str, chunk_bytes: int) -> None:
+        """Add what the socket has to ``pending`` (pyvisa-py's buffer), ``chunk_bytes`` at
+        most, waiting for it until ``deadline`` at most: the caller checks the deadline."""
+        try:
+            chunk = self._socket_call(deadline, self.socket.recv, chunk_bytes)
+        except TimeoutError:
+            return
+        if not chunk:
+            raise ConnectionLost(f"{self.label}: connection closed during the reply to {command!r}")
+        pending += chunk
 
     def read_into(self, view: memoryview) -> None:
         """Receive straight into ``view``: read-ahead bytes first, then the socket, within the
-        resource's timeout."""
+        resource's timeout.
+
+        What has arrived is taken without waiting; once the rest must be waited for, the
+        socket's timeout stays set until the block is in, so a long block that arrives over
+        many receives does not switch it at each one.
+        """
         pending: bytearray = self.session._pending_buffer
         received = min(len(pending), len(view))
         view[:received] = pending[:received]
         del pending[:received]
         sock = self.socket
         deadline = time.monotonic() + self.timeout_s()
-        while received < len(view):
-            if time.monotonic() >= deadline:
-                raise InstrumentTimeout(
-                    f"{self.label}: block stalled after {received} of {len(view)} bytes"
-                )
-            rest = view[received:]
-            try:
-                count = self._socket_call(deadline, sock.recv_into, rest, 0)
-            except TimeoutError:
-                continue  # the deadline check above raises
-            if count == 0:
-                raise ConnectionLost(
-                    f"{self.label}: connection closed after {received} of {len(view)} bytes"
-                )
-            received += count
+        previous_timeout = sock.gettimeout()
+        waiting = not _DONTWAIT
+        try:
+            while received < len(view):
+                remaining_s = deadline - time.monotonic()
+                if remaining_s <= 0:
+                    raise InstrumentTimeout(
+                        f"{self.label}: block stalled after {received} of {len(view)} bytes"
+                    )
+                try:
+                    if waiting:
+                        sock.settimeout(None if math.isinf(remaining_s) else remaining_s)
+                        count = sock.recv_into(view[received:])
+                    else:
+                        count = sock.recv_into(view[received:], 0, _DONTWAIT)
+                except BlockingIOError:
+                    waiting = True
+                    continue
+                except TimeoutError:
+                    continue  # the deadline check above raises
+                if count == 0:
+                    raise ConnectionLost(
+                        f"{self.label}: connection closed after {received} of {len(view)} bytes"
+                    )
+                received += count
+        finally:
+            if waiting:
+                sock.settimeout(previous_timeout)
 
     def discard_input(self) -> None:
         """Read and drop what the peer has sent until it goes quiet or closes (pyvisa-py's

@@ -35,7 +35,7 @@ from sim_instruments.bench import SimBench
 from sim_instruments.flyback import DEMO_DUTS, load_dut
 
 #: Record length → (repeats, the largest median time ratio fetch / raw accepted).
-RECORDS = {100_000: (201, 2.0), 10_000_000: (31, 1 / 0.9)}
+RECORDS = {100_000: (401, 2.0), 10_000_000: (61, 1 / 0.9)}
 DATA_QUERY = b":WAVeform:DATA?\n"
 
 
