@@ -473,50 +473,49 @@ class ScpiInstrument:
         6.1.6.1.1 lets it discard the rest): a response that ends before every query answered
         is explained from the error queue, or refused as incomplete.
         """
-        message = ";".join([*queries, block_query, ERROR_QUERY])
+        message = ";".join((*queries, block_query, ERROR_QUERY))
         start = time.monotonic()
         tracing = trace_log.isEnabledFor(logging.DEBUG)
         if tracing:
             trace_log.debug("%s > %s", self.name, message)
         replies: list[str] = []
-        payload = memoryview(b"")
+        payload: memoryview | None = None
         error_reply: str | None = None
-        answered = 0  # replies received, the block included
         with self._translated(message):
             self.transport.write(message)
-            deadline = start + self._timeout_s()
-            ended = b";"
-            for query in queries:
+            deadline = start + self.transport.timeout_s()
+            for _ in queries:
                 unit, ended = self.transport.read_unit(message, deadline, MAX_TEXT_REPLY_BYTES)
-                reply = unit.decode("ascii").strip()
-                replies.append(self._without_header(query, reply) if self.reply_headers else reply)
-                answered += 1
+                replies.append(unit.decode("ascii").strip())
                 if ended != b";":
-                    break
-            if ended == b";":
+                    break  # the message ended early
+            else:
                 payload = self._read_block(message, last=False)
-                answered += 1
                 # After the block: ";" and the error query's reply, or the message's end.
                 rest = self.transport.read_message(message, deadline)
                 if rest[:1] == b";":
-                    error_reply = rest[1:].decode("ascii")
+                    error_reply = rest[1:].decode("ascii").strip()
                 elif rest.strip():
                     self.transport.discard_input()
                     raise BlockFormatError(
                         f"{self.label}: block reply to {message!r} continues with {rest[:1]!r} "
                         "after its announced length"
                     )
+        if self.reply_headers:
+            replies = [self._without_header(q, r) for q, r in zip(queries, replies, strict=False)]
         if tracing:
-            shown = [*replies, f"block of {len(payload)} bytes", (error_reply or "").strip()]
+            block_text = "no block" if payload is None else f"block of {len(payload)} bytes"
+            shown = ";".join([*replies, block_text, error_reply or ""])
             elapsed_ms = (time.monotonic() - start) * 1e3
-            trace_log.debug("%s < %s  (%.1f ms)", self.name, ";".join(shown), elapsed_ms)
-        if error_reply is None:
+            trace_log.debug("%s < %s  (%.1f ms)", self.name, shown, elapsed_ms)
+        if error_reply is None or payload is None:
             self.check_errors(message)
+            answered = len(replies) + (payload is not None)
             raise self.reply_error(
                 f"the response to {message!r} ended after {answered} of {len(queries) + 2} "
                 "replies, and the error queue is empty"
             )
-        self.check_errors(message, first_reply=error_reply.strip())
+        self.check_errors(message, first_reply=error_reply)
         return replies, payload
 
     def _read_block(self, command: str, *, last: bool) -> memoryview:
@@ -527,9 +526,8 @@ class ScpiInstrument:
         8.7.9). Otherwise what follows the block is left for the caller. A definite block is
         read straight into a preallocated buffer.
         """
-        termination = self.resource.read_termination
         try:
-            with self.transport.binary_reads():
+            with self.transport.binary_reads() as termination:
                 digit_count = block.length_digit_count(self._read_block_start(command))
                 if digit_count == 0:
                     if not last:

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import math
 import re
+import select
 import socket
 import time
 from collections.abc import Callable, Iterator
@@ -45,12 +46,11 @@ QUIET_S = 0.05
 
 TIMEOUT_CODES = {constants.StatusCode.error_timeout}
 #: The flag that makes one ``recv`` or ``send`` return at once rather than wait, where the
-#: platform has it (not Windows): bytes already received are then taken without switching the
-#: socket's timeout on and off around the call.
-_DONTWAIT = getattr(socket, "MSG_DONTWAIT", 0)
+#: platform has it (not Windows): bytes already received are then taken at once, and a wait for
+#: more is a ``poll``, without switching the socket's timeout on and off around each call.
+_DONTWAIT = getattr(socket, "MSG_DONTWAIT", 0) if hasattr(select, "poll") else 0
 
 T = TypeVar("T")
-_NOTHING_TO_SWITCH = nullcontext()
 
 #: What ends a response message unit: the unit separator ``;`` or a newline (the terminator),
 #: outside IEEE 488.2 string response data (8.7.8), which is double-quoted and may hold either.
@@ -87,14 +87,14 @@ class VisaTransport:
         return self.resource.timeout / 1000.0 if self.resource.timeout else math.inf
 
     @contextmanager
-    def binary_reads(self) -> Iterator[None]:
+    def binary_reads(self) -> Iterator[str | None]:
         """Line termination off while a block is read, so a ``0x0A`` byte inside its payload
-        does not end a ``viRead``."""
+        does not end a ``viRead``; yields the read termination in force before."""
         resource = self.resource
         saved_termination = resource.read_termination
         resource.read_termination = None
         try:
-            yield
+            yield saved_termination
         finally:
             resource.read_termination = saved_termination
 
@@ -214,6 +214,10 @@ class PyvisaPySocketTransport(VisaTransport):
         super().__init__(resource, label)
         self.session = session
         self.socket: socket.socket = session.interface
+        self._readable: Any = None  # a poll on the socket, where the platform has one
+        if _DONTWAIT:
+            self._readable = select.poll()
+            self._readable.register(self.socket, select.POLLIN)
 
     def tune(self) -> None:
         """Nagle off through pyvisa-py's own helper (0.8 registers no attribute setter)."""
@@ -224,9 +228,9 @@ class PyvisaPySocketTransport(VisaTransport):
         timeout = self.session.timeout
         return math.inf if timeout is None else timeout
 
-    def binary_reads(self) -> AbstractContextManager[None]:
+    def binary_reads(self) -> AbstractContextManager[str | None]:
         """Nothing to switch: these reads never stop at a termination character."""
-        return _NOTHING_TO_SWITCH
+        return nullcontext(self.resource.read_termination)
 
     def write(self, message: str) -> None:
         """Send the message and the write termination, encoded as PyVISA would, within the
@@ -236,7 +240,7 @@ class PyvisaPySocketTransport(VisaTransport):
         deadline = time.monotonic() + self.timeout_s()
         while data:
             try:
-                sent = self._socket_call(deadline, self.socket.send, data)
+                sent = self._waited(deadline, self.socket.send, data)
             except TimeoutError:
                 raise InstrumentTimeout(
                     f"{self.label}: could not send {message!r} within {self.timeout_s():g} s "
@@ -289,14 +293,14 @@ class PyvisaPySocketTransport(VisaTransport):
         del pending[: end + 1]
         return unit, separator
 
-    def _socket_call(self, deadline: float, operation: Callable[..., T], *args: Any) -> T:
+    def _waited(self, deadline: float, operation: Callable[..., T], *args: Any) -> T:
         """``operation(*args, flags)``, a socket call: at once where it need not wait, else
-        waiting until ``deadline`` at most (TimeoutError then)."""
+        waiting on the socket's timeout until ``deadline`` at most (TimeoutError then)."""
         if _DONTWAIT:
             try:
                 return operation(*args, _DONTWAIT)
             except BlockingIOError:
-                pass  # nothing yet: wait for it below
+                pass  # not at once: wait below
         sock = self.socket
         previous_timeout = sock.gettimeout()
         remaining_s = deadline - time.monotonic()
@@ -306,11 +310,27 @@ class PyvisaPySocketTransport(VisaTransport):
         finally:
             sock.settimeout(previous_timeout)
 
+    def _received(self, deadline: float, operation: Callable[..., T], *args: Any) -> T:
+        """A receive, ``operation(*args, flags)``: what has arrived at once, else waiting for
+        more in ``poll`` (where the platform has it) until ``deadline`` at most (TimeoutError
+        then), the socket left as it is."""
+        if self._readable is None:
+            return self._waited(deadline, operation, *args)
+        while True:
+            try:
+                return operation(*args, _DONTWAIT)
+            except BlockingIOError:
+                pass  # nothing yet
+            remaining_s = deadline - time.monotonic()
+            wait_ms = None if math.isinf(remaining_s) else math.ceil(remaining_s * 1e3)
+            if remaining_s <= 0 or not self._readable.poll(wait_ms):
+                raise TimeoutError
+
     def _receive(self, pending: bytearray, deadline: float, command: str, chunk_bytes: int) -> None:
         """Add what the socket has to ``pending`` (pyvisa-py's buffer), ``chunk_bytes`` at
         most, waiting for it until ``deadline`` at most: the caller checks the deadline."""
         try:
-            chunk = self._socket_call(deadline, self.socket.recv, chunk_bytes)
+            chunk = self._received(deadline, self.socket.recv, chunk_bytes)
         except TimeoutError:
             return
         if not chunk:
@@ -319,46 +339,27 @@ class PyvisaPySocketTransport(VisaTransport):
 
     def read_into(self, view: memoryview) -> None:
         """Receive straight into ``view``: read-ahead bytes first, then the socket, within the
-        resource's timeout.
-
-        What has arrived is taken without waiting; once the rest must be waited for, the
-        socket's timeout stays set until the block is in, so a long block that arrives over
-        many receives does not switch it at each one.
-        """
+        resource's timeout."""
         pending: bytearray = self.session._pending_buffer
         received = min(len(pending), len(view))
         view[:received] = pending[:received]
         del pending[:received]
         sock = self.socket
         deadline = time.monotonic() + self.timeout_s()
-        previous_timeout = sock.gettimeout()
-        waiting = not _DONTWAIT
-        try:
-            while received < len(view):
-                remaining_s = deadline - time.monotonic()
-                if remaining_s <= 0:
-                    raise InstrumentTimeout(
-                        f"{self.label}: block stalled after {received} of {len(view)} bytes"
-                    )
-                try:
-                    if waiting:
-                        sock.settimeout(None if math.isinf(remaining_s) else remaining_s)
-                        count = sock.recv_into(view[received:])
-                    else:
-                        count = sock.recv_into(view[received:], 0, _DONTWAIT)
-                except BlockingIOError:
-                    waiting = True
-                    continue
-                except TimeoutError:
-                    continue  # the deadline check above raises
-                if count == 0:
-                    raise ConnectionLost(
-                        f"{self.label}: connection closed after {received} of {len(view)} bytes"
-                    )
-                received += count
-        finally:
-            if waiting:
-                sock.settimeout(previous_timeout)
+        while received < len(view):
+            if time.monotonic() >= deadline:
+                raise InstrumentTimeout(
+                    f"{self.label}: block stalled after {received} of {len(view)} bytes"
+                )
+            try:
+                count = self._received(deadline, sock.recv_into, view[received:], 0)
+            except TimeoutError:
+                continue  # the deadline check above raises
+            if count == 0:
+                raise ConnectionLost(
+                    f"{self.label}: connection closed after {received} of {len(view)} bytes"
+                )
+            received += count
 
     def discard_input(self) -> None:
         """Read and drop what the peer has sent until it goes quiet or closes (pyvisa-py's

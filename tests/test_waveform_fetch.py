@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from instruments import transport
 from instruments.command_map import MAPS_DIR, load_command_map
 from instruments.errors import ReplyFormatError, ScpiError
 from instruments.roles import Oscilloscope
@@ -166,3 +167,17 @@ def test_one_message_and_separate_queries_give_the_same_volts(
     np.testing.assert_array_equal(variant.volts(), shipped.volts())
     np.testing.assert_array_equal(variant.time_s(), shipped.time_s())
     assert variant.codes.dtype == shipped.codes.dtype
+
+
+def test_the_socket_path_without_non_blocking_receives_reads_the_same(sim_bench, monkeypatch):
+    # Windows has neither MSG_DONTWAIT nor poll: every wait is then on the socket's timeout.
+    with Oscilloscope.open(sim_bench.resources["scope"]) as scope:
+        _capture(scope)
+        usual = scope.fetch_waveform(1)
+    monkeypatch.setattr(transport, "_DONTWAIT", 0)
+    with Oscilloscope.open(sim_bench.resources["scope"]) as scope:
+        assert isinstance(scope.transport, transport.PyvisaPySocketTransport)
+        assert scope.transport._readable is None
+        fallback = scope.fetch_waveform(1)
+        assert scope.transport.socket.gettimeout() is None  # left blocking, as pyvisa-py has it
+    np.testing.assert_array_equal(fallback.codes, usual.codes)
