@@ -46,6 +46,9 @@ QUIET_AFTER_INDEFINITE_BLOCK_MS = 50.0
 MAX_QUEUED_ERRORS = 64
 #: Longest header accepted before a block when the instrument sends headers with its replies.
 MAX_BLOCK_HEADER_BYTES = 64
+#: Room after a block's payload for what follows it (its newline, or ``;`` and an error-queue
+#: reply), taken in the same receive where the transport can.
+BLOCK_SPARE_BYTES = 64
 #: The SCPI error-queue query (SCPI-1999 vol. 2, 19.7): the oldest error, ``0,...`` when none.
 ERROR_QUERY = "SYST:ERR?"
 
@@ -541,8 +544,9 @@ class ScpiInstrument:
                 length = block.parse_length(self.transport.read_bytes(digit_count, command))
                 # np.empty maps pages only as bytes arrive: a garbled header announcing a
                 # gigabyte costs no more memory than what is actually received
-                payload = memoryview(np.empty(length, dtype=np.uint8))
-                self.transport.read_into(payload)
+                room = memoryview(np.empty(length + BLOCK_SPARE_BYTES, dtype=np.uint8))
+                self.transport.read_into(room, spare=BLOCK_SPARE_BYTES)
+                payload = room[:length]
                 if last:
                     self._read_block_end(command)
                 return payload

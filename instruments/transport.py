@@ -155,20 +155,23 @@ class VisaTransport:
             data += self.read_bytes(1, command)
         return bytes(data[:end]), bytes(data[end : end + 1])
 
-    def read_into(self, view: memoryview) -> None:
-        """Fill ``view`` with the next ``len(view)`` bytes, through ``viRead`` in large chunks
-        (one copy per chunk)."""
+    def read_into(self, view: memoryview, spare: int = 0) -> None:
+        """Fill ``view`` but its last ``spare`` bytes with the next bytes of the reply,
+        through ``viRead`` in large chunks (one copy per chunk). ``spare`` is room a transport
+        may use to take what follows in the same read; this one never reads past what it
+        needs."""
         resource = self.resource
+        needed = len(view) - spare
         received = 0
         # A full chunk is the normal case here, not a warning.
         with resource.ignore_warning(constants.StatusCode.success_max_count_read):
-            while received < len(view):
+            while received < needed:
                 chunk, _ = resource.visalib.read(
-                    resource.session, min(BLOCK_CHUNK_BYTES, len(view) - received)
+                    resource.session, min(BLOCK_CHUNK_BYTES, needed - received)
                 )
                 if not chunk:
                     raise BlockFormatError(
-                        f"{self.label}: block ended after {received} of {len(view)} bytes"
+                        f"{self.label}: block ended after {received} of {needed} bytes"
                     )
                 view[received : received + len(chunk)] = chunk
                 received += len(chunk)
@@ -337,19 +340,22 @@ class PyvisaPySocketTransport(VisaTransport):
             raise ConnectionLost(f"{self.label}: connection closed during the reply to {command!r}")
         pending += chunk
 
-    def read_into(self, view: memoryview) -> None:
+    def read_into(self, view: memoryview, spare: int = 0) -> None:
         """Receive straight into ``view``: read-ahead bytes first, then the socket, within the
-        resource's timeout."""
+        resource's timeout, until all but its last ``spare`` bytes are filled. The last
+        receive may run into the spare room (what follows a block usually comes with its last
+        bytes): what lands there goes back to the pending buffer, as read ahead."""
         pending: bytearray = self.session._pending_buffer
-        received = min(len(pending), len(view))
+        needed = len(view) - spare
+        received = min(len(pending), needed)
         view[:received] = pending[:received]
         del pending[:received]
         sock = self.socket
         deadline = time.monotonic() + self.timeout_s()
-        while received < len(view):
+        while received < needed:
             if time.monotonic() >= deadline:
                 raise InstrumentTimeout(
-                    f"{self.label}: block stalled after {received} of {len(view)} bytes"
+                    f"{self.label}: block stalled after {received} of {needed} bytes"
                 )
             try:
                 count = self._received(deadline, sock.recv_into, view[received:], 0)
@@ -357,9 +363,11 @@ class PyvisaPySocketTransport(VisaTransport):
                 continue  # the deadline check above raises
             if count == 0:
                 raise ConnectionLost(
-                    f"{self.label}: connection closed after {received} of {len(view)} bytes"
+                    f"{self.label}: connection closed after {received} of {needed} bytes"
                 )
             received += count
+        if received > needed:
+            pending += view[needed:received]  # pending was emptied above
 
     def discard_input(self) -> None:
         """Read and drop what the peer has sent until it goes quiet or closes (pyvisa-py's
