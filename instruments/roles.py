@@ -692,8 +692,8 @@ class Oscilloscope(MappedInstrument):
         return values
 
     def _fields(self, query: str, reply: str) -> dict[str, float]:
-        """The values in the reply to the fields query: in one match where it is well formed,
-        else field by field, to say which field is wrong."""
+        """The values in the reply to the fields query: all at once where every field is well
+        formed, else field by field, to say which one is wrong."""
         names = self.map.scaling_fields
         parts = reply.split(",")
         # Python's float() of ASCII text without underscores takes exactly the NRf forms

@@ -1,8 +1,8 @@
-"""How reply bytes are read from a VISA resource: a generic path for any VISA library, and a
-fast path for pyvisa-py's raw sockets.
+"""How messages are sent to a VISA resource and reply bytes read from it: a generic path for
+any VISA library, and a fast path for pyvisa-py's raw sockets.
 
-:class:`~instruments.scpi.ScpiInstrument` reads every reply through one of these strategies,
-chosen once when the session is opened (:func:`choose_transport`):
+:class:`~instruments.scpi.ScpiInstrument` sends every message and reads every reply through one
+of these strategies, chosen once when the session is opened (:func:`choose_transport`):
 
 * :class:`VisaTransport` uses only public VISA calls (``viRead`` in chunks, device clear), so it
   works with any VISA library: a vendor's, pyvisa-py's on any interface, or a simulated one;
@@ -10,8 +10,9 @@ chosen once when the session is opened (:func:`choose_transport`):
   socket. pyvisa-py's ``viRead`` copies every byte four times in calls of at most 4096 bytes, each
   behind a ``select``, which caps a 10 M-sample transfer far below what the socket delivers; here
   the bytes pyvisa-py has read ahead are taken first, then the socket receives into the caller's
-  buffer directly. It relies on pyvisa-py's session internals and is chosen only when they are
-  all present.
+  buffer directly, taking what has arrived without waiting and waiting in ``poll`` otherwise
+  (where the platform has both), and messages go out in one ``send``. It relies on pyvisa-py's
+  session internals and is chosen only when they are all present.
 """
 
 from __future__ import annotations
@@ -147,7 +148,7 @@ class VisaTransport:
 
     def read_unit(self, command: str, deadline: float, max_bytes: int) -> tuple[bytes, bytes]:
         """Read one response message unit of a reply to several queries, by ``deadline``:
-        its bytes, and what ended it (``b";"``: more units follow; ``b"\n"``: the message
+        its bytes, and what ended it (``b";"``: more units follow; ``b"\\n"``: the message
         ended). Byte by byte through ``viRead``: units read this way are short."""
         data = bytearray()
         while (end := find_unit_end(data)) < 0:
