@@ -19,7 +19,7 @@ import pytest
 
 from instruments import transport
 from instruments.command_map import MAPS_DIR, load_command_map
-from instruments.errors import ReplyFormatError, ScpiError
+from instruments.errors import CommandMapError, ReplyFormatError, ScpiError
 from instruments.roles import Oscilloscope
 from sim_instruments.bench import SimBench
 
@@ -181,3 +181,11 @@ def test_the_socket_path_without_non_blocking_receives_reads_the_same(sim_bench,
         fallback = scope.fetch_waveform(1)
         assert scope.transport.socket.gettimeout() is None  # left blocking, as pyvisa-py has it
     np.testing.assert_array_equal(fallback.codes, usual.codes)
+
+
+def test_the_map_key_is_checked(tmp_path):
+    path = _map_variant(tmp_path, "generic", "compound_queries = true", 'compound_queries = "yes"')
+    with pytest.raises(CommandMapError, match=r"line \d+, compound_queries: must be bool"):
+        load_command_map(path, "scope")
+    assert load_command_map("generic", "scope").compound_queries
+    assert not load_command_map("alt", "scope").compound_queries  # keeps separate queries
