@@ -75,7 +75,7 @@ def length_digit_count(prefix: bytes) -> int:
 
 def parse_length(digits: bytes) -> int:
     """Parse the ``<length>`` field of a definite block header (ASCII decimal digits only)."""
-    if not digits or not all(0x30 <= byte <= 0x39 for byte in digits):
+    if not bytes(digits).isdigit():  # ASCII digits only, and at least one
         raise BlockFormatError(f"block length field is not all digits: {bytes(digits)!r}")
     return int(digits)
 
@@ -126,10 +126,14 @@ def decode_payload(
     payload: bytes | bytearray | memoryview, data_format: str, byte_order: str = "big"
 ) -> np.ndarray:
     """Decode a payload into a native-endian numpy array (a view when no swap is needed)."""
-    dtype = payload_dtype(data_format, byte_order)
+    return decode_items(payload, payload_dtype(data_format, byte_order))
+
+
+def decode_items(payload: bytes | bytearray | memoryview, dtype: np.dtype) -> np.ndarray:
+    """:func:`decode_payload` with the item type already looked up (:func:`payload_dtype`)."""
     check_item_size(len(payload), dtype)
     values = np.frombuffer(payload, dtype=dtype)
-    return values.astype(dtype.newbyteorder("="), copy=False)
+    return values if dtype.isnative else values.astype(dtype.newbyteorder("="))
 
 
 def parse_block(

@@ -168,6 +168,7 @@ _COMMON_KEYS += ("commands", "words")
 _SCOPE_KEYS = ("channels", "vertical_divisions", "horizontal_divisions", "data_format")
 _SCOPE_KEYS += ("byte_order", "code_min", "code_max", "acquisition_done_reply")
 _SCOPE_KEYS += ("scaling_fields", "scaling_queries", "scaling_values", "limits")
+_SCOPE_KEYS += ("compound_queries",)
 _COMMAND_TABLE_KEYS = ("command", "query", "scale", "table", "convert")
 
 
@@ -201,7 +202,10 @@ class CommandSpec:
 class CommandMap:
     """A validated command map of one role. Build one with :func:`load_command_map`.
 
-    The scope-only fields keep their defaults in the maps of other roles.
+    The scope-only fields keep their defaults in the maps of other roles. ``compound_queries``
+    says the scope takes several queries in one program message and answers them in one
+    response message (IEEE 488.2 7.4.1 and 8.4.1), so a waveform's scaling, data and error
+    check cost one round trip.
     """
 
     role: str
@@ -221,6 +225,7 @@ class CommandMap:
     code_min: float = -128
     code_max: float = 127
     acquisition_done_reply: str = "1"
+    compound_queries: bool = False
     scaling_fields: tuple[str, ...] = ()
     scaling_queries: Mapping[str, str] = field(default_factory=dict)
     scaling_values: Mapping[str, float] = field(default_factory=dict)
@@ -561,6 +566,7 @@ class _Validator:
         values["data_format"] = self.choice(document, "data_format", WAVEFORM_FORMATS)
         values["byte_order"] = self.choice(document, "byte_order", tuple(BYTE_ORDERS), "big")
         values["acquisition_done_reply"] = self.done_reply(document)
+        values["compound_queries"] = self.flag(document, "compound_queries", False)
         values.update(self.scaling(document, specs))
         values["limits"] = self.limits(document.get("limits", {}))
         return {key: value for key, value in values.items() if value is not None}

@@ -11,19 +11,26 @@ from __future__ import annotations
 import math
 import time
 from abc import ABC, abstractmethod
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from pyvisa.resources import MessageBasedResource
 
-from instruments.block import decode_payload, parse_ascii_values, signed_codes
+from instruments.block import (
+    decode_items,
+    decode_payload,
+    parse_ascii_values,
+    payload_dtype,
+    signed_codes,
+)
 from instruments.command_map import (
     ROLE_COMMANDS,
     CommandMap,
     load_command_map,
 )
-from instruments.errors import CommandMapError, InstrumentTimeout, LimitError, ReplyFormatError
+from instruments.errors import CommandMapError, InstrumentTimeout, LimitError
 from instruments.limits import (
     LoadLimits,
     SourceLimits,
@@ -100,9 +107,18 @@ class MappedInstrument(ScpiInstrument):
 
     def apply(self, key: str, value: Any = None, *, channel: int | None = None) -> None:
         """Send setting or action ``key`` with ``value`` (encoded as the map says), checked
-        through the error queue."""
+        through the error queue.
+
+        A setting drops the known settings (on some instruments one setting moves others: a
+        new record length can reset a transfer range); an action (arm, stop, trigger) keeps
+        them.
+        """
         text = None if value is None else self.encode(key, value)
-        self.configure(self.map.command(key, channel=channel, value=text))
+        command = self.map.command(key, channel=channel, value=text)
+        if ROLE_COMMANDS[self.role][key].kind == "action":
+            self._configure(command)
+        else:
+            self.configure(command)
 
     def _word(self, group: str, name: str) -> str:
         """Map one of our words (e.g. slope "rising") to this instrument's keyword, or refuse
@@ -125,7 +141,7 @@ class MappedInstrument(ScpiInstrument):
                 return entry
         value = parse_number(reply)
         if value is None:
-            raise ReplyFormatError(f"{self.label}: reply {reply!r} to {command!r} is not a number")
+            raise self.reply_error(f"reply {reply!r} to {command!r} is not a number")
         return value / spec.scale
 
     def read_number(self, key: str, *, channel: int | None = None) -> float:
@@ -142,9 +158,9 @@ class MappedInstrument(ScpiInstrument):
             return True
         if reply in ("0", "OFF", words["off"].upper()):
             return False
-        raise ReplyFormatError(
-            f"{self.label}: reply {reply!r} to {command!r} is neither {words['on']!r} nor "
-            f"{words['off']!r} (nor 1 or 0)"
+        raise self.reply_error(
+            f"reply {reply!r} to {command!r} is neither {words['on']!r} nor {words['off']!r} "
+            "(nor 1 or 0)"
         )
 
 
@@ -363,6 +379,20 @@ class Oscilloscope(MappedInstrument):
         #: The record's duration once the timebase is set (a trigger position in seconds
         #: needs it).
         self.record_duration_s: float | None = None
+        # Rendered once: every fetch sends them.
+        fields = self.map.scaling_fields
+        fields_query = ["waveform_scaling_query"] if fields else []
+        self._scaling_queries = tuple(
+            [self.map.command(key) for key in fields_query] + [*self.map.scaling_queries.values()]
+        )
+        self._transfer_commands: dict[int, dict[str, str]] = {}
+        self._numeric_fields = [(index, name) for index, name in enumerate(fields) if name != "_"]
+        self._data_query = self.map.command("waveform_data_query")
+        self._payload_dtype = (
+            None
+            if self.map.data_format == "ascii"
+            else payload_dtype(self.map.data_format, self.map.byte_order)
+        )
 
     def _channel(self, channel: int) -> int:
         return check_count("scope channel", channel, 1, self.map.channels)
@@ -502,8 +532,8 @@ class Oscilloscope(MappedInstrument):
         if reply == self.map.acquisition_done_reply:
             return True
         if not is_response_token(reply):
-            raise ReplyFormatError(
-                f"{self.label}: reply {reply!r} to {query!r} is neither "
+            raise self.reply_error(
+                f"reply {reply!r} to {query!r} is neither "
                 f"{self.map.acquisition_done_reply!r} nor a SCPI status value"
             )
         return False
@@ -524,44 +554,83 @@ class Oscilloscope(MappedInstrument):
         while not self.acquisition_done():
             if time.monotonic() >= deadline:
                 self.stop()
+                self.forget_settings()
                 raise InstrumentTimeout(
                     f"{self.label}: trigger did not fire within {timeout_s:g} s"
                 )
             time.sleep(poll_interval_s)
 
-    def select_waveform(self, channel: int) -> None:
-        """Select ``channel`` for transfer, with the map's format and byte order where it can
-        set them (one error-queue read for all: each costs a round trip)."""
+    def transfer_settings(self, channel: int) -> dict[str, str]:
+        """The commands that select ``channel`` for transfer in the map's format and byte order,
+        by setting key (format and byte order where the map can set them)."""
+        if channel in self._transfer_commands:
+            return self._transfer_commands[channel]
         data_format, byte_order = self.map.data_format, self.map.byte_order
-        commands = [self.map.command("waveform_source", channel=channel)]
+        commands = {"waveform_source": self.map.command("waveform_source", channel=channel)}
         if self.has("waveform_format"):
             word = self.map.word("data_format", data_format)
-            commands.append(self.map.command("waveform_format", value=word))
+            commands["waveform_format"] = self.map.command("waveform_format", value=word)
         if self.has("waveform_byte_order") and data_format not in ("int8", "uint8", "ascii"):
             word = self.map.word("byte_order", byte_order)
-            commands.append(self.map.command("waveform_byte_order", value=word))
-        self.configure(*commands)
+            commands["waveform_byte_order"] = self.map.command("waveform_byte_order", value=word)
+        self._transfer_commands[channel] = commands
+        return commands
+
+    def select_waveform(self, channel: int) -> None:
+        """Select ``channel`` for transfer, with the map's format and byte order where it can
+        set them (one error-queue read for all: each costs a round trip).
+
+        Nothing is sent when this session last set exactly these and nothing since can have
+        changed them (:attr:`~instruments.scpi.ScpiInstrument.known_settings`); when any one
+        differs, all are sent again, in order, so a scope that resets its format on a new
+        source still gets the right one.
+        """
+        self._select(self._channel(channel))
+
+    def _select(self, channel: int) -> None:
+        commands = self.transfer_settings(channel)
+        if commands.items() <= self.known_settings.items():
+            return
+        self._configure(*commands.values())
+        self.known_settings.update(commands)
 
     def fetch_waveform(self, channel: int) -> Waveform:
         """Transfer the last capture of ``channel`` with its scaling.
 
+        The transfer settings are sent only when they changed (:meth:`select_waveform`); the
+        scaling is read with every fetch, never remembered: it follows the capture. With
+        ``compound_queries`` in the map (and a binary format) the scaling queries, the data
+        query and the error-queue query go in one message, one round trip; otherwise each is
+        a query of its own. Either way an error the instrument queued during the fetch is
+        raised as :class:`~instruments.errors.ScpiError`.
+
         Unsigned codes are returned as the signed codes of the same width, with the reference
         and the code limits moved to match (:func:`~instruments.block.signed_codes`).
         """
-        channel = self._channel(channel)
-        self.select_waveform(channel)
-        scaling = self.read_scaling()
-        codes, shift = signed_codes(self.read_codes())
+        self._select(self._channel(channel))
+        if self.map.compound_queries and self._payload_dtype is not None:
+            replies, payload = self.query_with_block(self._scaling_queries, self._data_query)
+            scaling = self.scaling_from(replies)
+            raw_codes = decode_items(payload, self._payload_dtype)
+        else:
+            scaling = self.read_scaling()
+            raw_codes = self.read_codes()
+            self.check_errors(self._data_query)
+        return self._waveform(scaling, raw_codes)
+
+    def _waveform(self, scaling: dict[str, float], raw_codes: np.ndarray) -> Waveform:
+        """A :class:`Waveform` from the codes as sent and their scaling, both checked."""
+        codes, shift = signed_codes(raw_codes)
         points = scaling.get("points")
         if points is not None and points != codes.size:
-            raise ReplyFormatError(
-                f"{self.label}: scaling announces {points:g} points, the block held {codes.size}"
+            raise self.reply_error(
+                f"scaling announces {points:g} points, the block held {codes.size}"
             )
         if scaling["x_increment"] <= 0 or scaling["y_increment"] == 0:
-            raise ReplyFormatError(
-                f"{self.label}: scaling gives a sample interval of {scaling['x_increment']:g} s "
-                f"and {scaling['y_increment']:g} V per code; both must be non-zero, the "
-                "interval positive"
+            raise self.reply_error(
+                f"scaling gives a sample interval of {scaling['x_increment']:g} s and "
+                f"{scaling['y_increment']:g} V per code; both must be non-zero, the interval "
+                "positive"
             )
         x_origin_s = scaling.get("x_origin", 0.0)
         x_origin_s -= scaling.get("x_reference", 0.0) * scaling["x_increment"]
@@ -594,33 +663,60 @@ class Oscilloscope(MappedInstrument):
             self.check_errors(query)
         return decode_payload(payload, self.map.data_format, self.map.byte_order)
 
+    def scaling_queries(self) -> tuple[str, ...]:
+        """The queries that read the scaling, in order: the one whose reply holds the map's
+        ``scaling_fields``, then one per field of ``[scaling_queries]``."""
+        return self._scaling_queries
+
     def read_scaling(self) -> dict[str, float]:
-        """The scaling values of the selected waveform, from wherever the map says each comes:
-        fields of one reply (text fields skipped by name ``_``), queries of their own, or
-        constants."""
-        values = dict(self.map.scaling_values)
-        names = self.map.scaling_fields
-        if names:
-            query = self.map.command("waveform_scaling_query")
-            parts = self.query(query, max_bytes=MAX_ASCII_WAVEFORM_BYTES).split(",")
-            if len(parts) != len(names):
-                raise ReplyFormatError(
-                    f"{self.label}: {query!r} answered {len(parts)} fields, the "
-                    f"{self.map.family!r} map expects {len(names)} ({', '.join(names)})"
-                )
-            for name, part in zip(names, parts, strict=True):
-                if name != "_":
-                    values[name] = self._scaling_number(query, name, part)
-        for name, query in self.map.scaling_queries.items():
-            values[name] = self._scaling_number(query, name, self.query(query))
+        """The scaling values of the selected waveform, each query of
+        :meth:`scaling_queries` asked on its own."""
+        return self.scaling_from([self.query(query) for query in self.scaling_queries()])
+
+    def scaling_from(self, replies: Sequence[str]) -> dict[str, float]:
+        """The scaling values from the replies to :meth:`scaling_queries`, wherever the map
+        says each comes from: fields of one reply (text fields skipped by name ``_``), replies
+        of their own, or constants."""
+        queries = self._scaling_queries
+        first = 1 if self.map.scaling_fields else 0
+        values = self._fields(queries[0], replies[0]) if first else {}
+        values.update(self.map.scaling_values)  # each value comes from one place only
+        if self.map.scaling_queries:
+            own = zip(self.map.scaling_queries, queries[first:], replies[first:], strict=True)
+            for name, query, reply in own:
+                values[name] = self._scaling_number(query, name, reply)
         return values
+
+    def _fields(self, query: str, reply: str) -> dict[str, float]:
+        """The values in the reply to the fields query: all at once where every field is well
+        formed, else field by field, to say which one is wrong."""
+        names = self.map.scaling_fields
+        parts = reply.split(",")
+        # Python's float() of ASCII text without underscores takes exactly the NRf forms
+        # (IEEE 488.2 7.7.2) with spaces around, and the INF and NAN keywords, refused below.
+        if len(parts) == len(names) and reply.isascii() and "_" not in reply:
+            try:
+                values = {name: float(parts[index]) for index, name in self._numeric_fields}
+            except ValueError:
+                values = {}
+            if values and all(map(math.isfinite, values.values())):
+                return values
+        if len(parts) != len(names):
+            raise self.reply_error(
+                f"{query!r} answered {len(parts)} fields, the {self.map.family!r} map "
+                f"expects {len(names)} ({', '.join(names)})"
+            )
+        return {
+            name: self._scaling_number(query, name, part)
+            for name, part in zip(names, parts, strict=True)
+            if name != "_"
+        }
 
     def _scaling_number(self, query: str, name: str, text: str) -> float:
         value = parse_number(text)
         if value is None or not math.isfinite(value):
-            raise ReplyFormatError(
-                f"{self.label}: {name} in the reply to {query!r} is {text.strip()!r}, not a "
-                "finite number"
+            raise self.reply_error(
+                f"{name} in the reply to {query!r} is {text.strip()!r}, not a finite number"
             )
         return value
 

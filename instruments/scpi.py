@@ -12,8 +12,8 @@ import logging
 import math
 import re
 import time
-from collections.abc import Iterator
-from contextlib import contextmanager, suppress
+from collections.abc import Sequence
+from contextlib import suppress
 from dataclasses import dataclass
 from typing import Any, ClassVar, Self
 
@@ -46,6 +46,11 @@ QUIET_AFTER_INDEFINITE_BLOCK_MS = 50.0
 MAX_QUEUED_ERRORS = 64
 #: Longest header accepted before a block when the instrument sends headers with its replies.
 MAX_BLOCK_HEADER_BYTES = 64
+#: Room after a block's payload for what follows it (its newline, or ``;`` and an error-queue
+#: reply), taken in the same receive where the transport can.
+BLOCK_SPARE_BYTES = 64
+#: The SCPI error-queue query (SCPI-1999 vol. 2, 19.7): the oldest error, ``0,...`` when none.
+ERROR_QUERY = "SYST:ERR?"
 
 #: Every SCPI exchange is logged here at DEBUG level: the command sent, the reply received and
 #: how long it took. ``--trace FILE`` on a bench command writes this logger to FILE.
@@ -163,12 +168,42 @@ def is_response_token(text: str) -> bool:
     return parse_number(text) is not None or _MNEMONIC.fullmatch(text.strip()) is not None
 
 
+class _Translated:
+    """The context of :meth:`ScpiInstrument._translated` (a class: it wraps every exchange,
+    and a generator-based context manager costs several times as much)."""
+
+    __slots__ = ("instrument", "command")
+
+    def __init__(self, instrument: ScpiInstrument, command: str) -> None:
+        self.instrument = instrument
+        self.command = command
+
+    def __enter__(self) -> None:
+        return None
+
+    def __exit__(self, kind: object, error: BaseException | None, traceback: object) -> bool:
+        if error is None:
+            return False
+        self.instrument.forget_settings()
+        translated = self.instrument._translate(error, self.command)
+        if translated is None:
+            return False  # raised as it is
+        raise translated from None
+
+
 class ScpiInstrument:
     """An SCPI instrument over a PyVISA message-based resource.
 
     Every error leaving this class is an :class:`InstrumentError` naming the instrument (its
     name and resource) and the command: VISA timeouts become :class:`InstrumentTimeout`, a
     dropped connection :class:`ConnectionLost`, an unparsable reply :class:`ReplyFormatError`.
+
+    :attr:`known_settings` holds settings a role last set successfully on this session, so it
+    can leave out sending them again (the scope's transfer settings). The driver assumes it is
+    the instrument's only client, as the bench locks make it on a real bench; within that, the
+    record is dropped whenever the driver can no longer vouch for it: on any error, on ``*RST``,
+    on any command sent through :meth:`write` or :meth:`configure` (they may change anything),
+    and when the session is closed or abandoned.
     """
 
     role: ClassVar[str] = "instrument"
@@ -182,6 +217,8 @@ class ScpiInstrument:
         self.name = name or self.role
         self.resource_name: str = resource.resource_name  # kept for messages after close()
         self._closed = False
+        #: Setting key → the command that set it, for settings known to be in effect.
+        self.known_settings: dict[str, str] = {}
         self.transport: VisaTransport = choose_transport(resource, self.label)
         self.transport.tune()
 
@@ -217,31 +254,42 @@ class ScpiInstrument:
 
     # -- plumbing -------------------------------------------------------------------------
 
-    @contextmanager
-    def _translated(self, command: str) -> Iterator[None]:
-        """Turn VISA and socket failures during ``command`` into driver errors."""
-        try:
-            yield
-        except pyvisa.errors.VisaIOError as error:
+    def forget_settings(self) -> None:
+        """Drop :attr:`known_settings`: whatever was set is sent again before it is relied on."""
+        self.known_settings.clear()
+
+    def reply_error(self, text: str) -> ReplyFormatError:
+        """A :class:`ReplyFormatError` naming this instrument; a reply that does not parse is
+        an error like any other, so the known settings are dropped."""
+        self.forget_settings()
+        return ReplyFormatError(f"{self.label}: {text}")
+
+    def _translated(self, command: str) -> _Translated:
+        """Turn VISA and socket failures during ``command`` into driver errors; after any
+        failure the known settings are dropped (the session is in an unknown state)."""
+        return _Translated(self, command)
+
+    def _translate(self, error: BaseException, command: str) -> InstrumentError | None:
+        """The driver error for a VISA or socket failure during ``command``, else None."""
+        if isinstance(error, pyvisa.errors.VisaIOError):
             if error.error_code in TIMEOUT_CODES:
-                raise InstrumentTimeout(
+                return InstrumentTimeout(
                     f"{self.label}: no reply within {self.resource.timeout / 1000:g} s "
                     f"to {command!r}"
-                ) from None
+                )
             if error.error_code in _CONNECTION_CODES:
-                raise ConnectionLost(f"{self.label}: connection lost during {command!r}") from None
-            raise InstrumentError(f"{self.label}: {error} during {command!r}") from None
-        except OSError as error:  # pyvisa-py lets socket errors through
-            raise ConnectionLost(
-                f"{self.label}: connection lost during {command!r} ({error})"
-            ) from None
-        except pyvisa.errors.InvalidSession:
-            raise ConnectionLost(f"{self.label}: session closed before {command!r}") from None
-        except UnicodeDecodeError as error:  # binary bytes where a text reply was expected
-            raise ReplyFormatError(
+                return ConnectionLost(f"{self.label}: connection lost during {command!r}")
+            return InstrumentError(f"{self.label}: {error} during {command!r}")
+        if isinstance(error, OSError):  # pyvisa-py lets socket errors through
+            return ConnectionLost(f"{self.label}: connection lost during {command!r} ({error})")
+        if isinstance(error, pyvisa.errors.InvalidSession):
+            return ConnectionLost(f"{self.label}: session closed before {command!r}")
+        if isinstance(error, UnicodeDecodeError):  # binary bytes where text was expected
+            return ReplyFormatError(
                 f"{self.label}: reply to {command!r} is not text ({error.reason} at byte "
                 f"{error.start}); the session may hold the rest of an earlier reply"
-            ) from None
+            )
+        return None
 
     def _timeout_s(self) -> float:
         return self.transport.timeout_s()
@@ -249,10 +297,15 @@ class ScpiInstrument:
     # -- messages -------------------------------------------------------------------------
 
     def write(self, command: str) -> None:
-        """Send one program message, unchecked (see :meth:`configure`)."""
+        """Send one program message, unchecked (see :meth:`configure`). It may change any
+        setting, so the known settings are dropped."""
+        self.forget_settings()
+        self._send(command)
+
+    def _send(self, command: str) -> None:
         trace_log.debug("%s > %s", self.name, command)
         with self._translated(command):
-            self.resource.write(command)
+            self.transport.write(command)
 
     def query(self, command: str, *, max_bytes: int = MAX_TEXT_REPLY_BYTES) -> str:
         """Send a query and return its reply without the line terminator (nor the header an
@@ -261,13 +314,18 @@ class ScpiInstrument:
         start = time.monotonic()
         trace_log.debug("%s > %s", self.name, command)
         with self._translated(command):
-            self.resource.write(command)
+            self.transport.write(command)
             deadline = start + self._timeout_s()
             reply = self.transport.read_message(command, deadline, max_bytes).decode("ascii")
             reply = reply.strip()
         trace_log.debug("%s < %s  (%.1f ms)", self.name, reply, (time.monotonic() - start) * 1e3)
-        if self.reply_headers and not command.lstrip().startswith("*"):
-            reply = strip_reply_header(reply)
+        return self._without_header(command, reply)
+
+    def _without_header(self, query: str, reply: str) -> str:
+        """``reply`` to ``query`` without the header an instrument with :attr:`reply_headers`
+        puts first (replies to common queries such as ``*IDN?`` carry none)."""
+        if self.reply_headers and not query.lstrip().startswith("*"):
+            return strip_reply_header(reply)
         return reply
 
     def query_float(self, command: str) -> float:
@@ -275,7 +333,7 @@ class ScpiInstrument:
         reply = self.query(command)
         value = parse_number(reply)
         if value is None:
-            raise ReplyFormatError(f"{self.label}: reply {reply!r} to {command!r} is not a number")
+            raise self.reply_error(f"reply {reply!r} to {command!r} is not a number")
         return value
 
     def query_bool(self, command: str) -> bool:
@@ -286,7 +344,7 @@ class ScpiInstrument:
             return True
         if normal in ("0", "OFF"):
             return False
-        raise ReplyFormatError(f"{self.label}: reply {reply!r} to {command!r} is not 1 or 0")
+        raise self.reply_error(f"reply {reply!r} to {command!r} is not 1 or 0")
 
     def query_floats(self, command: str) -> list[float]:
         """Send a query whose reply is comma-separated numbers."""
@@ -294,28 +352,35 @@ class ScpiInstrument:
         parsed = [parse_number(item) for item in reply.split(",")]
         values = [value for value in parsed if value is not None]
         if len(values) != len(parsed):
-            raise ReplyFormatError(
-                f"{self.label}: reply {reply!r} to {command!r} is not a list of numbers"
-            )
+            raise self.reply_error(f"reply {reply!r} to {command!r} is not a list of numbers")
         if not all(math.isfinite(value) for value in values):
-            raise ReplyFormatError(f"{self.label}: reply {reply!r} to {command!r} is not finite")
+            raise self.reply_error(f"reply {reply!r} to {command!r} is not finite")
         return values
 
-    def check_errors(self, command: str) -> None:
+    def check_errors(self, command: str, first_reply: str | None = None) -> None:
         """Drain the error queue (``SYSTem:ERRor?``, SCPI-1999 vol. 2 ch. 19.7).
 
-        Reads until ``0,...``; the first error found is raised as :class:`ScpiError` with its
-        code, its message and ``command``, the command that caused it. The loop is bounded.
+        Reads until ``0,...``, starting from ``first_reply`` where the caller has already read
+        one entry; the first error found is raised as :class:`ScpiError` with its code, its
+        message and ``command``, the command that caused it. The loop is bounded.
         """
+        if first_reply is not None and first_reply.startswith("0,"):
+            return  # 0,"No error": the usual case, read at once
         first: tuple[int, str] | None = None
+        reply = first_reply
         for _ in range(MAX_QUEUED_ERRORS):
-            code, message = self._parse_error(self.query("SYST:ERR?"))
+            if reply is None:
+                reply = self.query(ERROR_QUERY)
+            code, message = self._parse_error(reply)
+            reply = None
             if code == 0:
                 if first is not None:
+                    self.forget_settings()
                     raise ScpiError(self.label, command, *first)
                 return
             if first is None:
                 first = (code, message)
+        self.forget_settings()
         raise InstrumentError(
             f"{self.label}: error queue still not empty after {MAX_QUEUED_ERRORS} reads "
             f"following {command!r}"
@@ -326,8 +391,8 @@ class ScpiInstrument:
         # an instrument whose *RST turned them on must still be able to report errors.
         code_text, comma, message = strip_reply_header(reply).partition(",")
         if not comma or not _ERROR_CODE.fullmatch(code_text.strip()):
-            raise ReplyFormatError(
-                f"{self.label}: SYST:ERR? reply {reply!r} does not start with an error code"
+            raise self.reply_error(
+                f"{ERROR_QUERY} reply {reply!r} does not start with an error code"
             )
         return int(code_text), message.strip().strip('"')
 
@@ -335,17 +400,27 @@ class ScpiInstrument:
         """Send configuration commands and raise any error they queued.
 
         Several commands are sent back to back and checked with one error-queue read; an error
-        then names all of them, in the order sent.
+        then names all of them, in the order sent. They may change any setting, so the known
+        settings are dropped.
         """
+        self.forget_settings()
+        self._configure(*commands)
+
+    def _configure(self, *commands: str) -> None:
+        """:meth:`configure` for commands whose effect the caller records itself."""
         for command in commands:
-            self.write(command)
+            self._send(command)
         self.check_errors(" ; ".join(commands))
 
     # -- IEEE 488.2 common commands -------------------------------------------------------
 
     def identify(self) -> Identity:
         """Ask ``*IDN?`` and parse it (IEEE 488.2 10.14)."""
-        return Identity.parse(self.query("*IDN?"))
+        try:
+            return Identity.parse(self.query("*IDN?"))
+        except ReplyFormatError:
+            self.forget_settings()
+            raise
 
     def reset(self) -> None:
         """``*RST``: the instrument's reset state (IEEE 488.2 10.32)."""
@@ -364,29 +439,11 @@ class ScpiInstrument:
         payload does not end a read; a definite block is read straight into a preallocated
         buffer in large chunks. An indefinite (``#0``) block is read up to the final newline.
         """
-        resource = self.resource
-        saved_termination = resource.read_termination
         start = time.monotonic()
         trace_log.debug("%s > %s", self.name, command)
         with self._translated(command):
-            resource.write(command)
-            resource.read_termination = None
-            try:
-                digit_count = block.length_digit_count(self._read_block_start(command))
-                if digit_count == 0:
-                    payload = self._read_indefinite_payload(command, saved_termination)
-                else:
-                    length = block.parse_length(resource.read_bytes(digit_count))
-                    # np.empty maps pages only as bytes arrive: a garbled header announcing a
-                    # gigabyte costs no more memory than what is actually received
-                    payload = memoryview(np.empty(length, dtype=np.uint8))
-                    self.transport.read_into(payload)
-                    self._read_trailer(command)
-            except BlockFormatError:
-                self.transport.discard_input()  # drop the rest of the malformed reply
-                raise
-            finally:
-                resource.read_termination = saved_termination
+            self.transport.write(command)
+            payload = self._read_block(command, last=True)
         trace_log.debug(
             "%s < block of %d bytes  (%.1f ms)",
             self.name,
@@ -395,10 +452,106 @@ class ScpiInstrument:
         )
         return payload
 
+    def query_with_block(
+        self, queries: Sequence[str], block_query: str
+    ) -> tuple[list[str], memoryview]:
+        """Send ``queries``, then ``block_query``, then the error-queue query, as one program
+        message, and read the one response message that answers them all: one round trip.
+
+        IEEE 488.2 lets a program message carry several queries separated by ``;`` (7.4.1)
+        and answers them in one response message, the replies separated by ``;`` (8.4.1),
+        in the order asked; only an instrument whose map says it does so is sent one. Returns
+        the replies to ``queries`` (without their headers) and the block's payload.
+
+        The error query comes last, so it reports what the queries themselves queued (the
+        queue is empty before, as every configuration step drains it); an error there is
+        raised as :class:`ScpiError` naming the whole message, after the rest of the queue is
+        drained. An instrument stops executing a message at a command that fails (IEEE 488.2
+        6.1.6.1.1 lets it discard the rest): a response that ends before every query answered
+        is explained from the error queue, or refused as incomplete.
+        """
+        message = ";".join((*queries, block_query, ERROR_QUERY))
+        start = time.monotonic()
+        tracing = trace_log.isEnabledFor(logging.DEBUG)
+        if tracing:
+            trace_log.debug("%s > %s", self.name, message)
+        replies: list[str] = []
+        payload: memoryview | None = None
+        error_reply: str | None = None
+        with self._translated(message):
+            self.transport.write(message)
+            deadline = start + self.transport.timeout_s()
+            for _ in queries:
+                unit, ended = self.transport.read_unit(message, deadline, MAX_TEXT_REPLY_BYTES)
+                replies.append(unit.decode("ascii").strip())
+                if ended != b";":
+                    break  # the message ended early
+            else:
+                payload = self._read_block(message, last=False)
+                # After the block: ";" and the error query's reply, or the message's end.
+                rest = self.transport.read_message(message, deadline)
+                if rest[:1] == b";":
+                    error_reply = rest[1:].decode("ascii").strip()
+                elif rest.strip():
+                    self.transport.discard_input()
+                    raise BlockFormatError(
+                        f"{self.label}: block reply to {message!r} continues with {rest[:1]!r} "
+                        "after its announced length"
+                    )
+        if self.reply_headers:
+            replies = [self._without_header(q, r) for q, r in zip(queries, replies, strict=False)]
+        if tracing:
+            block_text = "no block" if payload is None else f"block of {len(payload)} bytes"
+            shown = ";".join([*replies, block_text, error_reply or ""])
+            elapsed_ms = (time.monotonic() - start) * 1e3
+            trace_log.debug("%s < %s  (%.1f ms)", self.name, shown, elapsed_ms)
+        if error_reply is None or payload is None:
+            self.check_errors(message)
+            answered = len(replies) + (payload is not None)
+            raise self.reply_error(
+                f"the response to {message!r} ended after {answered} of {len(queries) + 2} "
+                "replies, and the error queue is empty"
+            )
+        self.check_errors(message, first_reply=error_reply)
+        return replies, payload
+
+    def _read_block(self, command: str, *, last: bool) -> memoryview:
+        """Read one block reply unit and return its payload.
+
+        ``last``: the block ends the response message, and the newline after it is consumed;
+        an indefinite block is taken only then, as it always ends its message (IEEE 488.2
+        8.7.9). Otherwise what follows the block is left for the caller. A definite block is
+        read straight into a preallocated buffer.
+        """
+        try:
+            with self.transport.binary_reads() as termination:
+                digit_count = block.length_digit_count(self._read_block_start(command))
+                if digit_count == 0:
+                    if not last:
+                        raise BlockFormatError(
+                            f"{self.label}: an indefinite (#0) block in the reply to "
+                            f"{command!r}: it ends the response message (IEEE 488.2 8.7.9), so "
+                            "it cannot be asked with other queries; set compound_queries = "
+                            "false in the map"
+                        )
+                    return self._read_indefinite_payload(command, termination)
+                length = block.parse_length(self.transport.read_bytes(digit_count, command))
+                # np.empty maps pages only as bytes arrive: a garbled header announcing a
+                # gigabyte costs no more memory than what is actually received
+                room = memoryview(np.empty(length + BLOCK_SPARE_BYTES, dtype=np.uint8))
+                self.transport.read_into(room, spare=BLOCK_SPARE_BYTES)
+                payload = room[:length]
+                if last:
+                    self._read_block_end(command)
+                return payload
+        except BlockFormatError:
+            self.transport.discard_input()  # drop the rest of the malformed reply
+            raise
+
     def _read_block_start(self, command: str) -> bytes:
         """The ``#`` and digit count that open a block. An instrument that sends headers with
         its replies puts the header and a space before them: that is skipped."""
-        start = self.resource.read_bytes(2)
+        start = self.transport.read_bytes(2, command)
         if start[:1] == b"#" or not self.reply_headers:
             return start
         skipped = bytearray(start)
@@ -408,14 +561,14 @@ class ScpiInstrument:
                     f"{self.label}: no block after {bytes(skipped[:40])!r} in the reply to "
                     f"{command!r}"
                 )
-            skipped += self.resource.read_bytes(1)
-        return b"#" + self.resource.read_bytes(1)
+            skipped += self.transport.read_bytes(1, command)
+        return b"#" + self.transport.read_bytes(1, command)
 
-    def _read_trailer(self, command: str) -> None:
+    def _read_block_end(self, command: str) -> None:
         """Consume the newline that ends a block reply (a CR before it is tolerated)."""
-        trailer = self.resource.read_bytes(1)
+        trailer = self.transport.read_bytes(1, command)
         if trailer == b"\r":
-            trailer = self.resource.read_bytes(1)
+            trailer = self.transport.read_bytes(1, command)
         if trailer != b"\n":
             raise BlockFormatError(
                 f"{self.label}: block reply to {command!r} continues with {trailer!r} "
@@ -466,6 +619,7 @@ class ScpiInstrument:
         """Close the VISA session (once; closing again does nothing)."""
         if not self._closed:
             self._closed = True
+            self.forget_settings()
             self.resource.close()
 
     def abandon(self) -> None:
@@ -473,6 +627,7 @@ class ScpiInstrument:
         dropped connection or a command that never answered): no error escapes, and nothing is
         switched. Output roles override :meth:`close` to switch off; this never does."""
         self._closed = True
+        self.forget_settings()
         with suppress(Exception):
             self.resource.close()
 

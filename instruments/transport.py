@@ -1,8 +1,8 @@
-"""How reply bytes are read from a VISA resource: a generic path for any VISA library, and a
-fast path for pyvisa-py's raw sockets.
+"""How messages are sent to a VISA resource and reply bytes read from it: a generic path for
+any VISA library, and a fast path for pyvisa-py's raw sockets.
 
-:class:`~instruments.scpi.ScpiInstrument` reads every reply through one of these strategies,
-chosen once when the session is opened (:func:`choose_transport`):
+:class:`~instruments.scpi.ScpiInstrument` sends every message and reads every reply through one
+of these strategies, chosen once when the session is opened (:func:`choose_transport`):
 
 * :class:`VisaTransport` uses only public VISA calls (``viRead`` in chunks, device clear), so it
   works with any VISA library: a vendor's, pyvisa-py's on any interface, or a simulated one;
@@ -10,17 +10,21 @@ chosen once when the session is opened (:func:`choose_transport`):
   socket. pyvisa-py's ``viRead`` copies every byte four times in calls of at most 4096 bytes, each
   behind a ``select``, which caps a 10 M-sample transfer far below what the socket delivers; here
   the bytes pyvisa-py has read ahead are taken first, then the socket receives into the caller's
-  buffer directly. It relies on pyvisa-py's session internals and is chosen only when they are
-  all present.
+  buffer directly, taking what has arrived without waiting and waiting in ``poll`` otherwise
+  (where the platform has both), and messages go out in one ``send``. It relies on pyvisa-py's
+  session internals and is chosen only when they are all present.
 """
 
 from __future__ import annotations
 
 import math
+import re
+import select
 import socket
 import time
-from contextlib import suppress
-from typing import Any
+from collections.abc import Callable, Iterator
+from contextlib import AbstractContextManager, contextmanager, nullcontext, suppress
+from typing import Any, TypeVar
 
 import pyvisa
 from pyvisa import constants
@@ -34,10 +38,37 @@ BLOCK_CHUNK_BYTES = 1 << 20
 #: (far above any reply read as text; a peer streaming without a terminator is cut off here).
 TEXT_CHUNK_BYTES = 1 << 14
 MAX_TEXT_REPLY_BYTES = 1 << 20
+#: Bytes asked of the socket per read of the short parts of a reply to several queries (its
+#: first replies, a block's header and what ends it): a block's payload that comes with them
+#: is copied twice, the rest is received straight into its buffer.
+UNIT_CHUNK_BYTES = 1 << 10
 #: Silence after which the rest of a broken reply on a socket is taken to have all arrived.
 QUIET_S = 0.05
 
 TIMEOUT_CODES = {constants.StatusCode.error_timeout}
+#: The flag that makes one ``recv`` or ``send`` return at once rather than wait, where the
+#: platform has it (not Windows): bytes already received are then taken at once, and a wait for
+#: more is a ``poll``, without switching the socket's timeout on and off around each call.
+_DONTWAIT = getattr(socket, "MSG_DONTWAIT", 0) if hasattr(select, "poll") else 0
+
+T = TypeVar("T")
+
+#: What ends a response message unit: the unit separator ``;`` or a newline (the terminator),
+#: outside IEEE 488.2 string response data (8.7.8), which is double-quoted and may hold either.
+_UNIT_END = re.compile(rb'"[^"]*"?|[;\n]')
+
+
+def find_unit_end(data: bytes | bytearray) -> int:
+    """The index of the ``;`` or newline that ends the response message unit at the start of
+    ``data`` (IEEE 488.2 8.4: units are separated by ``;``, the message ends with a newline),
+    or -1 if it has not all arrived. A ``;`` inside a quoted string does not end the unit."""
+    for match in _UNIT_END.finditer(data):
+        token = match.group()
+        if not token.startswith(b'"'):
+            return match.start()
+        if len(token) == 1 or not token.endswith(b'"'):
+            return -1  # a string still open
+    return -1
 
 
 class VisaTransport:
@@ -56,6 +87,18 @@ class VisaTransport:
         """The resource's timeout in seconds (infinite when it has none)."""
         return self.resource.timeout / 1000.0 if self.resource.timeout else math.inf
 
+    @contextmanager
+    def binary_reads(self) -> Iterator[str | None]:
+        """Line termination off while a block is read, so a ``0x0A`` byte inside its payload
+        does not end a ``viRead``; yields the read termination in force before."""
+        resource = self.resource
+        saved_termination = resource.read_termination
+        resource.read_termination = None
+        try:
+            yield saved_termination
+        finally:
+            resource.read_termination = saved_termination
+
     def tune(self) -> None:
         """Turn off Nagle's algorithm on a socket: every configuration step is a write followed
         by ``SYST:ERR?``, and with Nagle on the second small write waits for the peer's delayed
@@ -64,6 +107,15 @@ class VisaTransport:
             # a library that does not support the attribute: Nagle stays on
             with suppress(Exception):
                 self.resource.set_visa_attribute(constants.ResourceAttribute.tcpip_nodelay, True)
+
+    def write(self, message: str) -> None:
+        """Send one program message with the resource's write termination (``viWrite``)."""
+        self.resource.write(message)
+
+    def read_bytes(self, count: int, command: str) -> bytes:
+        """The next ``count`` bytes of the reply to ``command``, within the resource's
+        timeout."""
+        return self.resource.read_bytes(count)
 
     def read_message(
         self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
@@ -94,20 +146,33 @@ class VisaTransport:
             raise self.truncated(command, data)
         return bytes(data)
 
-    def read_into(self, view: memoryview) -> None:
-        """Fill ``view`` with the next ``len(view)`` bytes, through ``viRead`` in large chunks
-        (one copy per chunk)."""
+    def read_unit(self, command: str, deadline: float, max_bytes: int) -> tuple[bytes, bytes]:
+        """Read one response message unit of a reply to several queries, by ``deadline``:
+        its bytes, and what ended it (``b";"``: more units follow; ``b"\\n"``: the message
+        ended). Byte by byte through ``viRead``: units read this way are short."""
+        data = bytearray()
+        while (end := find_unit_end(data)) < 0:
+            self.check_growing_reply(command, data, deadline, max_bytes)
+            data += self.read_bytes(1, command)
+        return bytes(data[:end]), bytes(data[end : end + 1])
+
+    def read_into(self, view: memoryview, spare: int = 0) -> None:
+        """Fill ``view`` but its last ``spare`` bytes with the next bytes of the reply,
+        through ``viRead`` in large chunks (one copy per chunk). ``spare`` is room a transport
+        may use to take what follows in the same read; this one never reads past what it
+        needs."""
         resource = self.resource
+        needed = len(view) - spare
         received = 0
         # A full chunk is the normal case here, not a warning.
         with resource.ignore_warning(constants.StatusCode.success_max_count_read):
-            while received < len(view):
+            while received < needed:
                 chunk, _ = resource.visalib.read(
-                    resource.session, min(BLOCK_CHUNK_BYTES, len(view) - received)
+                    resource.session, min(BLOCK_CHUNK_BYTES, needed - received)
                 )
                 if not chunk:
                     raise BlockFormatError(
-                        f"{self.label}: block ended after {received} of {len(view)} bytes"
+                        f"{self.label}: block ended after {received} of {needed} bytes"
                     )
                 view[received : received + len(chunk)] = chunk
                 received += len(chunk)
@@ -153,68 +218,157 @@ class PyvisaPySocketTransport(VisaTransport):
         super().__init__(resource, label)
         self.session = session
         self.socket: socket.socket = session.interface
+        self._readable: Any = None  # a poll on the socket, where the platform has one
+        if _DONTWAIT:
+            self._readable = select.poll()
+            self._readable.register(self.socket, select.POLLIN)
 
     def tune(self) -> None:
         """Nagle off through pyvisa-py's own helper (0.8 registers no attribute setter)."""
         self.session._set_tcpip_nodelay(constants.ResourceAttribute.tcpip_nodelay, True)
+
+    def timeout_s(self) -> float:
+        """The session's timeout, as pyvisa-py keeps it (seconds, None for none)."""
+        timeout = self.session.timeout
+        return math.inf if timeout is None else timeout
+
+    def binary_reads(self) -> AbstractContextManager[str | None]:
+        """Nothing to switch: these reads never stop at a termination character."""
+        return nullcontext(self.resource.read_termination)
+
+    def write(self, message: str) -> None:
+        """Send the message and the write termination, encoded as PyVISA would, within the
+        resource's timeout."""
+        resource = self.resource
+        data = memoryview((message + (resource.write_termination or "")).encode(resource.encoding))
+        deadline = time.monotonic() + self.timeout_s()
+        while data:
+            try:
+                sent = self._waited(deadline, self.socket.send, data)
+            except TimeoutError:
+                raise InstrumentTimeout(
+                    f"{self.label}: could not send {message!r} within {self.timeout_s():g} s "
+                    "(the instrument is not reading)"
+                ) from None
+            data = data[sent:]
+
+    def read_bytes(self, count: int, command: str) -> bytes:
+        """The next ``count`` bytes: read-ahead bytes first, then from the socket in whole
+        chunks (what follows stays read ahead), within the resource's timeout."""
+        pending: bytearray = self.session._pending_buffer
+        if len(pending) < count:
+            deadline = time.monotonic() + self.timeout_s()
+            while len(pending) < count:
+                if time.monotonic() >= deadline:
+                    raise InstrumentTimeout(
+                        f"{self.label}: reply to {command!r} stalled after {bytes(pending)!r}, "
+                        f"{count} bytes expected"
+                    )
+                self._receive(pending, deadline, command, UNIT_CHUNK_BYTES)
+        taken = bytes(pending[:count])
+        del pending[:count]
+        return taken
 
     def read_message(
         self, command: str, deadline: float, max_bytes: int = MAX_TEXT_REPLY_BYTES
     ) -> bytes:
         """As :meth:`VisaTransport.read_message`, the deadline holding even while bytes trickle
         in."""
-        pending: bytearray = self.session._pending_buffer
         terminator = (self.resource.read_termination or "\n").encode("ascii")
+        pending: bytearray = self.session._pending_buffer
+        while (end := pending.find(terminator)) < 0:
+            self.check_growing_reply(command, pending, deadline, max_bytes)
+            self._receive(pending, deadline, command, TEXT_CHUNK_BYTES)
+        end += len(terminator)
+        message = bytes(pending[:end])
+        del pending[:end]
+        return message
+
+    def read_unit(self, command: str, deadline: float, max_bytes: int) -> tuple[bytes, bytes]:
+        """As :meth:`VisaTransport.read_unit`, from the bytes received in whole chunks."""
+        pending: bytearray = self.session._pending_buffer
+        end = find_unit_end(pending) if pending else -1
+        while end < 0:
+            self.check_growing_reply(command, pending, deadline, max_bytes)
+            self._receive(pending, deadline, command, UNIT_CHUNK_BYTES)
+            end = find_unit_end(pending)
+        unit = bytes(pending[:end])
+        separator = bytes(pending[end : end + 1])
+        del pending[: end + 1]
+        return unit, separator
+
+    def _waited(self, deadline: float, operation: Callable[..., T], *args: Any) -> T:
+        """``operation(*args, flags)``, a socket call: at once where it need not wait, else
+        waiting on the socket's timeout until ``deadline`` at most (TimeoutError then)."""
+        if _DONTWAIT:
+            try:
+                return operation(*args, _DONTWAIT)
+            except BlockingIOError:
+                pass  # not at once: wait below
         sock = self.socket
         previous_timeout = sock.gettimeout()
+        remaining_s = deadline - time.monotonic()
+        sock.settimeout(None if math.isinf(remaining_s) else max(remaining_s, 1e-3))
         try:
-            while (end := pending.find(terminator)) < 0:
-                self.check_growing_reply(command, pending, deadline, max_bytes)
-                sock.settimeout(max(deadline - time.monotonic(), 1e-3))
-                try:
-                    chunk = sock.recv(TEXT_CHUNK_BYTES)
-                except TimeoutError:
-                    continue  # the deadline check above raises
-                if not chunk:
-                    raise ConnectionLost(
-                        f"{self.label}: connection closed during the reply to {command!r}"
-                    )
-                pending += chunk
+            return operation(*args, 0)
         finally:
             sock.settimeout(previous_timeout)
-        line = bytes(pending[: end + len(terminator)])
-        del pending[: end + len(terminator)]
-        return line
 
-    def read_into(self, view: memoryview) -> None:
+    def _received(self, deadline: float, operation: Callable[..., T], *args: Any) -> T:
+        """A receive, ``operation(*args, flags)``: what has arrived at once, else waiting for
+        more in ``poll`` (where the platform has it) until ``deadline`` at most (TimeoutError
+        then), the socket left as it is."""
+        if self._readable is None:
+            return self._waited(deadline, operation, *args)
+        while True:
+            try:
+                return operation(*args, _DONTWAIT)
+            except BlockingIOError:
+                pass  # nothing yet
+            remaining_s = deadline - time.monotonic()
+            wait_ms = None if math.isinf(remaining_s) else math.ceil(remaining_s * 1e3)
+            if remaining_s <= 0 or not self._readable.poll(wait_ms):
+                raise TimeoutError
+
+    def _receive(self, pending: bytearray, deadline: float, command: str, chunk_bytes: int) -> None:
+        """Add what the socket has to ``pending`` (pyvisa-py's buffer), ``chunk_bytes`` at
+        most, waiting for it until ``deadline`` at most: the caller checks the deadline."""
+        try:
+            chunk = self._received(deadline, self.socket.recv, chunk_bytes)
+        except TimeoutError:
+            return
+        if not chunk:
+            raise ConnectionLost(f"{self.label}: connection closed during the reply to {command!r}")
+        pending += chunk
+
+    def read_into(self, view: memoryview, spare: int = 0) -> None:
         """Receive straight into ``view``: read-ahead bytes first, then the socket, within the
-        resource's timeout."""
+        resource's timeout, until all but its last ``spare`` bytes are filled. The last
+        receive may run into the spare room (what follows a block usually comes with its last
+        bytes): what lands there goes back to the pending buffer, as read ahead."""
         pending: bytearray = self.session._pending_buffer
-        received = min(len(pending), len(view))
+        needed = len(view) - spare
+        received = min(len(pending), needed)
         view[:received] = pending[:received]
         del pending[:received]
         sock = self.socket
         deadline = time.monotonic() + self.timeout_s()
-        previous_timeout = sock.gettimeout()
-        try:
-            while received < len(view):
-                remaining_s = deadline - time.monotonic()
-                if remaining_s <= 0:
-                    raise InstrumentTimeout(
-                        f"{self.label}: block stalled after {received} of {len(view)} bytes"
-                    )
-                sock.settimeout(None if math.isinf(remaining_s) else remaining_s)
-                try:
-                    count = sock.recv_into(view[received:])
-                except TimeoutError:
-                    continue  # the deadline check above raises
-                if count == 0:
-                    raise ConnectionLost(
-                        f"{self.label}: connection closed after {received} of {len(view)} bytes"
-                    )
-                received += count
-        finally:
-            sock.settimeout(previous_timeout)
+        while received < needed:
+            if time.monotonic() >= deadline:
+                raise InstrumentTimeout(
+                    f"{self.label}: block stalled after {received} of {needed} bytes"
+                )
+            try:
+                count = self._received(deadline, sock.recv_into, view[received:], 0)
+            except TimeoutError:
+                continue  # the deadline check above raises
+            if count == 0:
+                raise ConnectionLost(
+                    f"{self.label}: connection closed after {received} of {needed} bytes"
+                )
+            received += count
+        if received > needed:
+            pending += view[needed:received]  # pending was emptied above
 
     def discard_input(self) -> None:
         """Read and drop what the peer has sent until it goes quiet or closes (pyvisa-py's
@@ -240,7 +394,8 @@ def _pyvisa_py_socket_session(resource: MessageBasedResource) -> Any | None:
     sessions = getattr(resource.visalib, "sessions", None)
     session = sessions.get(resource.session) if isinstance(sessions, dict) else None
     fields_present = all(
-        hasattr(session, field) for field in ("interface", "_pending_buffer", "_set_tcpip_nodelay")
+        hasattr(session, field)
+        for field in ("interface", "_pending_buffer", "_set_tcpip_nodelay", "timeout")
     )
     if fields_present and isinstance(session.interface, socket.socket):
         return session

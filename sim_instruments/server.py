@@ -193,7 +193,7 @@ class Call:
     """One parsed program message unit handed to a handler: parameters and header suffixes."""
 
     header: str
-    params: list[str]
+    params: Sequence[str]
     suffixes: tuple[int, ...] = ()
 
     def number(
@@ -314,7 +314,7 @@ class ProgramUnit:
 
     header: str
     is_query: bool
-    params: list[str]
+    params: tuple[str, ...]
 
 
 @dataclass(frozen=True)
@@ -322,7 +322,7 @@ class ParsedMessage:
     """A program message split into units, or the syntax error that stopped the split."""
 
     text: str
-    units: list[ProgramUnit]
+    units: tuple[ProgramUnit, ...]
     syntax_error: CommandError | None = None
 
     @property
@@ -340,6 +340,8 @@ class ParsedMessage:
 
 
 def _split_outside_quotes(text: str, separator: str) -> list[str]:
+    if '"' not in text and "'" not in text:
+        return text.split(separator)
     parts, current, quote = [], [], ""
     for ch in text:
         if quote:
@@ -355,8 +357,26 @@ def _split_outside_quotes(text: str, separator: str) -> list[str]:
     return parts
 
 
+#: Program messages already parsed, by text: a bench sends the same few over and over.
+_PARSED: dict[str, ParsedMessage] = {}
+_PARSED_MAX = 4096
+
+
 def parse_message(text: str) -> ParsedMessage:
-    """Split one program message (a line, without its terminator) into program message units."""
+    """Split one program message (a line, without its terminator) into program message units.
+
+    A message that parses is kept (its units are immutable) and the next one of the same text
+    is not parsed again; one with a syntax error is parsed each time it comes.
+    """
+    parsed = _PARSED.get(text)
+    if parsed is None:
+        parsed = _parse(text)
+        if parsed.syntax_error is None and len(_PARSED) < _PARSED_MAX:
+            _PARSED[text] = parsed
+    return parsed
+
+
+def _parse(text: str) -> ParsedMessage:
     units: list[ProgramUnit] = []
     pieces = _split_outside_quotes(text, ";")
     for position, raw in enumerate(pieces):
@@ -364,18 +384,20 @@ def parse_message(text: str) -> ParsedMessage:
         if not unit_text:
             if position == len(pieces) - 1:
                 continue  # an empty line, or a trailing ';'
-            return ParsedMessage(text, units, CommandError(-102, "empty command between ';'"))
+            error = CommandError(-102, "empty command between ';'")
+            return ParsedMessage(text, tuple(units), error)
         header, *rest_list = unit_text.split(maxsplit=1)
         rest = rest_list[0] if rest_list else ""
         if not _HEADER.fullmatch(header):
-            return ParsedMessage(text, units, CommandError(-102, f"bad header {header!r}"))
-        params = [p.strip() for p in _split_outside_quotes(rest, ",")] if rest else []
+            error = CommandError(-102, f"bad header {header!r}")
+            return ParsedMessage(text, tuple(units), error)
+        params = tuple(p.strip() for p in _split_outside_quotes(rest, ",")) if rest else ()
         if any(not p for p in params):
             error = CommandError(-102, f"empty parameter in {unit_text!r}")
-            return ParsedMessage(text, units, error)
+            return ParsedMessage(text, tuple(units), error)
         is_query = header.endswith("?")
         units.append(ProgramUnit(header.rstrip("?"), is_query, params))
-    return ParsedMessage(text, units)
+    return ParsedMessage(text, tuple(units))
 
 
 # --------------------------------------------------------------------------- instrument base

@@ -36,11 +36,18 @@ Reply = str | bytes | None
 Handler = Callable[[str], Reply]
 
 
+#: A handler's reply for a command that fails in a way that makes the instrument discard the
+#: rest of its program message (IEEE 488.2 6.1.6.1.1): what was answered so far is sent.
+DISCARD_REST = "DISCARD_REST"
+
+
 class ScriptedServer:
     """A one-client SCPI peer on loopback: logs every command, answers from a handler.
 
-    ``handler(command)`` returns the reply (text gets a newline, bytes are sent as they are) or
-    None for no reply. ``SYST:ERR?`` is answered from ``errors`` then ``0,"No error"``.
+    ``handler(command)`` returns the reply (text gets a newline, bytes are sent as they are),
+    None for no reply, ``"CLOSE"`` to close the connection or :data:`DISCARD_REST`. The replies
+    to several queries in one message go out as one response message, joined by ``;`` with one
+    newline (IEEE 488.2 8.4.1). ``SYST:ERR?`` is answered from ``errors`` then ``0,"No error"``.
     """
 
     def __init__(self, handler: Handler, errors: list[str] | None = None) -> None:
@@ -65,6 +72,7 @@ class ScriptedServer:
         self.connection = connection
         with connection, connection.makefile("rb") as lines:
             for line in lines:
+                replies: list[bytes] = []
                 for command in line.decode().strip().split(";"):
                     self.log.append(command)
                     if command.upper() == "SYST:ERR?":
@@ -73,9 +81,15 @@ class ScriptedServer:
                         reply = self.handler(command)
                     if reply == "CLOSE":
                         return
+                    if reply == DISCARD_REST:
+                        break
                     if reply is not None:
-                        connection.sendall(reply if isinstance(reply, bytes) else
-                                           reply.encode() + b"\n")
+                        replies.append(reply if isinstance(reply, bytes) else
+                                       reply.encode() + b"\n")
+                if len(replies) > 1:  # one response message: each without its newline
+                    replies = [b";".join(reply.removesuffix(b"\n") for reply in replies) + b"\n"]
+                for reply in replies:
+                    connection.sendall(reply)
 
     def close(self) -> None:
         self.listener.close()
@@ -352,6 +366,102 @@ def test_malformed_block_reply_is_refused(scripted, kestrel_map):
     with (
         Oscilloscope.open(server.resource_name, command_map=kestrel_map, timeout_s=1) as scope,
         pytest.raises(BlockFormatError, match="continues with b'X'"),
+    ):
+        scope.fetch_waveform(1)
+
+
+# -- one round trip per fetch: scaling, data and error query in one program message ----------
+
+
+@pytest.fixture
+def kestrel_compound(tmp_path: Path):
+    """The kestrel map for a kestrel that takes several queries in one program message."""
+    path = tmp_path / "kestrel-compound.toml"
+    path.write_text(KESTREL_MAP.replace("[words]", "compound_queries = true\n\n[words]"))
+    return load_command_map(path)
+
+
+class KestrelFetch(KestrelScope):
+    """A kestrel whose data query can fail: queuing ``error`` (if given), and then discarding
+    the rest of the message (``discard``) or answering with an empty block."""
+
+    def __init__(self, error: str = "", discard: bool = False) -> None:
+        super().__init__()
+        self.error, self.discard = error, discard
+        self.server: ScriptedServer | None = None
+
+    def __call__(self, command: str) -> Reply:
+        if command == "WAVE:FETCH?" and (self.error or self.discard):
+            if self.error and self.server is not None:
+                self.server.errors.append(self.error)
+            return DISCARD_REST if self.discard else b"#10"
+        return super().__call__(command)
+
+
+def _kestrel_fetch(scripted, command_map, **behaviour) -> tuple[ScriptedServer, Oscilloscope]:
+    kestrel = KestrelFetch(**behaviour)
+    kestrel.server = server = scripted(kestrel)
+    return server, Oscilloscope.open(server.resource_name, command_map=command_map, timeout_s=2)
+
+
+SETTINGS = ["WAVE:SRC C1", "WAVE:WIDTH WORD", "WAVE:ORDER LSBF", "SYST:ERR?"]
+# IEEE 488.2 7.4.1: the queries of one program message, separated by ';'; the error query
+# (SCPI-1999 vol. 2 19.7) last, so it reports what the message itself queued.
+FETCH = ["WAVE:PRE?", "WAVE:FETCH?", "SYST:ERR?"]
+
+
+def test_compound_fetch_is_one_message_and_settings_go_once(scripted, kestrel_compound):
+    server, scope = _kestrel_fetch(scripted, kestrel_compound)
+    with scope:
+        first, second = scope.fetch_waveform(1), scope.fetch_waveform(1)
+    assert server.log == SETTINGS + FETCH + FETCH  # the settings once: nothing changed them
+    for waveform in (first, second):
+        np.testing.assert_array_equal(waveform.codes, KESTREL_CODES)
+        np.testing.assert_allclose(waveform.volts(), KESTREL_CODES * 0.25 - 1.5)
+
+
+def test_an_error_queued_by_the_fetch_is_raised_and_the_settings_resent(
+    scripted, kestrel_compound
+):
+    server, scope = _kestrel_fetch(scripted, kestrel_compound, error='-230,"Data stale"')
+    with scope:
+        with pytest.raises(ScpiError) as caught:
+            scope.fetch_waveform(1)
+        # SCPI-1999 vol. 2 21.8.11: -230 "Data corrupt or stale"; named with the message.
+        assert caught.value.code == -230
+        assert caught.value.command == ";".join(FETCH)
+        assert server.errors == []  # drained
+        server.handler.error = ""
+        scope.fetch_waveform(1)
+    # After an error nothing is taken as known: the settings go again.
+    assert server.log == SETTINGS + FETCH + ["SYST:ERR?"] + SETTINGS + FETCH
+
+
+@pytest.mark.parametrize(
+    ("error", "raised", "match"),
+    [
+        ('-230,"Data stale"', ScpiError, "-230"),
+        ("", ReplyFormatError, "ended after 1 of 3 replies, and the error queue is empty"),
+    ],
+    ids=["error queued", "queue empty"],
+)
+def test_a_message_cut_short_by_a_failed_query_is_explained(
+    scripted, kestrel_compound, error, raised, match
+):
+    # IEEE 488.2 6.1.6.1.1: after a failed command the instrument may discard the rest of the
+    # message; here the data query fails and only the preamble is answered.
+    server, scope = _kestrel_fetch(scripted, kestrel_compound, error=error, discard=True)
+    with scope, pytest.raises(raised, match=match):
+        scope.fetch_waveform(1)
+    after = server.log[server.log.index("WAVE:FETCH?") + 1 :]
+    assert after == ["SYST:ERR?"] * (2 if error else 1)  # the queue, read to explain it
+
+
+def test_an_indefinite_block_cannot_share_a_response(scripted, kestrel_compound):
+    server = scripted(KestrelScope(definite=False))
+    with (
+        Oscilloscope.open(server.resource_name, command_map=kestrel_compound, timeout_s=1) as scope,
+        pytest.raises(BlockFormatError, match="set compound_queries = false"),
     ):
         scope.fetch_waveform(1)
 

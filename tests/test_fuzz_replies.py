@@ -5,7 +5,9 @@ The peer is a scripted SCPI server on a real loopback socket (no mock between dr
 the drivers go through PyVISA and pyvisa-py as on a bench): it answers every query correctly but
 one, the query under test, which gets the drawn reply — garbage numbers, text and binary junk,
 truncated lines, IEEE 488.2 blocks (8.7.9) with bad headers, wrong lengths or too-short payloads,
-a closed connection, or a stream that never ends.
+a closed connection, or a stream that never ends. Several queries in one program message are
+answered in one response message, the replies separated by ``;`` (IEEE 488.2 8.4.1), the
+drawn reply among them.
 """
 
 from __future__ import annotations
@@ -65,7 +67,11 @@ class Action:
 
 
 class ReplyServer:
-    """One-client SCPI peer on loopback: correct replies, except ``action`` for ``victim``."""
+    """One-client SCPI peer on loopback: correct replies, except ``action`` for ``victim``.
+
+    ``victim`` is a query, or queries joined by ``;``: the last of them is the victim where it
+    comes after the others in one program message (``:WAVeform:DATA?;SYST:ERR?``).
+    """
 
     def __init__(self, victim: str, action: Action) -> None:
         self.victim, self.action = victim, action
@@ -87,14 +93,38 @@ class ReplyServer:
         with connection, connection.makefile("rb") as lines:
             try:
                 for line in lines:
-                    command = line.decode("ascii", "replace").strip()
-                    if command == self.victim:
-                        if not self._act(connection):
-                            return
-                    elif command in GOOD:
-                        connection.sendall(GOOD[command])
+                    units = line.decode("ascii", "replace").strip().split(";")
+                    if not self._answer(connection, units):
+                        return
             except OSError:
                 return
+
+    def _is_victim(self, units: list[str], index: int) -> bool:
+        wanted = self.victim.split(";")
+        start = index + 1 - len(wanted)
+        return start >= 0 and units[start : index + 1] == wanted
+
+    def _answer(self, connection: socket.socket, units: list[str]) -> bool:
+        """Answer one program message; False once the connection is to be (or was) closed.
+
+        The replies go out as one response message: each without its newline, joined by ``;``,
+        then one newline. The drawn reply takes its query's place; a drawn reply that is not a
+        whole line (or closes, or never ends) is the last thing sent."""
+        sent = b""
+        for index, unit in enumerate(units):
+            separator = b";" if sent else b""
+            if self._is_victim(units, index):
+                data = self.action.data
+                if data.endswith(b"\n") and not (self.action.close or self.action.repeat):
+                    sent += separator + data[:-1]
+                    continue
+                connection.sendall(sent + separator)
+                return self._act(connection)
+            if unit in GOOD:
+                sent += separator + GOOD[unit][:-1]
+        if sent:
+            connection.sendall(sent + b"\n")
+        return True
 
     def _act(self, connection: socket.socket) -> bool:
         """Carry out the action; False once the connection is to be (or was) closed."""
@@ -160,6 +190,12 @@ TARGETS: dict[str, tuple[Callable[[str], ScpiInstrument], Call, str, str]] = {
         lambda d: d.fetch_waveform(1),
         ":WAVeform:DATA?",
         "block",
+    ),
+    "scope.fetch_waveform error": (
+        _scope,
+        lambda d: d.fetch_waveform(1),
+        ":WAVeform:DATA?;SYST:ERR?",
+        "error",
     ),
     "scope.measure_mean_v": (
         _scope,
@@ -365,6 +401,17 @@ def test_correct_replies_in_other_legal_forms_are_read(
     value, error, _ = _exercise(name, Action(reply))
     assert error is None, error
     assert value == expected
+
+
+def test_a_fetch_reads_scaling_block_and_error_query_from_one_response() -> None:
+    # The peer answers the fetch's three queries in one response message; the scaling in
+    # another legal form (spaces around fields, NRf without leading digit: IEEE 488.2 7.7.2).
+    waveform, error, _ = _exercise(
+        "scope.fetch_waveform scaling", Action(b"4, 1.0E-09 ,0,+.1,0,0\n")
+    )
+    assert error is None, error
+    assert waveform.codes.tolist() == [0, 1, 2, 3]
+    assert waveform.x_increment_s == 1e-9 and waveform.y_increment_v == 0.1
 
 
 def test_a_garbled_acquisition_poll_is_not_mistaken_for_a_late_trigger() -> None:

@@ -153,6 +153,31 @@ def test_chained_commands_start_from_the_root(client: RawScpiClient) -> None:
     assert reply.split(";") == ["1", format_number(7.0), "1"]
 
 
+def test_a_block_among_other_replies_of_one_message(client: RawScpiClient) -> None:
+    # IEEE 488.2 §8.4.1: one response message for the queries of one program message, the
+    # replies joined by ';'; a definite block (§8.7.9) is one of them like any other.
+    client.write("SOUR:VOLT 7")
+    client.write("SOUR:VOLT?;DATA:BLOC? 12;SYST:ERR?")
+    expected = f"{format_number(7.0)};#212".encode() + bytes(range(12)) + b';0,"No error"\n'
+    assert client.read_raw(len(expected)) == expected
+    # A failed query ends the message (§6.1.6.1.1): the replies before it still come.
+    client.write("SOUR:VOLT?;DATA:BLOC? 999;SYST:ERR?")
+    assert client.read_line() == format_number(7.0)
+    assert [code for code, _ in client.errors()] == [-222]
+
+
+def test_a_message_repeated_is_executed_again_each_time(client: RawScpiClient) -> None:
+    # Parsed messages are kept for reuse; each arrival still runs, and errors queue each time.
+    for volts_v in (3.0, 4.0, 3.0):
+        assert client.query(f"SOUR:VOLT {volts_v:g};SOUR:VOLT?") == format_number(volts_v)
+    for _ in range(2):
+        client.write("SOUR:VOLT 1;;OUTP ON")
+    assert [code for code, _ in client.errors()] == [-102, -102]
+    client.write("SOUR:VOLT 500")
+    client.write("SOUR:VOLT 500")
+    assert [code for code, _ in client.errors()] == [-222, -222]
+
+
 def test_error_codes_and_nothing_changes_on_error(client: RawScpiClient) -> None:
     client.write("SOUR:VOLT 10")
     cases = [

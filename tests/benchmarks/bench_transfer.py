@@ -1,34 +1,41 @@
-"""Waveform transfer speed: the driver's fetch against a raw socket on the same reply.
+"""Waveform fetch speed: the driver's whole fetch against a raw socket reading the same bytes.
 
 Run with ``python -m pytest -q -s tests/benchmarks/bench_transfer.py``. The simulated bench runs
 in its own process, as a real scope would, so its server threads do not share this process's
-interpreter lock with the reader being timed. A 10 M-sample int8 record is captured once; then,
-interleaved, three readers of it are timed:
+interpreter lock with the reader being timed. An int8 record of each length below is captured;
+then, interleaved in every repeat (tests/benchmarks/paired.py), two readers of it are timed:
 
-* raw: a plain Python socket sends ``:WAVeform:DATA?`` and reads the reply into a
-  preallocated buffer, the fastest Python can do;
-* transfer: the driver's ``read_codes`` (the same query through pyvisa-py, block parsed,
-  decoded to int8 codes), the like-for-like comparison, whose median throughput must reach
-  0.8 of raw's;
-* fetch: the driver's whole ``fetch_waveform`` (source, format and byte order selected and
-  checked, scaling read, then the transfer), printed with its ratio.
+* raw (the yardstick): a plain Python socket sends ``:WAVeform:DATA?`` and reads the block into
+  a preallocated buffer, the least any reader must do to get those bytes;
+* fetch: the driver's whole ``fetch_waveform`` through pyvisa-py, everything a capture costs:
+  the transfer settings (sent only when they changed), the scaling, the block, the error-queue
+  check, decoding and the checks on the result.
 
-PyVISA's stock ``query_binary_values`` over a default pyvisa-py session is timed once for
-reference.
+Each repeat gives one ratio fetch time / raw time; the median of those ratios is the figure,
+printed with its spread and whether it meets its target:
+
+* 100 k samples, where the round trips and the driver's own work weigh: target fetch ≤ 2 × raw.
+  This median moves with the machine's load: 2.0-2.2 in runs where the raw read takes about
+  30 µs, 1.3-1.5 in runs where it takes about 90 µs, on a shared two-core machine. So it is
+  printed against the target and asserted only against 3 ×: in a quiet run, sending the
+  transfer settings with every fetch gave 4.5, separate scaling and data queries 3.2, both
+  (the fetch before settings were remembered) 6.2. That a fetch is one message is asserted
+  exactly in tests/test_waveform_fetch.py.
+* 10 M samples, where the bytes weigh: target fetch throughput ≥ 0.9 × raw's (a time ratio
+  ≤ 1 / 0.9), asserted: its median stays within 0.9-1.05 however loaded the machine.
 """
 
 from __future__ import annotations
 
 import multiprocessing
 import socket
-import time
+import statistics
 from collections.abc import Iterator
 from contextlib import contextmanager
 from multiprocessing.connection import Connection
 
-import numpy as np
 import pytest
-import pyvisa
+from paired import interleaved_times, paired
 
 from instruments.block import length_digit_count, parse_length
 from instruments.limits import LoadLimits, SourceLimits
@@ -36,8 +43,9 @@ from instruments.roles import ElectronicLoad, LineSource, Oscilloscope
 from sim_instruments.bench import SimBench
 from sim_instruments.flyback import DEMO_DUTS, load_dut
 
-RECORD_LENGTH = 10_000_000
-REPEATS = 15
+#: Record length → (repeats, target for the median time ratio fetch / raw, the largest median
+#: accepted).
+RECORDS = {100_000: (401, 2.0, 3.0), 10_000_000: (101, 1 / 0.9, 1 / 0.9)}
 DATA_QUERY = b":WAVeform:DATA?\n"
 
 
@@ -82,9 +90,8 @@ def _receive_exactly(sock: socket.socket, view: memoryview) -> None:
         received += count
 
 
-def raw_socket_fetch_s(sock: socket.socket) -> float:
-    """Time one ``:WAVeform:DATA?`` read over a plain socket, the fastest Python can do."""
-    start = time.perf_counter()
+def raw_socket_read(sock: socket.socket, samples: int) -> None:
+    """One ``:WAVeform:DATA?`` over a plain socket into a preallocated buffer."""
     sock.sendall(DATA_QUERY)
     head = bytearray(2)
     _receive_exactly(sock, memoryview(head))
@@ -92,49 +99,23 @@ def raw_socket_fetch_s(sock: socket.socket) -> float:
     _receive_exactly(sock, memoryview(digits))
     body = bytearray(parse_length(digits) + 1)  # payload and its newline
     _receive_exactly(sock, memoryview(body))
-    elapsed = time.perf_counter() - start
-    assert body[-1:] == b"\n"
-    return elapsed
+    assert len(body) == samples + 1 and body[-1:] == b"\n"
 
 
-def driver_transfer_s(scope: Oscilloscope) -> float:
-    """Time one ``read_codes``: the data query, block parsing and decoding."""
-    start = time.perf_counter()
-    codes = scope.read_codes()
-    elapsed = time.perf_counter() - start
-    assert codes.size == RECORD_LENGTH
-    return elapsed
+def driver_fetch(scope: Oscilloscope, samples: int) -> None:
+    """One whole ``fetch_waveform`` of channel 1."""
+    assert scope.fetch_waveform(1).codes.size == samples
 
 
-def driver_fetch_s(scope: Oscilloscope) -> float:
-    """Time one full ``fetch_waveform`` (source, format, scaling, block, decode)."""
-    start = time.perf_counter()
-    waveform = scope.fetch_waveform(1)
-    elapsed = time.perf_counter() - start
-    assert waveform.codes.size == RECORD_LENGTH
-    return elapsed
-
-
-def stock_pyvisa_fetch_s(resource_name: str) -> float:
-    """Time PyVISA's ``query_binary_values`` on a pyvisa-py session left at its defaults."""
-    resource = pyvisa.ResourceManager("@py").open_resource(
-        resource_name, read_termination="\n", write_termination="\n", timeout=120_000
-    )
-    try:
-        start = time.perf_counter()
-        codes = resource.query_binary_values(
-            DATA_QUERY.decode().strip(), datatype="b", container=np.array
-        )
-        elapsed = time.perf_counter() - start
-    finally:
-        resource.close()
-    assert codes.size == RECORD_LENGTH
-    return elapsed
+def capture(scope: Oscilloscope, samples: int) -> None:
+    """One int8 capture of the running converter's switch node, ``samples`` long."""
+    scope.configure_timebase(seconds_per_div=2e-6, record_length=samples)
+    scope.single()
+    scope.wait_acquisition(timeout_s=120.0, poll_interval_s=0.05)
 
 
 @pytest.mark.benchmark
-def test_fetch_reaches_raw_socket_throughput():
-    megabytes = RECORD_LENGTH / 1e6  # int8: one byte per sample
+def test_whole_fetch_against_a_raw_socket():
     with (
         bench_in_child_process() as resources,
         LineSource.open(resources["source"], limits=SourceLimits(60.0, 5.0)) as source,
@@ -142,41 +123,36 @@ def test_fetch_reaches_raw_socket_throughput():
         Oscilloscope.open(resources["scope"], timeout_s=60.0) as scope,
         socket.create_connection(_host_port(resources["scope"])) as raw,
     ):
+        raw.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
         source.set_current_limit(3.0)
         source.set_dc(48.0)
         load.set_current(1.0)
         source.set_output(True)
         load.set_input(True)
         scope.configure_channel(1, volts_per_div=20.0, offset_v=80.0, probe_ratio=10)
-        scope.configure_timebase(seconds_per_div=2e-6, record_length=RECORD_LENGTH)
         scope.configure_trigger(1, level_v=60.0, slope="rising", position_fraction=0.1)
-        scope.single()
-        scope.wait_acquisition(timeout_s=120.0, poll_interval_s=0.05)
-        raw.sendall(b":WAVeform:SOURce CHANnel1;:WAVeform:FORMat INT8\n")
-        driver_fetch_s(scope)  # warm-up: the scope encodes the record once
-        raw_socket_fetch_s(raw)
-        readers = {
-            "raw": lambda: raw_socket_fetch_s(raw),
-            "transfer": lambda: driver_transfer_s(scope),
-            "fetch": lambda: driver_fetch_s(scope),
-        }
-        times: dict[str, list[float]] = {name: [] for name in readers}
-        names = list(readers)
-        for repeat in range(REPEATS):  # interleaved, the order rotating each time
-            for name in names[repeat % 3 :] + names[: repeat % 3]:
-                times[name].append(readers[name]())
-        stock_s = stock_pyvisa_fetch_s(resources["scope"])
-    best_mb_s = {name: megabytes / min(values) for name, values in times.items()}
-    median_mb_s = {name: megabytes / np.median(values) for name, values in times.items()}
-    print(f"\n10 M-sample int8 record, best (median) of {REPEATS} interleaved runs each:")
-    for name in names:
-        print(
-            f"  {name:8s} {best_mb_s[name]:6.0f} MB/s ({median_mb_s[name]:6.0f}), ratio to raw "
-            f"{best_mb_s[name] / best_mb_s['raw']:.2f} "
-            f"({median_mb_s[name] / median_mb_s['raw']:.2f})"
+        results = {}
+        for samples, (repeats, _, _) in RECORDS.items():
+            capture(scope, samples)
+            times = interleaved_times(
+                {
+                    "raw": lambda samples=samples: raw_socket_read(raw, samples),
+                    "fetch": lambda samples=samples: driver_fetch(scope, samples),
+                },
+                repeats,
+            )
+            results[samples] = paired(times, "fetch", "raw")
+    print("\nwhole fetch_waveform of an int8 record / raw socket reading its block (time ratio):")
+    for samples, ratios in results.items():
+        target = RECORDS[samples][1]
+        verdict = "meets" if ratios.median <= target else "misses"
+        fetch_us, raw_us = (
+            1e6 * statistics.median(t) for t in (ratios.candidate_s, ratios.yardstick_s)
         )
-    stock_mb_s = megabytes / stock_s
-    stock_ratio = stock_mb_s / best_mb_s["raw"]
-    print(f"  stock query_binary_values {stock_mb_s:.0f} MB/s, ratio to raw {stock_ratio:.3f}")
-    # Medians: on a shared machine one lucky or unlucky run moves a best-of figure too far.
-    assert median_mb_s["transfer"] / median_mb_s["raw"] >= 0.8
+        print(f"  {samples:>10,} samples: {ratios.summary()}")
+        print(
+            f"  {'':>10}  {fetch_us:.0f} µs vs {raw_us:.0f} µs; throughput {1 / ratios.median:.2f}"
+            f" of raw's; {verdict} the target of at most {target:.2f} × raw's time"
+        )
+    for samples, ratios in results.items():
+        assert ratios.median <= RECORDS[samples][2], (samples, ratios.summary())
