@@ -463,6 +463,7 @@ def execute(
         latch.hold()
     except Interrupted as late:  # the first signal came as the sweep ended
         failure = failure or late
+    unfinished = store.rollback_unfinished()
     if isinstance(failure, Interrupted) and bench is None and not sequence.bench.simulated:
         bench = _reopen_quietly(sequence, store, run_id)
     if bench is not None:
@@ -474,6 +475,8 @@ def execute(
         except Exception as error:  # noqa: BLE001 - the bench is safe; recorded below
             failure = failure or error
     progress.stop()
+    if unfinished:
+        store.log_event(run_id, "info", "a store write cut short by the ending was rolled back")
     status = _ending(failure, report, latch.first is not None)
     _record_ending(store, run_id, status, failure, latch)
     if latch.first is not None:

@@ -635,6 +635,18 @@ class Store:
         with self.db.atomic():
             self.db["runs"].update(run_id, updates)
 
+    def rollback_unfinished(self) -> bool:
+        """Roll back a transaction an exception left open; True if there was one.
+
+        A signal raised from its handler can strike between a block's BEGIN and the start of its
+        error handling, or just before its COMMIT: the transaction then stays open, every later
+        write joins it, and all of them are lost when the process ends. The runner calls this
+        once the sweep has ended, before it records anything more."""
+        if not self.db.conn.in_transaction:
+            return False
+        self.db.conn.execute("ROLLBACK")
+        return True
+
     def set_run_instruments(self, run_id: int, instruments: Mapping[str, Any]) -> None:
         """Record the identities of the instruments the run is using (on start and on resume)."""
         self._require_run(run_id)

@@ -182,3 +182,39 @@ def test_abort_policy_stops_at_the_failing_point(tmp_path, make_sim_bench):
         # The run may be resumed: not finished, and no live process owns it.
         claim_for_resume(store, run_id)
         assert store.run(run_id).status == "running"
+
+
+def test_a_signal_between_begin_and_commit_still_records_the_ending(
+    tmp_path, make_sim_bench, monkeypatch
+):
+    # A signal raised from its handler just after a store block's BEGIN (before the block's
+    # error handling starts) leaves the transaction open; every later write would join it and
+    # be lost when the process ends. The runner rolls it back before it records the ending.
+    from labseq.runner import Sweep
+    from labseq.safety import Interrupted
+
+    probe = load_sequence(demo_sequence(tmp_path, name="probe.toml"))
+    sim = make_sim_bench(design=_design_for(probe))
+    path = demo_sequence(
+        tmp_path, lines=["48 V"], loads=["1 A"], captures=1, resources=sim.resources
+    )
+    sequence = load_sequence(path)
+    measure = Sweep.measure_point
+
+    def struck_after_begin(self, point, index, total):
+        measure(self, point, index, total)
+        self.store.db.conn.execute("BEGIN")  # the block's BEGIN ran, its try not yet entered
+        raise Interrupted("SIGTERM")
+
+    monkeypatch.setattr(Sweep, "measure_point", struck_after_begin)
+    db = tmp_path / "run.sqlite"
+    with Store(db) as store:
+        run_id = start_run(sequence, store)
+        outcome = execute(sequence, store, run_id, progress=Progress(quiet=True))
+        assert outcome.status == "interrupted"
+        assert not store.db.conn.in_transaction
+    # Read by another connection, as `labseq runs` would after the process has gone.
+    with Store(db, create=False) as reader:
+        assert reader.run(run_id).status == "interrupted"
+        assert any("rolled back" in e["message"] for e in reader.events(run_id))
+    assert not sim.state.source_output_on and not sim.state.load_input_on
