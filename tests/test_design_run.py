@@ -148,3 +148,10 @@ def test_design_run_reads_the_primary_node_by_its_name(tmp_path):
     assert code == 0, err
     [row] = json.loads(out)["points"]
     assert row["line_v"] == 48.0 and row["l_leak_h"] > 0 and row["network_from"] == "loaded ring"
+    # The review reads the node by the same name: its figures and verdict are the drain's.
+    code, out, err = run_cli("report", "1", "--db", str(db), "--format", "json")
+    assert code == 0, err
+    review = json.loads(out)
+    assert review["nodes"] == ["drain"] and review["worst"]["peak_v"]["value"] > 48.0
+    [point] = review["points"]
+    assert point["verdict"] in ("pass", "fail") and "peak_v" in point["nodes"]["drain"]["figures"]
