@@ -13,10 +13,8 @@ problem at once, each with its key and line. DEVELOPERS.md documents the format 
 
 from __future__ import annotations
 
-import difflib
 import math
 import string
-import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
@@ -26,7 +24,7 @@ from typing import Any
 from instruments.block import BYTE_ORDERS, DATA_FORMATS
 from instruments.errors import CommandMapError, UnsafeTextError
 from instruments.limits import ScopeLimits, check_text
-from instruments.tomlkeys import find_key_line
+from instruments.tomlkeys import Problems, did_you_mean
 
 MAPS_DIR = Path(__file__).with_name("command_maps")
 ROLES = ("source", "load", "meter", "scope")
@@ -289,17 +287,11 @@ def load_command_map(family_or_path: str | Path, role: str = "scope") -> Command
     CommandMapError
         Listing every problem found, each with its key and line, and what would be valid.
     """
-    path = _resolve(family_or_path, role)
-    try:
-        text = path.read_bytes().decode("utf-8")
-        document = tomllib.loads(text)
-    except OSError as error:
-        raise CommandMapError(f"{path}: cannot read command map ({error.strerror})") from None
-    except UnicodeDecodeError:
-        raise CommandMapError(f"{path}: not UTF-8 text") from None
-    except tomllib.TOMLDecodeError as error:
-        raise CommandMapError(f"{path}: not valid TOML: {error}") from None
-    return _Validator(path, text, role).validate(document)
+    problems = Problems(_resolve(family_or_path, role))
+    document = problems.load()
+    if document is None:
+        raise CommandMapError(problems.report())
+    return _Validator(problems, role).validate(document)
 
 
 def _resolve(family_or_path: str | Path, role: str) -> Path:
@@ -320,11 +312,6 @@ def _resolve(family_or_path: str | Path, role: str) -> Path:
     return path
 
 
-def _suggest(key: str, valid: tuple[str, ...] | list[str]) -> str:
-    close = difflib.get_close_matches(key, valid, n=1)
-    return f"did you mean {close[0]!r}?" if close else f"valid keys: {', '.join(valid)}"
-
-
 def _number_key(text: str) -> float | None:
     try:
         value = float(text)
@@ -336,14 +323,13 @@ def _number_key(text: str) -> float | None:
 class _Validator:
     """Checks one map document, collecting every problem with its key and line."""
 
-    def __init__(self, path: Path, text: str, role: str) -> None:
-        self.path = path
-        self.text = text
+    def __init__(self, problems: Problems, role: str) -> None:
+        self.path = problems.path
         self.role = role
-        self.problems: list[tuple[int | None, str, str]] = []
+        self.problems = problems
 
     def fail(self, key: str, message: str) -> None:
-        self.problems.append((find_key_line(self.text, key), key, message))
+        self.problems.fail(key, message)
 
     def get(self, table: Mapping[str, Any], key: str, kind: Any, where: str = "") -> Any:
         """``table[key]`` if it is of ``kind`` (and finite), else None with a problem."""
@@ -360,9 +346,7 @@ class _Validator:
         return value
 
     def unknown_keys(self, table: Mapping[str, Any], valid: tuple[str, ...], where: str) -> None:
-        for key in table:
-            if key not in valid:
-                self.fail(f"{where}{key}", f"unknown key {where}{key!r}; {_suggest(key, valid)}")
+        self.problems.unknown_keys(table, valid, where.rstrip("."))
 
     def safe(self, key: str, text: str) -> str:
         try:
@@ -409,15 +393,8 @@ class _Validator:
         )
 
     def raise_problems(self) -> None:
-        if not self.problems:
-            return
-        ordered = sorted(self.problems, key=lambda problem: problem[0] or 0)
-        count = f"{len(ordered)} problems" if len(ordered) > 1 else "1 problem"
-        lines = [f"{self.path}: {count}:"]
-        for line, key, message in ordered:
-            where = f"line {line}, " if line else ""
-            lines.append(f"  {where}{key}: {message}")
-        raise CommandMapError("\n".join(lines))
+        if self.problems:
+            raise CommandMapError(self.problems.report())
 
     def missing(self, key: str, default: Any, what: str = "") -> Any:
         self.fail(key, f"missing key {key!r}" + (f"; expected {what}" if what else ""))
@@ -633,7 +610,9 @@ class _Validator:
         for name in names:
             if not isinstance(name, str) or name not in valid:
                 hint = (
-                    _suggest(name, valid) if isinstance(name, str) else f"valid: {', '.join(valid)}"
+                    did_you_mean(name, valid)
+                    if isinstance(name, str)
+                    else f"valid: {', '.join(valid)}"
                 )
                 self.fail("scaling_fields", f"scaling_fields has unknown field {name!r}; {hint}")
                 continue

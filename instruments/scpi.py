@@ -430,12 +430,6 @@ class ScpiInstrument:
         """``*CLS``: clear status and the error queue (IEEE 488.2 10.3)."""
         self.write("*CLS")
 
-    def wait_complete(self) -> None:
-        """``*OPC?``: block until pending operations are done (IEEE 488.2 10.19)."""
-        reply = self.query("*OPC?")
-        if reply != "1":
-            raise self.reply_error(f"*OPC? answered {reply!r}, expected '1'")
-
     # -- binary blocks --------------------------------------------------------------------
 
     def query_block(self, command: str) -> memoryview:

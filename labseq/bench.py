@@ -1,8 +1,9 @@
 """The bench of one run: the four role drivers, opened from a sequence file.
 
-For ``kind = "sim"`` the simulated bench is started in this process (its SCPI servers on
-loopback) and reached through PyVISA exactly like a real one; for ``kind = "visa"`` the
-sequence's resource strings are opened. Either way the runner sees the same four drivers.
+The sequence's bench kind (:mod:`labseq.bench_kinds`) gives the resource of every role: for
+``kind = "visa"`` the sequence's resource strings, for ``kind = "sim"`` those of a simulated
+bench started in this process (:mod:`labseq.sim_bench`), reached through PyVISA exactly like a
+real one. Either way the runner sees the same four drivers.
 """
 
 from __future__ import annotations
@@ -11,7 +12,7 @@ import math
 import time
 from collections.abc import Callable
 from contextlib import suppress
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from typing import Any
 
 import pyvisa
@@ -25,13 +26,12 @@ from instruments import (
     SourceLimits,
     load_command_map,
 )
+from instruments.command_map import ROLES
 from instruments.errors import InstrumentError, ReplyFormatError, ScpiError
 from instruments.roles import MappedInstrument
-from labseq.errors import InputError
+from labseq.bench_kinds import Started, bench_kind
 from labseq.safety import SAFE_BUS_V
 from labseq.sequence import Sequence
-
-ROLES = ("source", "load", "meter", "scope")
 
 #: How long the runner waits for a real bench's bus to fall below the safe limit.
 BUS_DISCHARGE_TIMEOUT_S = 300.0
@@ -44,7 +44,7 @@ class Bench:
     sequence: Sequence
     drivers: dict[str, MappedInstrument]
     resources: dict[str, str]
-    sim: Any = None  # the in-process SimBench for kind = "sim"
+    stop: Callable[[], None] | None = None  # stops what was started for the bench (the sim)
     _openers: dict[str, Callable[[], MappedInstrument]] = field(default_factory=dict, repr=False)
 
     @property
@@ -66,7 +66,7 @@ class Bench:
     @property
     def simulated(self) -> bool:
         """True when the run drives the simulated bench."""
-        return self.sequence.bench.is_sim
+        return self.sequence.bench.simulated
 
     def identities(self) -> dict[str, dict[str, str]]:
         """``*IDN?`` of every role, with its resource string, for the run record."""
@@ -87,55 +87,11 @@ class Bench:
 
     def close(self) -> None:
         """Close every session (without switching anything: :func:`make_safe` does that first),
-        then stop the simulated bench if there is one."""
+        then stop what was started for the bench (a simulated bench)."""
         for driver in self.drivers.values():
             driver.abandon()  # make_safe has already switched off
-        if self.sim is not None:
-            self.sim.stop()
-
-
-def sim_design(sequence: Sequence) -> Any:
-    """The simulated DUT with the sequence's parts fitted: its snubber across the switch, its
-    clamp's R and C in place of the DUT file's (whose nominal clamp voltage stays the solver's
-    start), and a node's snubber across the output rectifier it probes (channel 2). A node
-    without a snubber leaves the DUT file's rectifier damper as it is."""
-    from sim_instruments.flyback import load_dut
-    from sim_instruments.instruments import SECONDARY_CHANNEL
-
-    design = load_dut(sequence.bench.sim_dut_path).with_snubber(
-        sequence.snubber.resistance_ohm, sequence.snubber.capacitance_f
-    )
-    clamp = sequence.clamp
-    if clamp is not None and design.has_clamp:
-        design = replace(
-            design,
-            clamp_resistance_ohm=clamp.resistance_ohm,
-            clamp_capacitance_f=clamp.capacitance_f,
-        )
-    for node in sequence.nodes[1:]:
-        snubber = node.snubber
-        if node.channel == SECONDARY_CHANNEL and design.secondary and snubber is not None:
-            rectifier = replace(
-                design.secondary,
-                snubber_resistance_ohm=snubber.resistance_ohm,
-                snubber_capacitance_f=snubber.capacitance_f,
-            )
-            design = replace(design, secondary=rectifier)
-    return design
-
-
-def _sim_resources(sequence: Sequence, faults: str, seed: int) -> tuple[Any, dict[str, str]]:
-    """Start the simulated bench for ``sequence`` with its parts fitted (:func:`sim_design`);
-    return it and its resources."""
-    from sim_instruments.bench import SimBench
-    from sim_instruments.faults import FaultSpecError
-
-    design = sim_design(sequence)
-    try:
-        sim = SimBench(design, faults=faults, seed=seed, dialect=sequence.bench.sim_dialect).start()
-    except FaultSpecError as error:
-        raise InputError(str(error)) from None
-    return sim, dict(sim.resources)
+        if self.stop is not None:
+            self.stop()
 
 
 def driver_options(sequence: Sequence) -> dict[str, dict[str, Any]]:
@@ -171,16 +127,10 @@ DRIVER_CLASSES: dict[str, type[MappedInstrument]] = {
 }
 
 
-def start_resources(
-    sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0
-) -> tuple[Any, dict[str, str]]:
-    """The resource of every role: the sequence's, or those of the simulated bench started
-    here (returned with them, to be stopped by the caller; None for a real bench)."""
-    if sequence.bench.is_sim:
-        return _sim_resources(sequence, sim_faults, sim_seed)
-    if sim_faults:
-        raise InputError('fault injection needs the simulated bench (bench.kind = "sim")')
-    return None, dict(sequence.bench.resources)
+def start_resources(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -> Started:
+    """The resource of every role as the sequence's bench kind gives them, and how to stop
+    what was started for them (the caller's to call)."""
+    return bench_kind(sequence.bench.kind).start(sequence, faults=sim_faults, seed=sim_seed)
 
 
 def lock_names(sequence: Sequence) -> list[str]:
@@ -189,7 +139,7 @@ def lock_names(sequence: Sequence) -> list[str]:
     both ways is still one instrument); an alias the library cannot resolve is kept as it is,
     and opening it reports the problem. A simulated bench has no instruments to lock."""
     spec = sequence.bench
-    if spec.is_sim:
+    if spec.simulated:
         return []
     names = []
     for resource in spec.resources.values():
@@ -226,13 +176,14 @@ def open_bench(sequence: Sequence, *, sim_faults: str = "", sim_seed: int = 0) -
     then put each in its known state (``*RST`` and its map's set-up commands, where the map has
     them). A driver reopened after a fault is not reset: the run's settings stay.
     """
-    sim, resources = start_resources(sequence, sim_faults=sim_faults, sim_seed=sim_seed)
+    started = start_resources(sequence, sim_faults=sim_faults, sim_seed=sim_seed)
+    resources = started.resources
     options = driver_options(sequence)
 
     def opener(role: str) -> Callable[[], MappedInstrument]:
         return lambda: open_driver(sequence, resources, role, options)
 
-    bench = Bench(sequence=sequence, drivers={}, resources=resources, sim=sim)
+    bench = Bench(sequence=sequence, drivers={}, resources=resources, stop=started.stop)
     try:
         for role in ROLES:
             bench._openers[role] = opener(role)
@@ -346,7 +297,7 @@ def _watch_bus(
     """Read the bus (the primary switch node's mean with the converter stopped) until it is
     below the ES1 DC limit or ``timeout_s`` has passed; a failed reading is tried once more on a
     fresh session."""
-    channel = bench.sequence.scope.channel
+    channel = bench.sequence.primary.channel
     deadline = time.monotonic() + timeout_s
     reopen, failures = fresh, 0
     while True:

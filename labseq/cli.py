@@ -1,8 +1,11 @@
 """The ``labseq`` command: a thin layer over the library, one module per command.
 
-Each module in ``labseq.commands`` exposes ``command`` (a click command). Errors the user can act
-on arrive as :class:`labseq.errors.LabseqError` or :class:`instruments.errors.InstrumentError` and
-are printed as one line; set ``LABSEQ_DEBUG=1`` to see the traceback of an unexpected failure.
+Each module in ``labseq.commands`` exposes ``command`` (a click command), imported only when that
+command is run or listed: ``labseq runs`` loads the store and nothing of the bench, and no
+command module imports the simulator or scipy before its command needs them. Errors the user can
+act on arrive as :class:`labseq.errors.LabseqError` or
+:class:`instruments.errors.InstrumentError` and are printed as one line; set ``LABSEQ_DEBUG=1``
+to see the traceback of an unexpected failure.
 """
 
 from __future__ import annotations
@@ -26,6 +29,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "run",
     "resume",
     "runs",
+    "log",
     "export",
     "analyze",
     "analyze_run",
@@ -35,14 +39,27 @@ COMMAND_MODULES: tuple[str, ...] = (
 )
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+#: Command name → its module (``analyze-run`` lives in ``analyze_run``).
+COMMANDS: dict[str, str] = {module.replace("_", "-"): module for module in COMMAND_MODULES}
+
+
+class _CommandGroup(click.Group):
+    """The group of :data:`COMMANDS`, each imported from its module when first asked for."""
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return sorted(COMMANDS)
+
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
+        module = COMMANDS.get(cmd_name)
+        if module is None:
+            return None
+        return importlib.import_module(f"labseq.commands.{module}").command
+
+
+@click.group(cls=_CommandGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="labseq")
 def group() -> None:
     """Prove a flyback snubber at every line and load corner, on a real or simulated bench."""
-
-
-for _name in COMMAND_MODULES:
-    group.add_command(importlib.import_module(f"labseq.commands.{_name}").command)
 
 
 def main(argv: list[str] | None = None) -> None:

@@ -159,7 +159,7 @@ def _probe_meter(probe: _RoleProbe, sequence: Sequence) -> None:
 def _probe_scope(probe: _RoleProbe, sequence: Sequence) -> None:
     scope = probe.driver
     assert isinstance(scope, Oscilloscope)
-    node, settings = sequence.primary, sequence.scope
+    node, settings = sequence.primary, sequence.acquisition
     channel = node.channel
     for key, value in (
         ("channel_enable", "on"),
@@ -260,7 +260,8 @@ def probe_bench(sequence: Sequence, roles: tuple[str, ...] = ROLES) -> list[Prob
     others; every driver is closed at the end, which switches the output roles off once more.
     """
     lines: list[ProbeLine] = []
-    sim, resources = start_resources(sequence)
+    started = start_resources(sequence)
+    resources = started.resources
     try:
         for role in roles:
             try:
@@ -282,6 +283,6 @@ def probe_bench(sequence: Sequence, roles: tuple[str, ...] = ROLES) -> list[Prob
                     lines.append(ProbeLine(role, "close", FAILED, "", str(error)))
                     driver.abandon()
     finally:
-        if sim is not None:
-            sim.stop()
+        if started.stop is not None:
+            started.stop()
     return lines

@@ -1,24 +1,9 @@
-"""Corner review and regression compare of stored runs: worst points, grids, changes.
+"""Corner review of a stored run: its verdict, its worst point for each figure, its grids.
 
 Everything here works on the figures a run stored per point (worst, mean and spread over the
 point's captures), never on the raw captures, so a review of a large run costs one read of its
-point rows. The only input is a :class:`labseq.store.Store`; nothing is written.
-
-Compare rule
-------------
-Points of the two runs are matched by setpoints: same line kind, and line and load each within
-``rel_tol`` (0.5 % by default) of the larger of the two values. For each matched point and
-figure the worst values (those the limits judge) are compared. The change Δ = candidate −
-baseline counts only when it exceeds the captures' own scatter,
-
-    |Δ| > max(k·√(s_b² + s_c²), floor),
-
-with s_b and s_c the sample standard deviations over each point's captures (0 for a single
-capture), k = 2, and ``floor`` a small per-figure amount below which a change is taken as
-quantisation (:data:`NOISE_FLOORS`). A change beyond the threshold is "better" or "worse" by the
-figure's direction: lower peak, overshoot, Q, settling time and snubber loss are better; higher
-damping ratio, stress margin and efficiency are better. A point regressed when any gated figure
-got worse or its verdict went from pass to fail.
+point rows. The only input is a :class:`labseq.store.Store`; nothing is written. The regression
+compare of two reviewed runs is :mod:`labseq.compare`.
 
 Nodes
 -----
@@ -26,124 +11,34 @@ A run may capture several nodes per point (the primary switch node first, then e
 rectifier). ``PointReview.figures`` and the run's ``worst`` are the primary's, so a single-node
 run reads as it always did; :meth:`RunReview.node_view` gives the same review for any node, with
 that node's figures and verdicts. A falling node keeps its own sign: its peak is negative and a
-more negative peak is worse. A compare matches (point, node): each node's figures are compared
-at every matched point, and a worse gated figure of any node makes the point regress.
+more negative peak is worse.
 """
 
 from __future__ import annotations
 
-import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
 
-from labseq.analysis.capture import FIGURE_UNITS
 from labseq.analysis.snubber import METHOD_LABELS
-from labseq.analysis.verdict import SIGNED_FIGURES
+from labseq.analysis.verdict import LIMIT_FIGURES, worst_verdict
 from labseq.errors import InputError
-from labseq.sequence import NodeSpec, parse_sequence
+from labseq.figures import (
+    FIGURE_DIRECTIONS,
+    FIGURE_TITLES,
+    VERDICTS_WORST_FIRST,
+    figure_direction,
+    format_figure,
+)
+from labseq.pipeline import stored_sequence
+from labseq.sequence import DEFAULT_PRIMARY_NAME, NodeSpec
 from labseq.sequence import Sequence as SequenceFile
-from labseq.store import PRIMARY_NODE, PointRecord, RunRecord, Store
+from labseq.store import PointRecord, RunRecord, Store
 from labseq.units import format_si
 
-#: Figures a review reports, in the order a reviewer reads them, with their direction:
-#: +1 when a higher value is better, −1 when a lower value is better.
-FIGURE_DIRECTIONS: dict[str, int] = {
-    "peak_v": -1,
-    "stress_margin_v": +1,
-    "overshoot_v": -1,
-    "overshoot_pct": -1,
-    "damping_ratio": +1,
-    "q_factor": -1,
-    "settling_time_s": -1,
-    "snubber_loss_w": -1,
-    "clamp_level_v": -1,
-    "clamp_loss_w": -1,
-    "efficiency": +1,
-}
-
-#: Plain names for tables and sentences.
-FIGURE_TITLES: dict[str, str] = {
-    "peak_v": "peak stress",
-    "stress_margin_v": "stress margin",
-    "overshoot_v": "overshoot",
-    "overshoot_pct": "overshoot (% of step)",
-    "damping_ratio": "damping ratio",
-    "q_factor": "Q",
-    "settling_time_s": "settling time",
-    "snubber_loss_w": "snubber loss",
-    "efficiency": "efficiency",
-    "ring_frequency_hz": "ring frequency",
-    "clamp_level_v": "clamp level",
-    "clamp_loss_w": "clamp loss",
-}
-
-#: Smallest change taken as real, per figure: about one 8-bit code on a 250 V screen for volts,
-#: two samples at 1 GS/s for times, and what the figures' printed precision resolves otherwise
-#: (common practice, no published source).
-NOISE_FLOORS: dict[str, float] = {
-    "peak_v": 1.0,
-    "stress_margin_v": 1.0,
-    "overshoot_v": 1.0,
-    "overshoot_pct": 0.5,
-    "damping_ratio": 0.005,
-    "q_factor": 0.05,
-    "settling_time_s": 2e-9,
-    "snubber_loss_w": 1e-3,
-    "clamp_level_v": 1.0,
-    "clamp_loss_w": 1e-3,
-    "efficiency": 1e-3,
-}
-
-#: Coverage factor k of the significance rule.
-DEFAULT_COVERAGE = 2.0
-#: Setpoints within this fraction of each other are the same point.
-DEFAULT_MATCH_TOLERANCE = 0.005
-
-VERDICT_ORDER = ("fail", "incomplete", "pass")
-MINUS = "\u2212"
-
-
 # --------------------------------------------------------------------------- text helpers
-
-
-def figure_direction(figure: str, polarity: int = 1) -> int:
-    """+1 when a higher value of ``figure`` is better, −1 when lower is; turned round for a
-    signed figure (the peak) of a falling node, whose worse peak is the more negative."""
-    direction = FIGURE_DIRECTIONS[figure]
-    return -direction if polarity < 0 and figure in SIGNED_FIGURES else direction
-
-
-def figure_unit(figure: str) -> str:
-    """Unit symbol of a figure ("" for ratios; efficiency is shown in %)."""
-    return FIGURE_UNITS.get(figure, "")
-
-
-def format_figure(figure: str, value: float | None) -> str:
-    """A figure in engineering notation: ``112 V``, ``0.31``, ``91.2 %``."""
-    if value is None or not math.isfinite(value):
-        return "—"
-    if figure == "efficiency":
-        return f"{100 * value:.3g} %"
-    if figure == "overshoot_pct":
-        return f"{value:.3g} %"
-    unit = figure_unit(figure)
-    return format_si(value, unit) if unit else f"{value:.3g}"
-
-
-def format_change(figure: str, delta: float | None) -> str:
-    """A signed change: ``+41 mW``, ``−38 V``, ``−0.2 pt`` (efficiency in percentage points)."""
-    if delta is None or not math.isfinite(delta):
-        return "—"
-    sign = "+" if delta > 0 else MINUS if delta < 0 else "±"
-    if figure == "efficiency":
-        return f"{sign}{abs(100 * delta):.2g} pt"
-    if figure == "overshoot_pct":
-        return f"{sign}{abs(delta):.2g} pt"
-    unit = figure_unit(figure)
-    return sign + (format_si(abs(delta), unit) if unit else f"{abs(delta):.2g}")
 
 
 def line_text(line_v: float, line_is_ac: bool) -> str:
@@ -235,8 +130,8 @@ class RunReview:
     worst: dict[str, WorstPoint]
     line_values_v: tuple[float, ...]
     load_values_a: tuple[float, ...]
-    node_names: tuple[str, ...] = (PRIMARY_NODE,)  # every node of the run, the primary first
-    node_name: str = PRIMARY_NODE  # the node whose figures ``points`` and ``worst`` hold
+    node_names: tuple[str, ...]  # every node of the run, the primary first
+    node_name: str  # the node whose figures ``points`` and ``worst`` hold
     #: What the shutdown confirmed when it could not confirm the bench safe (unsafe-end runs).
     end_safety: str | None = None
     #: How each (node, point id)'s snubber loss was obtained: "waveform" and/or "cv2f".
@@ -332,17 +227,6 @@ def grid_values(
     return values
 
 
-def run_verdict(verdicts: Iterable[str]) -> str:
-    """Fail if any point fails; else incomplete if any is incomplete (or there are none); else
-    pass."""
-    seen = set(verdicts)
-    if "fail" in seen:
-        return "fail"
-    if "incomplete" in seen or not seen:
-        return "incomplete"
-    return "pass"
-
-
 def node_polarity(review: RunReview, node: str) -> int:
     """A node's polarity: from the sequence, else −1 when its stored peaks are negative."""
     spec = review.sequence.node(node) if review.sequence else None
@@ -390,24 +274,19 @@ def _point_reviews(store: Store, run_id: int, primary: str) -> list[PointReview]
     return reviews
 
 
-def stored_sequence(run: RunRecord) -> tuple[SequenceFile | None, str | None]:
-    """The run's sequence as stored, validated again; (None, why) when it no longer validates
-    (e.g. a DUT file it named has moved)."""
-    try:
-        return parse_sequence(run.sequence_text, run.sequence_path), None
-    except InputError as exc:
-        return None, str(exc)
-
-
 def review_run(store: Store, run_id: int) -> RunReview:
     """Read run ``run_id`` and its points and work out its verdict, grid and worst points."""
     run = store.run(run_id)
-    sequence, problem = stored_sequence(run)
+    try:
+        sequence, problem = stored_sequence(run), None
+    except InputError as exc:  # the stored text no longer validates (a DUT file has moved)
+        sequence, problem = None, str(exc)
     stored_nodes = store.node_names(run_id)
     declared = [node.name for node in sequence.nodes] if sequence else []
-    node_names = tuple(dict.fromkeys([*declared, *stored_nodes])) or (PRIMARY_NODE,)
+    # a run with neither a valid sequence nor a capture has no node to name but the default
+    node_names = tuple(dict.fromkeys([*declared, *stored_nodes])) or (DEFAULT_PRIMARY_NAME,)
     points = _point_reviews(store, run_id, node_names[0])
-    counts = {word: 0 for word in VERDICT_ORDER}
+    counts = {word: 0 for word in VERDICTS_WORST_FIRST}
     for point in points:
         counts[point.verdict] += 1
     return RunReview(
@@ -415,7 +294,7 @@ def review_run(store: Store, run_id: int) -> RunReview:
         sequence=sequence,
         sequence_problem=problem,
         points=points,
-        verdict=run_verdict(p.verdict for p in points),
+        verdict=worst_verdict(p.verdict for p in points),
         verdict_counts=counts,
         worst=worst_points(points),
         line_values_v=tuple(sorted({p.point.line_v for p in points})),
@@ -445,18 +324,12 @@ def limit_rows(review: RunReview) -> list[tuple[str, str]]:
             f"{format_si(spec.derated_rating_v, 'V')}",
         )
     )
-    for name, relation, figure in (
-        ("min_stress_margin_v", "≥", "stress_margin_v"),
-        ("min_damping_ratio", "≥", "damping_ratio"),
-        ("max_q_factor", "≤", "q_factor"),
-        ("max_settling_time_s", "≤", "settling_time_s"),
-        ("max_snubber_loss_w", "≤", "snubber_loss_w"),
-        ("min_efficiency", "≥", "efficiency"),
-    ):
+    for name, (figure, is_max) in LIMIT_FIGURES.items():
         value = getattr(limits, name)
-        if value is not None:
+        if value is not None and figure != "peak_v":
+            relation = "≤" if is_max else "≥"
             rows.append((f"{FIGURE_TITLES[figure]} {relation}", format_figure(figure, value)))
-    rows.append(("settling band", f"±{100 * limits.settling_band:.3g} % of the step"))
+    rows.append(("settling band", f"±{100 * spec.settling_band:.3g} % of the step"))
     if spec.snubber is not None:
         rows.append(("snubber", spec.snubber.label))
     clamp = review.sequence.clamp
@@ -468,6 +341,7 @@ def limit_rows(review: RunReview) -> list[tuple[str, str]]:
 def _node_limits(spec: NodeSpec) -> dict[str, Any]:
     return {
         **vars(spec.limits),
+        "settling_band": spec.settling_band,
         "rating_v": spec.rating_v,
         "derating": spec.derating,
         "polarity": "rising" if spec.polarity > 0 else "falling",
@@ -504,7 +378,8 @@ def run_summary(review: RunReview) -> dict[str, Any]:
             None
             if sequence is None
             else {
-                **vars(sequence.limits),
+                **vars(sequence.primary.limits),
+                "settling_band": sequence.primary.settling_band,
                 "switch_rating_v": sequence.dut.switch_rating_v,
                 "derating": sequence.dut.derating,
                 "nodes": {node.name: _node_limits(node) for node in sequence.nodes},
@@ -538,516 +413,4 @@ def run_summary(review: RunReview) -> dict[str, Any]:
         ],
         "worst": _worst_summary(review.worst),
         "worst_by_node": {name: _worst_summary(view.worst) for name, view in views.items()},
-    }
-
-
-# --------------------------------------------------------------------------- compare
-
-
-@dataclass(frozen=True)
-class FigureChange:
-    """One figure at one matched point: baseline, candidate, change and what it means."""
-
-    figure: str
-    baseline: FigureStats | None
-    candidate: FigureStats | None
-    delta: float | None
-    threshold: float | None
-    flag: str  # better, worse, unchanged, missing in baseline, missing in candidate
-    node: str | None = None  # None: the primary node
-
-    @property
-    def significance(self) -> float:
-        """|Δ| in units of its threshold (0 when not comparable)."""
-        if self.delta is None or not self.threshold:
-            return 0.0
-        return abs(self.delta) / self.threshold
-
-
-@dataclass(frozen=True)
-class PointChange:
-    """A point of either run, matched or not, with its figure changes and verdicts."""
-
-    baseline: PointReview | None
-    candidate: PointReview | None
-    changes: dict[str, FigureChange] = field(default_factory=dict)  # the primary node's
-    gated: frozenset[str] = frozenset(FIGURE_DIRECTIONS)  # figures whose worsening counts
-    nodes: dict[str, dict[str, FigureChange]] = field(default_factory=dict)  # the other nodes'
-
-    @property
-    def all_changes(self) -> list[FigureChange]:
-        """Every figure change of every node, the primary's first."""
-        return [*self.changes.values(), *(c for per in self.nodes.values() for c in per.values())]
-
-    @property
-    def matched(self) -> bool:
-        return self.baseline is not None and self.candidate is not None
-
-    @property
-    def either(self) -> PointReview:
-        """The candidate's point, else the baseline's (for its setpoints)."""
-        point = self.candidate or self.baseline
-        assert point is not None  # a change always has at least one side
-        return point
-
-    @property
-    def verdict_went_to_fail(self) -> bool:
-        return self.matched and self.baseline.verdict == "pass" and self.candidate.verdict == "fail"
-
-    @property
-    def flag(self) -> str:
-        """worse (a gated figure, or the verdict pass → fail) / better / unchanged / missing in
-        baseline / missing in candidate."""
-        if self.candidate is None:
-            return "missing in candidate"
-        if self.baseline is None:
-            return "missing in baseline"
-        flags = {change.flag for change in self.all_changes}
-        if self.verdict_went_to_fail or self.worse(self.gated):
-            return "worse"
-        return "better" if "better" in flags else "unchanged"
-
-    def worse(self, gated: Iterable[str]) -> list[FigureChange]:
-        """Gated figures (of any node) that got worse beyond their threshold, most significant
-        first."""
-        gated = set(gated)
-        found = [c for c in self.all_changes if c.flag == "worse" and c.figure in gated]
-        return sorted(found, key=lambda c: -c.significance)
-
-
-@dataclass(frozen=True)
-class Comparison:
-    """The compare of a candidate run against a baseline run."""
-
-    baseline: RunReview
-    candidate: RunReview
-    points: list[PointChange]
-    gated: tuple[str, ...]
-    coverage: float
-    rel_tol: float
-
-    @property
-    def regressions(self) -> list[PointChange]:
-        """Matched points that got worse (gated figures) or went pass → fail, worst first."""
-        found = [
-            p for p in self.points if p.matched and (p.verdict_went_to_fail or p.worse(self.gated))
-        ]
-
-        def severity(change: PointChange) -> tuple[bool, float]:
-            worse = change.worse(self.gated)
-            return (change.verdict_went_to_fail, worse[0].significance if worse else 0.0)
-
-        return sorted(found, key=severity, reverse=True)
-
-    @property
-    def regressed(self) -> bool:
-        return bool(self.regressions)
-
-    @property
-    def missing(self) -> list[PointChange]:
-        return [p for p in self.points if not p.matched]
-
-    def label(self, change: PointChange) -> str:
-        """The setpoints of a change as text (the candidate's when both runs have the point)."""
-        return self.label_of(change.either)
-
-    def label_of(self, point: PointReview) -> str:
-        """The setpoints of a point of either run as text."""
-        rated = self.candidate.rated_load_a or self.baseline.rated_load_a
-        return point_label(point.point, rated)
-
-    @property
-    def line_values_v(self) -> tuple[float, ...]:
-        """Line values of the compare grid (the candidate's setpoint where both runs have one)."""
-        return tuple(sorted({p.either.point.line_v for p in self.points}))
-
-    @property
-    def load_values_a(self) -> tuple[float, ...]:
-        """Load values of the compare grid."""
-        return tuple(sorted({p.either.point.load_a for p in self.points}))
-
-    def grid(self, figure: str, side: str) -> np.ndarray:
-        """Line × load map of ``figure`` for ``side``: "baseline", "candidate" or "change"."""
-        reviews: list[PointReview] = [p.either for p in self.points]
-        values = np.full((len(self.line_values_v), len(self.load_values_a)), np.nan)
-        cells = grid_cells(reviews, self.line_values_v, self.load_values_a)
-        for (row, column), change in zip(cells, self.points, strict=True):
-            if side == "change":
-                found = change.changes.get(figure)
-                value = found.delta if found else None
-            else:
-                review = change.baseline if side == "baseline" else change.candidate
-                value = review.value(figure) if review else None
-            if value is not None:
-                values[row, column] = value
-        return values
-
-    def flag_grid(self, figure: str) -> list[list[str | None]]:
-        """Line × load map of the flag of ``figure`` (or the point's, when unmatched)."""
-        reviews: list[PointReview] = [p.either for p in self.points]
-        flags: list[list[str | None]] = [
-            [None] * len(self.load_values_a) for _ in self.line_values_v
-        ]
-        cells = grid_cells(reviews, self.line_values_v, self.load_values_a)
-        for (row, column), change in zip(cells, self.points, strict=True):
-            found = change.changes.get(figure)
-            flags[row][column] = found.flag if found else change.flag
-        return flags
-
-    def most_moved(self, count: int) -> list[PointChange]:
-        """The matched points whose figures moved most, in units of their thresholds."""
-        matched = [p for p in self.points if p.matched and p.all_changes]
-
-        def moved(change: PointChange) -> float:
-            return max(c.significance for c in change.all_changes)
-
-        return sorted(matched, key=moved, reverse=True)[:count]
-
-    def describe_regression(self, change: PointChange) -> str:
-        """What got worse at one point, in one line."""
-        parts = []
-        if change.verdict_went_to_fail:
-            parts.append("verdict pass → fail")
-        worse = change.worse(self.gated)
-        parts.extend(_change_text(figure_change) for figure_change in worse[:3])
-        if len(worse) > 3:
-            parts.append(f"and {len(worse) - 3} more figure(s)")
-        return f"{self.label(change)}: " + ", ".join(parts)
-
-    def describe_point(self, change: PointChange) -> str:
-        """A point's outcome in one line: its flag and its most significant changes."""
-        if not change.matched:
-            return f"{change.flag:<20} {self.label(change)}"
-        moved = [c for c in change.all_changes if c.flag in ("worse", "better")]
-        moved.sort(
-            key=lambda c: (not (c.flag == "worse" and c.figure in change.gated), -c.significance)
-        )
-        words = [_change_text(c) for c in moved[:3]]
-        if change.verdict_went_to_fail:
-            words.insert(0, "verdict pass → fail")
-        return f"{change.flag:<20} {self.label(change)}: " + (", ".join(words) or "no change")
-
-    def summary(self) -> str:
-        """The change the way an engineer says it, e.g. "peak stress −38 V at the worst
-        corner, damping ratio up from 0.06 to 0.31, snubber loss +41 mW at 75 V / 2.2 A"."""
-        return summary_sentence(self)
-
-
-def _change_text(change: FigureChange) -> str:
-    b = change.baseline.value if change.baseline else None
-    c = change.candidate.value if change.candidate else None
-    node = f"{change.node}: " if change.node else ""
-    return (
-        f"{node}{FIGURE_TITLES[change.figure]} {format_change(change.figure, change.delta)} "
-        f"({format_figure(change.figure, b)} → {format_figure(change.figure, c)})"
-    )
-
-
-def _same_setpoint(a: float, b: float, rel_tol: float) -> bool:
-    return abs(a - b) <= rel_tol * max(abs(a), abs(b)) or a == b
-
-
-def match_points(
-    baseline: Sequence[PointReview],
-    candidate: Sequence[PointReview],
-    rel_tol: float = DEFAULT_MATCH_TOLERANCE,
-) -> list[tuple[PointReview | None, PointReview | None]]:
-    """Pair points with the same line kind and line and load within ``rel_tol``; each point
-    pairs at most once, with its nearest partner. Unpaired points come back with None."""
-    # Sorting by setpoint keeps the search near each point: O(n log n) for grids of any size.
-    order = sorted(range(len(candidate)), key=lambda i: candidate[i].point.line_v)
-    lines = np.array([candidate[i].point.line_v for i in order])
-    free = set(range(len(candidate)))
-    pairs: list[tuple[PointReview | None, PointReview | None]] = []
-    for b in baseline:
-        line_v, load_a = b.point.line_v, b.point.load_a
-        reach = 2 * rel_tol * abs(line_v)  # a superset of the window; the exact test is below
-        lo = np.searchsorted(lines, line_v - reach, side="left")
-        hi = np.searchsorted(lines, line_v + reach, side="right")
-        best, best_distance = None, math.inf
-        for slot in range(int(lo), int(hi)):
-            index = order[slot]
-            c = candidate[index].point
-            if index not in free or c.line_is_ac != b.point.line_is_ac:
-                continue
-            if _same_setpoint(c.line_v, line_v, rel_tol) and _same_setpoint(
-                c.load_a, load_a, rel_tol
-            ):
-                distance = abs(c.line_v - line_v) / max(abs(line_v), 1e-12) + abs(
-                    c.load_a - load_a
-                ) / max(abs(load_a), 1e-12)
-                if distance < best_distance:
-                    best, best_distance = index, distance
-        if best is None:
-            pairs.append((b, None))
-        else:
-            free.discard(best)
-            pairs.append((b, candidate[best]))
-    pairs.extend((None, candidate[i]) for i in sorted(free))
-    return pairs
-
-
-def compare_figure(
-    figure: str,
-    baseline: FigureStats | None,
-    candidate: FigureStats | None,
-    *,
-    coverage: float = DEFAULT_COVERAGE,
-    floors: Mapping[str, float] = NOISE_FLOORS,
-    polarity: int = 1,
-    node: str | None = None,
-) -> FigureChange:
-    """Compare one figure of a matched point (of ``node``, None for the primary, whose
-    ``polarity`` sets which way its peak is worse) by the rule in this module's notes."""
-    b = baseline.value if baseline else None
-    c = candidate.value if candidate else None
-    if b is None or c is None:
-        flag = "missing in baseline" if b is None else "missing in candidate"
-        return FigureChange(figure, baseline, candidate, None, None, flag, node)
-    spread_b = baseline.spread or 0.0
-    spread_c = candidate.spread or 0.0
-    threshold = max(coverage * math.hypot(spread_b, spread_c), floors.get(figure, 0.0))
-    delta = c - b
-    if abs(delta) <= threshold:
-        flag = "unchanged"
-    else:
-        flag = "better" if delta * figure_direction(figure, polarity) > 0 else "worse"
-    return FigureChange(figure, baseline, candidate, delta, threshold, flag, node)
-
-
-def _compare_figures(
-    b: PointReview, c: PointReview, coverage: float, polarity: int, node: str | None
-) -> dict[str, FigureChange]:
-    """Every figure either point has, compared."""
-    return {
-        figure: compare_figure(
-            figure,
-            b.figures.get(figure),
-            c.figures.get(figure),
-            coverage=coverage,
-            polarity=polarity,
-            node=node,
-        )
-        for figure in FIGURE_DIRECTIONS
-        if figure in b.figures or figure in c.figures
-    }
-
-
-def compare_runs(
-    baseline: RunReview,
-    candidate: RunReview,
-    *,
-    rel_tol: float = DEFAULT_MATCH_TOLERANCE,
-    coverage: float = DEFAULT_COVERAGE,
-    gated: Iterable[str] = tuple(FIGURE_DIRECTIONS),
-) -> Comparison:
-    """Match the points of two reviewed runs and compare every figure of every matched point.
-
-    ``gated`` names the figures whose worsening counts as a regression (all by default); the
-    others are still compared and reported.
-    """
-    gated = tuple(gated)
-    unknown = sorted(set(gated) - set(FIGURE_DIRECTIONS))
-    if unknown:
-        raise InputError(
-            f"unknown figure(s) {', '.join(unknown)}; known: {', '.join(FIGURE_DIRECTIONS)}"
-        )
-    if not (0 < rel_tol < 0.5):
-        raise InputError(f"match tolerance {rel_tol!r}: give a fraction between 0 and 0.5")
-    if not (coverage > 0 and math.isfinite(coverage)):
-        raise InputError(f"coverage factor {coverage!r}: give a positive number such as 2")
-    changes = []
-    extra_nodes = shared_nodes(baseline, candidate)
-    for b, c in match_points(baseline.points, candidate.points, rel_tol):
-        figures: dict[str, FigureChange] = {}
-        nodes: dict[str, dict[str, FigureChange]] = {}
-        if b is not None and c is not None:
-            figures = _compare_figures(b, c, coverage, baseline.polarity, None)
-            for node in extra_nodes:
-                polarity = node_polarity(candidate, node)
-                nodes[node] = _compare_figures(
-                    b.of_node(node), c.of_node(node), coverage, polarity, node
-                )
-        changes.append(PointChange(b, c, figures, frozenset(gated), nodes))
-    return Comparison(baseline, candidate, changes, gated, coverage, rel_tol)
-
-
-def shared_nodes(baseline: RunReview, candidate: RunReview) -> list[str]:
-    """The nodes other than the primary that both runs captured, in the candidate's order."""
-    return [node for node in candidate.node_names[1:] if node in baseline.node_names[1:]]
-
-
-def _run_level(
-    comparison: Comparison, figure: str, node: str | None = None
-) -> tuple[FigureChange, PointReview] | None:
-    """The run-level change of a figure (of ``node``; None: the primary): worst over matched
-    points in each run, judged with the spreads of the two points that hold those worst
-    values; with the candidate's worst point."""
-    matched = [p for p in comparison.points if p.matched]
-    polarity = 1 if node is None else node_polarity(comparison.candidate, node)
-
-    def side(review: PointReview) -> PointReview:
-        return review if node is None else review.of_node(node)
-
-    b = worst_points([side(p.baseline) for p in matched], polarity).get(figure)
-    c = worst_points([side(p.candidate) for p in matched], polarity).get(figure)
-    if b is None or c is None:
-        return None
-    change = compare_figure(
-        figure,
-        b.point.figures[figure],
-        c.point.figures[figure],
-        coverage=comparison.coverage,
-        polarity=polarity,
-        node=node,
-    )
-    return change, c.point
-
-
-def summary_sentence(comparison: Comparison) -> str:
-    """One sentence on what changed, most important first."""
-    parts: list[str] = []
-    found = _run_level(comparison, "peak_v")
-    peak = found[0] if found else None
-    if peak is not None:
-        if peak.flag == "unchanged":
-            parts.append(f"peak stress unchanged at the worst corner ({_values_text(peak)})")
-        else:
-            parts.append(
-                f"peak stress {format_change('peak_v', peak.delta)} at the worst corner "
-                f"({_values_text(peak)})"
-            )
-    for figure in ("damping_ratio", "settling_time_s"):
-        found = _run_level(comparison, figure)
-        if found is None:
-            continue
-        level = found[0]
-        b, c = level.baseline.value, level.candidate.value
-        title = FIGURE_TITLES[figure]
-        if level.flag == "unchanged":
-            parts.append(f"{title} unchanged ({format_figure(figure, c)} at worst)")
-        else:
-            word = "up" if level.delta > 0 else "down"
-            parts.append(
-                f"{title} {word} from {format_figure(figure, b)} to {format_figure(figure, c)}"
-            )
-    loss = _largest_change(comparison, "snubber_loss_w")
-    if loss is not None:
-        point, change = loss
-        if change.flag == "unchanged":
-            parts.append("snubber loss unchanged")
-        else:
-            delta = format_change("snubber_loss_w", change.delta)
-            parts.append(f"snubber loss {delta} at {comparison.label(point)}")
-    parts += _node_peak_parts(comparison)
-    efficiency = [
-        p.changes["efficiency"].delta
-        for p in comparison.points
-        if "efficiency" in p.changes and p.changes["efficiency"].delta is not None
-    ]
-    if efficiency:
-        mean_delta = float(np.mean(efficiency))
-        if abs(mean_delta) < NOISE_FLOORS["efficiency"]:
-            parts.append("efficiency unchanged")
-        else:
-            parts.append(f"efficiency {format_change('efficiency', mean_delta)} on average")
-    before = comparison.baseline.verdict_counts
-    after = comparison.candidate.verdict_counts
-    parts.append(
-        f"failing points {before['fail']} → {after['fail']}, "
-        f"run verdict {comparison.baseline.verdict} → {comparison.candidate.verdict}"
-    )
-    missing_b = sum(1 for p in comparison.points if p.baseline is None)
-    missing_c = sum(1 for p in comparison.points if p.candidate is None)
-    if missing_c:
-        parts.append(f"{missing_c} baseline point(s) missing in the candidate")
-    if missing_b:
-        parts.append(f"{missing_b} candidate point(s) not in the baseline")
-    return ", ".join(parts)
-
-
-def _node_peak_parts(comparison: Comparison) -> list[str]:
-    """Each node but the primary: its peak's run-level change, where the candidate's worst is,
-    e.g. "secondary: peak −12 V at 264 V AC / 2.4 A (−107 V → −119 V)"."""
-    parts = []
-    for node in shared_nodes(comparison.baseline, comparison.candidate):
-        found = _run_level(comparison, "peak_v", node)
-        if found is None:
-            continue
-        change, where = found
-        moved = "unchanged" if change.flag == "unchanged" else format_change("peak_v", change.delta)
-        parts.append(
-            f"{node}: peak {moved} at {comparison.label_of(where)} ({_values_text(change)})"
-        )
-    return parts
-
-
-def _values_text(change: FigureChange) -> str:
-    b = change.baseline.value if change.baseline else None
-    c = change.candidate.value if change.candidate else None
-    return f"{format_figure(change.figure, b)} → {format_figure(change.figure, c)}"
-
-
-def _largest_change(comparison: Comparison, figure: str) -> tuple[PointChange, FigureChange] | None:
-    found = [
-        (p, p.changes[figure])
-        for p in comparison.points
-        if figure in p.changes and p.changes[figure].delta is not None
-    ]
-    if not found:
-        return None
-    return max(found, key=lambda pair: abs(pair[1].delta))
-
-
-def comparison_summary(comparison: Comparison) -> dict[str, Any]:
-    """The compare as plain data for JSON."""
-    worst = comparison.regressions[0] if comparison.regressions else None
-
-    def side(review: PointReview | None) -> dict[str, Any] | None:
-        if review is None:
-            return None
-        return {"point_index": review.point.point_index, "verdict": review.verdict}
-
-    return {
-        "baseline": comparison.baseline.run.id,
-        "candidate": comparison.candidate.run.id,
-        "regressed": comparison.regressed,
-        "nodes": [
-            comparison.candidate.node_names[0],
-            *shared_nodes(comparison.baseline, comparison.candidate),
-        ],
-        "summary": comparison.summary(),
-        "rule": {
-            "coverage_k": comparison.coverage,
-            "match_tolerance": comparison.rel_tol,
-            "noise_floors": NOISE_FLOORS,
-            "gated_figures": list(comparison.gated),
-        },
-        "worst_regression": None if worst is None else comparison.describe_regression(worst),
-        "points": [
-            {
-                "line_v": p.either.point.line_v,
-                "line_is_ac": p.either.point.line_is_ac,
-                "load_a": p.either.point.load_a,
-                "flag": p.flag,
-                "baseline": side(p.baseline),
-                "candidate": side(p.candidate),
-                "figures": _changes_summary(p.changes),
-                "nodes": {node: _changes_summary(changes) for node, changes in p.nodes.items()},
-            }
-            for p in comparison.points
-        ],
-    }
-
-
-def _changes_summary(changes: Mapping[str, FigureChange]) -> dict[str, Any]:
-    return {
-        name: {
-            "baseline": change.baseline.value if change.baseline else None,
-            "candidate": change.candidate.value if change.candidate else None,
-            "change": change.delta,
-            "threshold": change.threshold,
-            "flag": change.flag,
-        }
-        for name, change in changes.items()
     }

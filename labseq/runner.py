@@ -24,25 +24,14 @@ from dataclasses import dataclass, field
 
 from instruments import Waveform
 from instruments.errors import InstrumentError, ScpiError
-from labseq.analysis import CaptureFigures, NoEdgeError, aggregate, analyze_capture
-from labseq.analysis import judge as judge_point
-from labseq.analysis.capture import ClampFigures, clamp_figures
-from labseq.analysis.verdict import worst_verdict
 from labseq.bench import Bench, SafeReport, lock_names, make_safe, open_bench
 from labseq.errors import LabseqError
 from labseq.locks import run_locks
+from labseq.pipeline import analyse_or_error, analyse_run, judge_stored_point, store_figures
 from labseq.progress import Progress
 from labseq.safety import SAFE_BUS_V, Interrupted, SignalLatch, signal_exit_code
-from labseq.sequence import NodeSpec, Sequence, parse_sequence
-from labseq.store import (
-    CAPTURE_FIGURES,
-    CaptureRecord,
-    PointReadings,
-    PointRecord,
-    RunRecord,
-    Store,
-    StoredCapture,
-)
+from labseq.sequence import Sequence
+from labseq.store import CaptureRecord, PointReadings, PointRecord, RunRecord, Store
 
 #: How often the scope is asked whether its single acquisition is in.
 ACQUISITION_POLL_S = 0.005
@@ -104,127 +93,6 @@ class RunOutcome:
         return 0 if self.status == "finished" and self.points_done == self.points_total else 1
 
 
-@dataclass(frozen=True)
-class NodeResult:
-    """One capture's analysis: its edges and, on the primary with a clamp declared, the clamp."""
-
-    figures: CaptureFigures
-    clamp: ClampFigures | None = None
-
-
-def analyse_waveform(
-    sequence: Sequence, waveform: Waveform | StoredCapture, node: NodeSpec | None = None
-) -> CaptureFigures:
-    """Figures of one capture of ``node`` (the primary by default) as the sequence asks for
-    them: the node's polarity, settling band, snubber and rating (pure: no bench, no store)."""
-    return analyze_capture(
-        waveform.volts(),
-        waveform.x_increment_s,
-        waveform.x_origin_s,
-        clipped=waveform.clip_mask(),
-        **sequence.analysis_options(node or sequence.primary),
-    )
-
-
-def analyse_or_error(
-    sequence: Sequence,
-    waveform: Waveform | StoredCapture,
-    node: NodeSpec | None = None,
-    point: PointRecord | None = None,
-) -> NodeResult | Exception:
-    """:func:`analyse_waveform`, plus the clamp's figures on the primary when the sequence
-    declares a clamp and the ``point`` (its line, for the bus) is known; a record it cannot
-    analyse (no edge, too short) is returned as the error to store beside the capture."""
-    node = node or sequence.primary
-    try:
-        figures = analyse_waveform(sequence, waveform, node)
-    except (NoEdgeError, ValueError) as error:
-        return error
-    clamp = sequence.clamp
-    if clamp is None or point is None or node is not sequence.primary or figures.polarity < 0:
-        return NodeResult(figures)
-    return NodeResult(
-        figures,
-        clamp_figures(
-            waveform.volts(),
-            waveform.x_increment_s,
-            waveform.x_origin_s,
-            figures,
-            resistance_ohm=clamp.resistance_ohm,
-            capacitance_f=clamp.capacitance_f,
-            switching_frequency_hz=sequence.dut.switching_frequency_hz,
-            line_v=point.line_v,
-            line_is_ac=point.line_is_ac,
-        ),
-    )
-
-
-def store_figures(store: Store, capture_id: int, result: NodeResult | Exception) -> None:
-    """Store one capture's analysis: its worst edge's figures (and the clamp's) and every edge,
-    or why it failed."""
-    if isinstance(result, Exception):
-        store.set_capture_figures(capture_id, {}, error=str(result))
-        return
-    figures = result.figures
-    worst = figures.worst.as_dict()
-    worst["clipped"] = figures.clipped
-    if result.clamp is not None:
-        worst.update(result.clamp.as_dict())
-    store.set_capture_figures(capture_id, worst, edges=[edge.as_dict() for edge in figures.edges])
-
-
-def judge_stored_point(store: Store, sequence: Sequence, point: PointRecord) -> str:
-    """Aggregate a point's stored capture figures per node, judge each node against its own
-    limits (efficiency with the primary), store them, and store the worst of the nodes'
-    verdicts as the point's; return that verdict."""
-    rows: dict[str, list[dict[str, object]]] = {node.name: [] for node in sequence.nodes}
-    for capture in store.captures(point.id, with_codes=False):
-        stored = store.capture_figures(capture.id)
-        if capture.node in rows and stored and not stored.get("error"):
-            row: dict[str, object] = {name: stored[name] for name in CAPTURE_FIGURES}
-            row["clipped"] = bool(stored.get("clipped"))
-            rows[capture.node].append(row)
-    node_figures, node_verdicts, reasons = {}, {}, []
-    several = len(sequence.nodes) > 1
-    for node in sequence.nodes:
-        summary = aggregate(rows[node.name], polarity=node.polarity)
-        node_figures[node.name] = {
-            name: {"worst": s.worst, "mean": s.mean, "spread": s.spread, "n": s.count}
-            for name, s in summary.figures.items()
-        }
-        efficiency = point.efficiency if node is sequence.primary else None
-        verdict = judge_point(summary, node.verdict_limits(), efficiency, polarity=node.polarity)
-        node_verdicts[node.name] = (verdict.status, verdict.reasons)
-        reasons += [f"{node.name}: {r}" if several else r for r in verdict.reasons]
-    status = worst_verdict(status for status, _ in node_verdicts.values())
-    store.set_point_judgement(point.id, node_figures, node_verdicts, status, reasons)
-    return status
-
-
-def analyse_run(store: Store, sequence: Sequence, run_id: int, *, only_missing: bool) -> int:
-    """(Re-)analyse a run's stored captures from their raw codes and judge its done points
-    against ``sequence``'s limits, without touching the bench; return the captures analysed.
-
-    ``only_missing`` limits the work to captures that have no figures yet (after a run was
-    killed between storing a capture and storing its figures). A capture of a node the
-    sequence does not declare gets that as its error."""
-    analysed = 0
-    points = {point.id: point for point in store.points(run_id)}
-    for capture in store.iter_captures(run_id, only_unanalysed=only_missing):
-        node = sequence.node(capture.node)
-        result: NodeResult | Exception = (
-            LookupError(f"node {capture.node!r} is not declared in the sequence")
-            if node is None
-            else analyse_or_error(sequence, capture, node, points[capture.point_id])
-        )
-        store_figures(store, capture.id, result)
-        analysed += 1
-    for point in store.points(run_id, status="done"):
-        if not only_missing or point.verdict is None:
-            judge_stored_point(store, sequence, point)
-    return analysed
-
-
 class Sweep:
     """Walks the pending points of one run on an opened bench."""
 
@@ -255,7 +123,7 @@ class Sweep:
 
     def prepare(self) -> None:
         """Load off, source off, current limit, scope set-up (every node's channel)."""
-        bench, scope = self.bench, self.sequence.scope
+        bench, acquisition = self.bench, self.sequence.acquisition
         with self.timings.charge("instrument"):
             bench.load.set_input(False)
             bench.source.set_output(False)
@@ -269,9 +137,12 @@ class Sweep:
                     node.bandwidth_limit_hz,
                     node.probe_ratio,
                 )
-            bench.scope.configure_timebase(scope.time_per_div_s, scope.record_length)
+            bench.scope.configure_timebase(acquisition.time_per_div_s, acquisition.record_length)
             bench.scope.configure_trigger(
-                scope.channel, scope.trigger_level_v, scope.trigger_slope, scope.trigger_position
+                self.sequence.primary.channel,
+                acquisition.trigger_level_v,
+                acquisition.trigger_slope,
+                acquisition.trigger_position,
             )
 
     def _set_line(self, line_v: float) -> None:
@@ -302,7 +173,7 @@ class Sweep:
 
     def acquire(self) -> list[Waveform]:
         """One single-shot acquisition: every node's channel, in the sequence's node order."""
-        scope, settings = self.bench.scope, self.sequence.scope
+        scope, settings = self.bench.scope, self.sequence.acquisition
         with self.timings.charge("instrument"):
             scope.single()
             scope.wait_acquisition(settings.acquisition_timeout_s, ACQUISITION_POLL_S)
@@ -352,12 +223,12 @@ class Sweep:
                 for node, waveform in zip(seq.nodes, waveforms, strict=True)
             ]
             with self.timings.charge("store"):
-                capture_ids = self.store.add_captures(
+                capture_ids = self.store.commit_point(
                     point.id,
-                    records,
-                    point_status="done" if last else None,
+                    captures=records,
+                    status="done" if last else None,
                     readings=readings,
-                    started_at=started,
+                    started_at=started if last else None,
                 )
             for node, waveform, capture_id in zip(seq.nodes, waveforms, capture_ids, strict=True):
                 future = self.analysis.submit(analyse_or_error, seq, waveform, node, point)
@@ -593,7 +464,7 @@ def execute(
     except Interrupted as late:  # the first signal came as the sweep ended
         failure = failure or late
     unfinished = store.rollback_unfinished()
-    if isinstance(failure, Interrupted) and bench is None and not sequence.bench.is_sim:
+    if isinstance(failure, Interrupted) and bench is None and not sequence.bench.simulated:
         bench = _reopen_quietly(sequence, store, run_id)
     if bench is not None:
         with timings.charge("instrument"):
@@ -695,12 +566,6 @@ def run_sequence(
         run_id = start_run(sequence, store, label=label)
         execute(sequence, store, run_id, progress=Progress(quiet=quiet), sim_faults=sim_faults)
     return run_id
-
-
-def stored_sequence(store: Store, run_id: int) -> Sequence:
-    """The sequence a run was made with, validated again from the text stored with it."""
-    record = store.run(run_id)
-    return parse_sequence(record.sequence_text, record.sequence_path, sha256=record.sequence_sha256)
 
 
 #: What ``resume --take-over`` risks, said where the option is offered and where it is used.

@@ -30,10 +30,11 @@ SAFE_BUS_V = ES1_DC_V
 #: 128 + the signal number, as shells report a process ended by that signal.
 HANDLED_SIGNALS = (signal.SIGHUP, signal.SIGINT, signal.SIGTERM)
 
-CAUTIONS = """\
+_ES1_DC = f"{ES1_DC_V:g} V"
+CAUTIONS = f"""\
 CAUTION — hazardous voltage on the bench.
   * The DUT's switch node and bulk capacitor reach hundreds of volts; the bulk capacitor stays
-    charged after the source is off. Treat every node as live until it is measured below 60 V.
+    charged after the source is off. Treat every node as live until it is measured below {_ES1_DC}.
   * Power the DUT through an isolating transformer or an isolated source; never defeat the
     oscilloscope's protective earth to float a probe — use differential or suitably rated probes.
   * Keep covers and interlocks in place while the sweep runs unattended; keep hands off the DUT.

@@ -13,21 +13,25 @@ run stored in the database can always be traced back to the exact file that drov
 
 from __future__ import annotations
 
-import difflib
+import dataclasses
 import hashlib
 import math
 import re
-import tomllib
-from collections.abc import Callable, Iterable
-from dataclasses import MISSING, dataclass, field, fields
+from collections.abc import Iterable
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any, NamedTuple
 
+from instruments.command_map import ROLES
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
-from instruments.tomlkeys import find_key_line
+from instruments.tomlkeys import Problem, Problems, describe_value, report
+from labseq.analysis.verdict import Limits
+from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
 from labseq.errors import InputError
+from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND
 from labseq.safety import ES1_AC_RMS_V, ES1_DC_V
-from labseq.units import UnitError, format_si, parse_quantity
+from labseq.tomlread import MISSING, SAME_VALUE_RTOL, Table, quantity
+from labseq.units import format_si
 
 #: Bounds that keep every value ``check`` accepts runnable to its end (common practice, no
 #: published source): a value beyond them is a typing slip, never a plan, and would otherwise
@@ -41,18 +45,6 @@ MAX_SETTLE_S = 3600.0  # grid.settle: wait at each point
 MAX_DWELL_S = 600.0  # bench.limits.line_step_dwell: wait on each ramp step
 MAX_CAPTURES_PER_POINT = 1000
 
-#: Switch voltage derating used when the file gives none (from memory of common power-supply
-#: derating guidelines).
-DEFAULT_DERATING = 0.8
-
-#: Settling band as a fraction of the step when the file gives none (IEEE 181 leaves the band to
-#: the user; 5 % is common practice, no published source).
-DEFAULT_SETTLING_BAND = 0.05
-
-BENCH_KINDS = ("sim", "visa")
-BENCH_ROLES = ("source", "load", "meter", "scope")
-#: The command sets the simulated bench can speak (sim_instruments.instruments.DIALECTS).
-SIM_DIALECTS = ("generic", "alt")
 LINE_KINDS = ("dc", "ac")
 POINT_ERROR_ACTIONS = ("skip", "abort")
 COUPLINGS = ("dc", "ac")
@@ -62,36 +54,23 @@ TRIGGER_SLOPES = ("rising", "falling")
 NODE_POLARITIES = ("rising", "falling")
 #: A node's name: a short lower-case word, used in reports, the store and exported file names.
 _NODE_NAME = re.compile(r"^[a-z][a-z0-9_-]{0,23}$")
+#: The primary node's name when ``[scope] node`` gives none.
+DEFAULT_PRIMARY_NAME = "primary"
 
 #: VISA interface types (IVI VPP-4.3 resource names) we accept at the start of a resource string.
 #: A VISA alias (VISA 4.3.6: a name the library maps to a resource, as in a visa.ini file).
 _VISA_ALIAS = re.compile(r"[A-Za-z][A-Za-z0-9_.\-]{0,63}")
 _VISA_RESOURCE = re.compile(r"^(TCPIP|USB|GPIB|ASRL|VXI|PXI|VICP)[^:\s]*::\S+$", re.IGNORECASE)
 
-# Relative tolerance under which two grid values count as the same point.
-_SAME_VALUE_RTOL = 1e-9
-
-
-class Problem(NamedTuple):
-    """One thing wrong in a sequence file."""
-
-    key: str
-    message: str
-    line: int | None
-
 
 class SequenceError(InputError):
-    """A sequence file that cannot be used; ``problems`` lists every problem found."""
+    """A sequence file that cannot be used; ``problems`` lists every problem found, each with
+    its key and line (:class:`instruments.tomlkeys.Problem`)."""
 
     def __init__(self, path: Path, problems: list[Problem]) -> None:
         self.path = path
         self.problems = problems
-        count = f"{len(problems)} problems" if len(problems) > 1 else "1 problem"
-        lines = [f"{path}: {count}:"]
-        for problem in problems:
-            where = f"line {problem.line}, " if problem.line else ""
-            lines.append(f"  {where}{problem.key}: {problem.message}")
-        super().__init__("\n".join(lines))
+        super().__init__(report(path, problems))
 
 
 # --------------------------------------------------------------------------- the result tree
@@ -130,23 +109,20 @@ class BenchLimits:
 
 
 @dataclass(frozen=True)
-class Bench:
-    """The instruments of a run: simulated, or real ones reached by VISA resource strings."""
+class BenchSpec:
+    """The instruments of a run as the sequence file describes them: its bench kind
+    (:mod:`labseq.bench_kinds`: simulated, or real ones reached by VISA resource strings), the
+    command map and limits of each role, and how to reach them."""
 
-    kind: str  # "sim" or "visa"
+    kind: str  # a word of labseq.bench_kinds.BENCH_KINDS: "visa" or "sim"
+    simulated: bool  # no hardware behind it: no ES1 gate, no bus to watch, no locks
     limits: BenchLimits
     maps: dict[str, str]  # role -> a command-map family name, or the path of a map file
     visa_library: str  # "" lets PyVISA choose (PYVISA_LIBRARY, .pyvisarc, IVI, pyvisa-py)
     timeout_s: float
     resources: dict[str, str] = field(default_factory=dict)  # role -> VISA resource or alias
     connections: dict[str, Connection] = field(default_factory=dict)  # role -> link settings
-    sim_dut_path: Path | None = None  # the DUT file a simulated bench runs
-    sim_dialect: str = "generic"  # the command set the simulated bench speaks
-
-    @property
-    def is_sim(self) -> bool:
-        """True for the simulated bench."""
-        return self.kind == "sim"
+    settings: Any = None  # the kind's own settings (the simulated DUT file, its dialect)
 
     @property
     def scope_map(self) -> str:
@@ -198,41 +174,17 @@ class Grid:
 
 
 @dataclass(frozen=True)
-class ScopeSettings:
-    """Scope set-up for the switch-node capture (volts at the probe tip)."""
+class Acquisition:
+    """How the scope acquires every node at once: its timebase and record, the trigger on the
+    primary node's channel, and how long one acquisition may take. Each node's channel settings
+    are the node's own (:class:`NodeSpec`)."""
 
-    channel: int
-    volts_per_div_v: float
-    offset_v: float
-    probe_ratio: float
-    coupling: str
-    bandwidth_limit_hz: float  # 0 = full bandwidth
     time_per_div_s: float
     record_length: int
     trigger_level_v: float
     trigger_slope: str
     trigger_position: float  # fraction of the record before the trigger
     acquisition_timeout_s: float
-    node: str
-
-    @property
-    def polarity(self) -> int:
-        """+1 when the node rises at turn-off (rising trigger), −1 otherwise."""
-        return 1 if self.trigger_slope == "rising" else -1
-
-
-@dataclass(frozen=True)
-class VerdictLimits:
-    """Limits a point is judged against (None = not judged on that figure)."""
-
-    max_peak_v: float | None
-    min_stress_margin_v: float | None
-    min_damping_ratio: float | None
-    max_q_factor: float | None
-    max_settling_time_s: float | None
-    max_snubber_loss_w: float | None
-    min_efficiency: float | None
-    settling_band: float
 
 
 @dataclass(frozen=True)
@@ -266,7 +218,8 @@ class NodeSpec:
     rating_v: float
     derating: float
     snubber: Snubber | None
-    limits: VerdictLimits
+    limits: Limits  # what the node is judged against (None in a field: not judged on it)
+    settling_band: float  # half-width of the settling band, a fraction of the step
 
     @property
     def derated_rating_v(self) -> float:
@@ -278,21 +231,6 @@ class NodeSpec:
         """How a reviewer names the node's peak: stress on a switch, reverse voltage on a diode."""
         return "peak stress" if self.polarity > 0 else "peak reverse voltage"
 
-    def verdict_limits(self) -> Any:
-        """The node's limits as :class:`labseq.analysis.verdict.Limits`."""
-        from labseq.analysis.verdict import Limits
-
-        limits = self.limits
-        return Limits(
-            max_peak_v=limits.max_peak_v,
-            min_stress_margin_v=limits.min_stress_margin_v,
-            min_damping_ratio=limits.min_damping_ratio,
-            max_q_factor=limits.max_q_factor,
-            max_settling_time_s=limits.max_settling_time_s,
-            max_snubber_loss_w=limits.max_snubber_loss_w,
-            min_efficiency=limits.min_efficiency,
-        )
-
 
 @dataclass(frozen=True)
 class Sequence:
@@ -303,12 +241,11 @@ class Sequence:
     sha256: str
     name: str
     description: str
-    bench: Bench
+    bench: BenchSpec
     dut: Dut
     snubber: Snubber
     grid: Grid
-    scope: ScopeSettings
-    limits: VerdictLimits
+    acquisition: Acquisition
     on_point_error: str  # "skip" or "abort"
     hazardous_voltage_acknowledged: bool
     nodes: tuple[NodeSpec, ...]  # every node captured per acquisition, the primary first
@@ -336,301 +273,48 @@ class Sequence:
             for load_a in sorted(self.grid.load_values_a)
         ]
 
-    def verdict_limits(self) -> Any:
-        """The primary node's verdict limits as :class:`labseq.analysis.verdict.Limits`."""
-        return self.primary.verdict_limits()
-
-    def analysis_options(self, node: NodeSpec) -> dict[str, Any]:
-        """Keyword arguments of :func:`labseq.analysis.analyze_capture` for ``node``'s captures:
-        its polarity, settling band, snubber (at the DUT's switching frequency) and rating."""
-        from labseq.analysis import SnubberBranch
-
-        snubber = node.snubber
-        return {
-            "polarity": node.polarity,
-            "settling_band": node.limits.settling_band,
-            "snubber": None
-            if snubber is None
-            else SnubberBranch(
-                snubber.resistance_ohm, snubber.capacitance_f, self.dut.switching_frequency_hz
-            ),
-            "rating_v": node.rating_v,
-            "derating": node.derating,
-        }
-
-
-# --------------------------------------------------------------------------- reading helpers
-
-_MISSING = object()
-
-
-def _example(unit: str) -> str:
-    """A short example of a quantity in ``unit`` for error messages."""
-    return {
-        "V": "'75 V'",
-        "A": "'2.5 A'",
-        "W": "'0.5 W'",
-        "F": "'470pF'",
-        "H": "'1.2uH'",
-        "Hz": "'200kHz'",
-        "s": "'50 ms'",
-        "Ω": "'47 ohm'",
-    }.get(unit, "'1.5'")
-
-
-class _Collector:
-    """Gathers every problem of one file so they are reported together."""
-
-    def __init__(self, path: Path, text: str) -> None:
-        self.path = path
-        self.text = text
-        self.problems: list[Problem] = []
-
-    def fail(self, key: str, message: str) -> None:
-        self.problems.append(Problem(key, message, find_key_line(self.text, key)))
-
-
-class _Table:
-    """One TOML table being read; remembers which keys were read to report unknown ones."""
-
-    def __init__(self, data: dict[str, Any], prefix: str, out: _Collector) -> None:
-        self.data = data
-        self.prefix = prefix
-        self.out = out
-        self.known: list[str] = []
-
-    def key(self, name: str) -> str:
-        return f"{self.prefix}.{name}" if self.prefix else name
-
-    def raw(self, name: str, required: bool, what: str) -> Any:
-        """The value of ``name``, or _MISSING (recording a problem when it is required)."""
-        self.known.append(name)
-        if name in self.data:
-            return self.data[name]
-        if required:
-            self.out.fail(self.key(name), f"missing; expected {what}")
-        return _MISSING
-
-    def table(self, name: str, required: bool = True) -> _Table | None:
-        value = self.raw(name, required, "a table of settings")
-        if value is _MISSING:
-            return None
-        if not isinstance(value, dict):
-            self.out.fail(self.key(name), f"expected a table of settings, got {_kind(value)}")
-            return None
-        return _Table(value, self.key(name), self.out)
-
-    def _convert(self, name: str, value: Any, convert: Callable[[Any, str], Any]) -> Any:
-        try:
-            return convert(value, self.key(name))
-        except (UnitError, ValueError, OverflowError, TypeError) as exc:
-            self.out.fail(self.key(name), str(exc).removeprefix(f"{self.key(name)}: "))
-            return None
-
-    def quantity(
-        self,
-        name: str,
-        unit: str,
-        *,
-        default: Any = _MISSING,
-        minimum: float | None = 0.0,
-        allow_equal: bool = False,
-        maximum: float | None = None,
-    ) -> float | None:
-        """A quantity in ``unit``, SI float; must be above ``minimum`` (or equal when allowed)
-        and, when given, at most ``maximum``."""
-        value = self.raw(name, default is _MISSING, f"a quantity in {unit}, e.g. {_example(unit)}")
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        return self._convert(
-            name, value, lambda v, k: _quantity(v, unit, k, minimum, allow_equal, maximum)
-        )
-
-    def fraction(self, name: str, *, default: Any = _MISSING, allow_zero: bool = False) -> Any:
-        """A fraction written as a number (0.05) or a percentage ('5 %'); 0 < f ≤ 1."""
-        value = self.raw(name, default is _MISSING, "a fraction such as 0.8 or '80 %'")
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        return self._convert(name, value, lambda v, k: _fraction(v, k, allow_zero))
-
-    def integer(
-        self, name: str, *, default: Any = _MISSING, minimum: int = 1, maximum: int | None = None
-    ) -> Any:
-        """A whole number ≥ ``minimum`` and ≤ ``maximum`` when given (engineering notation such
-        as '20k' accepted)."""
-        value = self.raw(name, default is _MISSING, f"a whole number ≥ {minimum}, e.g. 20000")
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        return self._convert(name, value, lambda v, k: _integer(v, k, minimum, maximum))
-
-    def text(self, name: str, *, default: Any = _MISSING, choices: Iterable[str] = ()) -> Any:
-        """A string, optionally one of ``choices``."""
-        choices = tuple(choices)
-        what = f"one of {_or_list(choices)}" if choices else "a string"
-        value = self.raw(name, default is _MISSING, what)
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        return self._convert(name, value, lambda v, k: _text(v, choices))
-
-    def boolean(self, name: str, *, default: bool) -> bool | None:
-        value = self.raw(name, False, "true or false")
-        if value is _MISSING:
-            return None if default is _MISSING else default
-        if not isinstance(value, bool):
-            self.out.fail(self.key(name), f"expected true or false, got {_kind(value)}")
-            return None
-        return value
-
-    def finish(self) -> None:
-        """Report keys nobody asked for, with the closest known name as a suggestion."""
-        for name in self.data:
-            if name in self.known:
-                continue
-            close = difflib.get_close_matches(name, self.known, n=1, cutoff=0.6)
-            known = ", ".join(self.known)
-            hint = f"did you mean {close[0]!r}?" if close else f"known keys: {known}"
-            self.out.fail(self.key(name), f"unknown key; {hint}")
-
-
-def _kind(value: Any) -> str:
-    """How a TOML value reads in a message: 'a string', 'an array', ..."""
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, str):
-        return f"the string {value!r}"
-    if isinstance(value, int | float):
-        return f"the number {value!r}"
-    if isinstance(value, list):
-        return "an array"
-    if isinstance(value, dict):
-        return "a table"
-    return f"a {type(value).__name__}"
-
-
-def _or_list(choices: Iterable[str]) -> str:
-    return " or ".join(f'"{c}"' for c in choices)
-
-
-def _quantity(
-    value: Any,
-    unit: str,
-    key: str,
-    minimum: float | None,
-    allow_equal: bool,
-    maximum: float | None = None,
-) -> float:
-    result = parse_quantity(value, unit, what=key)
-    if unit == "s" and result != 0 and not _names_unit(value, unit):
-        raise ValueError(
-            f"{value!r} has no unit; a duration needs one, e.g. '5 s' or '5000 ms' (a bare "
-            "number could be meant in either)"
-        )
-    if minimum is not None and (result < minimum or (result == minimum and not allow_equal)):
-        relation = "≥" if allow_equal else ">"
-        raise ValueError(
-            f"{format_si(result, unit)} is out of range; must be {relation} "
-            f"{format_si(minimum, unit)}, e.g. {_example(unit)}"
-        )
-    if maximum is not None and result > maximum:
-        raise ValueError(f"{value!r} is out of range; must be ≤ {format_si(maximum, unit)}")
-    return result
-
-
-def _names_unit(value: Any, unit: str) -> bool:
-    """Whether ``value`` is text that ends in ``unit`` (after any SI prefix): ``"50 ms"``."""
-    return isinstance(value, str) and value.strip().endswith(unit)
-
-
-def _fraction(value: Any, key: str, allow_zero: bool) -> float:
-    if isinstance(value, str) and "%" in value:
-        result = parse_quantity(value, "%", what=key) / 100.0
-    else:
-        result = parse_quantity(value, "", what=key)
-    if not (0.0 <= result <= 1.0) or (result == 0.0 and not allow_zero):
-        low = "0" if allow_zero else "above 0"
-        raise ValueError(
-            f"{value!r} is not a valid fraction; write a value {low} up to 1 (e.g. 0.8) or a "
-            f"percentage up to 100 % (e.g. '80 %')"
-        )
-    return result
-
-
-def _integer(value: Any, key: str, minimum: int, maximum: int | None = None) -> int:
-    number = parse_quantity(value, "", what=key)
-    if number != int(number) or number < minimum:
-        raise ValueError(f"{value!r} is not a whole number ≥ {minimum}")
-    if maximum is not None and number > maximum:
-        raise ValueError(f"{value!r} is out of range; must be ≤ {maximum}")
-    return int(number)
-
-
-def _text(value: Any, choices: tuple[str, ...]) -> str:
-    if not isinstance(value, str):
-        raise ValueError(f"expected a string, got {_kind(value)}")
-    if choices and value.lower() not in choices:
-        raise ValueError(f"{value!r} is not valid; expected {_or_list(choices)}")
-    return value.lower() if choices else value
-
-
-def _values(table: _Table, name: str, convert: Callable[[Any, str], float]) -> list[float] | None:
-    """A non-empty array, each element converted; problems name the element's index."""
-    raw = table.raw(name, True, "an array of values, e.g. ['36 V', '48 V']")
-    if raw is _MISSING:
-        return None
-    if not isinstance(raw, list) or not raw:
-        table.out.fail(table.key(name), f"expected a non-empty array of values, got {_kind(raw)}")
-        return None
-    results: list[float] = []
-    for index, value in enumerate(raw):
-        key = f"{table.key(name)}[{index}]"
-        try:
-            results.append(convert(value, key))
-        except (UnitError, ValueError, OverflowError, TypeError) as exc:
-            table.out.fail(key, str(exc).removeprefix(f"{key}: "))
-    if len(results) != len(raw):
-        return None
-    for index, value in enumerate(results):
-        for earlier in results[:index]:
-            if math.isclose(value, earlier, rel_tol=_SAME_VALUE_RTOL):
-                table.out.fail(
-                    f"{table.key(name)}[{index}]",
-                    f"duplicate point: {raw[index]!r} is the same value as an earlier entry; "
-                    "each value may appear once",
-                )
-                break
-    return results
-
 
 # --------------------------------------------------------------------------- sections
 
 
-def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
-    """The [bench] table; also returns the simulated DUT's line kind for the AC/DC check."""
+def _read_bench(top: Table, seq_dir: Path) -> tuple[BenchSpec | None, BenchKind | None, Any]:
+    """The [bench] table: the generic keys here, the kind's own through its :class:`BenchKind`;
+    the kind and its settings are returned too, for its checks against the rest of the file."""
     table = top.table("bench")
     if table is None:
-        return None, None
-    kind = table.text("kind", choices=BENCH_KINDS)
-    dut_value = table.raw("dut", kind == "sim", 'a demo DUT name (e.g. "telecom_dc") or a file')
+        return None, None, None
+    name = table.text("kind", choices=BENCH_KINDS)
+    kind = None if name is None else bench_kind(name)
+    settings = None if kind is None else kind.read(table, seq_dir)
+    for key in (key for entry in BENCH_KINDS.values() for key in entry.keys):
+        if key in table.data and key not in table.known:  # another kind's key
+            table.known.append(key)
+            if kind is not None:
+                top.out.fail(
+                    table.key(key), f'only for kind = "{owner_of(key)}"; a "{name}" bench has none'
+                )
+    real = kind is not None and not kind.simulated
     scope_map = table.text("scope_map", default=None)
     maps_table = table.table("maps", required=False)
-    visa_library = table.text("visa_library", default="@py" if kind == "sim" else "")
+    visa_library = table.text(
+        "visa_library", default="" if kind is None else kind.default_visa_library
+    )
     timeout_s = table.quantity(
         "timeout", "s", default=5.0, minimum=MIN_REPLY_TIMEOUT_S, maximum=MAX_REPLY_TIMEOUT_S
     )
-    resources_table = table.table("resources", required=kind == "visa")
+    resources_table = table.table("resources", required=real)
     connections = _read_connections(top.out, table.table("connections", required=False))
-    sim_dialect = table.text("sim_dialect", default="generic", choices=SIM_DIALECTS)
     limits = _read_bench_limits(table.table("limits"))
     table.finish()
     maps = _read_maps(top.out, table, maps_table, scope_map, seq_dir)
-    if kind == "visa" and "sim_dialect" in table.data:
-        top.out.fail(table.key("sim_dialect"), 'only for kind = "sim"; a real bench speaks its own')
 
     resources_map: dict[str, str] = {}
     if resources_table is not None:
-        if kind == "sim":
-            top.out.fail(resources_table.prefix, 'only for kind = "visa"; a sim bench has its own')
-        for role in BENCH_ROLES:
+        if kind is not None and kind.simulated:
+            top.out.fail(
+                resources_table.prefix, f'only for real instruments; a "{name}" bench has its own'
+            )
+        for role in ROLES:
             resource = resources_table.text(role)
             if resource is None:
                 continue
@@ -643,16 +327,10 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
                 )
             resources_map[role] = resource
         resources_table.finish()
-
-    sim_dut_path, sim_line_kind = None, None
-    if kind == "sim" and dut_value is not _MISSING:
-        sim_dut_path, sim_line_kind = _resolve_sim_dut(
-            top.out, table.key("dut"), dut_value, seq_dir
+    if kind is not None and kind.simulated and connections:
+        top.out.fail(
+            table.key("connections"), f'only for real instruments; a "{name}" bench has its own'
         )
-    elif kind == "visa" and dut_value is not _MISSING:
-        top.out.fail(table.key("dut"), 'only for kind = "sim"; a real bench has a real DUT')
-    if kind == "sim" and connections:
-        top.out.fail(table.key("connections"), 'only for kind = "visa"; a sim bench has its own')
     for role in connections or {}:
         serial = connections[role].serial
         resource = resources_map.get(role, "")
@@ -662,51 +340,28 @@ def _read_bench(top: _Table, seq_dir: Path) -> tuple[Bench | None, str | None]:
                 f"serial settings for {resource!r}, which is not a serial port (ASRL...)",
             )
 
-    if None in (kind, limits, timeout_s, maps, visa_library, connections, sim_dialect) or (
-        kind == "sim" and sim_dut_path is None
+    if None in (kind, limits, timeout_s, maps, visa_library, connections) or (
+        BENCH_KINDS[name].keys and settings is None
     ):
-        return None, sim_line_kind
-    bench = Bench(
-        kind=kind,
+        return None, kind, settings
+    bench = BenchSpec(
+        kind=name,
+        simulated=kind.simulated,
         limits=limits,
         maps=maps,
         visa_library=visa_library,
         timeout_s=timeout_s,
         resources=resources_map,
         connections=connections,
-        sim_dut_path=sim_dut_path,
-        sim_dialect=sim_dialect,
+        settings=settings,
     )
-    return bench, sim_line_kind
-
-
-def _resolve_sim_dut(out: _Collector, key: str, value: Any, seq_dir: Path) -> tuple[Any, Any]:
-    """The DUT file of a simulated bench: a demo name or a path relative to the sequence file."""
-    from sim_instruments.flyback import DEMO_DUTS, load_dut
-
-    if not isinstance(value, str):
-        out.fail(key, f"expected a demo DUT name or a file path, got {_kind(value)}")
-        return None, None
-    path = DEMO_DUTS[value] if value in DEMO_DUTS else seq_dir / value
-    if not path.is_file():
-        out.fail(
-            key,
-            f"no demo DUT named {value!r} and no file {path}; demo DUTs: "
-            f"{', '.join(sorted(DEMO_DUTS))}, or a DUT file path relative to the sequence file",
-        )
-        return None, None
-    try:
-        design = load_dut(path)
-    except (ValueError, OSError) as exc:
-        out.fail(key, f"the DUT file cannot be used: {exc}")
-        return None, None
-    return path, design.line_kind
+    return bench, kind, settings
 
 
 def _read_maps(
-    out: _Collector,
-    bench: _Table,
-    maps_table: _Table | None,
+    out: Problems,
+    bench: Table,
+    maps_table: Table | None,
     scope_map: str | None,
     seq_dir: Path,
 ) -> dict[str, str] | None:
@@ -715,7 +370,7 @@ def _read_maps(
     generic map."""
     named: dict[str, tuple[str, str]] = {}
     if maps_table is not None:
-        for role in BENCH_ROLES:
+        for role in ROLES:
             value = maps_table.text(role, default=None)
             if value is not None:
                 named[role] = (maps_table.key(role), value)
@@ -725,15 +380,15 @@ def _read_maps(
             out.fail(bench.key("scope_map"), "give the scope's map once: here or in bench.maps")
         named["scope"] = (bench.key("scope_map"), scope_map)
     maps: dict[str, str] = {}
-    for role in BENCH_ROLES:
+    for role in ROLES:
         key, value = named.get(role, (bench.key(f"maps.{role}"), "generic"))
         resolved = _resolve_map(out, key, value, role, seq_dir)
         if resolved is not None:
             maps[role] = resolved
-    return maps if len(maps) == len(BENCH_ROLES) else None
+    return maps if len(maps) == len(ROLES) else None
 
 
-def _resolve_map(out: _Collector, key: str, value: str, role: str, seq_dir: Path) -> str | None:
+def _resolve_map(out: Problems, key: str, value: str, role: str, seq_dir: Path) -> str | None:
     """A ``role`` command map shipped in instruments/command_maps/<role>, or a file path
     (relative to the sequence file); it is loaded and validated here, so a bad map is reported
     before anything is opened."""
@@ -756,13 +411,13 @@ def _resolve_map(out: _Collector, key: str, value: str, role: str, seq_dir: Path
     return reference
 
 
-def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connection] | None:
+def _read_connections(out: Problems, table: Table | None) -> dict[str, Connection] | None:
     """``[bench.connections.<role>]``: terminations and serial line settings per role."""
     if table is None:
         return {}
     connections: dict[str, Connection] = {}
     failed = False
-    for role in BENCH_ROLES:
+    for role in ROLES:
         role_table = table.table(role, required=False)
         if role_table is None:
             continue
@@ -779,7 +434,7 @@ def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connec
             "flow_control": role_table.text("flow_control", default=None, choices=FLOW_CONTROLS),
         }
         role_table.finish()
-        given = {k: v for k, v in serial_values.items() if v is not None and v is not _MISSING}
+        given = {k: v for k, v in serial_values.items() if v is not None and v is not MISSING}
         serial = None
         if any(name in role_table.data for name in serial_keys):
             try:
@@ -800,7 +455,7 @@ def _read_connections(out: _Collector, table: _Table | None) -> dict[str, Connec
     return None if failed else connections
 
 
-def _read_bench_limits(table: _Table | None) -> BenchLimits | None:
+def _read_bench_limits(table: Table | None) -> BenchLimits | None:
     if table is None:
         return None
     values = {
@@ -824,10 +479,11 @@ def _read_bench_limits(table: _Table | None) -> BenchLimits | None:
 
 def _required_fields(cls: type) -> list[str]:
     """Names of a dataclass's fields without defaults (the ones a None means 'failed')."""
-    return [f.name for f in fields(cls) if f.default is MISSING and f.default_factory is MISSING]
+    unset = dataclasses.MISSING
+    return [f.name for f in fields(cls) if f.default is unset and f.default_factory is unset]
 
 
-def _read_dut(top: _Table) -> Dut | None:
+def _read_dut(top: Table) -> Dut | None:
     table = top.table("dut")
     if table is None:
         return None
@@ -857,7 +513,7 @@ def _read_dut(top: _Table) -> Dut | None:
     return Dut(**values)
 
 
-def _read_snubber(table: _Table | None) -> Snubber | None:
+def _read_snubber(table: Table | None) -> Snubber | None:
     """An RC snubber table: [snubber] across the switch, or [nodes.snubber] across a device."""
     if table is None:
         return None
@@ -872,16 +528,16 @@ def _read_snubber(table: _Table | None) -> Snubber | None:
     return Snubber(label, resistance, capacitance, budget)
 
 
-def _read_grid(top: _Table, dut: Dut | None, bench: Bench | None) -> Grid | None:
+def _read_grid(top: Table, dut: Dut | None, bench: BenchSpec | None) -> Grid | None:
     """[grid], with every value checked against the DUT's declared range and the bench."""
     table = top.table("grid")
     if table is None:
         return None
     line_kind = table.text("line_kind", choices=LINE_KINDS)
-    line_values = _values(table, "line_values", lambda v, k: _quantity(v, "V", k, 0.0, False))
+    line_values = table.values("line_values", lambda v, k: quantity(v, "V", k, 0.0, False))
     frequency = table.quantity("line_frequency", "Hz", default=None)
     rated_load_a = dut.rated_load_a if dut is not None else None
-    load_values = _values(table, "load_values", lambda v, k: _load_value(v, k, rated_load_a))
+    load_values = table.values("load_values", lambda v, k: _load_value(v, k, rated_load_a))
     settle_s = table.quantity("settle", "s", minimum=0.0, allow_equal=True, maximum=MAX_SETTLE_S)
     captures = table.integer("captures_per_point", maximum=MAX_CAPTURES_PER_POINT)
     table.finish()
@@ -924,7 +580,7 @@ def _read_grid(top: _Table, dut: Dut | None, bench: Bench | None) -> Grid | None
 
 
 def _check_line_values(
-    out: _Collector, key: str, values_v: list[float], dut: Dut | None, bench: Bench | None
+    out: Problems, key: str, values_v: list[float], dut: Dut | None, bench: BenchSpec | None
 ) -> None:
     """Each line value inside the DUT's declared range and under the source's maximum."""
     for index, line_v in enumerate(values_v):
@@ -940,7 +596,7 @@ def _check_line_values(
             out.fail(f"{key}[{index}]", f"{shown} is above bench.limits.source_max_voltage {limit}")
 
 
-def _check_ramp(out: _Collector, values_v: list[float], limits: BenchLimits) -> None:
+def _check_ramp(out: Problems, values_v: list[float], limits: BenchLimits) -> None:
     """The source's ramp between line values takes at most :data:`MAX_RAMP_STEPS` steps, even
     from the lowest value to the highest (as a resume may have to)."""
     steps = (max(values_v) - min(values_v)) / limits.line_step_max_v
@@ -956,12 +612,12 @@ def _check_ramp(out: _Collector, values_v: list[float], limits: BenchLimits) -> 
 
 
 def _check_load_values(
-    out: _Collector, key: str, values_a: list[float], dut: Dut | None, bench: Bench | None
+    out: Problems, key: str, values_a: list[float], dut: Dut | None, bench: BenchSpec | None
 ) -> None:
     """Each load under the DUT's rated load × (1 + margin) and the electronic load's maximum."""
     for index, load_a in enumerate(values_a):
         shown = format_si(load_a, "A")
-        if dut is not None and load_a > dut.max_load_a * (1 + _SAME_VALUE_RTOL):
+        if dut is not None and load_a > dut.max_load_a * (1 + SAME_VALUE_RTOL):
             out.fail(
                 f"{key}[{index}]",
                 f"{shown} is above the DUT's rated load {format_si(dut.rated_load_a, 'A')} × "
@@ -978,11 +634,11 @@ def _load_value(value: Any, key: str, rated_load_a: float | None) -> float:
     if isinstance(value, str) and "%" in value:
         if rated_load_a is None:
             raise ValueError("a percentage needs dut.rated_load, which is missing or invalid")
-        return _quantity(value, "%", key, 0.0, False) / 100.0 * rated_load_a
-    return _quantity(value, "A", key, 0.0, False)
+        return quantity(value, "%", key, 0.0, False) / 100.0 * rated_load_a
+    return quantity(value, "A", key, 0.0, False)
 
 
-def _channel_values(table: _Table) -> dict[str, Any]:
+def _channel_values(table: Table) -> dict[str, Any]:
     """The scope-channel keys a node is captured with (the primary's in [scope], the others' in
     their [[nodes]] entry)."""
     return {
@@ -997,12 +653,30 @@ def _channel_values(table: _Table) -> dict[str, Any]:
     }
 
 
-def _read_scope(top: _Table) -> ScopeSettings | None:
+class _PrimaryChannel(NamedTuple):
+    """The primary node's channel as [scope] gives it, before the node itself is built (its
+    rating, snubber and limits come from other tables, which may hold problems of their own)."""
+
+    name: str
+    polarity: int  # from the trigger's slope: the primary rises at turn-off when it triggers so
+    channel: int
+    volts_per_div_v: float
+    offset_v: float
+    probe_ratio: float
+    coupling: str
+    bandwidth_limit_hz: float
+
+
+def _read_scope(top: Table) -> tuple[_PrimaryChannel | None, Acquisition | None]:
+    """[scope]: the primary node's channel and name, and the acquisition settings."""
     table = top.table("scope")
     if table is None:
-        return None
-    values = {
+        return None, None
+    channel = {
         **_channel_values(table),
+        "name": table.text("node", default=DEFAULT_PRIMARY_NAME),
+    }
+    acquisition = {
         "time_per_div_s": table.quantity("time_per_div", "s"),
         "record_length": table.integer("record_length", minimum=2),
         "trigger_level_v": table.quantity("trigger_level", "V", minimum=None),
@@ -1011,24 +685,26 @@ def _read_scope(top: _Table) -> ScopeSettings | None:
         "acquisition_timeout_s": table.quantity(
             "acquisition_timeout", "s", default=2.0, maximum=MAX_ACQUISITION_TIMEOUT_S
         ),
-        "node": table.text("node", default="primary"),
     }
     table.finish()
-    if any(value is None for value in values.values()):
-        return None
-    return ScopeSettings(**values)
+    if any(value is None for value in (*channel.values(), *acquisition.values())):
+        return None, None
+    read = Acquisition(**acquisition)
+    polarity = 1 if read.trigger_slope == "rising" else -1
+    return _PrimaryChannel(polarity=polarity, **channel), read
 
 
 def _read_limits(
-    table: _Table,
+    table: Table,
     rating: tuple[float, float, str, str] | None,
     snubber: Snubber | None,
     *,
     point_limits: bool,
-) -> VerdictLimits | None:
+) -> tuple[Limits, float] | None:
     """A limits table, all optional: [limits] (``point_limits``: efficiency is judged there) or
-    [nodes.limits]. The peak defaults to rating × derating and the snubber loss to the
-    resistor's budget; ``rating`` is (rating, derating, its name, the key that declares it)."""
+    [nodes.limits]: the limits and the settling band. The peak defaults to rating × derating and
+    the snubber loss to the resistor's budget; ``rating`` is (rating, derating, its name, the
+    key that declares it)."""
     values = {
         "max_peak_v": table.quantity("max_peak", "V", default=None),
         "min_stress_margin_v": table.quantity(
@@ -1066,31 +742,27 @@ def _read_limits(
             )
     if values["max_snubber_loss_w"] is None and snubber is not None:
         values["max_snubber_loss_w"] = snubber.resistor_power_budget_w
-    return VerdictLimits(**values)
+    band = values.pop("settling_band")
+    return Limits(**values), band
 
 
 def _primary_node(
-    scope: ScopeSettings, dut: Dut, snubber: Snubber, limits: VerdictLimits
+    channel: _PrimaryChannel, dut: Dut, snubber: Snubber, judged: tuple[Limits, float]
 ) -> NodeSpec:
-    """The primary switch node from today's tables: [scope], [dut], [snubber], [limits]."""
+    """The primary switch node from [scope], [dut], [snubber] and [limits]."""
+    limits, settling_band = judged
     return NodeSpec(
-        name=scope.node,
         label="Primary switch",
-        channel=scope.channel,
-        polarity=scope.polarity,
-        volts_per_div_v=scope.volts_per_div_v,
-        offset_v=scope.offset_v,
-        probe_ratio=scope.probe_ratio,
-        coupling=scope.coupling,
-        bandwidth_limit_hz=scope.bandwidth_limit_hz,
         rating_v=dut.switch_rating_v,
         derating=dut.derating,
         snubber=snubber if snubber.capacitance_f > 0 and snubber.resistance_ohm > 0 else None,
         limits=limits,
+        settling_band=settling_band,
+        **channel._asdict(),
     )
 
 
-def _read_node(table: _Table) -> NodeSpec | None:
+def _read_node(table: Table) -> NodeSpec | None:
     """One ``[[nodes]]`` entry: a further node captured on the primary's trigger."""
     name = table.text("name")
     label = table.text("label", default="")
@@ -1102,7 +774,7 @@ def _read_node(table: _Table) -> NodeSpec | None:
     }
     snubber_table = table.table("snubber", required=False)
     snubber = _read_snubber(snubber_table)
-    limits_table = table.table("limits", required=False) or _Table(
+    limits_table = table.table("limits", required=False) or Table(
         {}, table.key("limits"), table.out
     )
     rating = (
@@ -1110,7 +782,7 @@ def _read_node(table: _Table) -> NodeSpec | None:
         if values["rating_v"] is None or values["derating"] is None
         else (values["rating_v"], values["derating"], "rating", table.key("rating"))
     )
-    limits = _read_limits(limits_table, rating, snubber, point_limits=False)
+    judged = _read_limits(limits_table, rating, snubber, point_limits=False)
     table.finish()
     if isinstance(name, str) and not _NODE_NAME.match(name):
         table.out.fail(
@@ -1120,7 +792,7 @@ def _read_node(table: _Table) -> NodeSpec | None:
         )
         return None
     if (
-        None in (name, label, polarity, limits)
+        None in (name, label, polarity, judged)
         or any(value is None for value in values.values())
         or (snubber_table is not None and snubber is None)
     ):
@@ -1130,21 +802,22 @@ def _read_node(table: _Table) -> NodeSpec | None:
         label=label or name.capitalize(),
         polarity=1 if polarity == "rising" else -1,
         snubber=snubber,
-        limits=limits,
+        limits=judged[0],
+        settling_band=judged[1],
         **values,
     )
 
 
-def _read_nodes(top: _Table, primary: NodeSpec | None) -> list[NodeSpec] | None:
+def _read_nodes(top: Table, primary: NodeSpec | None) -> list[NodeSpec] | None:
     """The optional ``[[nodes]]`` array, each node checked against the primary and the others:
     names and channels unique, and no node on the primary's channel (the trigger's)."""
     raw = top.raw("nodes", False, "an array of tables [[nodes]]")
-    if raw is _MISSING:
+    if raw is MISSING:
         return []
     if not isinstance(raw, list) or not all(isinstance(item, dict) for item in raw):
-        top.out.fail("nodes", f"expected an array of tables [[nodes]], got {_kind(raw)}")
+        top.out.fail("nodes", f"expected an array of tables [[nodes]], got {describe_value(raw)}")
         return None
-    nodes = [_read_node(_Table(item, f"nodes[{index}]", top.out)) for index, item in enumerate(raw)]
+    nodes = [_read_node(Table(item, f"nodes[{index}]", top.out)) for index, item in enumerate(raw)]
     names = {primary.name: "the primary node ([scope] node)"} if primary else {}
     channels = {primary.channel: "the primary node's, where the scope triggers"} if primary else {}
     for index, node in enumerate(nodes):
@@ -1168,7 +841,7 @@ def _read_nodes(top: _Table, primary: NodeSpec | None) -> list[NodeSpec] | None:
     return None if any(node is None for node in nodes) else nodes  # type: ignore[return-value]
 
 
-def _read_clamp(top: _Table) -> Clamp | None:
+def _read_clamp(top: Table) -> Clamp | None:
     """The optional [clamp]: the RCD clamp across the primary."""
     table = top.table("clamp", required=False)
     if table is None:
@@ -1191,18 +864,18 @@ def _kind_word(is_ac: bool) -> str:
 
 
 def _check_bench(
-    out: _Collector, bench: Bench, dut: Dut | None, scope: ScopeSettings | None
+    out: Problems, bench: BenchSpec, dut: Dut | None, acquisition: Acquisition | None
 ) -> None:
     """Scope and probe limits of the bench against the settings and the DUT."""
     limits = bench.limits
     if (
-        scope is not None
+        acquisition is not None
         and limits.scope_max_record_length is not None
-        and (scope.record_length > limits.scope_max_record_length)
+        and (acquisition.record_length > limits.scope_max_record_length)
     ):
         out.fail(
             "scope.record_length",
-            f"{scope.record_length} is above bench.limits.scope_max_record_length "
+            f"{acquisition.record_length} is above bench.limits.scope_max_record_length "
             f"{limits.scope_max_record_length}",
         )
     if (
@@ -1219,17 +892,12 @@ def _check_bench(
 
 
 def _check_nodes_on_bench(
-    out: _Collector,
-    bench: Bench,
-    scope: ScopeSettings | None,
-    nodes: list[NodeSpec],
-    clamp: Clamp | None,
+    out: Problems, bench: BenchSpec, primary: _PrimaryChannel | None, nodes: list[NodeSpec]
 ) -> None:
-    """Every node's channel on the scope, its rating within the probe's; on the simulated bench,
-    each node probed by the simulated scope and a clamp the DUT file can take."""
+    """Every node's channel on the scope, its rating within the probe's."""
     channels = _scope_channels(bench.scope_map)
-    if channels is not None and scope is not None and scope.channel > channels:
-        out.fail("scope.channel", f"channel {scope.channel} is beyond the scope's {channels}")
+    if channels is not None and primary is not None and primary.channel > channels:
+        out.fail("scope.channel", f"channel {primary.channel} is beyond the scope's {channels}")
     probe_v = bench.limits.probe_max_voltage_v
     for index, node in enumerate(nodes):
         key = f"nodes[{index}]"
@@ -1245,26 +913,6 @@ def _check_nodes_on_bench(
                 f"{format_si(node.rating_v, 'V')} is above bench.limits.probe_max_voltage "
                 f"{format_si(probe_v, 'V')}; use a probe rated at least as high as the device",
             )
-    if not bench.is_sim or bench.sim_dut_path is None:
-        return
-    from sim_instruments.flyback import load_dut
-    from sim_instruments.instruments import SECONDARY_CHANNEL
-
-    design = load_dut(bench.sim_dut_path)
-    for index, node in enumerate(nodes):
-        if node.channel != SECONDARY_CHANNEL or design.secondary is None:
-            out.fail(
-                f"nodes[{index}].channel",
-                f"the simulated scope probes only the primary and, when the DUT file declares "
-                f"[secondary], the output rectifier on channel {SECONDARY_CHANNEL}; channel "
-                f"{node.channel} would be a flat trace",
-            )
-    if clamp is not None and not design.has_clamp:
-        out.fail(
-            "clamp",
-            "the simulated DUT file (bench.dut) declares no [clamp] whose values this table "
-            "could replace; remove [clamp] or use a DUT file with one",
-        )
 
 
 def _scope_map(scope_map: str) -> Any:
@@ -1285,7 +933,11 @@ def _scope_channels(scope_map: str) -> int | None:
 
 
 def _check_scope_limits(
-    out: _Collector, bench: Bench, scope: ScopeSettings | None, nodes: list[NodeSpec]
+    out: Problems,
+    bench: BenchSpec,
+    primary: _PrimaryChannel | None,
+    acquisition: Acquisition | None,
+    nodes: list[NodeSpec],
 ) -> None:
     """The scope settings inside the limits its command map declares (the checks the driver
     makes again before sending), so the set-up cannot fail once the run has started."""
@@ -1293,21 +945,21 @@ def _check_scope_limits(
     from instruments.limits import check_count, check_setpoint
 
     command_map = _scope_map(bench.scope_map)
-    if command_map is None or scope is None:
+    if command_map is None or primary is None or acquisition is None:
         return
     limits = command_map.limits
     offset_v = limits.max_offset_v
     ranges: list[tuple[str, float, float, float, str]] = [
         (
             "scope.time_per_div",
-            scope.time_per_div_s,
+            acquisition.time_per_div_s,
             limits.min_seconds_per_div,
             limits.max_seconds_per_div,
             "s",
         ),
-        ("scope.trigger_level", scope.trigger_level_v, -offset_v, offset_v, "V"),
+        ("scope.trigger_level", acquisition.trigger_level_v, -offset_v, offset_v, "V"),
     ]
-    for prefix, channel in [("scope", scope)] + [(f"nodes[{i}]", n) for i, n in enumerate(nodes)]:
+    for prefix, channel in [("scope", primary)] + [(f"nodes[{i}]", n) for i, n in enumerate(nodes)]:
         ranges += [
             (
                 f"{prefix}.volts_per_div",
@@ -1340,7 +992,10 @@ def _check_scope_limits(
             out.fail(key, f"{error} {where}")
     try:
         check_count(
-            "record length", scope.record_length, limits.min_record_length, limits.max_record_length
+            "record length",
+            acquisition.record_length,
+            limits.min_record_length,
+            limits.max_record_length,
         )
     except LimitError as error:
         out.fail("scope.record_length", f"{error} {where}")
@@ -1396,8 +1051,8 @@ def above_es1(dut: Dut, grid: Grid, nodes: Iterable[NodeSpec]) -> ExposedVoltage
 
 
 def _check_hazard(
-    out: _Collector,
-    bench: Bench,
+    out: Problems,
+    bench: BenchSpec,
     dut: Dut,
     grid: Grid,
     nodes: list[NodeSpec],
@@ -1405,7 +1060,7 @@ def _check_hazard(
 ) -> None:
     """A real bench above the ES1 limits of IEC 62368-1 on any exposed node needs the file's
     acknowledgement; the message names the value that trips the limit."""
-    if bench.is_sim or acknowledged:
+    if bench.simulated or acknowledged:
         return
     hazard = above_es1(dut, grid, nodes)
     if hazard is not None:
@@ -1421,40 +1076,40 @@ def _check_hazard(
 
 def load_sequence(path: str | Path) -> Sequence:
     """Read and validate the sequence file at ``path``; raise :class:`SequenceError` if unusable."""
-    path = Path(path)
+    out = Problems(path)
     try:
-        data = path.read_bytes()
+        data = out.path.read_bytes()
     except OSError as exc:
-        problem = Problem("(file)", f"cannot read: {exc.strerror}", None)
-        raise SequenceError(path, [problem]) from None
-    try:
-        text = data.decode("utf-8")
-    except UnicodeDecodeError:
-        raise SequenceError(path, [Problem("(file)", "not UTF-8 text", None)]) from None
-    return parse_sequence(text, path, sha256=hashlib.sha256(data).hexdigest())
+        out.fail("(file)", f"cannot read: {exc.strerror}")
+        raise SequenceError(out.path, out.sorted()) from None
+    document = out.load(data)
+    return _sequence(out, document, hashlib.sha256(data).hexdigest())
 
 
 def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) -> Sequence:
     """Validate sequence ``text`` read from ``path`` (relative file names resolve beside it)."""
-    path = Path(path)
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        match = re.search(r"line (\d+)", str(exc))
-        line = int(match.group(1)) if match else None
-        raise SequenceError(path, [Problem("(syntax)", f"not valid TOML: {exc}", line)]) from None
-    out = _Collector(path, text)
-    top = _Table(data, "", out)
+    out = Problems(path)
+    document = out.parse(text)
+    return _sequence(out, document, sha256 or hashlib.sha256(text.encode("utf-8")).hexdigest())
+
+
+def _sequence(out: Problems, document: dict[str, Any] | None, sha256: str) -> Sequence:
+    """The sequence ``document`` (None: it could not be read, as ``out`` records) describes;
+    :class:`SequenceError` with every problem found."""
+    if document is None:
+        raise SequenceError(out.path, out.sorted())
+    path, text = out.path, out.text
+    top = Table(document, "", out)
     name = top.text("name", default=path.stem)
     description = top.text("description", default="")
     on_point_error = top.text("on_point_error", default="skip", choices=POINT_ERROR_ACTIONS)
-    bench, sim_line_kind = _read_bench(top, path.parent)
+    bench, kind, bench_settings = _read_bench(top, path.parent)
     dut = _read_dut(top)
     snubber = _read_snubber(top.table("snubber"))
     grid = _read_grid(top, dut, bench)
-    scope = _read_scope(top)
-    limits = _read_limits(
-        top.table("limits", required=False) or _Table({}, "limits", out),
+    primary_channel, acquisition = _read_scope(top)
+    judged = _read_limits(
+        top.table("limits", required=False) or Table({}, "limits", out),
         None
         if dut is None
         else (dut.switch_rating_v, dut.derating, "switch rating", "dut.switch_rating"),
@@ -1463,8 +1118,8 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     )
     primary = (
         None
-        if None in (scope, dut, snubber, limits)
-        else _primary_node(scope, dut, snubber, limits)  # type: ignore[arg-type]
+        if None in (primary_channel, dut, snubber, judged)
+        else _primary_node(primary_channel, dut, snubber, judged)  # type: ignore[arg-type]
     )
     nodes = _read_nodes(top, primary)
     clamp = _read_clamp(top)
@@ -1477,38 +1132,40 @@ def parse_sequence(text: str, path: str | Path, *, sha256: str | None = None) ->
     top.finish()
 
     if bench is not None:
-        _check_bench(out, bench, dut, scope)
-        _check_nodes_on_bench(out, bench, scope, nodes or [], clamp)
-        _check_scope_limits(out, bench, scope, nodes or [])
+        _check_bench(out, bench, dut, acquisition)
+        _check_nodes_on_bench(out, bench, primary_channel, nodes or [])
+        _check_scope_limits(out, bench, primary_channel, acquisition, nodes or [])
         if None not in (grid, dut, primary, nodes, acknowledged):
             _check_hazard(out, bench, dut, grid, [primary, *nodes], acknowledged)
-    if (
-        dut is not None
-        and sim_line_kind is not None
-        and sim_line_kind != _kind_word(dut.line_is_ac).strip('"')
-    ):
-        out.fail(
-            "dut.line_kind",
-            f'the simulated DUT file (bench.dut) takes "{sim_line_kind}" but dut.line_kind is '
-            f"{_kind_word(dut.line_is_ac)}; they must match",
-        )
-    parts = (name, description, on_point_error, bench, dut, snubber, grid, scope, limits, nodes)
-    if out.problems or any(part is None for part in parts) or acknowledged is None:
-        if not out.problems:  # every None above comes with a recorded problem
+    if bench_settings is not None:
+        kind.check(bench_settings, out.fail, dut=dut, nodes=nodes or [], clamp=clamp)
+    parts = (
+        name,
+        description,
+        on_point_error,
+        bench,
+        dut,
+        snubber,
+        grid,
+        acquisition,
+        primary,
+        nodes,
+    )
+    if out or any(part is None for part in parts) or acknowledged is None:
+        if not out:  # every None above comes with a recorded problem
             out.fail("(file)", "incomplete sequence")
-        raise SequenceError(path, sorted(out.problems, key=lambda p: p.line or 0))
+        raise SequenceError(path, out.sorted())
     return Sequence(
         path=path,
         text=text,
-        sha256=sha256 or hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        sha256=sha256,
         name=name,
         description=description,
         bench=bench,
         dut=dut,
         snubber=snubber,
         grid=grid,
-        scope=scope,
-        limits=limits,
+        acquisition=acquisition,
         on_point_error=on_point_error,
         hazardous_voltage_acknowledged=acknowledged,
         nodes=(primary, *nodes),

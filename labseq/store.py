@@ -45,12 +45,14 @@ import zstandard
 from instruments import Waveform
 from labseq import __version__
 from labseq.errors import InputError, LabseqError
+from labseq.figures import CAPTURE_FIGURES, CAPTURE_METHODS, VERDICTS
 from labseq.process import process_alive, process_start_time
 
 #: Version of the schema; a file with a higher version is refused, a lower one upgraded.
 SCHEMA_VERSION = 3
-#: The node a capture or figure belongs to when nothing else is said (and in version-1 files).
-PRIMARY_NODE = "primary"
+#: The node of every capture and figure of a version-1 file, which knew only one node (the
+#: upgrade fills it in). Everything else names its node: the store has no default of its own.
+_VERSION_1_NODE = "primary"
 APPLICATION = "labseq"
 
 #: Page size for new files (an existing file keeps its own). Every table and index costs at
@@ -76,12 +78,13 @@ ZSTD_LEVEL = 3
 #: read back off, or the bus not read below the ES1 limit), whatever else ended it.
 RUN_STATUSES = ("running", "finished", "aborted", "interrupted", "failed", "unsafe-end")
 POINT_STATUSES = ("pending", "done", "failed", "skipped")
-VERDICTS = ("pass", "fail", "incomplete")
 EVENT_KINDS = ("info", "scpi-error", "retry", "skip", "fault", "timing", "safety")
 CODE_DTYPES = ("int8", "int16", "float32")
 
-#: Per-capture figures, one REAL column each (the analysis' names).
-CAPTURE_FIGURES = (
+#: A capture's figures are stored one column each, named and typed as the figure catalogue
+#: (:mod:`labseq.figures`) says: :data:`CAPTURE_FIGURES` REAL, :data:`CAPTURE_METHODS` TEXT.
+#: The columns a version-2 file has, as that version wrote them; later versions add theirs.
+_CAPTURE_FIGURES_2 = (
     "base_v",
     "plateau_v",
     "peak_v",
@@ -90,9 +93,7 @@ CAPTURE_FIGURES = (
     "rise_time_s",
     "edge_time_s",
     "ring_frequency_hz",
-    "natural_frequency_hz",
     "decay_rate_per_s",
-    "real_pole_decay_rate_per_s",
     "damping_ratio",
     "q_factor",
     "fit_quality",
@@ -102,10 +103,7 @@ CAPTURE_FIGURES = (
     "clamp_level_v",
     "clamp_loss_w",
 )
-#: Text that says how a capture figure was obtained, one TEXT column each.
-CAPTURE_METHODS = ("snubber_loss_method", "clamp_loss_method", "ring_model")
-#: Capture-figure columns that version 3 added (a version-2 file has none of them).
-_CAPTURE_FIGURES_ADDED_3 = ("natural_frequency_hz", "real_pole_decay_rate_per_s", "ring_model")
+_CAPTURE_METHODS_2 = ("snubber_loss_method", "clamp_loss_method")
 
 
 def _sql_list(values: Iterable[str]) -> str:
@@ -121,7 +119,7 @@ CREATE TABLE {{table}} (
     point_id INTEGER NOT NULL REFERENCES points(id),
     run_id INTEGER NOT NULL REFERENCES runs(id),
     capture_index INTEGER NOT NULL,
-    node TEXT NOT NULL DEFAULT 'primary',
+    node TEXT NOT NULL DEFAULT '{_VERSION_1_NODE}',
     channel INTEGER NOT NULL,
     dtype TEXT NOT NULL CHECK (dtype IN ({_sql_list(CODE_DTYPES)})),
     x_increment_s REAL NOT NULL,
@@ -139,7 +137,7 @@ CREATE TABLE {{table}} (
 _POINT_FIGURES_TABLE = f"""
 CREATE TABLE {{table}} (
     point_id INTEGER NOT NULL REFERENCES points(id),
-    node TEXT NOT NULL DEFAULT '{PRIMARY_NODE}',
+    node TEXT NOT NULL DEFAULT '{_VERSION_1_NODE}',
     figure TEXT NOT NULL,
     worst REAL,
     mean REAL,
@@ -239,8 +237,8 @@ CREATE TABLE points (
 {_CAPTURES_TABLE.format(table="captures")};
 CREATE TABLE capture_figures (
     capture_id INTEGER PRIMARY KEY REFERENCES captures(id),
-    {", ".join(f"{name} REAL" for name in CAPTURE_FIGURES if name not in _CAPTURE_FIGURES_ADDED_3)},
-    {", ".join(f"{name} TEXT" for name in CAPTURE_METHODS if name not in _CAPTURE_FIGURES_ADDED_3)},
+    {", ".join(f"{name} REAL" for name in _CAPTURE_FIGURES_2)},
+    {", ".join(f"{name} TEXT" for name in _CAPTURE_METHODS_2)},
     clipped INTEGER,
     edge_count INTEGER,
     error TEXT,
@@ -342,11 +340,11 @@ class UnknownRunError(StoreError, InputError):
 
 @dataclass(frozen=True)
 class CaptureRecord:
-    """A capture to store: the waveform plus where and when it was taken."""
+    """A capture to store: the waveform plus which node it is, on which channel, and when."""
 
     waveform: Waveform
+    node: str
     channel: int = 1
-    node: str = PRIMARY_NODE
     captured_at: float = field(default_factory=time.time)  # Unix time, s
 
 
@@ -761,80 +759,29 @@ class Store:
         *,
         captures: Iterable[CaptureRecord] = (),
         readings: PointReadings | None = None,
-        status: str = "done",
+        status: str | None = "done",
         started_at: float | None = None,
     ) -> list[int]:
-        """Store a point's captures and readings and set its status, all in ONE transaction.
+        """Store a point's new captures and, unless ``status`` is None, its readings and status:
+        the one way captures and a point's state are written, all in ONE transaction.
 
+        The captures of one acquisition (one per node) go in together, so a point never holds
+        part of an acquisition; the runner gives the point's state with its last acquisition.
         Either everything is stored or (on any error) nothing is. ``started_at`` (Unix time, s)
         is when the point began; the finish time is now. Returns the new capture ids.
         """
+        if status is None and (readings is not None or started_at is not None):
+            raise ValueError("readings and started_at are stored with a status")
         with self.db.atomic():
             ids = [self._insert_capture(point_id, capture) for capture in captures]
-            self._update_point(point_id, status, readings, started_at)
-        return ids
-
-    def add_capture(
-        self,
-        point_id: int,
-        capture: CaptureRecord,
-        *,
-        point_status: str | None = None,
-        readings: PointReadings | None = None,
-        started_at: float | None = None,
-    ) -> int:
-        """Store one capture in its own transaction; with ``point_status`` (given with the last
-        capture) the point's state is set in that same transaction. Returns the capture id."""
-        return self.add_captures(
-            point_id,
-            [capture],
-            point_status=point_status,
-            readings=readings,
-            started_at=started_at,
-        )[0]
-
-    def add_captures(
-        self,
-        point_id: int,
-        captures: Iterable[CaptureRecord],
-        *,
-        point_status: str | None = None,
-        readings: PointReadings | None = None,
-        started_at: float | None = None,
-    ) -> list[int]:
-        """Store the captures of one acquisition (one per node) in one transaction, so a point
-        never holds part of an acquisition; ``point_status`` as for :meth:`add_capture`."""
-        with self.db.atomic():
-            ids = [self._insert_capture(point_id, capture) for capture in captures]
-            if point_status is not None:
-                self._update_point(point_id, point_status, readings, started_at)
+            if status is not None:
+                self._update_point(point_id, status, readings, started_at)
         return ids
 
     def acquisitions(self, point_id: int) -> int:
         """How many acquisitions a point holds (distinct capture indices over its nodes)."""
         query = "SELECT COUNT(DISTINCT capture_index) FROM captures WHERE point_id = ?"
         return int(self.db.execute(query, [point_id]).fetchone()[0])
-
-    def set_point_verdict(self, point_id: int, verdict: str, reasons: Iterable[str]) -> None:
-        """Record a point's (combined) verdict and the reasons behind it."""
-        with self.db.atomic():
-            self.db["points"].update(
-                point_id, {"verdict": verdict, "verdict_reasons": json.dumps(list(reasons))}
-            )
-
-    def set_point_figures(
-        self,
-        point_id: int,
-        figures: Mapping[str, Mapping[str, float | int | None]],
-        *,
-        node: str = PRIMARY_NODE,
-    ) -> None:
-        """Replace one node's aggregated figures at a point: figure → {worst, mean, spread, n}."""
-        with self.db.atomic():
-            self.db.execute(
-                "DELETE FROM point_figures WHERE point_id = ? AND node = ?", [point_id, node]
-            )
-            self._insert_point_figures(point_id, node, figures)
 
     def set_point_judgement(
         self,
@@ -844,9 +791,10 @@ class Store:
         verdict: str,
         reasons: Iterable[str],
     ) -> None:
-        """Replace everything a point was judged on in one transaction: each node's figures
-        (node → figure → stats) and verdict (node → (verdict, reasons)), and the point's
-        combined verdict. Nodes not given lose their old figures and verdicts."""
+        """Replace everything a point was judged on in one transaction — the one way a point's
+        figures and verdicts are written: each node's figures (node → figure → {worst, mean,
+        spread, n}) and verdict (node → (verdict, reasons)), and the point's combined verdict.
+        Nodes not given lose their old figures and verdicts."""
         with self.db.atomic():
             self.db.execute("DELETE FROM point_figures WHERE point_id = ?", [point_id])
             self.db.execute("DELETE FROM node_verdicts WHERE point_id = ?", [point_id])
@@ -863,13 +811,13 @@ class Store:
             ]
             if rows:
                 self.db["node_verdicts"].insert_all(rows)
-            self.set_point_verdict(point_id, verdict, reasons)
+            self.db["points"].update(
+                point_id, {"verdict": verdict, "verdict_reasons": json.dumps(list(reasons))}
+            )
 
-    def point_figures(
-        self, run_id: int, *, node: str = PRIMARY_NODE
-    ) -> dict[int, dict[str, dict[str, Any]]]:
-        """One node's aggregated figures at every point of a run (the primary's by default):
-        point id → figure → {worst, mean, spread, n}."""
+    def point_figures(self, run_id: int, *, node: str) -> dict[int, dict[str, dict[str, Any]]]:
+        """One node's aggregated figures at every point of a run: point id → figure → {worst,
+        mean, spread, n}."""
         return {
             point_id: nodes[node]
             for point_id, nodes in self.node_figures(run_id).items()

@@ -19,15 +19,15 @@ from sim_instruments.instruments import (
     DIALECTS,
     GENERIC,
     BenchState,
-    SimInstrument,
     SimLoad,
     SimMeter,
     SimScope,
     SimSource,
+    SimulatedRole,
 )
 from sim_instruments.server import ScpiServer, check_host
 
-INSTRUMENT_CLASSES: dict[str, type[SimInstrument]] = {
+INSTRUMENT_CLASSES: dict[str, type[SimulatedRole]] = {
     "source": SimSource,
     "load": SimLoad,
     "meter": SimMeter,
@@ -73,7 +73,7 @@ class SimBench:
             off_count=lambda: _source_offs(self.state.line_history),
         )
         rngs = [np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(len(ROLES))]
-        self.instruments: dict[str, SimInstrument] = {
+        self.instruments: dict[str, SimulatedRole] = {
             role: INSTRUMENT_CLASSES[role](
                 self.state, rng, serial=f"SIM{seed:04d}-{index}", dialect=dialect
             )

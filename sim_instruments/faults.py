@@ -37,9 +37,9 @@ import time
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
+from instruments.command_map import ROLES
 from sim_instruments.server import HeaderPattern, Interceptor, ParsedMessage
 
-ROLES = ("source", "load", "meter", "scope")
 KINDS = ("no-reply", "drop", "scpi-error", "no-trigger", "malformed", "refuse-off", "stuck-on")
 MOMENTS = ("call", "point", "off")
 _OUTPUT_STATES = (HeaderPattern("OUTPut[:STATe]"), HeaderPattern("INPut[:STATe]"))

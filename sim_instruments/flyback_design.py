@@ -19,19 +19,19 @@ notation (``"4.7n"``, ``"220pF"``, ``"75 V"``) or as plain SI numbers::
 The clamp ``voltage`` is the design's nominal clamp voltage above the bus; the simulated clamp
 capacitor settles wherever R, C and the energy balance put it, starting from that value.
 
-Every error names the file, the key and what would be valid.
+Every problem of a file is reported at once, each naming the file, the key and its line, and
+what would be valid (:mod:`instruments.tomlkeys`).
 """
 
 from __future__ import annotations
 
-import difflib
 import math
-import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
+from instruments.tomlkeys import Problems, describe_value
 from labseq.units import UnitError, parse_quantity
 
 DUT_DIR = Path(__file__).resolve().parent / "duts"
@@ -237,95 +237,96 @@ _TOP_LEVEL = {"label", *_SCHEMA}
 _LINE_KINDS = ("dc", "ac")
 
 
-def _unknown(path: Path, where: str, name: str, valid: list[str]) -> DutFileError:
-    """Error for an unknown key, with the closest valid spelling when there is one."""
-    close = difflib.get_close_matches(name, valid, n=1)
-    hint = f" (did you mean {close[0]!r}?)" if close else ""
-    return DutFileError(
-        f"{path}: unknown key {where}{name!r}{hint}; valid keys: {', '.join(sorted(valid))}"
-    )
-
-
-def _read_table(path: Path, data: dict[str, Any], table: str) -> dict[str, float]:
-    """Read and check one table's quantities; return {key: SI value}."""
+def _read_table(problems: Problems, data: dict[str, Any], table: str) -> dict[str, float] | None:
+    """One table's quantities, each checked: {key: SI value}; None when the table is not one.
+    A key left out or wrong is recorded in ``problems`` and is absent from the result."""
     raw = data.get(table)
     if not isinstance(raw, dict):
-        raise DutFileError(f"{path}: [{table}] must be a table of quantities, got {raw!r}")
+        problems.fail(table, f"must be a table of quantities, got {describe_value(raw)}")
+        return None
     schema = _SCHEMA[table]
-    allowed = list(schema) + (["kind"] if table in _KIND_TABLES else [])
-    for name in raw:
-        if name not in allowed:
-            raise _unknown(path, f"[{table}] ", name, allowed)
+    problems.unknown_keys(raw, [*schema, *(["kind"] if table in _KIND_TABLES else [])], table)
     values: dict[str, float] = {}
     for name, key in schema.items():
-        where = f"{path}: [{table}] {name}"
+        where = f"{table}.{name}"
         if name not in raw:
             if key.required:
-                raise DutFileError(f"{where} is missing; give a quantity in {key.unit or 'units'}")
-            if key.default is not None:
+                problems.fail(where, f"missing; give a quantity in {key.unit or 'units'}")
+            elif key.default is not None:
                 values[name] = key.default
             continue
         try:
             value = parse_quantity(raw[name], key.unit, what=where)
         except UnitError as exc:
-            raise DutFileError(str(exc)) from None
+            problems.fail(where, str(exc).removeprefix(f"{where}: "))
+            continue
         problem = key.check(value)
         if problem:
-            raise DutFileError(f"{where} = {raw[name]!r} is not valid; expected {problem}")
+            problems.fail(where, f"{raw[name]!r} is not valid; expected {problem}")
+            continue
         values[name] = value
     return values
 
 
 def load_dut(path: str | Path) -> FlybackDesign:
-    """Read a DUT file into a :class:`FlybackDesign`; raise :class:`DutFileError` on any fault."""
+    """Read a DUT file into a :class:`FlybackDesign`; :class:`DutFileError` listing every
+    problem found, each with its key and line."""
     path = Path(path)
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise DutFileError(f"{path}: no such DUT file") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise DutFileError(f"{path}: cannot read the DUT file ({exc})") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise DutFileError(f"{path}: not valid TOML ({exc})") from None
+    if not path.exists():
+        raise DutFileError(f"{path}: no such DUT file")
+    problems = Problems(path)
+    data = problems.load()
+    if data is None:
+        raise DutFileError(problems.report())
+    design = _design(problems, data)
+    if problems or design is None:
+        raise DutFileError(problems.report())
+    return design
 
-    for name in data:
-        if name not in _TOP_LEVEL:
-            raise _unknown(path, "", name, sorted(_TOP_LEVEL))
+
+def _design(problems: Problems, data: dict[str, Any]) -> FlybackDesign | None:
+    """The design ``data`` describes, or None with every problem recorded."""
+    problems.unknown_keys(data, sorted(_TOP_LEVEL))
     for table in _SCHEMA:
         if table not in data and table not in _OPTIONAL_TABLES:
-            raise DutFileError(f"{path}: table [{table}] is missing")
+            problems.fail(table, f"missing; the DUT file needs a [{table}] table")
     label = data.get("label")
     if not isinstance(label, str) or not label.strip():
-        raise DutFileError(f"{path}: label must be a non-empty text, got {label!r}")
-
-    kind = data["line"].get("kind") if isinstance(data["line"], dict) else None
-    if kind not in _LINE_KINDS:
-        raise DutFileError(f"{path}: [line] kind = {kind!r} is not valid; expected 'dc' or 'ac'")
-    line = _read_table(path, data, "line")
-    if line["max"] < line["min"]:
-        raise DutFileError(f"{path}: [line] max ({line['max']} V) is below min ({line['min']} V)")
-    if kind == "ac" and "frequency" not in line:
-        raise DutFileError(f"{path}: [line] frequency is missing; an AC line needs 50 Hz or 60 Hz")
-    if kind == "dc" and "frequency" in line:
-        raise DutFileError(f"{path}: [line] frequency is for kind = 'ac' only; remove it")
-    transformer = _read_table(path, data, "transformer")
-    output = _read_table(path, data, "output")
-    switch = _read_table(path, data, "switch")
-    if switch["coss_c0"] == 0.0 and switch["stray_capacitance"] == 0.0:
-        raise DutFileError(
-            f"{path}: [switch] coss_c0 and stray_capacitance are both 0; the switch node needs "
-            f"some capacitance (a value > 0 in either)"
+        problems.fail("label", f"must be a non-empty text, got {label!r}")
+    tables = {
+        table: _read_table(problems, data, table)
+        for table in _SCHEMA
+        if table in data and table != "secondary"
+    }
+    line = tables.get("line")
+    kind = line and data["line"].get("kind")
+    if line is not None and kind not in _LINE_KINDS:
+        problems.fail("line.kind", f"{kind!r} is not valid; expected 'dc' or 'ac'")
+    if line is not None and {"min", "max"} <= set(line) and line["max"] < line["min"]:
+        problems.fail("line.max", f"{line['max']} V is below min ({line['min']} V)")
+    if line is not None and kind == "ac" and "frequency" not in data["line"]:
+        problems.fail("line.frequency", "missing; an AC line needs 50 Hz or 60 Hz")
+    if line is not None and kind == "dc" and "frequency" in data["line"]:
+        problems.fail("line.frequency", "for kind = 'ac' only; remove it")
+    switch = tables.get("switch") or {}
+    if switch.get("coss_c0") == 0.0 and switch.get("stray_capacitance") == 0.0:
+        problems.fail(
+            "switch.coss_c0",
+            "coss_c0 and stray_capacitance are both 0; the switch node needs some capacitance "
+            "(a value > 0 in either)",
         )
-    losses = _read_table(path, data, "losses")
-    snubber = _read_table(path, data, "snubber")
-    if snubber["capacitance"] > 0.0 and snubber["resistance"] == 0.0:
-        raise DutFileError(
-            f"{path}: [snubber] resistance = 0 is not valid with a capacitance fitted; expected "
-            f"a value > 0 (or capacitance = 0 for no damper)"
+    snubber = tables.get("snubber") or {}
+    if snubber.get("capacitance", 0.0) > 0.0 and snubber.get("resistance") == 0.0:
+        problems.fail(
+            "snubber.resistance",
+            "0 is not valid with a capacitance fitted; expected a value > 0 (or capacitance = 0 "
+            "for no damper)",
         )
-    clamp = _read_table(path, data, "clamp") if "clamp" in data else None
-    secondary = _read_secondary(path, data) if "secondary" in data else None
-
+    secondary = _read_secondary(problems, data) if "secondary" in data else None
+    if problems:
+        return None
+    transformer, output, losses = tables["transformer"], tables["output"], tables["losses"]
+    clamp = tables.get("clamp")
     return FlybackDesign(
         label=label.strip(),
         line_kind=kind,
@@ -356,29 +357,32 @@ def load_dut(path: str | Path) -> FlybackDesign:
     )
 
 
-def _read_secondary(path: Path, data: dict[str, Any]) -> SecondaryRectifier:
+def _read_secondary(problems: Problems, data: dict[str, Any]) -> SecondaryRectifier | None:
     """The optional [secondary] table: a Schottky or pn rectifier, with an optional RC damper."""
-    values = _read_table(path, data, "secondary")
+    values = _read_table(problems, data, "secondary")
+    if values is None:
+        return None
     kind = data["secondary"].get("kind")
     if kind not in RECTIFIER_KINDS:
-        raise DutFileError(
-            f"{path}: [secondary] kind = {kind!r} is not valid; expected 'schottky' or 'pn'"
+        problems.fail("secondary.kind", f"{kind!r} is not valid; expected 'schottky' or 'pn'")
+    if kind == "pn" and "carrier_lifetime" not in data["secondary"]:
+        problems.fail(
+            "secondary.carrier_lifetime",
+            'missing; a pn rectifier needs one in s (e.g. "20ns")',
         )
-    if kind == "pn" and "carrier_lifetime" not in values:
-        raise DutFileError(
-            f"{path}: [secondary] carrier_lifetime is missing; a pn rectifier needs one in s "
-            f'(e.g. "20ns")'
+    if kind == "schottky" and "carrier_lifetime" in data["secondary"]:
+        problems.fail(
+            "secondary.carrier_lifetime",
+            "for kind = 'pn' only (a Schottky stores no charge); remove it",
         )
-    if kind == "schottky" and "carrier_lifetime" in values:
-        raise DutFileError(
-            f"{path}: [secondary] carrier_lifetime is for kind = 'pn' only (a Schottky stores "
-            f"no charge); remove it"
+    if values.get("snubber_capacitance", 0.0) > 0.0 and values.get("snubber_resistance") == 0.0:
+        problems.fail(
+            "secondary.snubber_resistance",
+            "0 is not valid with a snubber_capacitance fitted; expected a value > 0 (or "
+            "snubber_capacitance = 0 for no damper)",
         )
-    if values["snubber_capacitance"] > 0.0 and values["snubber_resistance"] == 0.0:
-        raise DutFileError(
-            f"{path}: [secondary] snubber_resistance = 0 is not valid with a snubber_capacitance "
-            f"fitted; expected a value > 0 (or snubber_capacitance = 0 for no damper)"
-        )
+    if problems:
+        return None
     return SecondaryRectifier(
         kind=kind,
         junction_capacitance_f=values["junction_capacitance"],

@@ -17,17 +17,21 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from sim_instruments import DIALECTS, PRIMARY_CHANNEL, SECONDARY_CHANNEL
 from sim_instruments import scope as acquisition
 from sim_instruments.flyback import FlybackModel, LineReading, OperatingPoint
-from sim_instruments.server import Block, Call, Command, CommandError, ScpiInstrument, format_number
+from sim_instruments.server import (
+    Block,
+    Call,
+    Command,
+    CommandError,
+    SimulatedInstrument,
+    format_number,
+)
 
 MANUFACTURER = "labseq-sim"
 FIRMWARE = "1.0"
 
-#: The command sets the simulated instruments can speak, chosen when the bench starts:
-#: ``generic`` (the generic maps) and ``alt``, a second dialect deliberately unlike it (other
-#: command trees, headers on replies, unsigned codes, values in other units).
-DIALECTS = ("generic", "alt")
 GENERIC, ALT = DIALECTS
 #: The alt scope's bandwidth-limit filter, switched ON or OFF.
 ALT_FILTER_HZ = 20e6
@@ -38,10 +42,6 @@ SOURCE_FREQUENCY_RANGE_HZ = (40.0, 500.0)
 SOURCE_CURRENT_LIMIT_MAX_A = 20.0
 LOAD_CURRENT_MAX_A = 30.0
 SCOPE_CHANNELS = 4
-#: What the scope's probes see: the primary switch node, and the output rectifier (anode to
-#: cathode) when the DUT declares one; the other channels are unprobed.
-PRIMARY_CHANNEL = 1
-SECONDARY_CHANNEL = 2
 SCOPE_SCALE_RANGE_V_PER_DIV = (1e-3, 10.0)  # at the BNC; times the probe ratio at the tip
 SCOPE_OFFSET_DIVS_MAX = 100.0  # offset range in divisions of the largest scale, at the BNC
 SCOPE_PROBE_RANGE = (0.1, 10_000.0)
@@ -183,7 +183,7 @@ class BenchState:
 
     def probed_nodes(
         self, rng: np.random.Generator
-    ) -> tuple[dict[int, acquisition.Waveform], float] | None:
+    ) -> tuple[dict[int, acquisition.NodeVoltage], float] | None:
         """The waveforms the scope's probes see in one acquisition, and their period.
 
         Channel :data:`PRIMARY_CHANNEL` probes the switch node, :data:`SECONDARY_CHANNEL` the
@@ -198,7 +198,9 @@ class BenchState:
             return None
         period_s = 1.0 / self.model.design.switching_frequency_hz
 
-        def probe(node: Callable[[OperatingPoint, np.ndarray], np.ndarray]) -> acquisition.Waveform:
+        def probe(
+            node: Callable[[OperatingPoint, np.ndarray], np.ndarray],
+        ) -> acquisition.NodeVoltage:
             def waveform(t_s: np.ndarray) -> np.ndarray:
                 with self.lock:  # the model caches its solutions; one caller at a time
                     return node(point, t_s)
@@ -211,9 +213,9 @@ class BenchState:
         return probes, period_s
 
 
-class SimInstrument(ScpiInstrument):
-    """A simulated instrument on the shared bench state, with its own seeded reading noise,
-    speaking one of the :data:`DIALECTS`."""
+class SimulatedRole(SimulatedInstrument):
+    """One of the four roles of the simulated bench: a simulated instrument on the shared bench
+    state, with its own seeded reading noise, speaking one of the :data:`DIALECTS`."""
 
     model_name = "instrument"
 
@@ -275,7 +277,7 @@ class SimInstrument(ScpiInstrument):
         ]
 
 
-class SimSource(SimInstrument):
+class SimSource(SimulatedRole):
     """Programmable AC/DC line source."""
 
     model_name = "line-source"
@@ -384,7 +386,7 @@ class SimSource(SimInstrument):
         ]
 
 
-class SimLoad(SimInstrument):
+class SimLoad(SimulatedRole):
     """Electronic load in constant-current mode on the converter's output."""
 
     model_name = "electronic-load"
@@ -450,7 +452,7 @@ class SimLoad(SimInstrument):
         ]
 
 
-class SimMeter(SimInstrument):
+class SimMeter(SimulatedRole):
     """Power meter on the line input."""
 
     model_name = "power-meter"
@@ -478,7 +480,7 @@ class SimMeter(SimInstrument):
         ]
 
 
-class SimScope(SimInstrument):
+class SimScope(SimulatedRole):
     """Four-channel digital storage scope; channel 1 probes the switch node, channel 2 the
     output rectifier (anode to cathode) when the DUT declares one.
 

@@ -50,7 +50,8 @@ def unsigned_offset(data_format: str) -> int:
     return 1 << (code_bits(data_format) - 1) if data_format.startswith("U") else 0
 
 
-Waveform = Callable[[np.ndarray], np.ndarray]
+#: What a probe sees: the node's voltage at given instants (volts from seconds).
+NodeVoltage = Callable[[np.ndarray], np.ndarray]
 
 
 @dataclass(frozen=True)
@@ -113,7 +114,7 @@ class AcquisitionSettings:
 
 
 def find_trigger_time_s(
-    waveform: Waveform, period_s: float, level_v: float, rising: bool
+    waveform: NodeVoltage, period_s: float, level_v: float, rising: bool
 ) -> float | None:
     """First crossing of ``level_v`` with the given slope after the turn-off edge at t = 0.
 
@@ -204,7 +205,7 @@ class Capture:
         settings: AcquisitionSettings,
         traces_v: dict[int, np.ndarray],
         seed: int,
-        probes: Mapping[int, Waveform] | None = None,
+        probes: Mapping[int, NodeVoltage] | None = None,
         times_s: np.ndarray | None = None,
     ) -> None:
         self.settings = settings
@@ -257,7 +258,7 @@ class Capture:
 
 
 def acquire(
-    probes: Mapping[int, Waveform],
+    probes: Mapping[int, NodeVoltage],
     period_s: float,
     settings: AcquisitionSettings,
     rng: np.random.Generator,

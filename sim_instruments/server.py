@@ -1,9 +1,10 @@
 """A generic SCPI server on TCP: listener, message parser, command tree and error queue.
 
-Each simulated instrument is a subclass of :class:`ScpiInstrument` that declares its commands in
-a small table of :class:`Command` entries (header pattern → handlers); :class:`ScpiServer` puts it
-on one TCP port, one thread per client, the way a LAN instrument answers on a raw socket
-(VISA resource ``TCPIP::<host>::<port>::SOCKET``). Nothing here knows about flybacks.
+Each simulated instrument is a subclass of :class:`SimulatedInstrument` that declares its
+commands in a small table of :class:`Command` entries (header pattern → handlers);
+:class:`ScpiServer` puts it on one TCP port, one thread per client, the way a LAN instrument
+answers on a raw socket (VISA resource ``TCPIP::<host>::<port>::SOCKET``). Nothing here knows
+about flybacks.
 
 Parsing follows SCPI-1999 volume 1 and IEEE 488.2 chapter 7, with these choices:
 
@@ -425,7 +426,7 @@ class ErrorQueue:
         return len(self._entries)
 
 
-class ScpiInstrument:
+class SimulatedInstrument:
     """Base of a simulated instrument: IEEE 488.2 common commands, error queue, command lookup.
 
     Subclasses set :attr:`identity` (manufacturer, model, serial, firmware), return their command
@@ -553,7 +554,7 @@ class ScpiInstrument:
 #: A hook consulted before each message: returns an interference name or None.
 #: The server acts out ``drop``, ``no-reply``, ``malformed``, ``scpi-error`` and ``swallow`` (the
 #: message is read and does nothing, without an error) itself and hands any other name to
-#: :meth:`ScpiInstrument.apply_fault` before executing the message.
+#: :meth:`SimulatedInstrument.apply_fault` before executing the message.
 Interceptor = Callable[[ParsedMessage], str | None]
 
 GARBLED_TEXT_REPLY = b"9.9.9E+\n"
@@ -575,11 +576,11 @@ def check_host(host: str, allow_remote: bool) -> None:
 
 
 class ScpiServer:
-    """Serve one :class:`ScpiInstrument` on one TCP port, one thread per client connection."""
+    """Serve one :class:`SimulatedInstrument` on one TCP port, one thread per client connection."""
 
     def __init__(
         self,
-        instrument: ScpiInstrument,
+        instrument: SimulatedInstrument,
         *,
         host: str = "127.0.0.1",
         port: int = 0,

@@ -11,14 +11,9 @@ from pathlib import Path
 import pytest
 from test_report import LINES_V, LOADS_A, ROOT, make_run, parse_page, run_cli
 
-from labseq.review import (
-    DEFAULT_COVERAGE,
-    NOISE_FLOORS,
-    FigureStats,
-    compare_figure,
-    compare_runs,
-    review_run,
-)
+from labseq.compare import DEFAULT_COVERAGE, compare_figure, compare_runs
+from labseq.figures import NOISE_FLOORS
+from labseq.review import FigureStats, review_run
 from labseq.store import Store
 
 

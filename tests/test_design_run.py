@@ -131,3 +131,27 @@ def test_design_run_needs_no_leakage_inductance(tmp_path):
     code, _, err = run_cli("design", "--run", "1", "--db", str(db), "--leakage", "250n")
     assert code == 2
     assert "--leakage is not used with --run" in err and "Traceback" not in err
+
+
+def test_design_run_reads_the_primary_node_by_its_name(tmp_path):
+    """The primary node's name is the sequence's (``[scope] node``), not a fixed word: a run
+    whose switch node is called "drain" is designed from like any other."""
+    path = demo_sequence(tmp_path, lines=["48 V"], loads=["1 A"], captures=1)
+    path.write_text(path.read_text().replace("[scope]\n", '[scope]\nnode = "drain"\n', 1))
+    sequence = load_sequence(path)
+    assert sequence.primary.name == "drain"
+    db = tmp_path / "run.sqlite"
+    with Store(db) as store:
+        run_sequence(sequence, store)
+        assert store.node_names(1) == ["drain"]
+    code, out, err = run_cli("design", "--run", "1", "--db", str(db), "--json")
+    assert code == 0, err
+    [row] = json.loads(out)["points"]
+    assert row["line_v"] == 48.0 and row["l_leak_h"] > 0 and row["network_from"] == "loaded ring"
+    # The review reads the node by the same name: its figures and verdict are the drain's.
+    code, out, err = run_cli("report", "1", "--db", str(db), "--format", "json")
+    assert code == 0, err
+    review = json.loads(out)
+    assert review["nodes"] == ["drain"] and review["worst"]["peak_v"]["value"] > 48.0
+    [point] = review["points"]
+    assert point["verdict"] in ("pass", "fail") and "peak_v" in point["nodes"]["drain"]["figures"]

@@ -15,9 +15,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from sweeps import demo_sequence, run_cli
+from sweeps import DEMO_DC, demo_sequence, run_cli
 
-from instruments.command_map import MAPS_DIR, ROLE_COMMANDS, load_command_map
+from instruments.command_map import MAPS_DIR, ROLE_COMMANDS, ROLES, load_command_map
 from instruments.connection import Connection, SerialSettings
 from instruments.errors import CommandMapError, LimitError, ScpiError
 from instruments.limits import SourceLimits
@@ -29,7 +29,6 @@ from sim_instruments.flyback import DEMO_DUTS, load_dut
 
 HERE = Path(__file__).resolve().parent
 ALT_MAPS = 'maps = { source = "alt", load = "alt", meter = "alt", scope = "alt" }'
-ROLES = ("source", "load", "meter", "scope")
 
 
 def _alt_scope_map(tmp_path: Path, old: str, new: str) -> Path:
@@ -342,11 +341,17 @@ def test_bench_maps_aliases_and_connections_in_a_sequence(tmp_path):
     assert "parity" in message and "sideways" in message
 
 
-def test_the_sequence_knows_the_simulator_dialects():
-    from labseq.sequence import SIM_DIALECTS
+def test_the_sequence_takes_the_simulator_dialects(tmp_path):
     from sim_instruments.instruments import DIALECTS
 
-    assert SIM_DIALECTS == DIALECTS
+    text = DEMO_DC.read_text(encoding="utf-8")
+    for dialect in DIALECTS:
+        path = tmp_path / f"{dialect}.toml"
+        path.write_text(text.replace('scope_map = "generic"', f'sim_dialect = "{dialect}"'))
+        assert load_sequence(path).bench.settings.dialect == dialect
+    path.write_text(text.replace('scope_map = "generic"', 'sim_dialect = "klingon"'))
+    with pytest.raises(SequenceError, match=r"bench\.sim_dialect: 'klingon' is not valid; "):
+        load_sequence(path)
 
 
 def test_with_no_library_named_pyvisa_library_is_honoured(tmp_path, monkeypatch):

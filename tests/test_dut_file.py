@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 import tomllib
 from pathlib import Path
 
@@ -74,23 +75,23 @@ def test_with_snubber_changes_only_the_damper() -> None:
         (
             "leakage_inductance =",
             "leakage_inductanse =",
-            r"\[transformer\] 'leakage_inductanse'.*did you mean 'leakage_inductance'",
+            r"transformer\.leakage_inductanse: unknown key; did you mean 'leakage_inductance'",
         ),
         # unknown table
-        ("[snubber]", "[snubbers]", r"unknown key 'snubbers'.*did you mean 'snubber'"),
+        ("[snubber]", "[snubbers]", r"snubbers: unknown key; did you mean 'snubber'"),
         # missing key
-        ('rated_load = "2.2 A"\n', "", r"\[output\] rated_load is missing"),
+        ('rated_load = "2.2 A"\n', "", r"output\.rated_load: missing; give a quantity in A"),
         # wrong type
-        ("turns_ratio = 2.0", "turns_ratio = true", r"\[transformer\] turns_ratio.*boolean"),
-        ('rating = "150 V"', "rating = [150]", r"\[switch\] rating.*expected a number"),
+        ("turns_ratio = 2.0", "turns_ratio = true", r"transformer\.turns_ratio: .*boolean"),
+        ('rating = "150 V"', "rating = [150]", r"switch\.rating: .*expected a number"),
         # bad unit
-        ('rating = "150 V"', 'rating = "150 A"', r"\[switch\] rating.*in A, expected V"),
-        ('frequency = "200kHz"', 'frequency = "200 kHzz"', r"\[switch\] frequency.*cannot read"),
+        ('rating = "150 V"', 'rating = "150 A"', r"switch\.rating: .*in A, expected V"),
+        ('frequency = "200kHz"', 'frequency = "200 kHzz"', r"switch\.frequency: .*cannot read"),
         # non-positive values
         (
             'leakage_inductance = "250nH"',
             'leakage_inductance = "0 H"',
-            r"\[transformer\] leakage_inductance.*> 0",
+            r"transformer\.leakage_inductance: .*> 0",
         ),
         (
             'magnetizing_inductance = "80uH"',
@@ -103,24 +104,32 @@ def test_with_snubber_changes_only_the_damper() -> None:
             r"other_loss_fraction.*fraction",
         ),
         # inconsistent values
-        ('kind = "dc"', 'kind = "ac"', r"\[line\] frequency is missing.*50 Hz or 60 Hz"),
-        ('kind = "dc"', 'kind = "mains"', r"\[line\] kind = 'mains'.*'dc' or 'ac'"),
-        ('max = "75 V"', 'max = "30 V"', r"\[line\] max .* below min"),
+        (
+            'kind = "dc"',
+            'kind = "ac"',
+            r"line\.frequency: missing; an AC line needs 50 Hz or 60 Hz",
+        ),
+        (
+            'kind = "dc"',
+            'kind = "mains"',
+            r"line\.kind: 'mains' is not valid; expected 'dc' or 'ac'",
+        ),
+        ('max = "75 V"', 'max = "30 V"', r"line\.max: .* below min"),
         (
             'resistance = "100 ohm"',
             'resistance = "0 ohm"',
-            r"\[snubber\] resistance = 0.*capacitance = 0",
+            r"snubber\.resistance: 0 is not valid.*capacitance = 0",
         ),
         (
             'label = "Telecom 36-75 V DC flyback, 12 V 2.2 A (demo)"',
             'label = "  "',
-            r"label must be a non-empty text",
+            r"label: must be a non-empty text",
         ),
         (
             'coss_c0 = "800pF"                # Coss(V) = C0 / sqrt(1 + V/Vj)\ncoss_vj = "5 V"\n'
             'stray_capacitance = "40pF"',
             'coss_c0 = 0\ncoss_vj = "5 V"\nstray_capacitance = "0 F"',
-            r"\[switch\] coss_c0 and stray_capacitance are both 0",
+            r"switch\.coss_c0: coss_c0 and stray_capacitance are both 0",
         ),
     ],
 )
@@ -131,12 +140,12 @@ def test_dut_file_errors_name_file_and_key(
     path = write(tmp_path, TELECOM_TEXT.replace(old, new, 1))
     with pytest.raises(DutFileError, match=pattern) as caught:
         load_dut(path)
-    assert str(path) in str(caught.value)
+    assert str(path) in str(caught.value) and re.search(r"\n  line \d+, ", str(caught.value))
 
 
 def test_ac_line_frequency_must_be_mains(tmp_path: Path) -> None:
     text = DEMO_DUTS["offline_ac"].read_text(encoding="utf-8").replace('"50 Hz"', '"400 Hz"')
-    with pytest.raises(DutFileError, match=r"\[line\] frequency.*50 Hz or 60 Hz"):
+    with pytest.raises(DutFileError, match=r"line\.frequency: .*50 Hz or 60 Hz"):
         load_dut(write(tmp_path, text))
 
 
@@ -144,7 +153,9 @@ def test_missing_table_and_bad_toml_and_missing_file(tmp_path: Path) -> None:
     data = tomllib.loads(TELECOM_TEXT)
     assert "losses" in data
     without = TELECOM_TEXT.split("[losses]")[0] + "[snubber]" + TELECOM_TEXT.split("[snubber]")[1]
-    with pytest.raises(DutFileError, match=r"table \[losses\] is missing"):
+    with pytest.raises(
+        DutFileError, match=r"losses: missing; the DUT file needs a \[losses\] table"
+    ):
         load_dut(write(tmp_path, without))
     with pytest.raises(DutFileError, match="not valid TOML"):
         load_dut(write(tmp_path, "label = \n"))
@@ -154,7 +165,7 @@ def test_missing_table_and_bad_toml_and_missing_file(tmp_path: Path) -> None:
 
 def test_optional_clamp_table_is_checked_when_present(tmp_path: Path) -> None:
     text = TELECOM_TEXT + '\n[clamp]\nvoltage = "60 V"\nresistance = "10kohm"\n'
-    with pytest.raises(DutFileError, match=r"\[clamp\] capacitance is missing"):
+    with pytest.raises(DutFileError, match=r"clamp\.capacitance: missing"):
         load_dut(write(tmp_path, text))
     design = load_dut(write(tmp_path, text + 'capacitance = "2.2nF"\n'))
     assert design.clamp_voltage_v == 60.0 and design.clamp_capacitance_f == pytest.approx(2.2e-9)
@@ -189,23 +200,23 @@ def test_secondary_table_is_optional(tmp_path: Path) -> None:
         (
             'kind = "schottky"',
             'kind = "zener"',
-            r"\[secondary\] kind = 'zener'.*'schottky' or 'pn'",
+            r"secondary\.kind: 'zener' is not valid; expected 'schottky' or 'pn'",
         ),
-        ('kind = "schottky"', 'kind = "pn"', r"\[secondary\] carrier_lifetime is missing"),
+        ('kind = "schottky"', 'kind = "pn"', r"secondary\.carrier_lifetime: missing"),
         (
             'reverse_rating = "100 V"',
             'reverse_rating = "100 V"\ncarrier_lifetime = "20ns"',
-            r"\[secondary\] carrier_lifetime is for kind = 'pn' only",
+            r"secondary\.carrier_lifetime: for kind = 'pn' only",
         ),
         (
             'series_resistance = "30mohm"',
             'series_resistance = "30mohm"\nsnubber_capacitance = "1nF"',
-            r"\[secondary\] snubber_resistance = 0.*snubber_capacitance = 0",
+            r"secondary\.snubber_resistance: 0 is not valid.*snubber_capacitance = 0",
         ),
         (
             'junction_capacitance = "250pF"',
             'junction_capacitence = "250pF"',
-            r"\[secondary\] 'junction_capacitence'.*did you mean 'junction_capacitance'",
+            r"secondary\.junction_capacitence: unknown key; did you mean 'junction_capacitance'",
         ),
         ('reverse_rating = "100 V"', 'reverse_rating = "100 A"', r"reverse_rating.*expected V"),
         ('loop_inductance = "10nH"', 'loop_inductance = "-1nH"', r"loop_inductance.*≥ 0"),
@@ -218,4 +229,16 @@ def test_secondary_table_errors_name_file_and_key(
     path = write(tmp_path, TELECOM_TEXT.replace(old, new, 1))
     with pytest.raises(DutFileError, match=pattern) as caught:
         load_dut(path)
-    assert str(path) in str(caught.value)
+    assert str(path) in str(caught.value) and re.search(r"\n  line \d+, ", str(caught.value))
+
+
+def test_every_problem_of_a_dut_file_is_reported_at_once(tmp_path: Path) -> None:
+    text = TELECOM_TEXT.replace('rating = "150 V"', 'rating = "150 A"', 1)
+    text = text.replace("leakage_inductance =", "leakage_inductanse =", 1)
+    path = write(tmp_path, text)
+    with pytest.raises(DutFileError) as caught:
+        load_dut(path)
+    message = str(caught.value)
+    assert message.startswith(f"{path}: 3 problems:")  # the misspelt key is also missing
+    assert "switch.rating: " in message and "transformer.leakage_inductanse: unknown key" in message
+    assert "transformer.leakage_inductance: missing" in message

@@ -14,13 +14,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from instruments.tomlkeys import find_key_line
 from labseq.analysis.verdict import Limits, aggregate, judge
-from labseq.bench import sim_design
-from labseq.commands.export import write_captures_npz, write_points_csv
+from labseq.compare import compare_runs, comparison_summary
+from labseq.export import write_captures_npz, write_points_csv
 from labseq.report import build_run_report
-from labseq.review import compare_runs, comparison_summary, review_run, run_summary
+from labseq.review import review_run, run_summary
 from labseq.runner import run_sequence
-from labseq.sequence import SequenceError, find_key_line, load_sequence
+from labseq.sequence import SequenceError, load_sequence
+from labseq.sim_bench import sim_design
 from labseq.store import SCHEMA_VERSION, CaptureRecord, Store, StoreFileError
 from sim_instruments.flyback import DEMO_DUTS, load_dut
 
@@ -101,7 +103,7 @@ def test_demo_offline_declares_secondary_and_clamp() -> None:
     sequence = load_sequence(DEMO_OFFLINE)
     assert [node.name for node in sequence.nodes] == ["primary", "secondary"]
     primary, secondary = sequence.nodes
-    assert primary.channel == sequence.scope.channel and primary.polarity == 1
+    assert primary.channel == 1 and primary.polarity == 1  # [scope] channel, rising trigger
     assert secondary.channel == 2 and secondary.polarity == -1
     # |peak| limit defaults to rating x derating: 200 V x 0.8 (derating from memory of common
     # derating guidelines).
@@ -289,7 +291,7 @@ def test_compare_reports_each_node(offline_runs: tuple[Store, int, int]) -> None
 
 def test_clamp_figures_stored_per_point(offline_runs: tuple[Store, int, int]) -> None:
     store, run_id, _ = offline_runs
-    figures = store.point_figures(run_id)
+    figures = store.point_figures(run_id, node="primary")
     assert all(figures[p.id]["clamp_loss_w"]["n"] == 2 for p in store.points(run_id))
     methods = {
         store.capture_figures(c.id)["clamp_loss_method"]
@@ -364,14 +366,16 @@ def test_schema_1_store_is_upgraded(tmp_path: Path) -> None:
     with Store(path) as store:
         assert store.db.execute("SELECT version FROM schema_info").fetchone()[0] == SCHEMA_VERSION
         # the old figures are the primary's; captures, their codes and figures are kept
-        assert store.point_figures(1)[1]["peak_v"]["worst"] == 101.0
-        assert store.node_figures(1) == {1: {"primary": store.point_figures(1)[1]}}
+        assert store.point_figures(1, node="primary")[1]["peak_v"]["worst"] == 101.0
+        assert store.node_figures(1) == {1: {"primary": store.point_figures(1, node="primary")[1]}}
         (capture,) = store.captures(1)
         assert capture.node == "primary" and capture.codes.tobytes() == b"\x01\x02"
         assert store.capture_figures(1)["peak_v"] == 101.0
         # a second node's capture of the same acquisition now fits beside it
         waveform = capture
-        store.add_capture(1, CaptureRecord(waveform, channel=2, node="secondary"))
+        store.commit_point(
+            1, captures=[CaptureRecord(waveform, channel=2, node="secondary")], status=None
+        )
         assert store.acquisitions(1) == 1
         # version 3: a run may end with its bench not confirmed safe
         store.set_run_status(1, "unsafe-end")

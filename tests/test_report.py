@@ -18,7 +18,8 @@ import numpy as np
 import pytest
 from sweeps import run_cli
 
-from labseq.review import review_run, run_verdict
+from labseq.analysis.verdict import worst_verdict
+from labseq.review import review_run
 from labseq.store import CaptureRecord, PointReadings, Store
 from labseq.units import format_si
 
@@ -108,22 +109,26 @@ def make_run(
         if (line_v, load_a) == worse_at:
             figures["peak_v"]["worst"] += 60.0
         records = [
-            CaptureRecord(Ringing(line_v + 25, 20 * load_a * peak_scale, damping, index * 7 + k))
+            CaptureRecord(
+                Ringing(line_v + 25, 20 * load_a * peak_scale, damping, index * 7 + k),
+                node="primary",
+            )
             for k in range(captures)
         ]
         efficiency = 0.9 - 0.01 * load_a
         store.commit_point(
             point_id, captures=records, readings=PointReadings(efficiency=efficiency)
         )
-        store.set_point_figures(point_id, figures)
         peak_v = figures["peak_v"]["worst"]
         if (line_v, load_a) == incomplete_at:
-            store.set_point_verdict(point_id, "incomplete", ["damping_ratio: not determined"])
+            verdict, reasons = "incomplete", ["damping_ratio: not determined"]
         elif peak_v > MAX_PEAK_V:
-            reasons = [f"peak_v {format_si(peak_v, 'V')} breaks limit ≤ 120 V"]
-            store.set_point_verdict(point_id, "fail", reasons)
+            verdict, reasons = "fail", [f"peak_v {format_si(peak_v, 'V')} breaks limit ≤ 120 V"]
         else:
-            store.set_point_verdict(point_id, "pass", [])
+            verdict, reasons = "pass", []
+        store.set_point_judgement(
+            point_id, {"primary": figures}, {"primary": (verdict, reasons)}, verdict, reasons
+        )
     store.set_run_status(run_id, "finished")
     return run_id
 
@@ -280,10 +285,10 @@ def test_user_text_is_escaped(db: Path, tmp_path: Path) -> None:
 def test_run_verdict_rule() -> None:
     # The rule of the run verdict: fail if any point fails; incomplete if any is incomplete and
     # none fails; pass only when every point passes.
-    assert run_verdict(["pass", "pass"]) == "pass"
-    assert run_verdict(["pass", "incomplete"]) == "incomplete"
-    assert run_verdict(["incomplete", "fail", "pass"]) == "fail"
-    assert run_verdict([]) == "incomplete"
+    assert worst_verdict(["pass", "pass"]) == "pass"
+    assert worst_verdict(["pass", "incomplete"]) == "incomplete"
+    assert worst_verdict(["incomplete", "fail", "pass"]) == "fail"
+    assert worst_verdict([]) == "incomplete"
 
 
 def test_report_verdicts_and_json(db: Path) -> None:

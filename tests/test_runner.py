@@ -14,8 +14,9 @@ import numpy as np
 import pytest
 from sweeps import demo_sequence
 
+from labseq.pipeline import analyse_run
 from labseq.progress import Progress
-from labseq.runner import analyse_run, claim_for_resume, execute, run_sequence, start_run
+from labseq.runner import claim_for_resume, execute, run_sequence, start_run
 from labseq.sequence import load_sequence
 from labseq.store import Store
 from sim_instruments.flyback import DEMO_DUTS, load_dut
@@ -83,7 +84,7 @@ def test_sim_kind_runs_in_process_and_figures_are_stored(tmp_path):
     with Store(tmp_path / "run.sqlite") as store:
         run_id = run_sequence(sequence, store)
         (point,) = store.points(run_id)
-        figures = store.point_figures(run_id)[point.id]
+        figures = store.point_figures(run_id, node=sequence.primary.name)[point.id]
         # The plateau is the reflected voltage above the bus: Vin + n·(Vout + Vf) (flyback
         # relation; any power-electronics text, e.g. Erickson & Maksimović, ch. 6).
         design = load_dut(DEMO_DUTS["telecom_dc"])
@@ -99,7 +100,9 @@ def test_analyze_run_rejudges_without_the_bench(tmp_path):
     with Store(tmp_path / "run.sqlite") as store:
         run_id = run_sequence(sequence, store)
         (point,) = store.points(run_id)
-        peak_v = store.point_figures(run_id)[point.id]["peak_v"]["worst"]
+        peak_v = store.point_figures(run_id, node=sequence.primary.name)[point.id]["peak_v"][
+            "worst"
+        ]
         digests = _capture_digests(store, run_id)
         # Tighter limits: the same captures now fail on peak.
         strict = demo_sequence(tmp_path, lines=["75 V"], loads=["2.2 A"], name="strict.toml")

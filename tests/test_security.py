@@ -272,7 +272,22 @@ class SqlTextChecker:
                     self.visiting.discard(key)
             if scope is function and name in {a.arg for a in function.args.args}:
                 return self._parameter(function, name, depth)
-        return [f"{name} (not traced)"]
+        imported = self._imported(self._module(where), name, depth)
+        return [f"{name} (not traced)"] if imported is None else imported
+
+    def _imported(self, module: ast.Module, name: str, depth: int) -> list[str] | None:
+        """A name imported from another checked module, traced where that module binds it;
+        None when it comes from elsewhere."""
+        for node in module.body:
+            if not isinstance(node, ast.ImportFrom) or not node.module:
+                continue
+            if not any(alias.name == name and alias.asname is None for alias in node.names):
+                continue
+            tree = self.trees.get(node.module.replace(".", "/") + ".py")
+            values = None if tree is None else self._bindings(tree, name)
+            if values is not None:
+                return [p for v in values for p in self.unsafe(v, tree, depth + 1, True)]
+        return None
 
     def _bindings(self, scope: ast.AST, name: str) -> list[ast.AST] | None:
         """Every value ``name`` gets in ``scope``: assignments, ``for`` targets (their

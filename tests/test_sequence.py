@@ -11,12 +11,12 @@ from pathlib import Path
 import pytest
 from sweeps import run_cli
 
+from instruments.tomlkeys import find_key_line
 from labseq.errors import InputError
 from labseq.sequence import (
     BenchLimits,
     GridPoint,
     SequenceError,
-    find_key_line,
     load_sequence,
     parse_sequence,
 )
@@ -83,23 +83,23 @@ def test_demo_dc_values_in_si() -> None:
     # SI prefixes p = 1e-12, k = 1e3, n = 1e-9 (BIPM SI brochure, 9th edition, table 7).
     assert sequence.snubber.capacitance_f == pytest.approx(220e-12)
     assert sequence.dut.switching_frequency_hz == pytest.approx(200e3)
-    assert sequence.scope.time_per_div_s == pytest.approx(2e-6)
-    assert sequence.limits.max_settling_time_s == pytest.approx(500e-9)
-    assert sequence.limits.min_efficiency == pytest.approx(0.80)
+    assert sequence.acquisition.time_per_div_s == pytest.approx(2e-6)
+    assert sequence.primary.limits.max_settling_time_s == pytest.approx(500e-9)
+    assert sequence.primary.limits.min_efficiency == pytest.approx(0.80)
     # Loads given in percent of the rated 2.2 A.
     assert sequence.grid.load_values_a == pytest.approx((0.55, 1.1, 1.65, 2.2))
     # Defaults: peak limit = rating x derating (0.8, from memory of common power-supply
     # derating guidelines); loss limit = the resistor's budget.
-    assert sequence.limits.max_peak_v == pytest.approx(150.0 * 0.8)
-    assert sequence.limits.max_snubber_loss_w == pytest.approx(0.5)
-    assert sequence.bench.is_sim and sequence.bench.sim_dut_path.is_file()
+    assert sequence.primary.limits.max_peak_v == pytest.approx(150.0 * 0.8)
+    assert sequence.primary.limits.max_snubber_loss_w == pytest.approx(0.5)
+    assert sequence.bench.simulated and sequence.bench.settings.dut_path.is_file()
     assert sequence.points()[0] == GridPoint(36.0, pytest.approx(0.55))
 
 
 def test_demo_scope_settings_cover_a_switching_period() -> None:
     for name in ("demo_dc_flyback.toml", "demo_offline_flyback.toml"):
         sequence = load_sequence(SEQUENCES / name)
-        scope = sequence.scope
+        scope = sequence.acquisition
         record_s = scope.time_per_div_s * 10  # 10 horizontal divisions (generic map)
         sample_rate_hz = scope.record_length / record_s
         assert sample_rate_hz >= 250e6
@@ -107,10 +107,12 @@ def test_demo_scope_settings_cover_a_switching_period() -> None:
         assert 10_000 <= scope.record_length <= 20_000
 
 
-def test_verdict_limits_map_onto_analysis_limits() -> None:
+def test_node_limits_are_the_analysis_limits() -> None:
     verdict = pytest.importorskip("labseq.analysis.verdict")
-    limits = load_sequence(DEMO_DC).verdict_limits()
+    primary = load_sequence(DEMO_DC).primary
+    limits = primary.limits
     assert isinstance(limits, verdict.Limits)
+    assert primary.settling_band == pytest.approx(0.05)
     assert limits.max_peak_v == pytest.approx(120.0)
     assert limits.min_damping_ratio == pytest.approx(0.1)
     assert limits.max_q_factor is None
@@ -380,7 +382,7 @@ def test_sim_dut_path_relative_to_sequence_file(tmp_path: Path) -> None:
     (tmp_path / "duts").mkdir()
     (tmp_path / "duts" / "mine.toml").write_text(dut_text.read_text())
     path = edited(DEMO_DC, tmp_path, replace_line("dut", 'dut = "duts/mine.toml"'))
-    assert load_sequence(path).bench.sim_dut_path == tmp_path / "duts" / "mine.toml"
+    assert load_sequence(path).bench.settings.dut_path == tmp_path / "duts" / "mine.toml"
 
 
 def test_parse_sequence_without_file_hashes_text() -> None:

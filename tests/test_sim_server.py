@@ -23,9 +23,9 @@ from sim_instruments.server import (
     Call,
     Command,
     HeaderPattern,
-    ScpiInstrument,
     ScpiServer,
     ServerConfigError,
+    SimulatedInstrument,
     format_number,
 )
 
@@ -33,7 +33,7 @@ if TYPE_CHECKING:
     from tests.conftest import RawScpiClient
 
 
-class BenchSupply(ScpiInstrument):
+class BenchSupply(SimulatedInstrument):
     """A minimal supply: voltage 0…100 V, an output switch, a per-channel scale, a data block."""
 
     identity = ("labseq-sim", "test-supply", "T0001", "0.1")

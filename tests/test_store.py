@@ -92,7 +92,9 @@ def db(tmp_path: Path) -> Path:
 def test_capture_round_trip(db: Path, codes: np.ndarray, codec: str) -> None:
     with Store(db, codec=codec) as store:
         run_id, points = new_run(store)
-        [capture_id] = store.commit_point(points[0], captures=[CaptureRecord(Capture(codes), 2)])
+        [capture_id] = store.commit_point(
+            points[0], captures=[CaptureRecord(Capture(codes), node="primary", channel=2)]
+        )
     with Store(db, create=False) as store:
         [stored] = store.captures(points[0])
         [(stored_codec, blob)] = store.db.execute("SELECT codec, codes FROM captures").fetchall()
@@ -115,7 +117,7 @@ def test_codes_that_do_not_compress_are_stored_raw(db: Path) -> None:
     noise = np.random.default_rng(3).integers(-128, 128, 5000).astype(np.int8)
     with Store(db) as store:
         _, points = new_run(store)
-        store.commit_point(points[0], captures=[CaptureRecord(Capture(noise))])
+        store.commit_point(points[0], captures=[CaptureRecord(Capture(noise), node="primary")])
         row = store.db.execute("SELECT codec, length(codes) FROM captures").fetchone()
         assert tuple(row) == ("raw", 5000)
         assert np.array_equal(store.captures(points[0])[0].codes, noise)
@@ -128,7 +130,7 @@ def test_damaged_codes_are_a_clear_error(db: Path, codec: str) -> None:
     with Store(db, codec=codec) as store:
         run_id, points = new_run(store)
         [capture_id] = store.commit_point(
-            points[0], captures=[CaptureRecord(Capture(ringing_codes()))]
+            points[0], captures=[CaptureRecord(Capture(ringing_codes()), node="primary")]
         )
         store.db.execute("UPDATE captures SET codes = substr(codes, 1, 100)")
         with pytest.raises(StoreError, match=f"capture {capture_id} is damaged"):
@@ -142,7 +144,9 @@ def test_float64_codes_refused(db: Path) -> None:
     with Store(db) as store:
         _, points = new_run(store)
         with pytest.raises(ValueError, match="float64"):
-            store.commit_point(points[0], captures=[CaptureRecord(Capture(np.zeros(10)))])
+            store.commit_point(
+                points[0], captures=[CaptureRecord(Capture(np.zeros(10)), node="primary")]
+            )
         assert store.captures(points[0]) == []
 
 
@@ -151,11 +155,11 @@ def test_clipped_capture_flagged(db: Path) -> None:
     codes[100] = 127
     with Store(db) as store:
         _, points = new_run(store)
-        store.commit_point(points[0], captures=[CaptureRecord(Capture(codes))])
+        store.commit_point(points[0], captures=[CaptureRecord(Capture(codes), node="primary")])
         assert store.captures(points[0])[0].clipped
         codes[100] = 0
         codes[codes == -128] = -127
-        store.commit_point(points[1], captures=[CaptureRecord(Capture(codes))])
+        store.commit_point(points[1], captures=[CaptureRecord(Capture(codes), node="primary")])
         assert not store.captures(points[1])[0].clipped
 
 
@@ -163,8 +167,10 @@ def test_clipped_capture_flagged(db: Path) -> None:
 
 
 def test_commit_point_is_one_transaction(db: Path) -> None:
-    good = CaptureRecord(Capture(ringing_codes()))
-    bad = CaptureRecord(Capture(np.zeros(10)))  # float64: refused after the first is written
+    good = CaptureRecord(Capture(ringing_codes()), node="primary")
+    bad = CaptureRecord(
+        Capture(np.zeros(10)), node="primary"
+    )  # float64: refused after the first is written
     with Store(db) as store:
         _, points = new_run(store)
         with pytest.raises(ValueError):
@@ -190,7 +196,8 @@ def test_process_killed_mid_commit_leaves_nothing_half_written(db: Path) -> None
         wf = Waveform(codes, 1e-9, 0.0, 1.0, 0.0, 0.0, -128, 127)
         store = Store({str(db)!r})
         Store._update_point = lambda *args: os._exit(3)  # dies after the captures are written
-        store.commit_point({points[0]}, captures=[CaptureRecord(wf), CaptureRecord(wf)])
+        record = CaptureRecord(wf, node="primary")
+        store.commit_point({points[0]}, captures=[record, record])
         """
     )
     result = subprocess.run([sys.executable, "-c", script], cwd=ROOT, timeout=60)
@@ -201,14 +208,16 @@ def test_process_killed_mid_commit_leaves_nothing_half_written(db: Path) -> None
         assert store.integrity_check() == "ok"
 
 
-def test_add_capture_sets_point_state_with_the_last(db: Path) -> None:
+def test_captures_set_point_state_with_the_last(db: Path) -> None:
     with Store(db) as store:
         run_id, points = new_run(store)
-        record = CaptureRecord(Capture(ringing_codes()))
-        store.add_capture(points[0], record)
+        record = CaptureRecord(Capture(ringing_codes()), node="primary")
+        store.commit_point(points[0], captures=[record], status=None)
         assert store.point(points[0]).status == "pending"
+        with pytest.raises(ValueError, match="stored with a status"):
+            store.commit_point(points[0], readings=PointReadings(), status=None)
         readings = PointReadings(meter_power_w=31.5, efficiency=0.87)
-        store.add_capture(points[0], record, point_status="done", readings=readings)
+        store.commit_point(points[0], captures=[record], readings=readings)
         point = store.point(points[0])
         assert point.status == "done" and point.meter_power_w == 31.5
         assert [c.capture_index for c in store.captures(points[0])] == [0, 1]
@@ -221,7 +230,9 @@ def test_references_checked(db: Path) -> None:
         with pytest.raises(UnknownRunError):
             store.add_points(99, [(1.0, 1.0)], line_is_ac=False)
         with pytest.raises(StoreError):
-            store.commit_point(12345, captures=[CaptureRecord(Capture(ringing_codes()))])
+            store.commit_point(
+                12345, captures=[CaptureRecord(Capture(ringing_codes()), node="primary")]
+            )
         with pytest.raises(sqlite3.IntegrityError):  # foreign keys are on
             store.log_event(77, "info", "no such run")
 
@@ -233,7 +244,7 @@ def test_figures_and_events_round_trip(db: Path) -> None:
     with Store(db) as store:
         run_id, points = new_run(store)
         [capture_id] = store.commit_point(
-            points[0], captures=[CaptureRecord(Capture(ringing_codes()))]
+            points[0], captures=[CaptureRecord(Capture(ringing_codes()), node="primary")]
         )
         edges = [{"peak_v": 151.2, "edge_time_s": 1e-7}, {"peak_v": 149.0, "edge_time_s": 5.1e-6}]
         figures = {"peak_v": 151.2, "damping_ratio": 0.12, "snubber_loss_method": "waveform"}
@@ -243,12 +254,17 @@ def test_figures_and_events_round_trip(db: Path) -> None:
         assert stored["edges"] == edges and stored["edge_count"] == 2 and stored["clipped"] == 0
         with pytest.raises(ValueError, match="peak"):
             store.set_capture_figures(capture_id, {"peak": 1.0})
-        store.set_point_figures(
-            points[0], {"peak_v": {"worst": 151.2, "mean": 150.0, "spread": 0.8, "n": 3}}
+        reasons = ["peak 151 V > 120 V"]
+        store.set_point_judgement(
+            points[0],
+            {"primary": {"peak_v": {"worst": 151.2, "mean": 150.0, "spread": 0.8, "n": 3}}},
+            {"primary": ("fail", reasons)},
+            "fail",
+            reasons,
         )
-        assert store.point_figures(run_id)[points[0]]["peak_v"]["worst"] == 151.2
-        store.set_point_verdict(points[0], "fail", ["peak 151 V > 120 V"])
+        assert store.point_figures(run_id, node="primary")[points[0]]["peak_v"]["worst"] == 151.2
         assert store.point(points[0]).verdict_reasons == ["peak 151 V > 120 V"]
+        assert store.node_verdicts(run_id)[points[0]] == {"primary": ("fail", reasons)}
         store.log_event(run_id, "retry", "scope timeout", point_id=points[0], data={"try": 2})
         [event] = store.events(run_id)
         assert event["kind"] == "retry" and event["data"] == {"try": 2}
@@ -280,7 +296,8 @@ def test_iter_captures_reads_one_at_a_time(db: Path) -> None:
         run_id, points = new_run(store)
         for point_id in points:
             store.commit_point(
-                point_id, captures=[CaptureRecord(Capture(ringing_codes(seed=point_id)))] * 2
+                point_id,
+                captures=[CaptureRecord(Capture(ringing_codes(seed=point_id)), node="primary")] * 2,
             )
         iterator = store.iter_captures(run_id)
         first = next(iterator)
@@ -295,7 +312,8 @@ def test_captures_read_in_grid_order_whatever_order_they_were_stored(db: Path) -
         run_id, points = new_run(store)
         for point_id in reversed(points):  # e.g. a resumed run filling points in any order
             records = [
-                CaptureRecord(Capture(ringing_codes(seed=10 * point_id + k))) for k in (0, 1)
+                CaptureRecord(Capture(ringing_codes(seed=10 * point_id + k)), node="primary")
+                for k in (0, 1)
             ]
             store.commit_point(point_id, captures=records)
         order = [(c.point_id, c.capture_index) for c in store.iter_captures(run_id)]
@@ -312,7 +330,7 @@ def test_only_unanalysed_captures(db: Path) -> None:
             capture_id
             for point_id in points
             for capture_id in store.commit_point(
-                point_id, captures=[CaptureRecord(Capture(ringing_codes()))] * 2
+                point_id, captures=[CaptureRecord(Capture(ringing_codes()), node="primary")] * 2
             )
         ]
         store.set_capture_figures(ids[0], {"peak_v": 150.0})
@@ -466,7 +484,9 @@ def test_schema_2_store_is_upgraded_without_loss(tmp_path: Path) -> None:
         assert store.node_verdicts(1)[2] == {"secondary": ("fail", ["peak"])}
         # new captures are compressed beside the old raw ones, and all of them read
         new_codes = captures[1][3]
-        [new_id] = store.commit_point(2, captures=[CaptureRecord(Capture(new_codes))])
+        [new_id] = store.commit_point(
+            2, captures=[CaptureRecord(Capture(new_codes), node="primary")]
+        )
         assert (
             store.db.execute("SELECT codec FROM captures WHERE id = ?", [new_id]).fetchone()[0]
             == "zstd"
@@ -520,13 +540,16 @@ def filled_db(db: Path) -> tuple[Path, int, list[int]]:
     with Store(db) as store:
         run_id, points = new_run(store, points=3)
         for index, point_id in enumerate(points[:2]):
-            records = [CaptureRecord(Capture(ringing_codes(seed=10 * index + k))) for k in range(2)]
+            records = [
+                CaptureRecord(Capture(ringing_codes(seed=10 * index + k)), node="primary")
+                for k in range(2)
+            ]
             readings = PointReadings(source_voltage_v=36.1, meter_power_w=20.0 + index)
             store.commit_point(point_id, captures=records, readings=readings)
-            store.set_point_figures(
-                point_id, {"peak_v": {"worst": 140.0 + index, "mean": 139.0, "spread": 0.5, "n": 2}}
+            peak = {"peak_v": {"worst": 140.0 + index, "mean": 139.0, "spread": 0.5, "n": 2}}
+            store.set_point_judgement(
+                point_id, {"primary": peak}, {"primary": ("pass", [])}, "pass", []
             )
-            store.set_point_verdict(point_id, "pass", [])
         store.commit_point(points[2], status="skipped")
     return db, run_id, points
 

@@ -38,7 +38,9 @@ def exported(tmp_path: Path) -> tuple[Path, Path]:
     db = tmp_path / "store.sqlite"
     with Store(db) as store:
         _, [point] = new_run(store, points=1)
-        store.commit_point(point, captures=[CaptureRecord(digitised(a)) for a in (90.0, 400.0)])
+        store.commit_point(
+            point, captures=[CaptureRecord(digitised(a), node="primary") for a in (90.0, 400.0)]
+        )
     for kind in ("npz", "csv"):
         out = tmp_path / kind
         code, _, err = run_cli(

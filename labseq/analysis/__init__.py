@@ -10,9 +10,7 @@
 """
 
 from labseq.analysis.capture import (
-    DEFAULT_DERATING,
     EDGE_FIGURE_NAMES,
-    FIGURE_UNITS,
     MIN_RECORD_SAMPLES,
     CaptureFigures,
     EdgeFigures,
@@ -37,6 +35,7 @@ from labseq.analysis.levels import histogram_state_levels
 from labseq.analysis.ringfit import RingFit, RingFitError, RingWindow, fit_ring, fit_rings
 from labseq.analysis.snubber import SnubberBranch, cv2f_loss_w
 from labseq.analysis.verdict import Limits, PointFigures, Verdict, aggregate, judge
+from labseq.figures import DEFAULT_DERATING, FIGURE_UNITS
 
 __all__ = [
     "DEFAULT_DERATING",

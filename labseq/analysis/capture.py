@@ -80,10 +80,8 @@ from labseq.analysis.snubber import (
     period_means_w,
     waveform_method_record_s,
 )
+from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND
 
-#: Fraction of the rating that the peak may use. From memory of common power-supply component
-#: derating guidelines (switch and rectifier voltage around 80 % of rating); not from a document.
-DEFAULT_DERATING = 0.8
 #: Shortest record the analysis accepts.
 MIN_RECORD_SAMPLES = 32
 #: Fit windows are decimated to at most this many samples (20 periods at 20 samples each).
@@ -163,26 +161,6 @@ class EdgeFigures:
         """Plain dict for JSON and the store (keys are the field names)."""
         return asdict(self)
 
-
-#: Units of the per-edge figures that have one (for engineering notation at the edges).
-FIGURE_UNITS: dict[str, str] = {
-    "base_v": "V",
-    "plateau_v": "V",
-    "peak_v": "V",
-    "overshoot_v": "V",
-    "overshoot_pct": "%",
-    "rise_time_s": "s",
-    "edge_time_s": "s",
-    "ring_frequency_hz": "Hz",
-    "natural_frequency_hz": "Hz",
-    "decay_rate_per_s": "/s",
-    "real_pole_decay_rate_per_s": "/s",
-    "settling_time_s": "s",
-    "snubber_loss_w": "W",
-    "stress_margin_v": "V",
-    "clamp_level_v": "V",
-    "clamp_loss_w": "W",
-}
 
 #: Names of the per-edge figures, in order (JSON keys and store columns).
 EDGE_FIGURE_NAMES: tuple[str, ...] = tuple(f.name for f in fields(EdgeFigures))
@@ -690,7 +668,7 @@ def analyze_capture(
     t0_s: float = 0.0,
     *,
     polarity: int = 1,
-    settling_band: float = 0.05,
+    settling_band: float = DEFAULT_SETTLING_BAND,
     full_scale_v: tuple[float, float] | None = None,
     clipped: np.ndarray | bool | None = None,
     snubber: SnubberBranch | None = None,

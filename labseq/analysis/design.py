@@ -48,7 +48,6 @@ from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
-from scipy.optimize import brentq, minimize_scalar
 
 from labseq.analysis.snubber import cv2f_loss_w
 
@@ -180,6 +179,8 @@ def best_damping_resistance_ohm(leakage_h: float, c_par_f: float, cs_f: float) -
     damps it critically is taken instead, of the two such R the one whose slowest pole decays
     fastest (``scipy.optimize.brentq``).
     """
+    from scipy.optimize import brentq, minimize_scalar  # imported here: it takes ~0.3 s
+
     z0 = characteristic_impedance_ohm(leakage_h, c_par_f)
 
     def zeta(log_r: float) -> float:

@@ -16,7 +16,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.signal import lfilter
 
 #: Loss methods, as stored, and as shown beside a loss value.
 WAVEFORM, CV2F = "waveform", "cv2f"
@@ -78,6 +77,8 @@ def branch_resistor_power_w(
     skips the first few τ. Power is (v − Vc)²/Rs; it includes the record's noise power (see
     :func:`noise_power_w`).
     """
+    from scipy.signal import lfilter  # imported here: scipy.signal takes ~0.3 s to import
+
     v = np.asarray(volts, dtype=float)
     a, beta = _first_order_hold(sample_interval_s, branch.time_constant_s)
     vc, _ = lfilter([1.0 - beta, beta - a], [1.0, -a], v, zi=[beta * v[0]])

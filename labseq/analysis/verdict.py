@@ -19,28 +19,14 @@ from typing import Literal
 
 import numpy as np
 
-from labseq.analysis.capture import FIGURE_UNITS
-from labseq.units import format_si
-
-#: Figures whose worst value is the largest.
-WORST_IS_MAX = frozenset(
-    {
-        "peak_v",
-        "overshoot_v",
-        "overshoot_pct",
-        "settling_time_s",
-        "snubber_loss_w",
-        "q_factor",
-        "clamp_level_v",
-        "clamp_loss_w",
-    }
+from labseq.figures import (
+    BOUNDED_BY_CLIPPING,
+    FIGURE_UNITS,
+    SIGNED_FIGURES,
+    WORST_IS_MAX,
+    WORST_IS_MIN,
 )
-#: Figures kept in the node's own sign: on a falling node their worst is the most negative.
-SIGNED_FIGURES = frozenset({"peak_v"})
-#: Figures whose worst value is the smallest.
-WORST_IS_MIN = frozenset({"damping_ratio", "stress_margin_v", "efficiency", "fit_quality"})
-#: Figures that clipping turns into a bound on the safe side (their true value may be worse).
-BOUNDED_BY_CLIPPING = frozenset({"peak_v", "overshoot_v", "overshoot_pct", "stress_margin_v"})
+from labseq.units import format_si
 
 
 @dataclass(frozen=True)
@@ -106,7 +92,8 @@ def aggregate(captures: Sequence[Mapping[str, object]], *, polarity: int = 1) ->
 
 @dataclass(frozen=True)
 class Limits:
-    """Limits of a point; each is optional and checked only when set."""
+    """Limits of a point (or of one node of it); each is optional and checked only when set. A
+    field's name is its figure's (:mod:`labseq.figures`) with ``max_`` or ``min_`` before it."""
 
     max_peak_v: float | None = None
     min_stress_margin_v: float | None = None

@@ -9,9 +9,7 @@ import click
 import numpy as np
 
 from labseq.analysis import (
-    DEFAULT_DERATING,
     EDGE_FIGURE_NAMES,
-    FIGURE_UNITS,
     CaptureFigures,
     EdgeFigures,
     SnubberBranch,
@@ -21,8 +19,9 @@ from labseq.analysis.capture import NO_RING
 from labseq.analysis.snubber import METHOD_LABELS
 from labseq.commands._options import option_fraction_or_quantity, option_quantity
 from labseq.errors import InputError
+from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND, FIGURE, FIGURE_UNITS
 from labseq.units import format_si
-from labseq.waveform_files import Waveform, read_waveform
+from labseq.waveform_files import FileRecord, read_waveform
 
 #: Okabe & Ito colour-blind-safe palette (Color Universal Design, 2002).
 COLOURS = {
@@ -32,9 +31,8 @@ COLOURS = {
     "plateau": "#E69F00",
     "peak": "#CC79A7",
 }
-#: Figures that clipping turns into lower (≥) or upper (≤) bounds.
-LOWER_BOUND_WHEN_CLIPPED = {"peak_v", "overshoot_v", "overshoot_pct"}
-UPPER_BOUND_WHEN_CLIPPED = {"stress_margin_v"}
+#: How a figure that clipping bounds is shown: ≥ its value (a lower bound) or ≤ (an upper one).
+BOUND_SIGNS = {"lower": "≥", "upper": "≤"}
 #: What the snubber loss from the waveform assumes, printed with it.
 LOSS_ASSUMPTIONS = (
     "Snubber loss, waveform method: the nominal Rs–Cs branch driven by the measured voltage, Rs·i²"
@@ -87,11 +85,8 @@ def format_figure(edge: EdgeFigures, name: str) -> str:
     text = format_si(value, unit) if unit else f"{value:.3g}"
     if name == "snubber_loss_w" and edge.snubber_loss_method is not None:
         text += f" ({METHOD_LABELS.get(edge.snubber_loss_method, edge.snubber_loss_method)})"
-    if edge.clipped and name in LOWER_BOUND_WHEN_CLIPPED:
-        return f"≥ {text}"
-    if edge.clipped and name in UPPER_BOUND_WHEN_CLIPPED:
-        return f"≤ {text}"
-    return text
+    bound = FIGURE[name].clip_bound if name in FIGURE else None
+    return f"{BOUND_SIGNS[bound]} {text}" if edge.clipped and bound else text
 
 
 def _print_table(path: Path, figures: CaptureFigures) -> None:
@@ -115,7 +110,7 @@ def _print_table(path: Path, figures: CaptureFigures) -> None:
         console.print(LOSS_ASSUMPTIONS)
 
 
-def _plot(path: Path, waveform: Waveform, figures: CaptureFigures) -> None:
+def _plot(path: Path, waveform: FileRecord, figures: CaptureFigures) -> None:
     import matplotlib
 
     matplotlib.use("Agg")
@@ -172,7 +167,12 @@ def _plot(path: Path, waveform: Waveform, figures: CaptureFigures) -> None:
 @click.argument("file", type=click.Path(path_type=Path, dir_okay=False))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object (SI numbers).")
 @click.option("--plot", type=click.Path(path_type=Path, dir_okay=False), help="Write a PNG plot.")
-@click.option("--settling-band", default="5%", show_default=True, help="Band around the plateau.")
+@click.option(
+    "--settling-band",
+    default=f"{DEFAULT_SETTLING_BAND:.0%}",
+    show_default=True,
+    help="Band around the plateau.",
+)
 @click.option(
     "--polarity",
     type=click.Choice(["rising", "falling"]),

@@ -10,8 +10,8 @@ import click
 from labseq.commands._options import option_quantity
 from labseq.commands._store import db_option, resolve_run
 from labseq.locks import store_lock
-from labseq.runner import analyse_run
-from labseq.sequence import load_sequence, parse_sequence
+from labseq.pipeline import analyse_run, stored_sequence
+from labseq.sequence import load_sequence
 from labseq.store import Store
 
 
@@ -42,11 +42,8 @@ def command(run: str, db_path: Path, sequence_path: Path | None, wait_text: str)
     wait_s = option_quantity(wait_text, "s", "--wait")
     with Store(db_path, create=False) as store, store_lock(db_path, wait_s=wait_s or 0.0):
         run_id = resolve_run(store, run)
-        record = store.run(run_id)
         sequence = (
-            load_sequence(sequence_path)
-            if sequence_path
-            else parse_sequence(record.sequence_text, record.sequence_path)
+            load_sequence(sequence_path) if sequence_path else stored_sequence(store.run(run_id))
         )
         count = analyse_run(store, sequence, run_id, only_missing=False)
         verdicts = Counter(p.verdict or "not judged" for p in store.points(run_id))

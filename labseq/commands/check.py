@@ -7,6 +7,7 @@ from pathlib import Path
 import click
 
 from labseq.analysis.snubber import SnubberBranch, waveform_method_record_s
+from labseq.bench_kinds import bench_kind
 from labseq.sequence import Sequence, load_sequence
 from labseq.units import format_si
 
@@ -18,7 +19,7 @@ SCREEN_DIVISIONS = 10
 def loss_method_warnings(sequence: Sequence) -> list[str]:
     """One warning per node with an RC damper whose record is too short for the waveform loss
     method: its snubber loss would be the Cs·V²·fsw estimate at every point."""
-    record_s = SCREEN_DIVISIONS * sequence.scope.time_per_div_s
+    record_s = SCREEN_DIVISIONS * sequence.acquisition.time_per_div_s
     warnings = []
     for node in sequence.nodes:
         if node.snubber is None:
@@ -48,11 +49,7 @@ def command(sequence_file: Path) -> None:
     sequence = load_sequence(sequence_file)
     grid, dut, snubber = sequence.grid, sequence.dut, sequence.snubber
     kind = "AC rms" if grid.line_is_ac else "DC"
-    bench = (
-        f"simulated ({sequence.bench.sim_dut_path.name})"
-        if sequence.bench.is_sim
-        else "VISA: " + ", ".join(f"{r}={a}" for r, a in sequence.bench.resources.items())
-    )
+    bench = bench_kind(sequence.bench.kind).describe(sequence.bench)
     click.echo(f"{sequence_file}: ok — {sequence.name} (sha256 {sequence.sha256[:12]})")
     click.echo(f"  bench:   {bench}")
     click.echo(f"  DUT:     {dut.label}, switch {format_si(dut.switch_rating_v, 'V')}")

@@ -15,16 +15,16 @@ from pathlib import Path
 import click
 
 from labseq.commands._store import db_option, resolve_run
-from labseq.errors import InputError
-from labseq.review import (
+from labseq.compare import (
     DEFAULT_COVERAGE,
     DEFAULT_MATCH_TOLERANCE,
-    FIGURE_DIRECTIONS,
     Comparison,
     compare_runs,
     comparison_summary,
-    review_run,
 )
+from labseq.errors import InputError
+from labseq.figures import FIGURE_DIRECTIONS
+from labseq.review import review_run
 from labseq.store import Store
 
 #: Exit status when the candidate regressed (what a CI job acts on).

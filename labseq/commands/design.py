@@ -16,7 +16,7 @@ from labseq.analysis import (
     propose_clamp,
     propose_snubber,
 )
-from labseq.analysis.design import PartSet, leakage_energy_loss_w, propose_part_set
+from labseq.analysis.design import PartSet, leakage_energy_loss_w
 from labseq.commands._options import option_fraction_or_quantity, option_quantity
 from labseq.commands._store import db_option, resolve_run
 from labseq.errors import InputError
@@ -252,27 +252,10 @@ def command(
     click.echo("\n".join(blocks))
 
 
-def _point_clipped(store: object, point_id: int) -> bool:
-    """True when any primary capture of the point reached the scope's full scale."""
-    from labseq.store import PRIMARY_NODE
-
-    for capture in store.captures(point_id, with_codes=False, node=PRIMARY_NODE):
-        figures = store.capture_figures(capture.id)
-        if figures and figures.get("clipped"):
-            return True
-    return False
-
-
 def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_json: bool) -> None:
     """``design --run``: one proposal per measured point of a stored run, worst peak first, and
-    one part set for all of them.
-
-    Each point's L and Cpar come from its mean ring frequency and damping ratio measured with the
-    run's own damper fitted (:func:`labseq.analysis.design.loaded_ring_network`). Points whose
-    captures clipped are flagged: their peak is a lower bound, their ring was fitted without the
-    clipped samples.
-    """
-    from labseq.runner import stored_sequence
+    one part set for all of them (:func:`labseq.proposals.propose_for_run`)."""
+    from labseq.proposals import propose_for_run
     from labseq.store import Store
 
     given = {k: option_quantity(options[k], unit, f"--{k.replace('_', '-')}") for k, unit in
@@ -285,69 +268,26 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
             )
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
-        sequence = stored_sequence(store, run_id)
-        points = store.points(run_id, status="done")
-        figures = store.point_figures(run_id)
-        clipped = {point.id: _point_clipped(store, point.id) for point in points}
-    snubber = sequence.snubber
-    fsw_hz = sequence.dut.switching_frequency_hz
-    cs_f = given["cs"]
-    budget_w = None if cs_f is not None else given["loss_budget"]
-    budget_w = budget_w or (None if cs_f is not None else snubber.resistor_power_budget_w)
-    rows = []
-    for point in points:
-        point_figures = figures.get(point.id, {})
-
-        def mean(name: str, figures_of_point: dict = point_figures) -> float | None:
-            return figures_of_point.get(name, {}).get("mean")
-
-        ring_hz, zeta = mean("ring_frequency_hz"), mean("damping_ratio")
-        plateau_v, base_v = mean("plateau_v"), mean("base_v")
-        if ring_hz is None or zeta is None or plateau_v is None or base_v is None:
-            continue  # no ring fitted at this point: nothing to size from
         try:
-            proposal = propose_snubber(
-                ring_freq_hz=ring_hz,
-                damping_ratio=zeta,
-                snubber_r_ohm=snubber.resistance_ohm,
-                snubber_c_f=snubber.capacitance_f,
-                volts=plateau_v - base_v,
-                fsw_hz=fsw_hz,
-                loss_budget_w=budget_w,
-                cs_f=cs_f,
+            found = propose_for_run(
+                store, run_id, loss_budget_w=given["loss_budget"], cs_f=given["cs"]
             )
         except DesignInputError as exc:
-            raise InputError(
-                f"design --run {run_id}, point {format_si(point.line_v, 'V')} / "
-                f"{format_si(point.load_a, 'A')}: {_with_option_names(str(exc))}"
-            ) from None
-        peak_v = point_figures.get("peak_v", {}).get("worst")
-        peak = peak_v if peak_v is not None else float("-inf")
-        rows.append((peak, point, proposal, plateau_v - base_v, clipped[point.id], zeta))
-    if not rows:
-        raise InputError(f"design --run {run_id}: no point of the run has a fitted ring")
-    rows.sort(key=lambda row: -row[0])
-    part_set = propose_part_set(
-        [(prop.l_leak_h, prop.c_par_f, step_v) for _, _, prop, step_v, _, _ in rows],
-        fsw_hz,
-        loss_budget_w=budget_w,
-        cs_f=cs_f,
-    )
+            raise InputError(f"design --run {run_id}, {_with_option_names(str(exc))}") from None
+    part_set = found.part_set
     if as_json:
         point_rows = [
             {
-                "line_v": p.line_v,
-                "load_a": p.load_a,
-                "peak_v": peak,
-                "step_v": step_v,
-                "clipped": was_clipped,
-                "measured_damping_ratio": measured,
-                **prop.as_dict(),
+                "line_v": row.point.line_v,
+                "load_a": row.point.load_a,
+                "peak_v": row.peak_v,
+                "step_v": row.step_v,
+                "clipped": row.clipped,
+                "measured_damping_ratio": row.measured_damping_ratio,
+                **row.proposal.as_dict(),
                 "part_set_damping_ratio": zeta,
             }
-            for (peak, p, prop, step_v, was_clipped, measured), zeta in zip(
-                rows, part_set.damping_ratios, strict=True
-            )
+            for row, zeta in zip(found.points, part_set.damping_ratios, strict=True)
         ]
         click.echo(
             json.dumps(
@@ -356,27 +296,28 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
         )
         return
     click.echo(
-        f"run {run_id}: {len(rows)} points, worst peak first; damper fitted "
-        f"{snubber.label}, fsw = {format_si(fsw_hz, 'Hz')}; L and Cpar of each point from its "
-        "ring measured with that damper"
+        f"run {run_id}: {len(found.points)} points, worst peak first; damper fitted "
+        f"{found.snubber.label}, fsw = {format_si(found.fsw_hz, 'Hz')}; L and Cpar of each point "
+        "from its ring measured with that damper"
     )
-    for peak_v, point, prop, _, was_clipped, _ in rows:
+    for row in found.points:
+        prop, point = row.proposal, row.point
         zeta = "—" if prop.damping_ratio is None else f"{prop.damping_ratio:.2f}"
         click.echo(
             f"{format_si(point.line_v, 'V'):>7} / {format_si(point.load_a, 'A'):<8} "
-            f"peak {format_si(peak_v, 'V'):>7}{' (clipped)' if was_clipped else ''}  "
+            f"peak {format_si(row.peak_v, 'V'):>7}{' (clipped)' if row.clipped else ''}  "
             f"ring {format_si(prop.ring_freq_hz, 'Hz'):>9}  L {format_si(prop.l_leak_h, 'H'):>7}  "
             f"Cpar {format_si(prop.c_par_f, 'F'):>7}  Rs {format_si(prop.r_ohm, 'Ω'):>7}  "
             f"Cs {format_si(prop.cs_f, 'F'):>7}  loss {format_si(prop.loss_w, 'W'):>7}  ζ {zeta}"
         )
         for warning in prop.warnings:
             click.echo(f"    warning: {warning}")
-    if any(row[4] for row in rows):
+    if any(row.clipped for row in found.points):
         click.echo(
             "clipped: the scope reached full scale at these points; their peak is a lower bound "
             "(the ring was fitted without the clipped samples)"
         )
-    click.echo(part_set_text(part_set, budget_w))
+    click.echo(part_set_text(part_set, found.loss_budget_w))
 
 
 def part_set_text(part_set: PartSet, budget_w: float | None) -> str:

@@ -1,145 +1,15 @@
-"""``labseq export RUN``: a run's points as CSV and its captures as NPZ or CSV files.
-
-``points.csv`` has one row per point: setpoints, readbacks, meter readings, efficiency, the
-combined verdict and the per-point figures (worst, mean, spread, n of each) of the primary node,
-then for each further node its verdict and figures in columns prefixed by its name
-(``secondary_verdict``, ``secondary_peak_v_worst``…). Captures go either into one
-``captures.npz`` (per capture ``<name>_codes`` as stored, ``<name>_volts``, and a ``scaling``
-table with one row per capture) or into ``captures/<name>.csv`` files of ``time_s,volts``, where
-``<name>`` is ``p<point index>_c<capture index>``, followed by ``_<node>`` for a node other than
-the primary. Captures are read and written one at a time.
-"""
+"""``labseq export RUN``: a run's points as CSV and its captures as NPZ or CSV files (the layout
+is :mod:`labseq.export`'s)."""
 
 from __future__ import annotations
 
-import csv
-import json
-import zipfile
-from collections.abc import Iterator
-from dataclasses import asdict, fields
 from pathlib import Path
 
 import click
-import numpy as np
 
 from labseq.commands._store import db_option, resolve_run
-from labseq.store import PRIMARY_NODE, PointRecord, Store, StoredCapture
-
-_POINT_COLUMNS = [f.name for f in fields(PointRecord) if f.name not in ("id", "run_id")]
-_FIGURE_STATS = ("worst", "mean", "spread", "n")
-_SCALING_DTYPE = np.dtype(
-    [
-        ("name", "U48"),
-        ("point_index", "i8"),
-        ("capture_index", "i8"),
-        ("channel", "i8"),
-        ("node", "U32"),
-        ("x_increment_s", "f8"),
-        ("x_origin_s", "f8"),
-        ("y_increment_v", "f8"),
-        ("y_origin_v", "f8"),
-        ("y_reference", "f8"),
-        ("code_min", "f8"),
-        ("code_max", "f8"),
-    ]
-)
-
-
-def capture_name(point_index: int, capture_index: int, node: str | None = None) -> str:
-    """File-safe name of a capture: ``p003_c01``, or ``p003_c01_secondary`` for a node other than
-    the primary (``node`` None)."""
-    return f"p{point_index:03d}_c{capture_index:02d}" + (f"_{node}" if node else "")
-
-
-def write_points_csv(store: Store, run_id: int, path: Path) -> int:
-    """Write the run's points with their figures (per node) to ``path``; return the row count."""
-    points = store.points(run_id)
-    figures = store.node_figures(run_id)
-    verdicts = store.node_verdicts(run_id)
-    nodes = store.node_names(run_id) or [PRIMARY_NODE]
-    names = {
-        node: sorted({name for per_point in figures.values() for name in per_point.get(node, {})})
-        for node in nodes
-    }
-    header = list(_POINT_COLUMNS)
-    for index, node in enumerate(nodes):
-        prefix = f"{node}_" if index else ""
-        header += [f"{node}_verdict"] if index else []
-        header += [f"{prefix}{name}_{stat}" for name in names[node] for stat in _FIGURE_STATS]
-    with path.open("w", newline="", encoding="utf-8") as handle:
-        writer = csv.writer(handle)
-        writer.writerow(header)
-        for point in points:
-            row = asdict(point)
-            row["verdict_reasons"] = "; ".join(point.verdict_reasons)
-            values = [row[column] for column in _POINT_COLUMNS]
-            for index, node in enumerate(nodes):
-                if index:
-                    values.append(verdicts.get(point.id, {}).get(node, (None,))[0])
-                per_node = figures.get(point.id, {}).get(node, {})
-                for name in names[node]:
-                    values += [per_node.get(name, {}).get(stat) for stat in _FIGURE_STATS]
-            writer.writerow(["" if value is None else value for value in values])
-    return len(points)
-
-
-def _named_captures(store: Store, run_id: int) -> Iterator[tuple[str, StoredCapture, int]]:
-    index_of_point = {point.id: point.point_index for point in store.points(run_id)}
-    nodes = store.node_names(run_id)
-    for capture in store.iter_captures(run_id):
-        point_index = index_of_point[capture.point_id]
-        node = None if capture.node == nodes[0] else capture.node
-        yield capture_name(point_index, capture.capture_index, node), capture, point_index
-
-
-def write_captures_npz(store: Store, run_id: int, path: Path) -> int:
-    """Write every capture of the run into one ``.npz``, streaming; return the count."""
-    scaling = []
-    with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_STORED, allowZip64=True) as archive:
-
-        def put(key: str, array: np.ndarray) -> None:
-            with archive.open(f"{key}.npy", "w", force_zip64=True) as member:
-                np.lib.format.write_array(member, array, allow_pickle=False)
-
-        for name, capture, point_index in _named_captures(store, run_id):
-            put(f"{name}_codes", capture.codes)
-            put(f"{name}_volts", capture.volts())
-            scaling.append(
-                (
-                    name,
-                    point_index,
-                    capture.capture_index,
-                    capture.channel,
-                    capture.node,
-                    capture.x_increment_s,
-                    capture.x_origin_s,
-                    capture.y_increment_v,
-                    capture.y_origin_v,
-                    capture.y_reference,
-                    np.nan if capture.code_min is None else capture.code_min,
-                    np.nan if capture.code_max is None else capture.code_max,
-                )
-            )
-        put("scaling", np.array(scaling, dtype=_SCALING_DTYPE))
-    return len(scaling)
-
-
-def write_captures_csv(store: Store, run_id: int, directory: Path) -> int:
-    """Write one ``time_s,volts`` CSV per capture into ``directory``; return the count."""
-    directory.mkdir(parents=True, exist_ok=True)
-    count = 0
-    for name, capture, _ in _named_captures(store, run_id):
-        table = np.column_stack([capture.time_s(), capture.volts()])
-        np.savetxt(
-            directory / f"{name}.csv",
-            table,
-            fmt="%.9g",
-            delimiter=",",
-            header="time_s,volts",
-            comments="",
-        )
-        count += 1
-    return count
+from labseq.export import CAPTURE_FORMATS, export_run
+from labseq.store import Store
 
 
 @click.command("export")
@@ -155,7 +25,7 @@ def write_captures_csv(store: Store, run_id: int, directory: Path) -> int:
 @click.option(
     "--captures",
     "captures_format",
-    type=click.Choice(["npz", "csv"]),
+    type=click.Choice(CAPTURE_FORMATS),
     default="npz",
     show_default=True,
     help="One .npz with all captures, or one CSV per capture.",
@@ -164,17 +34,10 @@ def command(run: str, db_path: Path, out_dir: Path | None, captures_format: str)
     """Export run RUN (an id, or 'latest'): points.csv plus the captures (as NPZ or CSV)."""
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
-        out_dir = out_dir or Path(f"run-{run_id}")
-        record = store.run(run_id)
-        out_dir.mkdir(parents=True, exist_ok=True)
-        points = write_points_csv(store, run_id, out_dir / "points.csv")
-        (out_dir / "sequence.toml").write_text(record.sequence_text, encoding="utf-8")
-        (out_dir / "run.json").write_text(
-            json.dumps({k: v for k, v in asdict(record).items() if k != "sequence_text"}, indent=2),
-            encoding="utf-8",
+        written = export_run(
+            store, run_id, out_dir or Path(f"run-{run_id}"), captures=captures_format
         )
-        if captures_format == "npz":
-            captures = write_captures_npz(store, run_id, out_dir / "captures.npz")
-        else:
-            captures = write_captures_csv(store, run_id, out_dir / "captures")
-    click.echo(f"run {run_id}: {points} points and {captures} captures written to {out_dir}")
+    click.echo(
+        f"run {run_id}: {written.points} points and {written.captures} captures written to "
+        f"{written.directory}"
+    )

@@ -9,8 +9,9 @@ import click
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option, resolve_run
 from labseq.commands.run import confirm_hazard, report_outcome, yes_option
+from labseq.pipeline import stored_sequence
 from labseq.progress import Progress
-from labseq.runner import TAKE_OVER_RISK, bench_locks, check_resumable, execute, stored_sequence
+from labseq.runner import TAKE_OVER_RISK, bench_locks, check_resumable, execute
 from labseq.safety import SignalLatch
 from labseq.store import Store
 
@@ -41,7 +42,7 @@ def command(
     latch = SignalLatch().install()
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
-        sequence = stored_sequence(store, run_id)
+        sequence = stored_sequence(store.run(run_id))
         with bench_locks(sequence, store), tracing(trace_path):
             before = check_resumable(store, run_id, take_over=take_over)
             pending = before.points_done < before.points_total

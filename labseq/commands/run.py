@@ -41,7 +41,7 @@ def confirm_hazard(sequence: Sequence, *, yes: bool, progress: Progress) -> str 
 
     Without a terminal and without ``yes`` nothing is opened: an unattended start must say so.
     """
-    hazard = None if sequence.bench.is_sim else sequence.above_es1()
+    hazard = None if sequence.bench.simulated else sequence.above_es1()
     if hazard is None:
         return None
     progress.message(f"{CAUTIONS}\n  This run: {hazard.describe()}.", error=True)

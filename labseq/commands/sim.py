@@ -2,21 +2,20 @@
 
 Each role's VISA resource string is printed, so a sequence file or any VISA client can point at
 it. The bench stops cleanly (outputs off, ports closed) on either signal and exits 0.
+
+The command's options name what the simulator offers (its demo DUTs, fault kinds and command
+sets); they are built from it (:mod:`labseq.sim_bench`) only when the command runs or shows its
+own help, so listing labseq's commands does not import the simulator.
 """
 
 from __future__ import annotations
 
 import time
+from typing import Any
 
 import click
 
-from labseq.errors import InputError
 from labseq.safety import Interrupted, signals_raise_interrupted
-from sim_instruments.bench import SimBench
-from sim_instruments.faults import KINDS, ROLES, FaultSpecError
-from sim_instruments.flyback import DEMO_DUTS, DutFileError, load_dut, resolve_dut
-from sim_instruments.instruments import DIALECTS
-from sim_instruments.server import ServerConfigError
 
 SIMULATION_NOTICE = (
     "This is a simulated bench: no hardware is driven, and every reading comes from a model of "
@@ -25,62 +24,80 @@ SIMULATION_NOTICE = (
 )
 
 
-@click.command("sim")
-@click.option(
-    "--dut",
-    "dut_name",
-    default="telecom_dc",
-    show_default=True,
-    help=f"Demo DUT ({', '.join(sorted(DEMO_DUTS))}) or the path of a DUT TOML file.",
-)
-@click.option(
-    "--faults",
-    default="",
-    help=(
-        "Faults to inject, ROLE:KIND@call=N, @point=N or @off=N (+ after N: every time from "
-        "then on), comma-separated "
-        f"(roles: {', '.join(ROLES)}; kinds: {', '.join(KINDS)})."
-    ),
-)
-@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on.")
-@click.option(
-    "--allow-remote", is_flag=True, help="Allow a --host other than loopback (LAN exposure)."
-)
-@click.option("--seed", type=int, default=0, show_default=True, help="Seed of every random draw.")
-@click.option(
-    "--dialect",
-    type=click.Choice(DIALECTS),
-    default=DIALECTS[0],
-    show_default=True,
-    help="Command set every instrument speaks: the generic maps', or the second ('alt') one.",
-)
-def command(
-    dut_name: str, faults: str, host: str, allow_remote: bool, seed: int, dialect: str
-) -> None:
+def _options() -> list[click.Parameter]:
+    """The command's options, named from what the simulator offers."""
+    from labseq.sim_bench import DEMO_DUTS, DIALECTS, FAULT_KINDS, FAULT_ROLES
+
+    return [
+        click.Option(
+            ["--dut", "dut_name"],
+            default="telecom_dc",
+            show_default=True,
+            help=f"Demo DUT ({', '.join(sorted(DEMO_DUTS))}) or the path of a DUT TOML file.",
+        ),
+        click.Option(
+            ["--faults"],
+            default="",
+            help=(
+                "Faults to inject, ROLE:KIND@call=N, @point=N or @off=N (+ after N: every time "
+                "from then on), comma-separated "
+                f"(roles: {', '.join(FAULT_ROLES)}; kinds: {', '.join(FAULT_KINDS)})."
+            ),
+        ),
+        click.Option(
+            ["--host"], default="127.0.0.1", show_default=True, help="Address to listen on."
+        ),
+        click.Option(
+            ["--allow-remote"],
+            is_flag=True,
+            help="Allow a --host other than loopback (LAN exposure).",
+        ),
+        click.Option(
+            ["--seed"], type=int, default=0, show_default=True, help="Seed of every random draw."
+        ),
+        click.Option(
+            ["--dialect"],
+            type=click.Choice(DIALECTS),
+            default=DIALECTS[0],
+            show_default=True,
+            help="Command set every instrument speaks: the generic maps', or the second ('alt') "
+            "one.",
+        ),
+    ]
+
+
+class _SimCommand(click.Command):
+    """A command whose options are built on first use (see the module notes)."""
+
+    def get_params(self, ctx: click.Context) -> list[click.Parameter]:
+        if not self.params:
+            self.params = _options()
+        return super().get_params(ctx)
+
+
+@click.command("sim", cls=_SimCommand)
+def command(**options: Any) -> None:
     """Serve a simulated source, load, meter and scope on TCP ports until interrupted."""
-    try:
-        design = load_dut(resolve_dut(dut_name))
-        bench = SimBench(
-            design,
-            faults=faults,
-            host=host,
-            allow_remote=allow_remote,
-            seed=seed,
+    from labseq.sim_bench import serve
+
+    dialect = options["dialect"]
+    with signals_raise_interrupted():
+        bench = serve(
+            options["dut_name"],
+            faults=options["faults"],
+            host=options["host"],
+            allow_remote=options["allow_remote"],
+            seed=options["seed"],
             dialect=dialect,
         )
-    except (DutFileError, FaultSpecError, ServerConfigError) as error:
-        raise InputError(str(error)) from None
-    with signals_raise_interrupted():
         try:
-            bench.start()
-        except ServerConfigError as error:
-            raise InputError(str(error)) from None
-        try:
-            click.echo(f"Simulated bench for {design.label} ({dialect} dialect: maps {dialect!r})")
+            click.echo(
+                f"Simulated bench for {bench.design.label} ({dialect} dialect: maps {dialect!r})"
+            )
             for role, resource in bench.resources.items():
                 click.echo(f"  {role:<6} {resource}")
-            if faults:
-                click.echo(f"  faults: {faults}")
+            if options["faults"]:
+                click.echo(f"  faults: {options['faults']}")
             click.echo(SIMULATION_NOTICE)
             click.echo("Press Ctrl-C to stop.")
             while True:

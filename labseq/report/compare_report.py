@@ -10,24 +10,20 @@ from pathlib import Path
 
 import numpy as np
 
+from labseq.compare import Comparison, FigureChange, PointChange, shared_nodes
+from labseq.figures import (
+    FIGURE_DIRECTIONS,
+    FIGURE_TITLES,
+    NOISE_FLOORS,
+    format_change,
+    format_figure,
+    shown_unit,
+)
 from labseq.report import plots
 from labseq.report.html import Markup, Page, cell, esc, table
 from labseq.report.run_report import LOSS_ASSUMPTIONS, ReportFiles, cell_texts, with_loss_methods
 from labseq.report.traces import point_traces
-from labseq.review import (
-    FIGURE_DIRECTIONS,
-    FIGURE_TITLES,
-    NOISE_FLOORS,
-    Comparison,
-    FigureChange,
-    PointChange,
-    RunReview,
-    figure_unit,
-    format_change,
-    format_figure,
-    line_text,
-    shared_nodes,
-)
+from labseq.review import RunReview, line_text
 from labseq.store import Store
 
 #: Figures with maps and table columns, in reading order.
@@ -139,7 +135,7 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
     scale = 100.0 if figure == "efficiency" else 1.0
     both = np.concatenate([baseline[np.isfinite(baseline)], candidate[np.isfinite(candidate)]])
     limits = (float(both.min()) * scale, float(both.max()) * scale)
-    unit = "%" if figure == "efficiency" else figure_unit(figure)
+    unit = shown_unit(figure)
 
     def formatted(describe: Callable[[str, float], str]) -> Callable[[float], str] | None:
         """Colour-bar ticks in engineering notation (efficiency is already in %)."""

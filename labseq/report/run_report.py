@@ -1,5 +1,6 @@
 """The report of one run: verdict and limits, verdict grid, heat maps, worst points, identities,
-the sequence as run and the safety note — in the order a reviewer reads them.
+the run's event log, the sequence as run and the safety note — in the order a reviewer reads
+them.
 
 The verdict grid is the points' combined verdicts (the worst of their nodes); heat maps, worst
 points and overlays are the primary node's, then one section per further node (e.g. "Secondary
@@ -15,25 +16,26 @@ from pathlib import Path
 
 import numpy as np
 
-from labseq.commands.export import write_points_csv
+from labseq.analysis.verdict import LIMIT_FIGURES
+from labseq.export import write_points_csv
+from labseq.figures import (
+    FIGURE_TITLES,
+    figure_direction,
+    format_figure,
+    shown_unit,
+)
 from labseq.report import plots
 from labseq.report.html import Markup, Page, esc, table, verdict_cell
 from labseq.report.traces import point_traces
-from labseq.review import (
-    FIGURE_TITLES,
-    PointReview,
-    RunReview,
-    figure_direction,
-    figure_unit,
-    format_figure,
-    limit_rows,
-    line_text,
-)
+from labseq.review import PointReview, RunReview, limit_rows, line_text
+from labseq.runlog import run_log
 from labseq.store import Store
 from labseq.units import format_si
 
 #: Rows of the "did not pass" table at most; points.csv has them all.
 MAX_LISTED_POINTS = 200
+#: Events of the run log listed at most; ``labseq log RUN`` has them all.
+MAX_LISTED_EVENTS = 300
 
 
 @dataclass(frozen=True)
@@ -134,7 +136,7 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
         if figure == "snubber_loss_w":
             texts = with_loss_methods(review, texts)
         shown = 100 * values if figure == "efficiency" else values
-        unit = "%" if figure == "efficiency" else figure_unit(figure)
+        unit = shown_unit(figure)
         fig = plots.heat_map(
             values,
             lines,
@@ -190,18 +192,13 @@ def _colour_format(figure: str) -> Callable[[float], str]:
 
 def _worst_rows(review: RunReview) -> list[list[str]]:
     spec = review.node_spec
-    limits = spec.limits if spec else None
     limit_of = {
-        "peak_v": (
-            "|peak| ≤" if review.polarity < 0 else "≤",
-            limits.max_peak_v if limits else None,
-        ),
-        "stress_margin_v": ("≥", limits.min_stress_margin_v if limits else None),
-        "damping_ratio": ("≥", limits.min_damping_ratio if limits else None),
-        "q_factor": ("≤", limits.max_q_factor if limits else None),
-        "settling_time_s": ("≤", limits.max_settling_time_s if limits else None),
-        "snubber_loss_w": ("≤", limits.max_snubber_loss_w if limits else None),
-        "efficiency": ("≥", limits.min_efficiency if limits else None),
+        figure: (
+            ("|peak| " if figure == "peak_v" and review.polarity < 0 else "")
+            + ("≤" if is_max else "≥"),
+            getattr(spec.limits, name) if spec else None,
+        )
+        for name, (figure, is_max) in LIMIT_FIGURES.items()
     }
     rows = []
     for figure, worst in review.worst.items():
@@ -308,6 +305,29 @@ def _not_passed_rows(review: RunReview) -> tuple[list[list[str]], int]:
     return rows, len(listed)
 
 
+def _log_table(page: Page, store: Store, review: RunReview) -> None:
+    """The run's events in the order they happened (times in UTC)."""
+    entries = run_log(store, review.run.id)
+    if not entries:
+        page.paragraph("No events recorded for this run.", "note")
+        return
+    rows = [
+        [
+            entry.time_text,
+            entry.kind,
+            entry.message,
+            entry.point_text,
+            entry.data_text,
+        ]
+        for entry in entries[:MAX_LISTED_EVENTS]
+    ]
+    page.add(table(["time (UTC)", "kind", "event", "point", "data"], rows))
+    if len(entries) > len(rows):
+        page.paragraph(
+            f"… and {len(entries) - len(rows)} more: see labseq log {review.run.id}.", "note"
+        )
+
+
 def build_run_report(store: Store, review: RunReview, out_dir: Path) -> ReportFiles:
     """Write ``report.html``, its PNGs and ``points.csv`` for a reviewed run into ``out_dir``."""
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -369,6 +389,9 @@ def build_run_report(store: Store, review: RunReview, out_dir: Path) -> ReportFi
 
     page.section("identity", "DUT, snubber, bench and software")
     page.add(table(["what", "value"], _identity_rows(review)))
+
+    page.section("log", "Run log")
+    _log_table(page, store, review)
 
     page.section("sequence", "Sequence file as run")
     page.add(Markup(f"<pre>{esc(run.sequence_text)}</pre>"))

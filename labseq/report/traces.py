@@ -1,27 +1,20 @@
 """The few captures a report draws, read back and analysed again to redraw their fitted rings.
 
 Only overlay plots come here; tables and maps use the figures the run stored, so a report of a
-large run reads a handful of raw captures at most.
+large run reads a handful of raw captures at most. Each capture is analysed as the run analysed
+it (:mod:`labseq.pipeline`), so the ring drawn is the one the tables describe.
 """
 
 from __future__ import annotations
 
-from labseq.analysis import NoEdgeError, analyze_capture
+from labseq.analysis import NoEdgeError
+from labseq.pipeline import analyse_waveform
 from labseq.report.plots import Trace
 from labseq.sequence import Sequence
-from labseq.store import PRIMARY_NODE, Store, StoredCapture
+from labseq.store import Store, StoredCapture
 
 #: Captures drawn per point at most.
 MAX_CAPTURES_DRAWN = 4
-
-
-def _analysis_options(sequence: Sequence | None, node_name: str) -> dict[str, object]:
-    """The settings the run analysed the node with; plain defaults when the sequence (or the
-    node in it) is unknown."""
-    node = None if sequence is None else sequence.node(node_name)
-    if sequence is None or node is None:
-        return {}
-    return sequence.analysis_options(node)
 
 
 def trace_of(capture: StoredCapture, sequence: Sequence | None) -> Trace:
@@ -30,14 +23,9 @@ def trace_of(capture: StoredCapture, sequence: Sequence | None) -> Trace:
     volts = capture.volts()
     time_s = capture.time_s()
     label = f"capture {capture.capture_index + 1}"
+    node = None if sequence is None else sequence.node(capture.node)
     try:
-        figures = analyze_capture(
-            volts,
-            capture.x_increment_s,
-            float(time_s[0]),
-            clipped=capture.clipped,
-            **_analysis_options(sequence, capture.node),  # type: ignore[arg-type]
-        )
+        figures = analyse_waveform(capture, sequence, node)
     except (NoEdgeError, ValueError) as exc:
         return Trace(label, time_s, volts, (), None, f"{label}: {exc}")
     fits = tuple(fit for fit in figures.ring_fits if fit is not None)
@@ -51,7 +39,7 @@ def point_traces(
     sequence: Sequence | None,
     limit: int = MAX_CAPTURES_DRAWN,
     *,
-    node: str = PRIMARY_NODE,
+    node: str,
 ) -> list[Trace]:
     """Up to ``limit`` captures of one node of a point as traces."""
     captures = store.captures(point_id, node=node)[:limit]

@@ -26,23 +26,23 @@ from labseq.waveform_files.arrays import read_npy, read_npz, refuse
 from labseq.waveform_files.record import (
     MAX_ABS_VOLTS,
     UNIFORM_TOLERANCE,
-    Waveform,
+    FileRecord,
     check_uniform,
     quoted,
 )
 from labseq.waveform_files.text import read_text_waveform
 
-__all__ = ["MAX_ABS_VOLTS", "UNIFORM_TOLERANCE", "Waveform", "check_uniform", "read_waveform"]
+__all__ = ["MAX_ABS_VOLTS", "UNIFORM_TOLERANCE", "FileRecord", "check_uniform", "read_waveform"]
 
 
 def _read_text(
     path: Path, channel: str | None, time_unit: str | None, capture: str | None
-) -> Waveform:
+) -> FileRecord:
     refuse(path, "--capture", capture, "it picks a capture of labseq's NPZ export")
     return read_text_waveform(path, channel=channel, time_unit=time_unit)
 
 
-Reader = Callable[[Path, str | None, str | None, str | None], Waveform]
+Reader = Callable[[Path, str | None, str | None, str | None], FileRecord]
 READERS: dict[str, Reader] = {
     **dict.fromkeys((".csv", ".tsv", ".txt", ".dat"), _read_text),
     ".npy": read_npy,
@@ -80,7 +80,7 @@ def read_waveform(
     channel: str | None = None,
     time_unit: str | None = None,
     capture: str | None = None,
-) -> Waveform:
+) -> FileRecord:
     """Read and check a waveform file (see the module notes for the layouts).
 
     ``channel`` picks a voltage column by name or number where a file has several; ``time_unit``

@@ -7,11 +7,12 @@ from pathlib import Path
 
 import numpy as np
 
-from instruments import Waveform as ScopeRecord
+from instruments import Waveform
 from labseq.errors import InputError
+from labseq.export import SCALING_FIELDS, SCALING_KEY, codes_key
 from labseq.waveform_files.record import (
     Column,
-    Waveform,
+    FileRecord,
     check_uniform,
     check_volts,
     listing,
@@ -21,18 +22,9 @@ from labseq.waveform_files.record import (
 )
 
 CANONICAL_NAMES = ("time_s", "volts")
-#: Fields of the ``scaling`` table of ``labseq export``'s ``captures.npz`` (see
-#: :mod:`labseq.commands.export`) that reading a capture needs.
-EXPORT_SCALING_FIELDS = (
-    "name",
-    "x_increment_s",
-    "x_origin_s",
-    "y_increment_v",
-    "y_origin_v",
-    "y_reference",
-    "code_min",
-    "code_max",
-)
+#: Fields of the scaling table of ``labseq export``'s ``captures.npz`` (:mod:`labseq.export`)
+#: that reading a capture needs: its name and its scaling.
+EXPORT_SCALING_FIELDS = ("name", *SCALING_FIELDS)
 
 
 def _real(path: Path, name: str, values: np.ndarray) -> np.ndarray:
@@ -61,7 +53,7 @@ def _seconds_only(path: Path, time_unit: str | None, where: str) -> None:
 
 def read_npy(
     path: Path, channel: str | None, time_unit: str | None, capture: str | None
-) -> Waveform:
+) -> FileRecord:
     """An N×2 array (time, volts), an N×k one (time and k − 1 voltage columns), or a structured
     array with fields ``time_s`` and ``volts``."""
     refuse(path, "--capture", capture, "it picks a capture of labseq's NPZ export")
@@ -102,7 +94,7 @@ def read_npy(
 
 def read_npz(
     path: Path, channel: str | None, time_unit: str | None, capture: str | None
-) -> Waveform:
+) -> FileRecord:
     """Arrays ``time_s`` and ``volts``, or one capture of labseq's export."""
     with np.load(path, allow_pickle=False) as archive:
         if all(name in archive.files for name in CANONICAL_NAMES):
@@ -114,13 +106,13 @@ def read_npz(
             if time_s.size != volts.size:
                 raise InputError(f"{path}: time_s has {time_s.size} values but volts {volts.size}")
             return check_uniform(path, time_s, volts)
-        if "scaling" in archive.files:
+        if SCALING_KEY in archive.files:
             refuse(path, "--channel", channel, "choose a capture of the export with --capture")
             _seconds_only(path, time_unit, "labseq's export")
             return _read_export(path, archive, capture)
         raise InputError(
             f"{path}: holds arrays {listing(archive.files)}; expected {list(CANONICAL_NAMES)}, "
-            "or labseq export's 'scaling' table with its '<name>_codes' arrays"
+            f"or labseq export's {SCALING_KEY!r} table with its {codes_key('<name>')!r} arrays"
         )
 
 
@@ -143,10 +135,10 @@ def _choose_capture(path: Path, names: list[str], capture: str | None) -> int:
     return names.index(capture)
 
 
-def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None) -> Waveform:
+def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None) -> FileRecord:
     """One capture of ``labseq export``'s ``captures.npz`` as the store holds it: raw codes,
     their scaling and the screen's limits, so the samples that clipped are known."""
-    scaling = np.atleast_1d(archive["scaling"])
+    scaling = np.atleast_1d(archive[SCALING_KEY])
     fields = scaling.dtype.names or ()
     missing = [name for name in EXPORT_SCALING_FIELDS if name not in fields]
     if missing:
@@ -174,7 +166,7 @@ def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None)
             f"{path}: scaling of {quoted(name)}: x_increment_s is {numbers['x_increment_s']:g}; "
             "a sample interval must be positive"
         )
-    key = f"{name}_codes"
+    key = codes_key(name)
     if key not in archive.files:
         raise InputError(f"{path}: the scaling table names {quoted(name)} but {key} is missing")
     codes = archive[key]
@@ -184,7 +176,7 @@ def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None)
             "of integer or float codes"
         )
     code_min, code_max = (numbers.pop(k) for k in ("code_min", "code_max"))
-    record = ScopeRecord(
+    record = Waveform(
         codes=codes,
         **numbers,
         code_min=None if np.isnan(code_min) else code_min,
@@ -193,7 +185,7 @@ def _read_export(path: Path, archive: np.lib.npyio.NpzFile, capture: str | None)
     volts = record.volts()
     check_volts(path, volts, volts_name=f"{name} (codes with their scaling)")
     node = f" (node {row['node']})" if "node" in fields and str(row["node"]) else ""
-    return Waveform(
+    return FileRecord(
         volts=volts,
         sample_interval_s=numbers["x_increment_s"],
         t0_s=numbers["x_origin_s"],

@@ -23,8 +23,10 @@ Where = Callable[[int], str]
 
 
 @dataclass(frozen=True)
-class Waveform:
-    """A uniformly sampled record: ``volts[k]`` at ``t0_s + k·sample_interval_s``.
+class FileRecord:
+    """A uniformly sampled record read from a waveform file: ``volts[k]`` at
+    ``t0_s + k·sample_interval_s`` (the scope's own record, codes and scaling, is
+    :class:`instruments.Waveform`).
 
     ``clipped`` marks the samples at the edge of the scope's screen, where the true voltage is
     unknown (None where the file does not say). ``note`` says what was read where the file held
@@ -37,7 +39,7 @@ class Waveform:
     clipped: np.ndarray | None = None
     note: str | None = None
 
-    def noted(self, note: str | None) -> Waveform:
+    def noted(self, note: str | None) -> FileRecord:
         """The same record with ``note``."""
         return replace(self, note=note)
 
@@ -192,7 +194,7 @@ def check_uniform(
     time_name: str = "time_s",
     volts_name: str = "volts",
     where: Where = _row,
-) -> Waveform:
+) -> FileRecord:
     """Check a (time, volts) pair is a finite, increasing, uniformly sampled record.
 
     ``where`` turns a sample index into the place in the file that an error names.
@@ -220,4 +222,4 @@ def check_uniform(
             f"{path}: {time_name} is not uniformly sampled: the step at {where(worst + 1)} is "
             f"{step:.6g} s, the mean step {interval:.6g} s (±{UNIFORM_TOLERANCE:.0%} allowed)"
         )
-    return Waveform(volts=volts, sample_interval_s=float(interval), t0_s=float(time_s[0]))
+    return FileRecord(volts=volts, sample_interval_s=float(interval), t0_s=float(time_s[0]))

@@ -37,7 +37,7 @@ from labseq.errors import InputError
 from labseq.waveform_files.record import (
     TIME_UNITS_HINT,
     Column,
-    Waveform,
+    FileRecord,
     Where,
     check_uniform,
     check_volts,
@@ -558,7 +558,7 @@ def _time_base(path: Path, layout: Layout, scale: float) -> tuple[float, float]:
     return interval, _preamble_time(path, layout, _ORIGIN_KEYS, scale) or 0.0
 
 
-def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None) -> Waveform:
+def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None) -> FileRecord:
     """Read one voltage column of a text file with its times (see the module notes)."""
     layout = read_layout(path)
     vertical = next((layout.preamble[k][0] for k in layout.preamble if k in _VOLT_UNIT_KEYS), None)
@@ -576,7 +576,7 @@ def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None
         if volts_per_unit != 1.0:
             volts *= volts_per_unit
         check_volts(path, volts, volts_name=volts_name, where=where)
-        waveform = Waveform(volts, interval, origin)
+        waveform = FileRecord(volts, interval, origin)
         times = f"times from the preamble ({interval:.6g} s per sample)"
     else:
         time_s, volts = read_columns(path, layout, (layout.time, chosen))

@@ -28,7 +28,7 @@ import zstandard
 from bench_storage import ringing_capture
 from paired import interleaved_times, paired
 
-from labseq.runner import analyse_run
+from labseq.pipeline import analyse_run
 from labseq.sequence import load_sequence
 from labseq.store import CAPTURE_FIGURES, CaptureRecord, Store
 
@@ -65,12 +65,12 @@ def store_finished_run(path: Path, codec: str) -> int:
         grid = [(36.0 + 13 * (i // 4), 0.55 * (1 + i % 4)) for i in range(POINTS)]
         for index, point_id in enumerate(store.add_points(run_id, grid, line_is_ac=False)):
             captures = [
-                CaptureRecord(records[(index + k) % len(records)])
+                CaptureRecord(records[(index + k) % len(records)], node="primary")
                 for k in range(CAPTURES_PER_POINT)
             ]
             for capture_id in store.commit_point(point_id, captures=captures):
                 store.set_capture_figures(capture_id, dict.fromkeys(CAPTURE_FIGURES, 1.0))
-            store.set_point_verdict(point_id, "pass", [])
+            store.set_point_judgement(point_id, {}, {}, "pass", [])
         store.set_run_status(run_id, "finished")
         store.checkpoint()
     return run_id

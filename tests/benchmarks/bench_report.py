@@ -20,8 +20,9 @@ import pytest
 from paired import interleaved_times, paired
 
 from instruments import Waveform
+from labseq.figures import FIGURE_DIRECTIONS
 from labseq.report import build_run_report
-from labseq.review import FIGURE_DIRECTIONS, review_run
+from labseq.review import review_run
 from labseq.store import CaptureRecord, Store
 
 SEQUENCE = Path(__file__).resolve().parents[2] / "sequences" / "demo_dc_flyback.toml"
@@ -105,7 +106,9 @@ def build_store(path: Path) -> int:
         review = review_run(store, run_id)
         worst_ids = {worst.point.point.id for worst in review.worst.values()}
         for seed, point_id in enumerate(sorted(worst_ids)[:CAPTURED_POINTS]):
-            store.commit_point(point_id, captures=[CaptureRecord(ringing_capture(seed))])
+            store.commit_point(
+                point_id, captures=[CaptureRecord(ringing_capture(seed), node="primary")]
+            )
         store.set_run_status(run_id, "finished")
     return run_id
 

@@ -114,7 +114,9 @@ def store_realistic_run(path: Path, waveforms: list[Waveform], codec: str = DEFA
         for point_id in store.add_points(run_id, grid, line_is_ac=False):
             started = time.time()
             store.log_event(run_id, "info", "settled", point_id=point_id, data={"settle_s": 0.05})
-            captures = [CaptureRecord(next(records)) for _ in range(CAPTURES_PER_POINT)]
+            captures = [
+                CaptureRecord(next(records), node="primary") for _ in range(CAPTURES_PER_POINT)
+            ]
             stored += sum(capture.waveform.codes.size for capture in captures)
             readings = PointReadings(*(float(value) for value in rng.uniform(0.1, 100.0, size=10)))
             capture_ids = store.commit_point(
@@ -124,11 +126,12 @@ def store_realistic_run(path: Path, waveforms: list[Waveform], codec: str = DEFA
                 edges = [figures(rng) for _ in range(EDGES_PER_CAPTURE)]
                 store.set_capture_figures(capture_id, edges[0], edges=edges)
             stats = ("worst", "mean", "spread")
-            store.set_point_figures(
-                point_id,
-                {name: {**{s: rng.uniform() for s in stats}, "n": 3} for name in CAPTURE_FIGURES},
+            stored_figures = {
+                name: {**{s: rng.uniform() for s in stats}, "n": 3} for name in CAPTURE_FIGURES
+            }
+            store.set_point_judgement(
+                point_id, {"primary": stored_figures}, {"primary": ("pass", [])}, "pass", []
             )
-            store.set_point_verdict(point_id, "pass", [])
             store.log_event(run_id, "timing", "point done", point_id=point_id, data={"s": 0.41})
         store.set_run_status(run_id, "finished")
         store.checkpoint()
