@@ -22,6 +22,8 @@ from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass, field
 
+import numpy as np
+
 from instruments import Waveform
 from instruments.errors import InstrumentError, ScpiError
 from labseq.analysis import CaptureFigures, NoEdgeError, aggregate, analyze_capture
@@ -113,12 +115,16 @@ class NodeResult:
 
 
 def analyse_waveform(
-    sequence: Sequence, waveform: Waveform | StoredCapture, node: NodeSpec | None = None
+    sequence: Sequence,
+    waveform: Waveform | StoredCapture,
+    node: NodeSpec | None = None,
+    volts: np.ndarray | None = None,
 ) -> CaptureFigures:
     """Figures of one capture of ``node`` (the primary by default) as the sequence asks for
-    them: the node's polarity, settling band, snubber and rating (pure: no bench, no store)."""
+    them: the node's polarity, settling band, snubber and rating (pure: no bench, no store).
+    ``volts``: the capture's volts where the caller has them already."""
     return analyze_capture(
-        waveform.volts(),
+        waveform.volts() if volts is None else volts,
         waveform.x_increment_s,
         waveform.x_origin_s,
         clipped=waveform.clip_mask(),
@@ -136,8 +142,9 @@ def analyse_or_error(
     declares a clamp and the ``point`` (its line, for the bus) is known; a record it cannot
     analyse (no edge, too short) is returned as the error to store beside the capture."""
     node = node or sequence.primary
+    volts = waveform.volts()  # converted once, for the edges and the clamp
     try:
-        figures = analyse_waveform(sequence, waveform, node)
+        figures = analyse_waveform(sequence, waveform, node, volts)
     except (NoEdgeError, ValueError) as error:
         return error
     clamp = sequence.clamp
@@ -146,7 +153,7 @@ def analyse_or_error(
     return NodeResult(
         figures,
         clamp_figures(
-            waveform.volts(),
+            volts,
             waveform.x_increment_s,
             waveform.x_origin_s,
             figures,

@@ -634,6 +634,8 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
     ys: list[np.ndarray] = []
     ws: list[np.ndarray] = []
     levels: list[tuple[float, float]] = []  # (centre, scale) of each window's volts
+    longest = max((np.size(window.volts) for window in windows), default=0)
+    ones = np.ones(longest)  # the weights of every unweighted window: views, not copies
     for k, window in enumerate(windows):
         y_raw = np.asarray(window.volts, dtype=float)
         if y_raw.size < MIN_FIT_SAMPLES:
@@ -646,7 +648,7 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
         members.append(k)
         ys.append((y_raw - centre) / scale)
         ws.append(
-            np.ones(y_raw.size) if window.weights is None else np.asarray(window.weights, float)
+            ones[: y_raw.size] if window.weights is None else np.asarray(window.weights, float)
         )
         levels.append((centre, scale))
     if not members:
