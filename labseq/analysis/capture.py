@@ -228,7 +228,7 @@ class _Negated:
     def __len__(self) -> int:
         return self.size
 
-    def __getitem__(self, key: int | slice | np.ndarray) -> np.ndarray:
+    def __getitem__(self, key: int | slice | np.ndarray) -> np.ndarray | np.floating:
         return np.negative(self.volts[key])
 
     def __array__(self, dtype: np.dtype | None = None, copy: bool | None = None) -> np.ndarray:

@@ -22,8 +22,9 @@ quantisation, the offset and the branch's decay.
 
 A record with many switching edges needs one fit per edge, and a general-purpose solver's fixed
 cost per call would dominate; :func:`fit_rings` therefore fits many windows at once, with the matrix
-pencil and every refinement step vectorised across the windows (shorter windows are padded with
-zero-weight samples). :func:`fit_ring` is the single-window form.
+pencil and every refinement step vectorised across batches of up to ``FIT_BATCH`` windows (shorter
+windows are padded with zero-weight samples, to the same length in every batch, so that no fit
+depends on its batch). :func:`fit_ring` is the single-window form.
 """
 
 from __future__ import annotations

@@ -45,6 +45,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from peak_memory import resident_high_water_available, resident_peak_bytes
 
 from instruments.roles import Waveform
 from labseq.analysis import analyze_capture
@@ -199,9 +200,8 @@ class Record:
             raise ValueError(f"unknown path {path!r}")
 
 
-def traced_peak_bytes(record: Record, path: str) -> int:
-    """Peak of numpy's and Python's allocations (tracemalloc) over one pass of ``path``, its
-    inputs included."""
+def traced_peak(record: Record, path: str) -> int:
+    """tracemalloc's peak over one pass of ``path``, its inputs included."""
     gc.collect()
     tracemalloc.start()
     try:
@@ -213,34 +213,24 @@ def traced_peak_bytes(record: Record, path: str) -> int:
         tracemalloc.stop()
 
 
-def resident_peak_bytes(directory: Path, samples: int, path: str) -> int | None:
+def resident_peak(directory: Path, samples: int, path: str) -> int | None:
     """Resident-set high-water that one pass of ``path`` adds to a fresh process, which has
-    imported everything and warmed up on a short record first (Linux: /proc/self/status's
-    VmHWM, reset through /proc/self/clear_refs before the pass); None elsewhere."""
-    if not Path("/proc/self/clear_refs").exists():
+    imported everything and warmed up on a short record first; None where the system does not
+    tell it."""
+    if not resident_high_water_available():
         return None
     child = [sys.executable, str(Path(__file__).resolve()), str(directory), str(samples), path]
     done = subprocess.run(child, capture_output=True, text=True, timeout=600, check=True)
     return int(done.stdout.split()[-1])
 
 
-def _status_bytes(key: str) -> int:
-    """A memory figure of /proc/self/status (given there in kB)."""
-    for line in Path("/proc/self/status").read_text().splitlines():
-        if line.startswith(key + ":"):
-            return int(line.split()[1]) * 1024
-    raise LookupError(key)
-
-
 def _resident_peak_in_this_process(directory: Path, samples: int, path: str) -> int:
     warm = Record.saved(directory, WARM_UP_SAMPLES)
     warm.run(path, warm.inputs(path))
     record = Record.saved(directory, samples)
-    gc.collect()
-    Path("/proc/self/clear_refs").write_text("5")  # the high-water mark starts again from here
-    before = _status_bytes("VmRSS")
-    record.run(path, record.inputs(path))
-    return _status_bytes("VmHWM") - before
+    given: list[object] = []
+    inputs_bytes = resident_peak_bytes(lambda: given.append(record.inputs(path)))
+    return inputs_bytes + resident_peak_bytes(lambda: record.run(path, given.pop()))
 
 
 def per_sample(peak: int, reference: int, samples: int) -> str:
@@ -254,7 +244,7 @@ def test_memory_growth_per_sample_of_the_long_record_paths(tmp_path: Path) -> No
     for samples in SIZES:
         record = Record.made(tmp_path, samples, csv=samples == small)
         paths = PATHS if samples == small else PATHS[:-1]
-        peaks[samples] = {path: traced_peak_bytes(record, path) for path in paths}
+        peaks[samples] = {path: traced_peak(record, path) for path in paths}
         record.store.close()
     print("\npeak memory (tracemalloc) per sample, offline demo capture at 1 GS/s:")
     failures = []
@@ -284,9 +274,9 @@ def test_memory_growth_per_sample_of_the_long_record_paths(tmp_path: Path) -> No
 def test_peak_memory_per_sample_at_ten_million_samples(tmp_path: Path) -> None:
     Record.made(tmp_path, WARM_UP_SAMPLES).store.close()
     record = Record.made(tmp_path, SLOW_SIZE)
-    traced = {path: traced_peak_bytes(record, path) for path in PATHS}
+    traced = {path: traced_peak(record, path) for path in PATHS}
     record.store.close()
-    resident = {path: resident_peak_bytes(tmp_path, SLOW_SIZE, path) for path in PATHS}
+    resident = {path: resident_peak(tmp_path, SLOW_SIZE, path) for path in PATHS}
     print(f"\npeak memory per sample, {SLOW_SIZE:,}-sample offline demo capture at 1 GS/s:")
     failures = []
     for path in PATHS:
