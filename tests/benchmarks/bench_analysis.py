@@ -9,9 +9,9 @@ The analysis and its yardstick run once each per repeat, back to back in a rotat
 (tests/benchmarks/paired.py), and each repeat gives one ratio: a burst of load from another
 process slows both sides of a pair, or moves one ratio, not the median of ``REPEATS`` of them.
 The median is printed with its spread. Target: the 8-edge record within 3× the FFT (its median
-measures 1.5–2.4 on this two-core machine, shared with other work). The 30-edge record misses
-that target (3.1–3.4) and is guarded at 4.5×, against a regression: an analysis about 40 %
-slower than today's fails it.
+measures 1.4–2.4 on this two-core machine, shared with other work). The 30-edge record measures
+2.9–3.4, around that target, and is guarded at 4.5× against a regression: an analysis about
+40 % slower than today's fails it.
 """
 
 from __future__ import annotations
