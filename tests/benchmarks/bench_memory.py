@@ -269,7 +269,7 @@ def test_memory_growth_per_sample_of_the_long_record_paths(tmp_path: Path) -> No
     assert not failures, f"over target: {failures}"
 
 
-@pytest.mark.slow  # a 10 M-sample record written as a CSV and read four ways: about two minutes
+@pytest.mark.slow  # a 10 M-sample record and its CSV, each path measured twice: over a minute
 @pytest.mark.benchmark
 def test_peak_memory_per_sample_at_ten_million_samples(tmp_path: Path) -> None:
     Record.made(tmp_path, WARM_UP_SAMPLES).store.close()
