@@ -15,6 +15,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
+
 from instruments import Waveform
 from labseq.analysis import CaptureFigures, NoEdgeError, SnubberBranch, aggregate, analyze_capture
 from labseq.analysis import judge as judge_point
@@ -61,12 +63,16 @@ def analysis_options(sequence: Sequence | None, node: NodeSpec | None) -> dict[s
 
 
 def analyse_waveform(
-    waveform: Waveform, sequence: Sequence | None = None, node: NodeSpec | None = None
+    waveform: Waveform,
+    sequence: Sequence | None = None,
+    node: NodeSpec | None = None,
+    volts: np.ndarray | None = None,
 ) -> CaptureFigures:
     """Figures of one capture of ``node`` as the sequence says to analyse it, with the scope's
-    per-sample clip mask (plain analysis defaults when the node is not known)."""
+    per-sample clip mask (plain analysis defaults when the node is not known). ``volts``: the
+    capture's volts where the caller has them already (a long record is converted once)."""
     return analyze_capture(
-        waveform.volts(),
+        waveform.volts() if volts is None else volts,
         waveform.x_increment_s,
         waveform.x_origin_s,
         clipped=waveform.clip_mask(),
@@ -83,8 +89,9 @@ def analyse_or_error(
     """:func:`analyse_waveform`, plus the clamp's figures on the primary when the sequence
     declares a clamp and the ``point`` (its line, for the bus) is known; a record it cannot
     analyse (no edge, too short) is returned as the error to store beside the capture."""
+    volts = waveform.volts()  # converted once, for the edges and the clamp
     try:
-        figures = analyse_waveform(waveform, sequence, node)
+        figures = analyse_waveform(waveform, sequence, node, volts)
     except (NoEdgeError, ValueError) as error:
         return error
     clamp = sequence.clamp
@@ -93,7 +100,7 @@ def analyse_or_error(
     return NodeResult(
         figures,
         clamp_figures(
-            waveform.volts(),
+            volts,
             waveform.x_increment_s,
             waveform.x_origin_s,
             figures,

@@ -53,11 +53,13 @@ record has no valley ring (CCM): that estimate is high by the bulk capacitor's r
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field, fields
 
 import numpy as np
 
 from labseq.analysis.levels import (
+    BLOCK_SAMPLES,
     HIGH_REFERENCE,
     LOW_REFERENCE,
     MID_REFERENCE,
@@ -67,6 +69,7 @@ from labseq.analysis.levels import (
     last_upward_crossing,
     reference_level,
     state_changes,
+    subsample_stride,
 )
 from labseq.analysis.ringfit import NoRingError, RingFit, RingWindow, fit_rings
 from labseq.analysis.snubber import (
@@ -74,10 +77,9 @@ from labseq.analysis.snubber import (
     CV2F,
     WAVEFORM,
     SnubberBranch,
-    branch_resistor_power_w,
+    branch_period_means_w,
     cv2f_loss_w,
     noise_power_w,
-    period_means_w,
     waveform_method_record_s,
 )
 from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND
@@ -192,14 +194,37 @@ class CaptureFigures:
         }
 
 
+class _Negated:
+    """A falling record seen turned over (−v) without a negated copy of the whole record: each
+    sample, slice or subsample is negated as it is taken. Records run to tens of millions of
+    samples, and the analysis reads most of them only a block at a time."""
+
+    def __init__(self, volts: np.ndarray) -> None:
+        self.volts = volts
+        self.size = volts.size
+
+    def __len__(self) -> int:
+        return self.size
+
+    def __getitem__(self, key: int | slice | np.ndarray) -> np.ndarray | np.floating:
+        return np.negative(self.volts[key])
+
+    def __array__(self, dtype: np.dtype | None = None, copy: bool | None = None) -> np.ndarray:
+        return np.negative(self.volts, dtype=dtype)
+
+
+#: The samples as the edge analysis sees them: the record itself, or a falling record turned over.
+Samples = np.ndarray | _Negated
+
+
 @dataclass(frozen=True)
 class _Record:
     """The record as the edge analysis sees it: turned so that turn-off rises."""
 
-    u: np.ndarray
+    u: Samples
     dt: float
     t0: float
-    clip: np.ndarray
+    clip: np.ndarray | None  # samples at full scale; None when none is
     flagged: bool
     base: float
     top: float
@@ -242,13 +267,15 @@ def _check_inputs(
 
 def _clip_mask(
     v: np.ndarray, full_scale_v: tuple[float, float] | None, clipped: np.ndarray | bool | None
-) -> tuple[np.ndarray, bool]:
-    """Samples known to be at or beyond full scale, and the caller's whole-record flag.
+) -> tuple[np.ndarray | None, bool]:
+    """Samples known to be at or beyond full scale (None when no sample is), and the caller's
+    whole-record flag.
 
     A per-sample mask also keeps those samples out of the ring fit; a single flag cannot say
-    which samples are affected, so it only marks the figures as bounds.
+    which samples are affected, so it only marks the figures as bounds. Full scale is looked for
+    a block at a time, and a mask is made only once a sample there is found.
     """
-    mask = np.zeros(v.size, dtype=bool)
+    at_scale: Callable[[np.ndarray], np.ndarray] | None = None
     if full_scale_v is not None:
         low, high = (float(x) for x in full_scale_v)
         if not high > low:
@@ -256,29 +283,75 @@ def _clip_mask(
                 f"full_scale_v must be (low, high) with low < high, got {full_scale_v}"
             )
         tolerance = 1e-6 * (high - low)
-        mask |= (v >= high - tolerance) | (v <= low + tolerance)
+
+        def at_scale(x: np.ndarray) -> np.ndarray:
+            return (x >= high - tolerance) | (x <= low + tolerance)
+
     flags = np.asarray(False if clipped is None else clipped, dtype=bool)
-    if flags.ndim == 0:
-        return mask, bool(flags)
-    if flags.shape != v.shape:
+    flagged = flags.ndim == 0 and bool(flags)
+    if flags.ndim and flags.shape != v.shape:
         raise ValueError(f"clipped mask has shape {flags.shape}, the record {v.shape}")
-    return mask | flags, False
+    mask = flags if flags.ndim else None
+    if at_scale is not None:
+        for start in range(0, v.size, BLOCK_SAMPLES):
+            hit = at_scale(v[start : start + BLOCK_SAMPLES])
+            if hit.any():
+                if mask is None or mask is flags:  # the caller's mask is not written to
+                    mask = np.zeros(v.size, dtype=bool) if mask is None else flags.copy()
+                mask[start : start + BLOCK_SAMPLES] |= hit
+    return (mask if mask is not None and mask.any() else None), flagged
 
 
-def _first_departure(u: np.ndarray, start: int, stop: int, centre: float, half_width: float) -> int:
-    """First index in [start, stop) where |u − centre| exceeds ``half_width``; ``stop`` if none.
+def _first_where(
+    u: Samples, start: int, stop: int, test: Callable[[np.ndarray], np.ndarray]
+) -> int:
+    """First index in [start, stop) whose sample passes ``test``; ``stop`` if none.
 
-    Searched in chunks that double in length, so an early departure costs little on a long
-    high state.
+    Searched in chunks that double in length up to ``BLOCK_SAMPLES``, so an early find costs
+    little and a late one no record-long temporary.
     """
     chunk = 4096
     while start < stop:
         end = min(stop, start + chunk)
-        outside = np.flatnonzero(np.abs(u[start:end] - centre) > half_width)
-        if outside.size:
-            return start + int(outside[0])
-        start, chunk = end, 2 * chunk
+        found = np.flatnonzero(test(u[start:end]))
+        if found.size:
+            return start + int(found[0])
+        start, chunk = end, min(2 * chunk, BLOCK_SAMPLES)
     return stop
+
+
+def _first_departure(u: Samples, start: int, stop: int, centre: float, half_width: float) -> int:
+    """First index in [start, stop) where |u − centre| exceeds ``half_width``; ``stop`` if none."""
+    return _first_where(u, start, stop, lambda x: np.abs(x - centre) > half_width)
+
+
+def _first_quiet_run(
+    u: Samples, start: int, stop: int, centre: float, half_width: float, length: int
+) -> int | None:
+    """First index in [start, stop) that starts ``length`` samples in a row within
+    ``centre ± half_width``; None if there is none. Searched a block at a time."""
+    last_out = start - 1  # the last sample outside the band so far
+    for begin in range(start, stop, BLOCK_SAMPLES):
+        end = min(stop, begin + BLOCK_SAMPLES)
+        outside = np.flatnonzero(np.abs(u[begin:end] - centre) > half_width) + begin
+        bounds = np.concatenate(([last_out], outside, [end]))
+        quiet = np.flatnonzero(np.diff(bounds) > length)  # ≥ length inside between two bounds
+        if quiet.size:
+            return int(bounds[quiet[0]]) + 1
+        if outside.size:
+            last_out = int(outside[-1])
+    return None
+
+
+def _argmax(u: Samples, start: int, stop: int) -> int:
+    """Index of the first largest sample in [start, stop), searched a block at a time."""
+    best, best_v = start, -math.inf
+    for begin in range(start, stop, BLOCK_SAMPLES):
+        block = u[begin : min(stop, begin + BLOCK_SAMPLES)]
+        i = int(np.argmax(block))
+        if block[i] > best_v:
+            best, best_v = begin + i, float(block[i])
+    return best
 
 
 @dataclass(frozen=True)
@@ -415,7 +488,8 @@ def _plateau(rec: _Record, fit: RingFit | None, peak: int, high_end: int) -> flo
     stop = _first_departure(rec.u, quiet, high_end, fit.offset_v, DEPARTURE_FRACTION * abs(step))
     period_samples = 2 * math.pi / fit.angular_frequency_rad_s / rec.dt
     if stop - quiet >= max(32, 2 * period_samples):
-        return histogram_mode(rec.u[quiet:stop], max_samples=PLATEAU_HISTOGRAM_SAMPLES)
+        stride = subsample_stride(stop - quiet, PLATEAU_HISTOGRAM_SAMPLES)
+        return histogram_mode(rec.u[quiet:stop:stride])
     return fit.offset_v
 
 
@@ -464,11 +538,11 @@ def _edge(
     # Without a fit, the node is quiet from the first run of QUIET_SAMPLES samples in the band;
     # the search for the last entry ends where it next leaves the band.
     limit = high_end + 1
-    inside = np.concatenate(([0], np.cumsum(np.abs(u[peak:limit] - plateau) <= half_band)))
-    quiet_runs = np.flatnonzero(inside[QUIET_SAMPLES:] - inside[:-QUIET_SAMPLES] == QUIET_SAMPLES)
-    if fit is None and quiet_runs.size:
-        limit = _first_departure(u, peak + int(quiet_runs[0]), limit, plateau, half_band)
-    if fit is not None:
+    if fit is None:
+        quiet_from = _first_quiet_run(u, peak, limit, plateau, half_band, QUIET_SAMPLES)
+        if quiet_from is not None:
+            limit = _first_departure(u, quiet_from, limit, plateau, half_band)
+    else:
         decayed = fit.time_envelope_below_s(0.5 * half_band)
         quiet = max(peak, math.ceil((decayed - t0) / dt))
         limit = _first_departure(u, quiet, high_end + 1, plateau, half_band)
@@ -500,11 +574,10 @@ def _snubber_losses(
             (cv2f_loss_w(branch.cs_f, float(e["plateau_v"]) - rec.base, branch.fsw_hz), CV2F)
             for e in edges
         ]
-    power = branch_resistor_power_w(rec.u, rec.dt, branch)
     centred = np.array([float(e["edge_time_s"]) - rec.t0 for e in edges]) - 0.5 * branch.period_s
     starts = np.clip(centred, settle_s, record_s - branch.period_s)
     bias_w = noise_power_w(rec.noise_v, rec.dt, branch)
-    means = period_means_w(power, rec.dt, starts, branch.period_s)
+    means = branch_period_means_w(rec.u, rec.dt, branch, starts)
     return [(max(float(p) - bias_w, 0.0), WAVEFORM) for p in means]
 
 
@@ -569,12 +642,10 @@ def clamp_level_v(
     v = np.asarray(volts, dtype=float)
     start = min(max(0, math.floor((edge.edge_time_s - t0_s) / sample_interval_s)), v.size - 1)
     level = edge.plateau_v + CLAMP_TOP_FRACTION * (edge.peak_v - edge.plateau_v)
-    above = np.flatnonzero(v[start:] > level)
-    if edge.clipped or not above.size:
+    first = _first_where(v, start, v.size, lambda x: x > level)
+    if edge.clipped or first == v.size:
         return None
-    first = start + int(above[0])
-    below = np.flatnonzero(v[first:] <= level)
-    stop = first + int(below[0]) if below.size else v.size
+    stop = _first_where(v, first, v.size, lambda x: x <= level)
     return histogram_mode(v[first:stop])
 
 
@@ -593,8 +664,7 @@ def valley_ring_centre_v(
     start = min(max(0, math.ceil((quiet_s - t0_s) / dt)), v.size)
     depart = _first_departure(v, start, v.size, edge.plateau_v, DEPARTURE_FRACTION * step)
     low = edge.base_v + LOW_REFERENCE * step
-    fallen = np.flatnonzero(v[depart:] < low)
-    stop = depart + int(fallen[0]) if fallen.size else v.size
+    stop = _first_where(v, depart, v.size, lambda x: x < low)
     tolerance = 0.005 * step
     while (
         stop - VALLEY_WALK_SAMPLES > depart
@@ -714,7 +784,7 @@ def analyze_capture(
     """
     v = _check_inputs(volts, sample_interval_s, polarity, settling_band, rating_v, derating)
     clip, flagged = _clip_mask(v, full_scale_v, clipped)
-    u = v if polarity == 1 else -v
+    u = v if polarity == 1 else _Negated(v)
     base, top = histogram_state_levels(u)
     what = "rising" if polarity == 1 else "falling"
     if top <= base:
@@ -723,7 +793,7 @@ def analyze_capture(
         u, reference_level(base, top, LOW_REFERENCE), reference_level(base, top, HIGH_REFERENCE)
     )
     noise_v = record_noise_rms_v(u) if snubber else 0.0
-    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top, bool(np.any(clip)), noise_v)
+    rec = _Record(u, sample_interval_s, t0_s, clip, flagged, base, top, clip is not None, noise_v)
 
     durations = changes.rise_to - changes.rise_from
     fast = durations <= SLOW_SWING_FACTOR * max(2, durations.min(initial=u.size))
@@ -735,7 +805,7 @@ def analyze_capture(
         )
         previous_low = np.searchsorted(changes.fall_to, rise_from, side="right") - 1
         search_from = int(changes.fall_to[previous_low]) if previous_low >= 0 else 0
-        peak = int(first_high) + int(np.argmax(u[first_high : high_end + 1]))
+        peak = _argmax(u, int(first_high), high_end + 1)
         if peak < u.size - 1:  # else the record ends before the peak
             spans.append(_Span(search_from, int(first_high), peak, high_end))
     edges: list[dict[str, float | bool | None]] = []
@@ -777,7 +847,7 @@ def analyze_capture(
         edges=results,
         worst=results[worst],
         worst_index=worst,
-        clipped=flagged or bool(np.any(clip)),
+        clipped=flagged or clip is not None,
         polarity=polarity,
         ring_fits=[fit if fit is None or polarity == 1 else fit.flipped() for fit in fits],
     )

@@ -9,6 +9,7 @@ step; and settling as the last entry into a tolerance band around the final stat
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -23,12 +24,21 @@ HISTOGRAM_MAX_SAMPLES = 1 << 17
 LOW_REFERENCE = 0.1
 MID_REFERENCE = 0.5
 HIGH_REFERENCE = 0.9
+#: Samples handled at a time by a pass over a long stretch of a record (transitions, searches,
+#: the snubber branch): a 64 Ki-sample block keeps every temporary near half a megabyte, so a
+#: 10-million-sample record is analysed with little more memory than its samples take.
+BLOCK_SAMPLES = 1 << 16
+
+
+def subsample_stride(samples: int, max_samples: int) -> int:
+    """Stride of a regular subsample of at most ``max_samples`` out of ``samples``."""
+    return max(1, -(-samples // max_samples))
 
 
 def _subsample(volts: np.ndarray, max_samples: int = HISTOGRAM_MAX_SAMPLES) -> np.ndarray:
-    """A regular subsample of at most ``max_samples`` samples."""
-    stride = max(1, -(-volts.size // max_samples))
-    return volts[::stride]
+    """A regular subsample of at most ``max_samples`` samples (taken before any conversion, so
+    that only the subsample is converted)."""
+    return volts[:: subsample_stride(volts.size, max_samples)]
 
 
 def _mode_of(samples: np.ndarray, lo: float, hi: float, bins: int) -> float:
@@ -49,7 +59,7 @@ def histogram_mode(
 ) -> float:
     """Most frequent level of ``samples`` (histogram mode refined by the neighbouring bins),
     from a regular subsample of at most ``max_samples`` of them."""
-    x = _subsample(np.asarray(samples, dtype=float), max_samples)
+    x = np.asarray(_subsample(samples, max_samples), dtype=float)
     lo, hi = float(np.min(x)), float(np.max(x))
     if hi == lo:
         return lo
@@ -99,7 +109,7 @@ def histogram_state_levels(volts: np.ndarray, bins: int = HISTOGRAM_BINS) -> tup
     (:func:`otsu_threshold`), which falls between the two populous states however far the ring
     reaches; on a record without overshoot both splits give the same two modes.
     """
-    x = _subsample(np.asarray(volts, dtype=float))
+    x = np.asarray(_subsample(volts), dtype=float)
     lo, hi = float(np.min(x)), float(np.max(x))
     if hi == lo:
         return lo, hi
@@ -131,10 +141,21 @@ class StateChanges:
     fall_to: np.ndarray
 
 
-def _runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """First and last index of every run of True in a boolean array."""
-    toggles = np.flatnonzero(mask[1:] != mask[:-1]) + 1
-    bounds = np.concatenate(([0] if mask[0] else [], toggles, [mask.size] if mask[-1] else []))
+def _runs(
+    volts: np.ndarray, inside: Callable[[np.ndarray], np.ndarray]
+) -> tuple[np.ndarray, np.ndarray]:
+    """First and last index of every run of samples for which ``inside`` is True.
+
+    ``inside`` maps samples to booleans; it is applied a block at a time, each block overlapping
+    the one before by a sample, so no record-long boolean array is made.
+    """
+    toggles = []
+    for start in range(0, volts.size, BLOCK_SAMPLES):
+        first = max(start - 1, 0)
+        mask = inside(volts[first : start + BLOCK_SAMPLES])
+        toggles.append(np.flatnonzero(mask[1:] != mask[:-1]) + (first + 1))
+    opens, closes = bool(inside(volts[:1])[0]), bool(inside(volts[-1:])[0])
+    bounds = np.concatenate(([0] if opens else [], *toggles, [volts.size] if closes else []))
     bounds = bounds.astype(np.intp)
     return bounds[0::2], bounds[1::2] - 1
 
@@ -148,9 +169,8 @@ def state_changes(volts: np.ndarray, low_ref_v: float, high_ref_v: float) -> Sta
     low-state and of high-state samples, in order, and a change is a low run followed by a high
     run (rising) or the reverse (falling).
     """
-    v = np.asarray(volts)
-    high_starts, high_ends = _runs(v >= high_ref_v)
-    low_starts, low_ends = _runs(v <= low_ref_v)
+    high_starts, high_ends = _runs(volts, lambda v: v >= high_ref_v)
+    low_starts, low_ends = _runs(volts, lambda v: v <= low_ref_v)
     starts = np.concatenate((high_starts, low_starts))
     order = np.argsort(starts, kind="stable")
     starts, ends = starts[order], np.concatenate((high_ends, low_ends))[order]
@@ -166,8 +186,8 @@ def last_upward_crossing(volts: np.ndarray, level_v: float, start: int, stop: in
 
     The instant is interpolated linearly between the two samples that straddle the level, as
     IEEE Std 181-2011, 5.3.3 does for reference-level instants. None when there is no crossing.
-    Searched backwards from ``stop`` in chunks that double in length, since the crossing of
-    interest is usually close to it.
+    Searched backwards from ``stop`` in chunks that double in length up to ``BLOCK_SAMPLES``,
+    since the crossing of interest is usually close to it.
     """
     chunk = 256
     end = stop
@@ -180,7 +200,8 @@ def last_upward_crossing(volts: np.ndarray, level_v: float, start: int, stop: in
             i = int(ups[-1])
             v0, v1 = segment[i], segment[i + 1]
             return begin + i + (level_v - v0) / (v1 - v0)
-        end, chunk = begin + 1, 2 * chunk  # overlap one sample: a crossing may straddle chunks
+        # overlap one sample: a crossing may straddle chunks
+        end, chunk = begin + 1, min(2 * chunk, BLOCK_SAMPLES)
     return None
 
 
@@ -192,14 +213,20 @@ def last_band_entry(
     Returns ``start`` when the segment is inside the band throughout and None when it ends
     outside (it has not settled by ``stop``). The entry instant is interpolated on the band edge
     that was crossed (IEEE Std 181-2011, 5.7: settling time ends at the last entry into the band).
+    The last sample outside is searched backwards from ``stop`` a block at a time.
     """
-    segment = np.asarray(volts[start:stop], dtype=float) - centre_v
-    outside = np.abs(segment) > half_width_v
-    if outside.size == 0 or outside[-1]:
+    stop = min(stop, volts.size)
+    if stop <= start or abs(float(volts[stop - 1]) - centre_v) > half_width_v:
         return None
-    last_out = np.flatnonzero(outside)
-    if last_out.size == 0:
-        return float(start)
-    i = int(last_out[-1])
-    edge = half_width_v if segment[i] > 0 else -half_width_v
-    return start + i + (edge - segment[i]) / (segment[i + 1] - segment[i])
+    end = stop
+    while end > start:
+        begin = max(start, end - BLOCK_SAMPLES)
+        # the block and the sample after it, which an entry at the block's end is interpolated to
+        segment = np.asarray(volts[begin : min(end + 1, stop)], dtype=float) - centre_v
+        outside = np.flatnonzero(np.abs(segment[: end - begin]) > half_width_v)
+        if outside.size:
+            i = int(outside[-1])
+            edge = half_width_v if segment[i] > 0 else -half_width_v
+            return begin + i + (edge - segment[i]) / (segment[i + 1] - segment[i])
+        end = begin
+    return float(start)

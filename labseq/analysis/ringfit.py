@@ -22,8 +22,9 @@ quantisation, the offset and the branch's decay.
 
 A record with many switching edges needs one fit per edge, and a general-purpose solver's fixed
 cost per call would dominate; :func:`fit_rings` therefore fits many windows at once, with the matrix
-pencil and every refinement step vectorised across the windows (shorter windows are padded with
-zero-weight samples). :func:`fit_ring` is the single-window form.
+pencil and every refinement step vectorised across batches of up to ``FIT_BATCH`` windows (shorter
+windows are padded with zero-weight samples, to the same length in every batch, so that no fit
+depends on its batch). :func:`fit_ring` is the single-window form.
 """
 
 from __future__ import annotations
@@ -73,6 +74,10 @@ NO_RING_CHECK_DAMPING = 0.45
 RESIDUAL_FLOOR = 1e-5
 #: Real-pole starts (per window length) tried when the pencil offers none.
 REAL_POLE_STARTS = (1.0, 4.0, 16.0)
+#: Windows (or starts) that go through the matrix pencil or a refinement together: enough to share
+#: the cost of each vectorised step (a record of many edges is fitted as fast as in one batch),
+#: few enough that its fits need a few megabytes however many edges it has (about 50 kB a start).
+FIT_BATCH = 128
 
 
 class RingFitError(ValueError):
@@ -249,11 +254,15 @@ def _pencil_seeds(windows: list[np.ndarray]) -> list[np.ndarray | RingFitError]:
         length = min(-(-windows[k].size // stride) for k in members)
         stack = np.stack([windows[k][::stride][:length] for k in members])
         try:
-            z, h = matrix_pencil_poles(stack)
+            parts = [
+                matrix_pencil_poles(stack[first : first + FIT_BATCH])
+                for first in range(0, len(members), FIT_BATCH)
+            ]
         except RingFitError as exc:
             for k in members:
                 seeds[k] = exc
             continue
+        z, h = (np.concatenate(arrays) for arrays in zip(*parts, strict=True))
         with np.errstate(divide="ignore", invalid="ignore"):  # a pole at 0: decay +inf
             s = np.log(z)
         amplitude = np.abs(h) * np.where(np.abs(s.imag) > 1e-9, 2.0, 1.0)
@@ -372,12 +381,15 @@ class _VarPro:
     (B, y, D) per window and step, and no n × p Jacobian.
     """
 
-    def __init__(self, ys: list[np.ndarray], ws: list[np.ndarray], model: _Model) -> None:
-        longest = max(y.size for y in ys)
+    def __init__(
+        self, ys: list[np.ndarray], ws: list[np.ndarray], model: _Model, length: int
+    ) -> None:
+        """``length``: samples of every row, at least the longest window (shorter ones are padded
+        with zero-weight samples)."""
         self.model = model
-        self.tau = np.zeros((len(ys), longest))
-        self.w = np.zeros((len(ys), longest))
-        self.y_w = np.zeros((len(ys), longest))
+        self.tau = np.zeros((len(ys), length))
+        self.w = np.zeros((len(ys), length))
+        self.y_w = np.zeros((len(ys), length))
         self.size = np.array([y.size for y in ys], dtype=float)
         for k, (y, w) in enumerate(zip(ys, ws, strict=True)):
             self.tau[k, : y.size] = np.arange(y.size) / y.size
@@ -550,18 +562,21 @@ def _fit_model(
     ws: list[np.ndarray],
     refine: bool,
 ) -> dict[int, _Candidate]:
-    """Fit ``model`` from every start of every window in one batch; each window's best start."""
+    """Fit ``model`` from every start of every window, ``FIT_BATCH`` starts at a time, each batch
+    padded to the longest window of all (so that no fit depends on the batch it is in); each
+    window's best start."""
     batch = [(j, start) for j, window_starts in starts.items() for start in window_starts]
-    if not batch:
-        return {}
-    varpro = _VarPro([ys[j] for j, _ in batch], [ws[j] for j, _ in batch], model)
-    theta = np.array([start for _, start in batch], dtype=float)
-    fit = varpro.refine(theta) if refine else varpro.project(np.arange(len(batch)), theta)
-    cost = np.where(fit.ok, varpro.residual_cost(theta, fit.linear), np.nan)
+    length = max((ys[j].size for j, _ in batch), default=0)
     best: dict[int, _Candidate] = {}
-    for i, (j, _) in enumerate(batch):
-        if math.isfinite(cost[i]) and (j not in best or cost[i] < best[j].cost):
-            best[j] = _Candidate(model, theta[i].copy(), fit.linear[i].copy(), float(cost[i]))
+    for first in range(0, len(batch), FIT_BATCH):
+        part = batch[first : first + FIT_BATCH]
+        varpro = _VarPro([ys[j] for j, _ in part], [ws[j] for j, _ in part], model, length)
+        theta = np.array([start for _, start in part], dtype=float)
+        fit = varpro.refine(theta) if refine else varpro.project(np.arange(len(part)), theta)
+        cost = np.where(fit.ok, varpro.residual_cost(theta, fit.linear), np.nan)
+        for i, (j, _) in enumerate(part):
+            if math.isfinite(cost[i]) and (j not in best or cost[i] < best[j].cost):
+                best[j] = _Candidate(model, theta[i].copy(), fit.linear[i].copy(), float(cost[i]))
     return best
 
 
@@ -620,6 +635,8 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
     ys: list[np.ndarray] = []
     ws: list[np.ndarray] = []
     levels: list[tuple[float, float]] = []  # (centre, scale) of each window's volts
+    longest = max((np.size(window.volts) for window in windows), default=0)
+    ones = np.ones(longest)  # the weights of every unweighted window: views, not copies
     for k, window in enumerate(windows):
         y_raw = np.asarray(window.volts, dtype=float)
         if y_raw.size < MIN_FIT_SAMPLES:
@@ -632,7 +649,7 @@ def fit_rings(windows: list[RingWindow], *, refine: bool = True) -> list[RingFit
         members.append(k)
         ys.append((y_raw - centre) / scale)
         ws.append(
-            np.ones(y_raw.size) if window.weights is None else np.asarray(window.weights, float)
+            ones[: y_raw.size] if window.weights is None else np.asarray(window.weights, float)
         )
         levels.append((centre, scale))
     if not members:

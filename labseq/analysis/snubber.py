@@ -7,7 +7,9 @@ record spans one switching period plus ``BRANCH_SETTLE_TIME_CONSTANTS``·Rs·Cs 
 (:func:`waveform_method_record_s`); a shorter record gets Cs·V²·fsw, which ignores the ring and
 the partial discharge at light load. Scope noise reaches the resistor almost whole (its band lies
 far above the branch's corner) and would read as loss; the noise level measured off the edges is
-subtracted (:func:`noise_power_w`).
+subtracted (:func:`noise_power_w`). The analysis takes the loss from :func:`branch_period_means_w`,
+which steps the branch through the record a block at a time and forms the power only inside the
+loss windows, so a record of tens of millions of samples needs no record-long power array.
 """
 
 from __future__ import annotations
@@ -16,6 +18,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+
+from labseq.analysis.levels import BLOCK_SAMPLES
 
 #: Loss methods, as stored, and as shown beside a loss value.
 WAVEFORM, CV2F = "waveform", "cv2f"
@@ -77,15 +81,10 @@ def branch_resistor_power_w(
     skips the first few τ. Power is (v − Vc)²/Rs; it includes the record's noise power (see
     :func:`noise_power_w`).
     """
-    from scipy.signal import lfilter  # imported here: scipy.signal takes ~0.3 s to import
 
     v = np.asarray(volts, dtype=float)
-    a, beta = _first_order_hold(sample_interval_s, branch.time_constant_s)
-    vc, _ = lfilter([1.0 - beta, beta - a], [1.0, -a], v, zi=[beta * v[0]])
-    power = np.subtract(v, vc, out=vc)  # in place: records run to millions of samples
-    np.square(power, out=power)
-    power *= 1.0 / branch.rs_ohm
-    return power
+    run = _BranchRun(v, sample_interval_s, branch, marks=())
+    return run.step(v.size)
 
 
 def period_means_w(
@@ -97,12 +96,98 @@ def period_means_w(
     trapezoidal rule; the rounding changes the window by at most half a sample.
     """
     p = np.asarray(power_w, dtype=float)
-    samples = max(1, round(period_s / sample_interval_s))
-    starts = np.clip(np.round(np.asarray(t_starts_s) / sample_interval_s).astype(int), 0, None)
-    starts = np.minimum(starts, p.size - 1 - samples)
+    starts, samples = _period_windows(p.size, sample_interval_s, t_starts_s, period_s)
     return np.array(
         [np.trapezoid(p[a : a + samples + 1]) / samples for a in starts.tolist()], dtype=float
     )
+
+
+def branch_period_means_w(
+    volts: np.ndarray, sample_interval_s: float, branch: SnubberBranch, t_starts_s: np.ndarray
+) -> np.ndarray:
+    """Mean power in Rs over one switching period from each start time, when the measured
+    ``volts`` drives the branch: the figures of :func:`period_means_w` over
+    :func:`branch_resistor_power_w`, without the record-long power array.
+
+    The branch is stepped through the record a block of ``BLOCK_SAMPLES`` at a time, its
+    filter state carried from block to block (which gives the very Vc of one pass), and the
+    power is formed only inside the windows; its state at each window's start is kept for
+    windows that overlap. A window longer than a block is integrated block by block, which
+    changes its mean by rounding only.
+    """
+    starts, samples = _period_windows(volts.size, sample_interval_s, t_starts_s, branch.period_s)
+    run = _BranchRun(volts, sample_interval_s, branch, marks=np.unique(starts))
+    means = np.empty(starts.size)
+    for k in np.argsort(starts, kind="stable").tolist():
+        first = int(starts[k])
+        stop = first + samples + 1
+        run.seek(first)
+        total, previous = 0.0, None
+        while run.position < stop:
+            power = run.step(min(stop, run.position + BLOCK_SAMPLES))
+            joined = power if previous is None else np.concatenate(([previous], power))
+            total += float(np.trapezoid(joined))
+            previous = power[-1]
+        means[k] = total / samples
+    return means
+
+
+def _period_windows(
+    record_samples: int, sample_interval_s: float, t_starts_s: np.ndarray, period_s: float
+) -> tuple[np.ndarray, int]:
+    """First sample of each one-period window, and the window's length in intervals."""
+    samples = max(1, round(period_s / sample_interval_s))
+    if samples >= record_samples:
+        raise ValueError(
+            f"the record ({record_samples} samples) is shorter than one period ({samples})"
+        )
+    starts = np.clip(np.round(np.asarray(t_starts_s) / sample_interval_s).astype(int), 0, None)
+    return np.minimum(starts, record_samples - 1 - samples), samples
+
+
+class _BranchRun:
+    """The Rs–Cs branch driven by a record, stepped forward from its first sample (see
+    :func:`branch_resistor_power_w`); its state at each of the sorted sample indices ``marks``
+    is kept as it passes them, so that it can go back there."""
+
+    def __init__(
+        self,
+        volts: np.ndarray,
+        sample_interval_s: float,
+        branch: SnubberBranch,
+        marks: np.ndarray | tuple[()],
+    ) -> None:
+        a, beta = _first_order_hold(sample_interval_s, branch.time_constant_s)
+        self.coefficients = ([1.0 - beta, beta - a], [1.0, -a])
+        self.volts, self.rs_ohm = volts, branch.rs_ohm
+        self.marks = np.asarray(marks, dtype=int)
+        self.position, self.state = 0, np.array([beta * float(volts[0])])
+        self.kept: dict[int, np.ndarray] = {}
+
+    def seek(self, index: int) -> None:
+        """Go to sample ``index``: back to a state kept there, or forward a block at a time."""
+        if index < self.position:
+            self.position, self.state = index, self.kept[index]
+        while self.position < index:
+            self.step(min(index, self.position + BLOCK_SAMPLES))
+        self.kept[index] = self.state
+
+    def step(self, stop: int) -> np.ndarray:
+        """Power in Rs from the current sample up to ``stop`` (not included), stepping there."""
+        from scipy.signal import lfilter  # imported here: scipy.signal takes ~0.3 s to import
+
+        inside = self.marks[(self.marks > self.position) & (self.marks < stop)].tolist()
+        pieces = []
+        for end in [*inside, stop]:
+            v = np.asarray(self.volts[self.position : end], dtype=float)
+            vc, self.state = lfilter(*self.coefficients, v, zi=self.state)
+            power = np.subtract(v, vc, out=vc)  # in place: records run to millions of samples
+            np.square(power, out=power)
+            power *= 1.0 / self.rs_ohm
+            pieces.append(power)
+            self.position = end
+            self.kept[end] = self.state  # at the marks, and at ``stop`` (a few per record)
+        return pieces[0] if len(pieces) == 1 else np.concatenate(pieces)
 
 
 def _first_order_hold(sample_interval_s: float, tau_s: float) -> tuple[float, float]:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
@@ -17,6 +18,9 @@ from labseq.errors import InputError
 UNIFORM_TOLERANCE = 0.05
 #: Largest magnitude accepted in a volts column: a megavolt is far beyond any power-supply probe.
 MAX_ABS_VOLTS = 1e6
+#: Times checked at a time by :func:`check_uniform` (a block of them and of their steps is all
+#: the memory the check takes).
+CHECK_BLOCK_SAMPLES = 1 << 16
 
 #: Where sample k of a record sits in its file, for an error message ("line 812", "row 3").
 Where = Callable[[int], str]
@@ -186,6 +190,80 @@ def check_volts(
         )
 
 
+class TimeAxis:
+    """The checks of :func:`check_uniform` on a time column given a block at a time, so that a
+    reader can check the times without keeping them: the count, the first and last time, the
+    first non-finite time and the first step that does not increase, and the shortest and longest
+    step (the step that deviates most from the mean step is one of those two)."""
+
+    def __init__(self) -> None:
+        self.count = 0
+        self.first_s = self.last_s = math.nan
+        self.non_finite = 0
+        self.first_non_finite: int | None = None
+        self.first_backward: int | None = None  # index of the step's first sample
+        self.shortest = self.longest = (math.nan, -1)  # (step, index of its first sample)
+
+    def add(self, time_s: np.ndarray) -> None:
+        """Take the next block of times."""
+        if not time_s.size:
+            return
+        bad = np.flatnonzero(~np.isfinite(time_s))
+        if bad.size and self.first_non_finite is None:
+            self.first_non_finite = self.count + int(bad[0])
+        self.non_finite += bad.size
+        joined = time_s if self.count == 0 else np.concatenate(([self.last_s], time_s))
+        offset = max(self.count - 1, 0)  # index of the first sample of the first step
+        if self.count == 0:
+            self.first_s = float(time_s[0])
+        self.count += time_s.size
+        self.last_s = float(time_s[-1])
+        if joined.size < 2 or self.non_finite:
+            return
+        steps = np.diff(joined)
+        backward = np.flatnonzero(steps <= 0)
+        if backward.size and self.first_backward is None:
+            self.first_backward = offset + int(backward[0])
+        shortest, longest = int(np.argmin(steps)), int(np.argmax(steps))
+        if not steps[shortest] >= self.shortest[0]:  # also where no step was seen yet (NaN)
+            self.shortest = (float(steps[shortest]), offset + shortest)
+        if not steps[longest] <= self.longest[0]:
+            self.longest = (float(steps[longest]), offset + longest)
+
+    def check(
+        self, path: object, *, time_name: str = "time_s", where: Where = _row
+    ) -> tuple[float, float]:
+        """(sample interval, time of the first sample), or the error :func:`check_uniform`
+        raises for these times."""
+        if self.non_finite:
+            raise InputError(
+                f"{path}: {time_name} has {self.non_finite} missing or non-finite value(s), first "
+                f"at {where(self.first_non_finite or 0)}"
+            )
+        if self.first_backward is not None:
+            raise InputError(
+                f"{path}: {time_name} does not increase at {where(self.first_backward + 1)}; sort "
+                "the samples by time"
+            )
+        interval = (self.last_s - self.first_s) / (self.count - 1)
+        # |step − interval| is largest at the shortest or the longest step (the first of the two
+        # where they tie), as np.argmax over all steps would find it
+        (short_s, short_at), (long_s, long_at) = self.shortest, self.longest
+        below, above = interval - short_s, long_s - interval
+        step_s, worst = (
+            (short_s, short_at)
+            if below > above or (below == above and short_at < long_at)
+            else (long_s, long_at)
+        )
+        if max(below, above) > UNIFORM_TOLERANCE * interval:
+            raise InputError(
+                f"{path}: {time_name} is not uniformly sampled: the step at {where(worst + 1)} is "
+                f"{step_s:.6g} s, the mean step {interval:.6g} s (±{UNIFORM_TOLERANCE:.0%} "
+                "allowed)"
+            )
+        return interval, self.first_s
+
+
 def check_uniform(
     path: object,
     time_s: np.ndarray,
@@ -197,29 +275,12 @@ def check_uniform(
 ) -> FileRecord:
     """Check a (time, volts) pair is a finite, increasing, uniformly sampled record.
 
-    ``where`` turns a sample index into the place in the file that an error names.
+    ``where`` turns a sample index into the place in the file that an error names. The times
+    are checked a block at a time (:class:`TimeAxis`), so no temporary of their size is made.
     """
     check_volts(path, volts, volts_name=volts_name, where=where)
-    if not np.isfinite(time_s).all():
-        bad = np.flatnonzero(~np.isfinite(time_s))
-        raise InputError(
-            f"{path}: {time_name} has {bad.size} missing or non-finite value(s), first at "
-            f"{where(int(bad[0]))}"
-        )
-    deviation = np.diff(time_s)  # the steps, then (in place) their distance from the mean step
-    if deviation.min() <= 0:
-        first = int(np.argmax(deviation <= 0))
-        raise InputError(
-            f"{path}: {time_name} does not increase at {where(first + 1)}; sort the samples by time"
-        )
-    interval = (time_s[-1] - time_s[0]) / (time_s.size - 1)
-    deviation -= interval
-    np.abs(deviation, out=deviation)
-    worst = int(np.argmax(deviation))
-    if deviation[worst] > UNIFORM_TOLERANCE * interval:
-        step = time_s[worst + 1] - time_s[worst]
-        raise InputError(
-            f"{path}: {time_name} is not uniformly sampled: the step at {where(worst + 1)} is "
-            f"{step:.6g} s, the mean step {interval:.6g} s (±{UNIFORM_TOLERANCE:.0%} allowed)"
-        )
-    return FileRecord(volts=volts, sample_interval_s=float(interval), t0_s=float(time_s[0]))
+    axis = TimeAxis()
+    for start in range(0, time_s.size, CHECK_BLOCK_SAMPLES):
+        axis.add(time_s[start : start + CHECK_BLOCK_SAMPLES])
+    interval, t0 = axis.check(path, time_name=time_name, where=where)
+    return FileRecord(volts=volts, sample_interval_s=interval, t0_s=t0)

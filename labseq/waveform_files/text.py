@@ -2,9 +2,10 @@
 
 The layout is found from the head of the file (its first 64 KiB): the delimiter and decimal mark
 from the rows of numbers at its end, then, above the first row of numbers, a units row, a header
-and a preamble. The samples are then parsed by numpy's C reader straight into float arrays —
-streaming the file itself where the numbers need no rewriting, else in blocks of about 1 MiB —
-so a 10-million-row file never becomes Python strings and numbers.
+and a preamble. The samples are then parsed by numpy's C reader in blocks of about 1 MiB of text,
+each block's volts appended to one float array and its times checked as they pass
+(:class:`~labseq.waveform_files.record.TimeAxis`) rather than kept: a 10-million-row file never
+becomes Python strings and numbers, and reading it takes little more memory than its volts.
 
 Shapes read:
 
@@ -24,9 +25,12 @@ Shapes read:
 from __future__ import annotations
 
 import codecs
-import io
+import contextlib
+import itertools
+import operator
 import re
 import warnings
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
@@ -38,8 +42,8 @@ from labseq.waveform_files.record import (
     TIME_UNITS_HINT,
     Column,
     FileRecord,
+    TimeAxis,
     Where,
-    check_uniform,
     check_volts,
     listing,
     parse_unit,
@@ -55,10 +59,8 @@ HEAD_BYTES = 64 * 1024
 #: A sample interval this long (100 kSa/s) shows no turn-off ring: in a file that states no time
 #: unit it most likely means times written in ms, µs or ns.
 LONG_STEP_S = 1e-5
-BLOCK_CHARS = 1 << 20
-#: Rows up to this many columns are parsed whole by numpy's C reader; wider ones block by block,
-#: keeping only the wanted columns.
-WHOLE_ROWS_UP_TO = 3
+#: Rows parsed at a time (a table of 0.5 MiB per column).
+BLOCK_ROWS = 1 << 16
 _NUMBER = re.compile(r"[-+]?(?:(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?|inf(?:inity)?|nan)", re.I)
 _TIME_WORDS = {"time", "t", "x", "s", "sec", "second", "seconds"}
 #: First words of preamble lines (normalised: lower case, letters and digits only), so that a
@@ -119,16 +121,6 @@ class Dialect:
 
     def number(self, cell: str) -> str:
         return cell.replace(",", ".") if self.decimal_comma else cell
-
-    def prepare(self, block: str) -> str:
-        """A block of rows as numpy's parser reads it: decimal points, no quotes, no trailing
-        delimiter."""
-        block = block.replace('"', "")
-        if self.decimal_comma:
-            block = block.replace(",", ".")
-        if not block.endswith("\n"):
-            block += "\n"
-        return block.replace(self.delimiter + "\n", "\n") if self.delimiter else block
 
     def skipped(self, line: str) -> bool:
         """Whether numpy's parser skips ``line`` (an empty one) rather than reading a row."""
@@ -370,99 +362,123 @@ def _open_at_data(path: Path, layout: Layout) -> TextIO:
 
 
 def read_columns(path: Path, layout: Layout, wanted: tuple[Column, ...]) -> list[np.ndarray]:
-    """The ``wanted`` columns of every data row, as float arrays.
+    """The ``wanted`` columns of every data row, as float arrays (see :func:`read_blocks`)."""
+    rows = _estimated_rows(path)
+    columns = [_Column(rows) for _ in wanted]
+    for table in read_blocks(path, layout):
+        for column, want in zip(columns, wanted, strict=True):
+            column.append(table[:, want.index])
+    return [column.array() for column in columns]
 
-    Where the numbers need no rewriting (a decimal point) and a row holds few columns, numpy's C
-    reader streams the file itself, fastest; decimal commas are rewritten, and wide rows cut to
-    the wanted columns, block by block. Both read every column, so a row of another width is an
-    error. A file the C reader refuses is read again block by block, which names the line.
+
+def read_blocks(path: Path, layout: Layout) -> Iterator[np.ndarray]:
+    """The data rows, a table (rows × columns) of at most ``BLOCK_ROWS`` rows at a time.
+
+    numpy's C reader takes the rows from the open file line by line (quoted cells too), each line
+    rewritten first where the file needs it (decimal commas, a trailing delimiter), so neither the
+    file's text nor its numbers are ever held whole. Every row must hold every column: a row the
+    reader refuses ends the reading with an error naming the first line that is not a row of
+    numbers.
     """
-    if not layout.dialect.decimal_comma and layout.width <= WHOLE_ROWS_UP_TO:
-        table = _read_whole(path, layout)
-        if table is not None:
-            return [table[:, column.index] for column in wanted]  # views: no copy
-    return _read_blocks(path, layout, wanted)
-
-
-def _read_whole(path: Path, layout: Layout) -> np.ndarray | None:
-    """Every row, by numpy's C reader straight from the file; None where it refuses one."""
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
-            table = np.loadtxt(
-                path,
-                delimiter=layout.dialect.delimiter,
-                skiprows=layout.data_line - 1,
-                quotechar='"',
-                comments=None,
-                ndmin=2,
-                encoding=layout.encoding,
-            )
-    except ValueError:
-        return None
-    return table if table.shape[1] == layout.width else None
-
-
-def _read_blocks(path: Path, layout: Layout, wanted: tuple[Column, ...]) -> list[np.ndarray]:
-    """:func:`read_columns` in blocks of about 1 MiB of text, rewritten for numpy's reader."""
-    parts: list[list[np.ndarray]] = [[] for _ in wanted]
-    line = layout.data_line
     with _open_at_data(path, layout) as handle:
+        try:
+            first = handle.readline()
+        except UnicodeDecodeError:
+            raise _undecodable(path, layout) from None
+        rows: Iterator[str] = itertools.chain([first], handle)
+        delimiter = layout.dialect.delimiter
+        if delimiter and first.rstrip("\r\n").endswith(delimiter):  # "1e-9,0.5,"
+            rows = map(operator.methodcaller("rstrip", delimiter + "\r\n"), rows)
+        if layout.dialect.decimal_comma:
+            rows = map(operator.methodcaller("replace", ",", "."), rows)
         while True:
             try:
-                block = handle.read(BLOCK_CHARS)
-                block += handle.readline() if block and not block.endswith("\n") else ""
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
+                    table = np.loadtxt(
+                        rows,
+                        delimiter=layout.dialect.delimiter,
+                        quotechar='"',
+                        comments=None,
+                        ndmin=2,
+                        max_rows=BLOCK_ROWS,
+                    )
             except UnicodeDecodeError:
-                raise InputError(
-                    f"{path}: bytes that are not {layout.encoding} text after line {line}"
-                ) from None
-            if not block:
-                break
-            table = _parse_block(path, layout, block, line)
-            for part, column in zip(parts, wanted, strict=True):
-                part.append(table[:, column.index].copy())
-            line += block.count("\n")
-    return [np.concatenate(part) if part else np.empty(0) for part in parts]
+                raise _undecodable(path, layout) from None
+            except ValueError as exc:
+                raise _bad_row(path, layout, str(exc)) from None
+            if not table.size:
+                return
+            if table.shape[1] != layout.width:
+                raise _bad_row(path, layout, f"{table.shape[1]} columns")
+            yield table
 
 
-def _parse_block(path: Path, layout: Layout, block: str, first_line: int) -> np.ndarray:
-    text = layout.dialect.prepare(block)
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
-            table = np.loadtxt(
-                io.StringIO(text),
-                delimiter=layout.dialect.delimiter,
-                comments=None,
-                ndmin=2,
-                dtype=float,
-            )
-    except ValueError as exc:
-        raise _bad_row(path, layout, block, first_line, str(exc)) from None
-    if table.size and table.shape[1] != layout.width:
-        raise _bad_row(path, layout, block, first_line, f"{table.shape[1]} columns")
-    return table.reshape(-1, layout.width) if not table.size else table
+def _estimated_rows(path: Path) -> int:
+    """Rows the file holds, a little over: its size over the length of the rows at its end (the
+    longest, as times grow), plus 2 %."""
+    size = path.stat().st_size
+    with path.open("rb") as handle:
+        handle.seek(max(0, size - HEAD_BYTES))
+        tail = handle.read(HEAD_BYTES)
+    return size * max(1, tail.count(b"\n")) * 51 // (50 * max(1, len(tail))) + 1024
 
 
-def _bad_row(path: Path, layout: Layout, block: str, first_line: int, why: str) -> InputError:
-    """An error naming the first line of ``block`` that is not a row of numbers."""
+class _Column:
+    """A float column appended to a block at a time. Its array starts at the rows the file is
+    expected to hold and grows in place by an eighth (``ndarray.resize`` reallocates), so the
+    samples are never held twice and the array is never much larger than they are."""
+
+    def __init__(self, rows: int) -> None:
+        self.data = np.empty(rows)
+        self.size = 0
+
+    def append(self, values: np.ndarray) -> None:
+        end = self.size + values.size
+        if end > self.data.size:
+            self.data.resize(end + self.data.size // 8 + BLOCK_ROWS, refcheck=False)
+        self.data[self.size : end] = values
+        self.size = end
+
+    def array(self) -> np.ndarray:
+        """The column, its array cut to the rows appended."""
+        self.data.resize(self.size, refcheck=False)
+        return self.data
+
+
+def _bad_row(path: Path, layout: Layout, why: str) -> InputError:
+    """An error naming the first line of the data that is not a row of numbers (found by reading
+    the file again)."""
     names = listing([column.name for column in layout.columns])
-    for offset, line in enumerate(block.split("\n")):
-        if layout.dialect.skipped(line):
-            continue
-        number, cells = first_line + offset, layout.dialect.cells(line)
-        if len(cells) != layout.width:
-            return InputError(
-                f"{path}: line {number} has {len(cells)} value(s); the data has {layout.width} "
-                f"per row ({names}): {quoted(line)}"
-            )
-        for column, cell in zip(layout.columns, cells, strict=True):
-            if not _NUMBER.fullmatch(layout.dialect.number(cell)):
+    with _open_at_data(path, layout) as handle:
+        for number, line in enumerate(handle, layout.data_line):
+            if layout.dialect.skipped(line):
+                continue
+            cells = layout.dialect.cells(line.rstrip("\r\n"))
+            if len(cells) != layout.width:
                 return InputError(
-                    f"{path}: line {number}, column {quoted(column.name, 30)}: {quoted(cell)} is "
-                    "not a number"
+                    f"{path}: line {number} has {len(cells)} value(s); the data has "
+                    f"{layout.width} per row ({names}): {quoted(line.rstrip())}"
                 )
-    return InputError(f"{path}: cannot read the numbers from line {first_line} on: {quoted(why)}")
+            for column, cell in zip(layout.columns, cells, strict=True):
+                if not _NUMBER.fullmatch(layout.dialect.number(cell)):
+                    return InputError(
+                        f"{path}: line {number}, column {quoted(column.name, 30)}: "
+                        f"{quoted(cell)} is not a number"
+                    )
+    return InputError(
+        f"{path}: cannot read the numbers from line {layout.data_line} on: {quoted(why)}"
+    )
+
+
+def _undecodable(path: Path, layout: Layout) -> InputError:
+    """An error naming the last line that could be read before bytes that are not text."""
+    read = 0
+    with _open_at_data(path, layout) as handle, contextlib.suppress(UnicodeDecodeError):
+        for _ in handle:
+            read += 1
+    last = layout.data_line - 1 + read
+    return InputError(f"{path}: bytes that are not {layout.encoding} text after line {last}")
 
 
 def _locator(path: Path, layout: Layout) -> Where:
@@ -579,19 +595,18 @@ def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None
         waveform = FileRecord(volts, interval, origin)
         times = f"times from the preamble ({interval:.6g} s per sample)"
     else:
-        time_s, volts = read_columns(path, layout, (layout.time, chosen))
-        if scale != 1.0:
-            time_s *= scale
+        time_name = f"time (column {quoted(layout.time.name, 40)})"
+        axis, column = TimeAxis(), _Column(_estimated_rows(path))
+        for table in read_blocks(path, layout):
+            time_s = table[:, layout.time.index]
+            axis.add(time_s * scale if scale != 1.0 else time_s)
+            column.append(table[:, chosen.index])
+        volts = column.array()
         if volts_per_unit != 1.0:
             volts *= volts_per_unit
-        waveform = check_uniform(
-            path,
-            time_s,
-            volts,
-            time_name=f"time (column {quoted(layout.time.name, 40)})",
-            volts_name=volts_name,
-            where=where,
-        )
+        check_volts(path, volts, volts_name=volts_name, where=where)
+        interval, origin = axis.check(path, time_name=time_name, where=where)
+        waveform = FileRecord(volts, interval, origin)
         times = f"times from column {quoted(layout.time.name, 40)}"
         times += f" in {unit_source}" if scale != 1.0 else ""
     hint = None
