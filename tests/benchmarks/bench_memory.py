@@ -50,7 +50,8 @@ from peak_memory import resident_high_water_available, resident_peak_bytes
 from instruments.roles import Waveform
 from labseq.analysis import analyze_capture
 from labseq.cli import main as labseq_main
-from labseq.runner import analyse_or_error, start_run, store_figures
+from labseq.pipeline import analyse_or_error, analysis_options, store_figures
+from labseq.runner import start_run
 from labseq.sequence import Sequence, load_sequence
 from labseq.store import CaptureRecord, Store
 from sim_instruments import scope
@@ -170,14 +171,14 @@ class Record:
         if path == "float64":  # the reference: the record's volts as float64
             self.primary.volts()
         elif path == "analysis":
-            options = self.sequence.analysis_options(self.sequence.primary)
+            options = analysis_options(self.sequence, self.sequence.primary)
             dt, t0 = self.primary.x_increment_s, self.primary.x_origin_s
             analyze_capture(given, dt, t0, **options)
         elif path == "runner":
             assert isinstance(given, dict)
             nodes = self.sequence.nodes
             records = [CaptureRecord(given[n.name], channel=n.channel, node=n.name) for n in nodes]
-            ids = self.store.add_captures(self.point.id, records)
+            ids = self.store.commit_point(self.point.id, captures=records, status=None)
             for node, capture_id in zip(nodes, ids, strict=True):
                 result = analyse_or_error(self.sequence, given[node.name], node, self.point)
                 assert not isinstance(result, Exception), result
