@@ -8,10 +8,13 @@ from typing import Any
 
 import click
 
+from instruments.text import quoted
 from labseq.errors import InputError
 from labseq.store import Store
 
 DEFAULT_DB = "labseq.sqlite"
+#: The largest run id a store can hold: SQLite's row ids are signed 64-bit integers.
+MAX_RUN_ID = 2**63 - 1
 
 
 def db_option(help_text: str = "The SQLite store.") -> Callable[[Any], Any]:
@@ -34,8 +37,14 @@ def resolve_run(store: Store, text: str, *, what: str = "RUN") -> int:
             raise InputError(f"{store.path}: {what} latest: this store holds no runs")
         return runs[-1].id
     try:
-        return int(text)
+        run_id = int(text)
     except ValueError:
         raise InputError(
-            f"{what} {text!r}: give a run id (see `labseq runs`) or 'latest'"
+            f"{what} {quoted(text)}: give a run id (see `labseq runs`) or 'latest'"
         ) from None
+    if not 0 < run_id <= MAX_RUN_ID:
+        raise InputError(
+            f"{what} {quoted(text)}: a run id is a whole number from 1 to {MAX_RUN_ID} (SQLite's "
+            "largest row id); see `labseq runs` for the ids in this store"
+        )
+    return run_id
