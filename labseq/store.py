@@ -752,13 +752,7 @@ class Store:
         """Mark "interrupted" the runs left "running" by a process of this host that is gone,
         and say so in each run's event log (a killed runner could not write it itself)."""
         host = socket.gethostname()
-        abandoned = [
-            run
-            for run in self.runs()
-            if run.status == "running"
-            and run.host == host
-            and not process_alive(run.pid, run.process_started)
-        ]
+        abandoned = [run for run in self.runs() if run_abandoned(run)]
         for run in abandoned:
             self.set_run_status(run.id, "interrupted")
             self.log_event(
@@ -1220,6 +1214,22 @@ SELECT r.*,
     (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id) AS points_total,
     (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id AND p.status = 'done') AS points_done
 FROM runs r"""
+
+
+def run_abandoned(run: RunRecord) -> bool:
+    """Whether ``run`` is recorded as running by a process of this host that is gone (killed,
+    crashed, or its store failed under it): it is in truth interrupted."""
+    return (
+        run.status == "running"
+        and run.host == socket.gethostname()
+        and not process_alive(run.pid, run.process_started)
+    )
+
+
+def shown_status(run: RunRecord) -> str:
+    """The run's status as it truly is: "interrupted" for a run recorded as running whose
+    process has died, else the recorded status (read-only: nothing is written)."""
+    return "interrupted" if run_abandoned(run) else run.status
 
 
 def _owner() -> dict[str, Any]:

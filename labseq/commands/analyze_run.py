@@ -43,7 +43,9 @@ def command(run: str, db_path: Path, sequence_path: Path | None, wait_text: str)
     with Store(db_path, create=False) as store, store_lock(db_path, wait_s=wait_s or 0.0):
         run_id = resolve_run(store, run)
         sequence = (
-            load_sequence(sequence_path) if sequence_path else stored_sequence(store.run(run_id))
+            load_sequence(sequence_path)
+            if sequence_path
+            else stored_sequence(store.run(run_id), store.path)
         )
         count = analyse_run(store, sequence, run_id, only_missing=False)
         verdicts = Counter(p.verdict or "not judged" for p in store.points(run_id))
