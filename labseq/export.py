@@ -26,7 +26,7 @@ import csv
 import json
 import zipfile
 from collections.abc import Iterator
-from dataclasses import asdict, dataclass, fields, replace
+from dataclasses import asdict, dataclass, fields
 from pathlib import Path
 
 import numpy as np
@@ -146,17 +146,6 @@ def _run_facts(store: Store, run_id: int) -> dict[str, object]:
     }
 
 
-def screen_volts(capture: Waveform) -> tuple[float, float] | None:
-    """The volts at the bottom and top codes of the scope's screen (computed as the samples'
-    volts are, so a sample at the edge reads exactly the same number), or None for a scope that
-    sends volts."""
-    if capture.code_min is None or capture.code_max is None:
-        return None
-    edges = np.array([capture.code_min, capture.code_max], dtype=np.float64)
-    bottom, top = replace(capture, codes=edges).volts()
-    return float(bottom), float(top)
-
-
 def write_captures_npz(store: Store, run_id: int, path: Path) -> int:
     """Write every capture of the run into one ``.npz``, streaming; return the count."""
     scaling = []
@@ -195,7 +184,7 @@ def write_captures_csv(store: Store, run_id: int, directory: Path) -> int:
     for name, capture, _ in _named_captures(store, run_id):
         table = np.column_stack([capture.time_s(), capture.volts()])
         preamble = [f"{ORIGIN_KEY},labseq run {run_id} capture {name} on {bench}"]
-        screen = screen_volts(capture)
+        screen = capture.screen_volts()
         if screen is not None:
             preamble += [
                 f"{key},{volts:.9g}" for key, volts in zip(SCREEN_KEYS, screen, strict=True)

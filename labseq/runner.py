@@ -41,6 +41,7 @@ from labseq.store import (
     StoreError,
     store_failure,
 )
+from labseq.units import format_si
 
 #: How often the scope is asked whether its single acquisition is in.
 ACQUISITION_POLL_S = 0.005
@@ -188,6 +189,25 @@ class Sweep:
             scope.wait_acquisition(settings.acquisition_timeout_s, ACQUISITION_POLL_S)
             return [scope.fetch_waveform(node.channel) for node in self.sequence.nodes]
 
+    def clip_warning(self, index: int, number: int, waveforms: list[Waveform]) -> bool:
+        """Warn on the console when a capture clipped (once a point): its peak figures are then
+        only bounds. True when a warning was given."""
+        found = []
+        for node, waveform in zip(self.sequence.nodes, waveforms, strict=True):
+            edges, screen = waveform.clipped_edges(), waveform.screen_volts()
+            if edges and screen is not None:
+                at = " and ".join(
+                    f"{edge} ({format_si(screen[edge == 'top'], 'V')})" for edge in edges
+                )
+                found.append(f"{node.name} clipped at the {at} of the screen")
+        if found:
+            self.progress.message(
+                f"point {index}: capture {number}: {'; '.join(found)} - the figures there are "
+                "bounds, not measurements; widen the channel's volts_per_div or move its offset",
+                error=True,
+            )
+        return bool(found)
+
     def read_point(self) -> PointReadings:
         """Meter on the line input, load and source readbacks; efficiency = Pout / Pin."""
         bench = self.bench
@@ -222,9 +242,11 @@ class Sweep:
         self._wait("settle", seq.grid.settle_s)
         already = self.store.acquisitions(point.id)
         wanted = seq.grid.captures_per_point
+        clipped = False  # warned of this point's clipping (once a point)
         for number in range(already + 1, wanted + 1):
             self.progress.point(index, total, point.line_v, point.load_a, number, wanted)
             waveforms = self.acquire()
+            clipped = clipped or self.clip_warning(index, number, waveforms)
             last = number == wanted
             readings = self.read_point() if last else None
             records = [
@@ -293,6 +315,8 @@ class Sweep:
         kind = "scpi-error" if isinstance(error, ScpiError) else "fault"
         data = {"code": error.code} if isinstance(error, ScpiError) else {}
         self.log(kind, f"{point.line_v:g} V / {point.load_a:g} A: {error}", point.id, **data)
+        then = "aborting the run" if self.sequence.on_point_error == "abort" else "skipped"
+        self.progress.message(f"point {point.point_index + 1}: {error} - {then}", error=True)
         if self.sequence.on_point_error == "abort":
             raise PointAbort(
                 f"point {point.point_index + 1} failed (on_point_error = abort): {error}"
