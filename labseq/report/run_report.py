@@ -29,7 +29,7 @@ from labseq.report.html import Markup, Page, esc, table, verdict_cell
 from labseq.report.traces import point_traces
 from labseq.review import PointReview, RunReview, limit_rows, line_text
 from labseq.runlog import Judgement, judgements, run_log
-from labseq.store import Store
+from labseq.store import Store, shown_status
 from labseq.units import format_si
 
 #: Rows of the "did not pass" table at most; points.csv has them all.
@@ -375,7 +375,9 @@ def build_run_report(store: Store, review: RunReview, out_dir: Path) -> ReportFi
     run = review.run
     page = Page(out_dir, f"labseq run {run.id}: {run.dut_label}")
     page.add(f"<h1>Run {run.id}: {esc(run.dut_label)}</h1>")
-    page.add(f'<p class="sub">Snubber: {esc(run.snubber_label)} · status {esc(run.status)}</p>')
+    page.add(
+        f'<p class="sub">Snubber: {esc(run.snubber_label)} · status {esc(shown_status(run))}</p>'
+    )
     if run.status == "unsafe-end":
         found = review.end_safety or "bench NOT confirmed safe (no record of its shutdown)"
         page.add(
