@@ -16,7 +16,13 @@ from sweeps import run_cli
 from test_store import SCHEMA_V2, Capture, _le_bytes, _table_definitions, new_run, ringing_codes
 
 from labseq import store as store_module
-from labseq.store import SCHEMA_VERSION, CaptureRecord, Store, bench_identity
+from labseq.store import (
+    SCHEMA_VERSION,
+    CaptureRecord,
+    Store,
+    bench_identity,
+    upgraded_run_uuid,
+)
 
 
 @pytest.fixture
@@ -116,8 +122,10 @@ def test_schema_3_store_is_upgraded_to_4(tmp_path: Path) -> None:
         kept = store.db.execute(f"SELECT {', '.join(v3_columns)} FROM runs").fetchall()
         assert Counter(map(tuple, kept)) == runs_before
         runs = {run.id: run for run in store.runs()}
-        assert all(_is_uuid4(run.uuid) for run in runs.values())
+        # a name-based UUID (version 5, RFC 4122 4.3) of what each run recorded
+        assert all(uuid.UUID(run.uuid).version == 5 for run in runs.values())
         assert runs[1].uuid != runs[2].uuid
+        assert runs[2].uuid == upgraded_run_uuid(2, "2025-04-01", "", "bench-7", 42, 1.5)
         # the bench: the owner's host (none recorded in run 1) and its recorded instruments
         assert runs[2].bench_host == "bench-7"
         assert runs[2].bench_id == bench_identity(
@@ -137,6 +145,20 @@ def test_schema_3_store_is_upgraded_to_4(tmp_path: Path) -> None:
         assert _table_definitions(store) == upgraded  # a new file has the same tables
     with Store(path) as store:  # opened again: the same UUIDs (the upgrade ran once)
         assert {run.id: run.uuid for run in store.runs()} == {i: r.uuid for i, r in runs.items()}
+
+
+def test_copies_of_one_older_store_give_its_runs_the_same_uuids(tmp_path: Path) -> None:
+    first, second = tmp_path / "bench.sqlite", tmp_path / "archive-copy.sqlite"
+    _version_3_file(first)
+    second.write_bytes(first.read_bytes())
+    before = second.read_bytes()
+    with Store(second, read_only=True) as store:  # read through an upgraded copy
+        read = [(run.id, run.uuid) for run in store.runs()]
+    assert second.read_bytes() == before  # the file itself is still version 3
+    with Store(first) as store:
+        assert [(run.id, run.uuid) for run in store.runs()] == read
+    with Store(second) as store:
+        assert [(run.id, run.uuid) for run in store.runs()] == read
 
 
 def test_reads_of_a_runs_captures_and_events_use_the_indexes(db: Path) -> None:

@@ -29,7 +29,7 @@ def db_option(help_text: str = "The SQLite store.") -> Callable[[Any], Any]:
 
 def read_store(db_path: Path) -> RunStore:
     """The store ``--db`` names, opened for reading only (the read commands' one way in)."""
-    return Store(db_path, create=False)
+    return Store(db_path, read_only=True)
 
 
 #: The fewest hex digits of a UUID that name a run on the command line.
