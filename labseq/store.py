@@ -907,6 +907,54 @@ class Store:
         query = _RUNS_QUERY + " WHERE r.uuid >= ? AND r.uuid < ? ORDER BY r.id"
         return [self._run_record(row) for row in self.db.query(query, [prefix, prefix + "~"])]
 
+    def import_run(self, source: Store, run_id: int) -> int:
+        """Copy run ``run_id`` of the SQLite store ``source`` here with everything stored with
+        it — its row (UUID and bench included), points, captures (their codes as stored, byte
+        for byte), capture and point figures, node verdicts and events — in ONE transaction;
+        return its id here (ids are this store's own). The caller makes sure the run's UUID is
+        not here yet: the unique index refuses a second copy."""
+        read = source.db
+        with self.db.atomic():
+            [run] = read["runs"].rows_where("id = ?", [run_id])
+            new_run_id = self._copy_row("runs", run, id=None)
+            points: dict[int, int] = {}
+            for point in read["points"].rows_where("run_id = ?", [run_id], order_by="id"):
+                points[point["id"]] = self._copy_row("points", point, id=None, run_id=new_run_id)
+            query = "SELECT id FROM captures WHERE run_id = ? ORDER BY id"  # no codes sorted
+            for (capture_id,) in read.execute(query, [run_id]).fetchall():
+                [capture] = read["captures"].rows_where("id = ?", [capture_id])
+                new_capture_id = self._copy_row(
+                    "captures",
+                    capture,
+                    id=None,
+                    run_id=new_run_id,
+                    point_id=points[capture["point_id"]],
+                )
+                for figures in read["capture_figures"].rows_where("capture_id = ?", [capture_id]):
+                    self._copy_row("capture_figures", figures, capture_id=new_capture_id)
+            of_run = "point_id IN (SELECT id FROM points WHERE run_id = ?)"
+            for table in ("point_figures", "node_verdicts"):
+                for row in read[table].rows_where(of_run, [run_id]):
+                    self._copy_row(table, row, point_id=points[row["point_id"]])
+            for event in read["events"].rows_where("run_id = ?", [run_id], order_by="id"):
+                point_id = event["point_id"]
+                self._copy_row(
+                    "events",
+                    event,
+                    id=None,
+                    run_id=new_run_id,
+                    point_id=None if point_id is None else points[point_id],
+                )
+        return new_run_id
+
+    def _copy_row(self, table: str, row: Mapping[str, Any], **changes: Any) -> int:
+        """Insert ``row`` of another store into ``table`` (one of this module's names) with
+        ``changes`` (an ``id`` of None: a new one here); return its rowid (where it has one)."""
+        values = {**row, **changes}
+        if values.get("id", 0) is None:
+            del values["id"]
+        return int(self.db[table].insert(values).last_rowid or 0)
+
     def mark_abandoned_runs(self) -> list[int]:
         """Mark "interrupted" the runs left "running" by a process of this host that is gone,
         and say so in each run's event log (a killed runner could not write it itself)."""
