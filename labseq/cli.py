@@ -24,6 +24,7 @@ from labseq.safety import Interrupted
 #: Modules under ``labseq.commands`` that each add one command to the group.
 COMMAND_MODULES: tuple[str, ...] = (
     "sim",
+    "examples",
     "check",
     "probe",
     "run",
