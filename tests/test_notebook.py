@@ -229,3 +229,18 @@ def test_report_draws_without_pyplot(tmp_path: Path) -> None:
     assert done.returncode == 0, done.stderr
     assert done.stdout.splitlines()[-1] == "False"
     assert len(list((tmp_path / "r").glob("*.png"))) >= 4
+
+
+def test_no_module_imports_pyplot_or_chooses_a_backend() -> None:
+    # Also inside functions, where importing every module would not find it (a plot drawn on
+    # demand must not switch the notebook's backend either).
+    from test_layering import _imported_modules
+
+    offenders = []
+    for package in ("labseq", "instruments", "sim_instruments"):
+        for path in sorted((ROOT / package).rglob("*.py")):
+            if "matplotlib.pyplot" in _imported_modules(path):
+                offenders.append(f"{path.relative_to(ROOT)} imports pyplot")
+            if re.search(r"matplotlib\.use\(|\.switch_backend\(", path.read_text(encoding="utf-8")):
+                offenders.append(f"{path.relative_to(ROOT)} chooses a backend")
+    assert offenders == []

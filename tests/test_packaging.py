@@ -5,6 +5,7 @@ copied out of a wheel run ``labseq check`` as they do in a clone."""
 from __future__ import annotations
 
 import os
+import shutil
 import subprocess
 import sys
 import zipfile
@@ -67,8 +68,18 @@ def wheel(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Path]:
     """labseq built as a wheel, as ``pip wheel`` builds it for an install (a few seconds; pip
     fetches the build backend named in pyproject.toml from the package index)."""
     out = tmp_path_factory.mktemp("wheel")
+    # from a copy of the tree: a build leaves build/ behind, whose stale files a later build of
+    # the same tree could pack
+    source = out / "source"
+    shutil.copytree(
+        ROOT,
+        source,
+        ignore=shutil.ignore_patterns(
+            ".git", ".venv", "build", "*.egg-info", "__pycache__", ".*_cache", ".hypothesis"
+        ),
+    )
     done = subprocess.run(
-        [sys.executable, "-m", "pip", "wheel", "--no-deps", "-q", "-w", str(out), str(ROOT)],
+        [sys.executable, "-m", "pip", "wheel", "--no-deps", "-q", "-w", str(out), str(source)],
         capture_output=True,
         text=True,
         timeout=300,
