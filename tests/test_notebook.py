@@ -239,8 +239,11 @@ def test_no_module_imports_pyplot_or_chooses_a_backend() -> None:
     offenders = []
     for package in ("labseq", "instruments", "sim_instruments"):
         for path in sorted((ROOT / package).rglob("*.py")):
-            if "matplotlib.pyplot" in _imported_modules(path):
+            text = path.read_text(encoding="utf-8")
+            if "matplotlib.pyplot" in _imported_modules(path) or re.search(
+                r"from matplotlib import [^\n]*\bpyplot\b", text
+            ):
                 offenders.append(f"{path.relative_to(ROOT)} imports pyplot")
-            if re.search(r"matplotlib\.use\(|\.switch_backend\(", path.read_text(encoding="utf-8")):
+            if re.search(r"matplotlib\.use\(|\.switch_backend\(", text):
                 offenders.append(f"{path.relative_to(ROOT)} chooses a backend")
     assert offenders == []
