@@ -11,7 +11,8 @@ asks for the lists even where pandas is installed. Captures come back as numpy a
 time base (:class:`Capture`: ``time_s``, ``volts``, the clip mask, and the raw codes with the
 scaling that gave the volts).
 
-Everything here reads; nothing is written to the store. A run is named by its id or by
+Everything here reads: nothing is written to the store, except that a store written by an older
+labseq is upgraded when opened, as every labseq command does. A run is named by its id or by
 ``"latest"``. Figures are in SI units, named as :mod:`labseq.figures` names them (``peak_v``,
 ``damping_ratio``, ``snubber_loss_w``…). The store's layout itself, for reading it without
 labseq, is in docs/store-format.md.
