@@ -137,7 +137,7 @@ def test_damaged_codes_are_a_clear_error(db: Path, codec: str) -> None:
             store.captures(points[0])
         assert len(store.captures(points[0], with_codes=False)) == 1
     code, _, err = run_cli("export", str(run_id), "--db", str(db), "--out", str(db.parent / "x"))
-    assert code == 1 and "is damaged" in err and str(db) in err and "Traceback" not in err
+    assert code == 3 and "is damaged" in err and str(db) in err and "Traceback" not in err
 
 
 def test_float64_codes_refused(db: Path) -> None:

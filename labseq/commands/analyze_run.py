@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+import sys
 from collections import Counter
 from pathlib import Path
 
 import click
 
+from labseq.commands._gates import run_verdict, strict_failure, strict_option
 from labseq.commands._options import option_quantity
 from labseq.commands._store import db_option, resolve_run
+from labseq.errors import EXIT_JUDGED
 from labseq.locks import store_lock
 from labseq.pipeline import analyse_run, stored_sequence
 from labseq.sequence import load_sequence
@@ -32,7 +35,10 @@ from labseq.store import Store
     metavar="DURATION",
     help="How long to wait for the store while another labseq process writes it (0: do not).",
 )
-def command(run: str, db_path: Path, sequence_path: Path | None, wait_text: str) -> None:
+@strict_option
+def command(
+    run: str, db_path: Path, sequence_path: Path | None, wait_text: str, strict: bool
+) -> None:
     """Analyse every stored capture of RUN again from its raw codes and re-judge its points.
 
     Use it after changing limits (give the new file with --sequence) or after an analysis
@@ -48,5 +54,8 @@ def command(run: str, db_path: Path, sequence_path: Path | None, wait_text: str)
         count = analyse_run(store, sequence, run_id, only_missing=False)
         verdicts = Counter(p.verdict or "not judged" for p in store.points(run_id))
         store.log_event(run_id, "info", f"re-analysed {count} captures", data=dict(verdicts))
+        verdict = run_verdict(store, run_id)
     summary = ", ".join(f"{n} {v}" for v, n in sorted(verdicts.items()))
     click.echo(f"run {run_id}: re-analysed {count} captures; points: {summary}")
+    if strict and strict_failure(run_id, verdict):
+        sys.exit(EXIT_JUDGED)

@@ -6,6 +6,7 @@ from pathlib import Path
 
 import click
 
+from labseq.commands._gates import run_verdict, strict_option
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option, resolve_run
 from labseq.commands.run import confirm_hazard, report_outcome, yes_option
@@ -28,8 +29,15 @@ from labseq.store import Store
 )
 @trace_option
 @yes_option()
+@strict_option
 def command(
-    run: str, db_path: Path, quiet: bool, take_over: bool, trace_path: Path | None, yes: bool
+    run: str,
+    db_path: Path,
+    quiet: bool,
+    take_over: bool,
+    trace_path: Path | None,
+    yes: bool,
+    strict: bool,
 ) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
 
@@ -52,4 +60,5 @@ def command(
             if start_note:
                 store.log_event(run_id, "safety", start_note)
             outcome = execute(sequence, store, run_id, progress=progress, latch=latch)
-        report_outcome(outcome, db_path, progress, latch)
+        verdict = run_verdict(store, run_id) if strict else None
+        report_outcome(outcome, db_path, progress, latch, verdict)
