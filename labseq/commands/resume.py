@@ -15,6 +15,7 @@ from labseq.progress import Progress
 from labseq.runner import TAKE_OVER_RISK, bench_locks, check_resumable, execute
 from labseq.safety import SignalLatch
 from labseq.store import Store
+from labseq.visa_library import allow_option, sequence_visa_library
 
 
 @click.command("resume")
@@ -29,6 +30,7 @@ from labseq.store import Store
 )
 @trace_option
 @yes_option()
+@allow_option()
 @strict_option
 def command(
     run: str,
@@ -37,6 +39,7 @@ def command(
     take_over: bool,
     trace_path: Path | None,
     yes: bool,
+    allowed_libraries: tuple[Path, ...],
     strict: bool,
 ) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
@@ -50,7 +53,10 @@ def command(
     latch = SignalLatch().install()
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
-        sequence = stored_sequence(store.run(run_id))
+        sequence = stored_sequence(store.run(run_id), store.path)
+        sequence_visa_library(
+            sequence, allowed_libraries, f"{db_path}: run {run_id}'s bench.visa_library"
+        )
         with bench_locks(sequence, store), tracing(trace_path):
             before = check_resumable(store, run_id, take_over=take_over)
             pending = before.points_done < before.points_total

@@ -18,6 +18,7 @@ from labseq.runner import UNSAFE_END_EXIT, RunOutcome, bench_locks, execute, sta
 from labseq.safety import CAUTIONS, SignalLatch, signal_exit_code
 from labseq.sequence import Sequence, load_sequence
 from labseq.store import Store
+from labseq.visa_library import allow_option, sequence_visa_library
 
 
 def yes_option() -> Callable[[Any], Any]:
@@ -106,6 +107,7 @@ def report_outcome(
     help="Simulated bench only: inject faults, e.g. 'scope:no-trigger@point=3' (see labseq sim).",
 )
 @trace_option
+@allow_option()
 @strict_option
 def command(
     sequence_path: Path,
@@ -115,6 +117,7 @@ def command(
     yes: bool,
     sim_faults: str,
     trace_path: Path | None,
+    allowed_libraries: tuple[Path, ...],
     strict: bool,
 ) -> None:
     """Sweep SEQUENCE's grid on its bench (real or simulated) and store the run.
@@ -130,6 +133,7 @@ def command(
     SIGTERM (143).
     """
     sequence = load_sequence(sequence_path)
+    sequence_visa_library(sequence, allowed_libraries)
     progress = Progress(quiet=quiet)
     latch = SignalLatch().install()
     with Store(db_path) as store, bench_locks(sequence, store), tracing(trace_path):
