@@ -21,6 +21,7 @@ import matplotlib.pyplot as plt  # noqa: E402 (the backend is chosen first)
 import numpy as np  # noqa: E402
 from matplotlib.colors import Normalize, TwoSlopeNorm  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
+from matplotlib.patches import Rectangle  # noqa: E402
 
 from labseq.analysis import RingFit  # noqa: E402
 from labseq.units import format_si  # noqa: E402
@@ -36,6 +37,14 @@ CHANGE_MAP = "PuOr"
 MISSING_CELL = "#d9d9d9"
 #: Grids with more cells than this are drawn without per-cell text (it would not be legible).
 MAX_ANNOTATED_CELLS = 100
+#: Cell text size (points at the figure's own size). A map is at most MAX_MAP_WIDTH_IN wide and
+#: shown one to a row, never scaled down on a page as wide as the report's (html.CONTENT_WIDTH_PX),
+#: so its cell text reads at this size: at least 9 pt.
+CELL_FONT_PT = 10
+MAX_MAP_WIDTH_IN = 10.0
+#: Outline of a cell beyond its limit: a dark band with a light line inside it, visible on the
+#: dark and the light end of every map.
+OUTLINE_DARK, OUTLINE_LIGHT = "#000000", "#ffffff"
 #: Axis ticks shown at most (evenly thinned beyond).
 MAX_TICKS = 12
 DPI = 100
@@ -108,12 +117,14 @@ def heat_map(
     centre: float | None = None,
     limits: tuple[float, float] | None = None,
     colour_format: Callable[[float], str] | None = None,
+    outlined: np.ndarray | None = None,
 ) -> Figure:
     """A line (rows) × load (columns) map of ``values``.
 
     ``colour_values`` (default ``values``) sets the colours; ``cell_text(row, column)`` writes
     each cell's words on small grids; NaN cells are grey and read "—". ``centre`` makes the
     scale diverge around that value; ``limits`` fixes the scale (to share it between maps).
+    ``outlined`` (a boolean grid) draws a heavy outline round those cells (beyond a limit).
     """
     shown = values if colour_values is None else colour_values
     cmap = plt.get_cmap(cmap_name).with_extremes(bad=MISSING_CELL)
@@ -130,7 +141,7 @@ def heat_map(
     else:
         norm = Normalize(low, high if high > low else low + (abs(low) or 1.0))
     rows, columns = shown.shape
-    width = min(10.0, 3.2 + 0.9 * columns)
+    width = min(MAX_MAP_WIDTH_IN, 3.2 + 0.9 * columns)
     height = min(8.0, 2.0 + 0.55 * rows)
     fig, ax = plt.subplots(figsize=(max(width, 5.2), max(height, 3.2)), layout="constrained")
     mesh = ax.pcolormesh(
@@ -159,8 +170,21 @@ def heat_map(
                     cell_text(row, column),
                     ha="center",
                     va="center",
-                    fontsize=8,
+                    fontsize=CELL_FONT_PT,
                     color=colour,
+                )
+    if outlined is not None:
+        for row, column in zip(*np.nonzero(outlined), strict=True):
+            for colour, width in ((OUTLINE_DARK, 4.0), (OUTLINE_LIGHT, 1.3)):
+                ax.add_patch(
+                    Rectangle(
+                        (column + 0.06, row + 0.06),
+                        0.88,
+                        0.88,
+                        fill=False,
+                        edgecolor=colour,
+                        linewidth=width,
+                    )
                 )
     return fig
 
