@@ -67,6 +67,7 @@ th, td { border: 1px solid #c8c8c8; padding: 0.2em 0.55em; text-align: left; ver
   overflow-wrap: break-word; hyphens: none; }
 td:first-child { white-space: nowrap; }
 td.word { white-space: nowrap; }
+td.long { word-break: break-all; }
 th { background: #f1f1f1; font-weight: 600; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 table.grid td { text-align: center; min-width: 3.2em; }
@@ -101,6 +102,11 @@ def esc(text: object) -> str:
 def cell(text: str, css_class: str) -> Markup:
     """A table cell with a class (e.g. a verdict's colour) around escaped text."""
     return Markup(f'<td class="{esc(css_class)}">{esc(text)}</td>')
+
+
+def long_cell(text: str) -> Markup:
+    """A cell of one long unbroken token (a path, a hash) that may break anywhere to fit."""
+    return cell(text, "long")
 
 
 def verdict_cell(verdict: str | None) -> Markup:

@@ -72,6 +72,12 @@ def value_map(direction: int) -> str:
     return VALUE_MAP if direction < 0 else VALUE_MAP + "_r"
 
 
+def change_map(higher_is_better: bool) -> str:
+    """Colour map of a change (candidate − baseline): purple for better, orange for worse, so
+    it is PuOr (purple high) when higher is better, turned round when lower is."""
+    return CHANGE_MAP if higher_is_better else CHANGE_MAP + "_r"
+
+
 def png_bytes(fig: Figure) -> bytes:
     """Render ``fig`` as PNG and close it."""
     buffer = io.BytesIO()

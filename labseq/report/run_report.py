@@ -27,7 +27,15 @@ from labseq.figures import (
     shown_unit,
 )
 from labseq.report import plots
-from labseq.report.html import Markup, Page, esc, safety_text, table, verdict_cell
+from labseq.report.html import (
+    Markup,
+    Page,
+    esc,
+    long_cell,
+    safety_text,
+    table,
+    verdict_cell,
+)
 from labseq.report.traces import point_traces
 from labseq.review import (
     PointReview,
@@ -372,8 +380,8 @@ def _identity_rows(review: RunReview) -> list[list[str]]:
         rows.insert(6, ["clamp", review.sequence.clamp.label])
     rows += [
         ["labseq version", run.software_version],
-        ["sequence file", run.sequence_path],
-        ["sequence SHA-256", run.sequence_sha256],
+        ["sequence file", long_cell(run.sequence_path)],
+        ["sequence SHA-256", long_cell(run.sequence_sha256)],
         ["host", run.host or "—"],
         ["notes", run.notes or "—"],
     ]
