@@ -49,6 +49,8 @@ from labseq.review import (
     limit_rows,
     node_polarity,
     point_label,
+    point_object,
+    run_object,
     worst_points,
 )
 from labseq.units import format_si
@@ -592,8 +594,8 @@ def comparison_summary(comparison: Comparison) -> dict[str, Any]:
         return {"point_index": review.point.point_index, "verdict": review.verdict}
 
     return {
-        "baseline": comparison.baseline.run.id,
-        "candidate": comparison.candidate.run.id,
+        "baseline": run_object(comparison.baseline.run, comparison.baseline.end_safety),
+        "candidate": run_object(comparison.candidate.run, comparison.candidate.end_safety),
         "regressed": comparison.regressed,
         "nodes": [
             comparison.candidate.node_names[0],
@@ -614,9 +616,12 @@ def comparison_summary(comparison: Comparison) -> dict[str, Any]:
         "worst_regression": None if worst is None else comparison.describe_regression(worst),
         "points": [
             {
-                "line_v": p.either.point.line_v,
-                "line_is_ac": p.either.point.line_is_ac,
-                "load_a": p.either.point.load_a,
+                **point_object(
+                    p.either.point.point_index,
+                    p.either.point.line_v,
+                    p.either.point.line_is_ac,
+                    p.either.point.load_a,
+                ),
                 "flag": p.flag,
                 "baseline": side(p.baseline),
                 "candidate": side(p.candidate),

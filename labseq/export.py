@@ -8,7 +8,8 @@ then for each further node its verdict and figures in columns prefixed by its na
 ``captures.npz`` (per capture ``<name>_codes`` as stored, ``<name>_volts``, and a ``scaling``
 table with one row per capture) or into ``captures/<name>.csv`` files of ``time_s,volts``, where
 ``<name>`` is ``p<point index>_c<capture index>``, followed by ``_<node>`` for a node other than
-the primary. Captures are read and written one at a time.
+the primary. Captures are read and written one at a time. CSV cells write booleans as ``true``
+and ``false`` and an absent value as an empty cell.
 
 The NPZ layout (:data:`SCALING_KEY`, :data:`SCALING_DTYPE`, :func:`codes_key`) is defined here
 once; :mod:`labseq.waveform_files` reads a capture back by it (``labseq analyze --capture``).
@@ -22,6 +23,7 @@ import zipfile
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, fields
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -72,6 +74,14 @@ def volts_key(name: str) -> str:
     return f"{name}_volts"
 
 
+def csv_value(value: object) -> object:
+    """A value as a CSV cell: booleans as ``true``/``false`` (as JSON and most readers spell
+    them), nothing as an empty cell, anything else as itself."""
+    if isinstance(value, bool | np.bool_):
+        return "true" if value else "false"
+    return "" if value is None else value
+
+
 def write_points_csv(store: Store, run_id: int, path: Path) -> int:
     """Write the run's points with their figures (per node) to ``path``; return the row count."""
     points = store.points(run_id)
@@ -103,7 +113,7 @@ def write_points_csv(store: Store, run_id: int, path: Path) -> int:
                 per_node = figures.get(point.id, {}).get(node, {})
                 for name in names[node]:
                     values += [per_node.get(name, {}).get(stat) for stat in _FIGURE_STATS]
-            writer.writerow(["" if value is None else value for value in values])
+            writer.writerow([csv_value(value) for value in values])
     return len(points)
 
 
@@ -168,6 +178,17 @@ class Exported:
     directory: Path
     points: int
     captures: int
+    captures_format: str = "npz"
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain data for JSON: the folder and what it holds."""
+        return {
+            "directory": str(self.directory),
+            "points": self.points,
+            "captures": self.captures,
+            "captures_format": self.captures_format,
+            "files": sorted(p.name for p in self.directory.iterdir()),
+        }
 
 
 def export_run(store: Store, run_id: int, directory: Path, *, captures: str = "npz") -> Exported:
@@ -188,4 +209,4 @@ def export_run(store: Store, run_id: int, directory: Path, *, captures: str = "n
         count = write_captures_npz(store, run_id, directory / CAPTURES_NPZ)
     else:
         count = write_captures_csv(store, run_id, directory / CAPTURES_DIR)
-    return Exported(directory, points, count)
+    return Exported(directory, points, count, captures)

@@ -479,6 +479,46 @@ def limit_rows(review: RunReview) -> list[tuple[str, str]]:
     return rows
 
 
+# --------------------------------------------------------------------------- machine output
+
+#: The fields of a stored run in every command's JSON (``runs``, ``report``, ``compare``,
+#: ``run``, ``resume``, ``export``, ``analyze-run``): one shape for a run everywhere.
+RUN_FIELDS = (
+    "id",
+    "started_at",
+    "finished_at",
+    "status",
+    "dut_label",
+    "snubber_label",
+    "bench_kind",
+    "sequence_path",
+    "sequence_sha256",
+    "points_done",
+    "points_total",
+    "notes",
+)
+
+
+def run_object(run: RunRecord, end_safety: str | None = None) -> dict[str, Any]:
+    """A run as every command's JSON gives it: :data:`RUN_FIELDS`, whether the bench was the
+    simulated one, and (for a run that ended unsafe) what its shutdown found."""
+    return {
+        **{name: getattr(run, name) for name in RUN_FIELDS},
+        "simulated": run.bench_kind == SIMULATED_BENCH_KIND,
+        "end_safety": end_safety,
+    }
+
+
+def point_object(point_index: int, line_v: float, line_is_ac: bool, load_a: float) -> dict:
+    """A point's setpoints as every command's JSON gives them (SI numbers)."""
+    return {
+        "point_index": point_index,
+        "line_v": line_v,
+        "line_is_ac": line_is_ac,
+        "load_a": load_a,
+    }
+
+
 def _node_limits(spec: NodeSpec) -> dict[str, Any]:
     return {
         **vars(spec.limits),
@@ -502,14 +542,15 @@ def _worst_summary(worst: Mapping[str, WorstPoint]) -> dict[str, Any]:
     }
 
 
-def run_summary(review: RunReview) -> dict[str, Any]:
-    """The review as plain data for JSON: verdict, limits, one row per point, worst points."""
+def run_summary(review: RunReview, problems: Mapping[int, str] | None = None) -> dict[str, Any]:
+    """The review as plain data for JSON: the run, its headline, verdict, limits, one row per
+    point (with why it did not pass), worst points. ``problems``: as for :func:`not_passed`."""
+    why = {item.point.point.id: item.why for item in not_passed(review, problems)}
     sequence = review.sequence
     views = {name: review.node_view(name) for name in review.node_names}
     return {
-        "run": review.run.id,
-        "status": review.run.status,
-        "end_safety": review.end_safety,
+        "run": run_object(review.run, review.end_safety),
+        "headline": headline(review, problems),
         "verdict": review.verdict,
         "verdict_counts": review.verdict_counts,
         "dut": review.run.dut_label,
@@ -531,12 +572,12 @@ def run_summary(review: RunReview) -> dict[str, Any]:
         "sequence_problem": review.sequence_problem,
         "points": [
             {
-                "point_index": p.point.point_index,
-                "line_v": p.point.line_v,
-                "line_is_ac": p.point.line_is_ac,
-                "load_a": p.point.load_a,
+                **point_object(
+                    p.point.point_index, p.point.line_v, p.point.line_is_ac, p.point.load_a
+                ),
                 "status": p.point.status,
                 "verdict": p.verdict,
+                "why": why.get(p.point.id),
                 "verdict_reasons": p.point.verdict_reasons,
                 "figures": {name: vars(stats) for name, stats in p.figures.items()},
                 "nodes": {

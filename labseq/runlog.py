@@ -14,7 +14,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from labseq.review import point_label
+from labseq.review import point_label, point_object
 from labseq.store import EVENT_KINDS, PointRecord, Store
 
 
@@ -50,14 +50,16 @@ class LogEntry:
     def as_dict(self) -> dict[str, Any]:
         """Plain data for JSON (SI numbers)."""
         point = self.point
+        where = (
+            dict.fromkeys(("point_index", "line_v", "line_is_ac", "load_a"))
+            if point is None
+            else point_object(point.point_index, point.line_v, point.line_is_ac, point.load_a)
+        )
         return {
             "time": self.time,
             "kind": self.kind,
             "message": self.message,
-            "point_index": None if point is None else point.point_index,
-            "line_v": None if point is None else point.line_v,
-            "line_is_ac": None if point is None else point.line_is_ac,
-            "load_a": None if point is None else point.load_a,
+            **where,
             "data": self.data,
         }
 

@@ -39,3 +39,9 @@ def resolve_run(store: Store, text: str, *, what: str = "RUN") -> int:
         raise InputError(
             f"{what} {text!r}: give a run id (see `labseq runs`) or 'latest'"
         ) from None
+
+
+def default_folder(what: str, run_id: int) -> str:
+    """The folder a command writes run ``run_id`` into when given no --out: ``report-run3``,
+    ``export-run3`` (one pattern for every command)."""
+    return f"{what}-run{run_id}"

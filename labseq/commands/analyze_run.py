@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from collections import Counter
 from pathlib import Path
 
@@ -11,6 +12,7 @@ from labseq.commands._options import option_quantity
 from labseq.commands._store import db_option, resolve_run
 from labseq.locks import store_lock
 from labseq.pipeline import analyse_run, stored_sequence
+from labseq.review import run_object
 from labseq.sequence import load_sequence
 from labseq.store import Store
 
@@ -32,7 +34,10 @@ from labseq.store import Store
     metavar="DURATION",
     help="How long to wait for the store while another labseq process writes it (0: do not).",
 )
-def command(run: str, db_path: Path, sequence_path: Path | None, wait_text: str) -> None:
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object for scripts.")
+def command(
+    run: str, db_path: Path, sequence_path: Path | None, wait_text: str, as_json: bool
+) -> None:
     """Analyse every stored capture of RUN again from its raw codes and re-judge its points.
 
     Use it after changing limits (give the new file with --sequence) or after an analysis
@@ -48,5 +53,14 @@ def command(run: str, db_path: Path, sequence_path: Path | None, wait_text: str)
         count = analyse_run(store, sequence, run_id, only_missing=False)
         verdicts = Counter(p.verdict or "not judged" for p in store.points(run_id))
         store.log_event(run_id, "info", f"re-analysed {count} captures", data=dict(verdicts))
+        record = store.run(run_id)
+    if as_json:
+        click.echo(
+            json.dumps(
+                {"run": run_object(record), "captures_analysed": count, "points": dict(verdicts)},
+                indent=2,
+            )
+        )
+        return
     summary = ", ".join(f"{n} {v}" for v, n in sorted(verdicts.items()))
     click.echo(f"run {run_id}: re-analysed {count} captures; points: {summary}")

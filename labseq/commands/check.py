@@ -19,6 +19,7 @@ from labseq.preflight import (
     plausibility_warnings,
     snubber_loss_estimates,
 )
+from labseq.review import point_object
 from labseq.sequence import Sequence, load_sequence
 from labseq.units import format_si
 
@@ -35,6 +36,7 @@ def check_summary(sequence: Sequence) -> dict[str, Any]:
         "simulated": sequence.bench.simulated,
         "dut": sequence.dut.label,
         "line_is_ac": grid.line_is_ac,
+        "line_frequency_hz": grid.line_frequency_hz if grid.line_is_ac else None,
         "snubber": sequence.snubber.label,
         "nodes": [node.name for node in sequence.nodes],
         "captures_per_point": grid.captures_per_point,
@@ -47,13 +49,7 @@ def check_summary(sequence: Sequence) -> dict[str, Any]:
         ],
         "warnings": loss_method_warnings(sequence) + plausibility_warnings(sequence),
         "points": [
-            {
-                "point_index": index,
-                "line_v": point.line_v,
-                "line_is_ac": grid.line_is_ac,
-                "line_frequency_hz": grid.line_frequency_hz if grid.line_is_ac else None,
-                "load_a": point.load_a,
-            }
+            point_object(index, point.line_v, grid.line_is_ac, point.load_a)
             for index, point in enumerate(sequence.points())
         ],
     }

@@ -7,9 +7,10 @@ from pathlib import Path
 
 import click
 
-from labseq.commands._store import db_option, resolve_run
+from labseq.commands._store import db_option, default_folder, resolve_run
 from labseq.errors import InputError
 from labseq.review import review_run, run_summary
+from labseq.runlog import point_problems, run_log
 from labseq.store import Store
 
 
@@ -42,9 +43,10 @@ def command(run: str, db_path: Path, out_dir: Path | None, output_format: str) -
         run_id = resolve_run(store, run)
         review = review_run(store, run_id)
         if output_format == "json":
-            click.echo(json.dumps(run_summary(review), indent=2, ensure_ascii=False))
+            problems = point_problems(run_log(store, run_id))
+            click.echo(json.dumps(run_summary(review, problems), indent=2, ensure_ascii=False))
             return
-        out_dir = out_dir or Path(f"report-run{run_id}")
+        out_dir = out_dir or Path(default_folder("report", run_id))
         try:
             files = build_run_report(store, review, out_dir)
         except OSError as exc:

@@ -8,7 +8,13 @@ import click
 
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option, resolve_run
-from labseq.commands.run import confirm_hazard, report_outcome, yes_option
+from labseq.commands.run import (
+    confirm_hazard,
+    json_option,
+    outcome_object,
+    report_outcome,
+    yes_option,
+)
 from labseq.pipeline import stored_sequence
 from labseq.progress import Progress
 from labseq.runner import TAKE_OVER_RISK, bench_locks, check_resumable, execute
@@ -28,8 +34,15 @@ from labseq.store import Store
 )
 @trace_option
 @yes_option()
+@json_option()
 def command(
-    run: str, db_path: Path, quiet: bool, take_over: bool, trace_path: Path | None, yes: bool
+    run: str,
+    db_path: Path,
+    quiet: bool,
+    take_over: bool,
+    trace_path: Path | None,
+    yes: bool,
+    as_json: bool,
 ) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
 
@@ -52,4 +65,5 @@ def command(
             if start_note:
                 store.log_event(run_id, "safety", start_note)
             outcome = execute(sequence, store, run_id, progress=progress, latch=latch)
-        report_outcome(outcome, db_path, progress, latch)
+        found = outcome_object(outcome, store, db_path) if as_json else None
+        report_outcome(outcome, db_path, progress, latch, found)

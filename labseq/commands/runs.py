@@ -3,12 +3,12 @@
 from __future__ import annotations
 
 import json
-from dataclasses import asdict
 from pathlib import Path
 
 import click
 
 from labseq.commands._store import db_option
+from labseq.review import run_object
 from labseq.store import Store
 
 
@@ -26,24 +26,7 @@ def command(db_path: Path, as_json: bool) -> None:
             run.id: store.last_safety_check(run.id) for run in runs if run.status == "unsafe-end"
         }
     if as_json:
-        fields = (
-            "id",
-            "started_at",
-            "finished_at",
-            "status",
-            "dut_label",
-            "snubber_label",
-            "bench_kind",
-            "sequence_path",
-            "sequence_sha256",
-            "points_done",
-            "points_total",
-        )
-        rows = [
-            {name: asdict(run)[name] for name in fields}
-            | ({"end_safety": unsafe[run.id]} if run.id in unsafe else {})
-            for run in runs
-        ]
+        rows = [run_object(run, unsafe.get(run.id)) for run in runs]
         click.echo(json.dumps(rows, indent=2))
         return
     if not runs:
