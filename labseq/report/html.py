@@ -65,6 +65,7 @@ p.headline { font-size: 1.15em; font-weight: 600; margin: 0.6em 0; }
 table { border-collapse: collapse; margin: 0.5em 0 1em; font-size: 0.9em; }
 th, td { border: 1px solid #c8c8c8; padding: 0.2em 0.55em; text-align: left; vertical-align: top;
   overflow-wrap: break-word; hyphens: none; }
+td.prose { overflow-wrap: anywhere; min-width: 14em; }
 td:first-child { white-space: nowrap; }
 td.word { white-space: nowrap; }
 td.long { word-break: break-all; }
@@ -102,6 +103,12 @@ def esc(text: object) -> str:
 def cell(text: str, css_class: str) -> Markup:
     """A table cell with a class (e.g. a verdict's colour) around escaped text."""
     return Markup(f'<td class="{esc(css_class)}">{esc(text)}</td>')
+
+
+def prose_cell(text: str) -> Markup:
+    """A cell of running text (a reason, an event) whose long tokens (a resource string) may
+    break anywhere, so a narrow page wraps it rather than scroll."""
+    return cell(text, "prose")
 
 
 def long_cell(text: str) -> Markup:

@@ -32,6 +32,7 @@ from labseq.report.html import (
     Page,
     esc,
     long_cell,
+    prose_cell,
     safety_text,
     table,
     verdict_cell,
@@ -411,7 +412,7 @@ def _instrument_rows(review: RunReview) -> list[list[str]]:
 def _not_passed_rows(review: RunReview, problems: dict[int, str]) -> tuple[list[list[str]], int]:
     listed = not_passed(review, problems)
     rows = [
-        [review.label(item.point), verdict_cell(item.point.verdict), item.why]
+        [review.label(item.point), verdict_cell(item.point.verdict), prose_cell(item.why)]
         for item in listed[:MAX_LISTED_POINTS]
     ]
     return rows, len(listed)
@@ -427,10 +428,16 @@ LOG_COUNTS = {
 }
 
 
-def _log_row(entry: LogEntry | FoldedTimings) -> list[str]:
+def _log_row(entry: LogEntry | FoldedTimings) -> list[Markup | str]:
     if isinstance(entry, FoldedTimings):
-        return [entry.first.time_text, "timing", entry.message, "every point", ""]
-    return [entry.time_text, entry.kind, entry.message, entry.point_text, entry.data_text]
+        return [entry.first.time_text, "timing", prose_cell(entry.message), "every point", ""]
+    return [
+        entry.time_text,
+        entry.kind,
+        prose_cell(entry.message),
+        entry.point_text,
+        prose_cell(entry.data_text),
+    ]
 
 
 def _log_table(page: Page, entries: list[LogEntry], run_id: int) -> None:
