@@ -14,7 +14,8 @@ A capture CSV starts with a preamble of key/value lines: where it comes from (:d
 and the volts at the bottom and top of the scope's screen (:data:`SCREEN_KEYS`), so that
 ``labseq analyze`` of the file knows which samples clipped. A run on the simulated bench says so
 in the first column of ``points.csv`` (:data:`BENCH_COLUMN`, "SIMULATED" on every row), in each
-capture CSV's origin line and in ``captures.npz``'s :data:`RUN_KEY` array.
+capture CSV's origin line and in ``captures.npz``'s :data:`RUN_KEY` array. CSV cells write
+booleans as ``true`` and ``false`` and an absent value as an empty cell.
 
 The NPZ layout (:data:`SCALING_KEY`, :data:`SCALING_DTYPE`, :func:`codes_key`) is defined here
 once; :mod:`labseq.waveform_files` reads a capture back by it (``labseq analyze --capture``).
@@ -28,12 +29,14 @@ import zipfile
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, fields
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from instruments import Waveform
 from labseq.bench_kinds import is_simulated
-from labseq.store import PointRecord, Store, StoredCapture
+from labseq.store import PointRecord, StoredCapture
+from labseq.store_api import RunStore
 
 POINTS_FILE = "points.csv"
 SEQUENCE_FILE = "sequence.toml"
@@ -91,7 +94,15 @@ def volts_key(name: str) -> str:
     return f"{name}_volts"
 
 
-def write_points_csv(store: Store, run_id: int, path: Path) -> int:
+def csv_value(value: object) -> object:
+    """A value as a CSV cell: booleans as ``true``/``false`` (as JSON and most readers spell
+    them), nothing as an empty cell, anything else as itself."""
+    if isinstance(value, bool | np.bool_):
+        return "true" if value else "false"
+    return "" if value is None else value
+
+
+def write_points_csv(store: RunStore, run_id: int, path: Path) -> int:
     """Write the run's points with their figures (per node) to ``path``; return the row count."""
     points = store.points(run_id)
     figures = store.node_figures(run_id)
@@ -123,11 +134,11 @@ def write_points_csv(store: Store, run_id: int, path: Path) -> int:
                 per_node = figures.get(point.id, {}).get(node, {})
                 for name in names[node]:
                     values += [per_node.get(name, {}).get(stat) for stat in _FIGURE_STATS]
-            writer.writerow(["" if value is None else value for value in values])
+            writer.writerow([csv_value(value) for value in values])
     return len(points)
 
 
-def _named_captures(store: Store, run_id: int) -> Iterator[tuple[str, StoredCapture, int]]:
+def _named_captures(store: RunStore, run_id: int) -> Iterator[tuple[str, StoredCapture, int]]:
     index_of_point = {point.id: point.point_index for point in store.points(run_id)}
     nodes = store.node_names(run_id)
     for capture in store.iter_captures(run_id):
@@ -136,7 +147,7 @@ def _named_captures(store: Store, run_id: int) -> Iterator[tuple[str, StoredCapt
         yield capture_name(point_index, capture.capture_index, node), capture, point_index
 
 
-def _run_facts(store: Store, run_id: int) -> dict[str, object]:
+def _run_facts(store: RunStore, run_id: int) -> dict[str, object]:
     """What an export says of the run its captures come from."""
     record = store.run(run_id)
     return {
@@ -146,7 +157,7 @@ def _run_facts(store: Store, run_id: int) -> dict[str, object]:
     }
 
 
-def write_captures_npz(store: Store, run_id: int, path: Path) -> int:
+def write_captures_npz(store: RunStore, run_id: int, path: Path) -> int:
     """Write every capture of the run into one ``.npz``, streaming; return the count."""
     scaling = []
     with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_STORED, allowZip64=True) as archive:
@@ -175,7 +186,7 @@ def write_captures_npz(store: Store, run_id: int, path: Path) -> int:
     return len(scaling)
 
 
-def write_captures_csv(store: Store, run_id: int, directory: Path) -> int:
+def write_captures_csv(store: RunStore, run_id: int, directory: Path) -> int:
     """Write one ``time_s,volts`` CSV per capture into ``directory``; return the count."""
     directory.mkdir(parents=True, exist_ok=True)
     facts = _run_facts(store, run_id)
@@ -208,9 +219,20 @@ class Exported:
     directory: Path
     points: int
     captures: int
+    captures_format: str = "npz"
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain data for JSON: the folder and what it holds."""
+        return {
+            "directory": str(self.directory),
+            "points": self.points,
+            "captures": self.captures,
+            "captures_format": self.captures_format,
+            "files": sorted(p.name for p in self.directory.iterdir()),
+        }
 
 
-def export_run(store: Store, run_id: int, directory: Path, *, captures: str = "npz") -> Exported:
+def export_run(store: RunStore, run_id: int, directory: Path, *, captures: str = "npz") -> Exported:
     """Write run ``run_id`` into ``directory``: ``points.csv``, the sequence file as run, the
     run's record as ``run.json``, and its captures as one NPZ or one CSV each (``captures``, one
     of :data:`CAPTURE_FORMATS`)."""
@@ -228,4 +250,4 @@ def export_run(store: Store, run_id: int, directory: Path, *, captures: str = "n
         count = write_captures_npz(store, run_id, directory / CAPTURES_NPZ)
     else:
         count = write_captures_csv(store, run_id, directory / CAPTURES_DIR)
-    return Exported(directory, points, count)
+    return Exported(directory, points, count, captures)

@@ -45,17 +45,17 @@ class StoredSequenceError(StoreError, InputError):
     exit_code = 3
 
 
-def stored_sequence(run: RunRecord, store_path: Path) -> Sequence:
-    """The sequence ``run`` (of the store at ``store_path``) was made with, validated again from
-    the text stored with it; :class:`StoredSequenceError` when it no longer validates. Its
+def stored_sequence(run: RunRecord, store_location: str | Path) -> Sequence:
+    """The sequence ``run`` (of the store at ``store_location``) was made with, validated again
+    from the text stored with it; :class:`StoredSequenceError` when it no longer validates. Its
     problems name the store and the run, not the file on disk it was once read from (which
     may have changed since, and is not what was checked)."""
     try:
         return parse_sequence(run.sequence_text, run.sequence_path, sha256=run.sequence_sha256)
     except SequenceError as error:
-        problems = "\n".join(report(store_path, error.problems).splitlines()[1:])
+        problems = "\n".join(report(store_location, error.problems).splitlines()[1:])
         raise StoredSequenceError(
-            f"{store_path}: the sequence stored with run {run.id} (read from "
+            f"{store_location}: the sequence stored with run {run.id} (read from "
             f"{run.sequence_path} when the run started) no longer validates; its lines:\n"
             f"{problems}"
         ) from None

@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 from instruments import Waveform
 from instruments.errors import InstrumentError, ScpiError
 from labseq.bench import Bench, SafeReport, lock_names, make_safe, open_bench
-from labseq.errors import LabseqError
+from labseq.errors import EXIT_FAILURE, EXIT_OK, LabseqError
 from labseq.locks import run_locks
 from labseq.pipeline import analyse_or_error, analyse_run, judge_stored_point, store_figures
 from labseq.progress import Progress
@@ -46,7 +46,7 @@ from labseq.units import format_si
 #: How often the scope is asked whether its single acquisition is in.
 ACQUISITION_POLL_S = 0.005
 #: Exit status of a run whose end could not be confirmed safe (it overrides every other one).
-UNSAFE_END_EXIT = 3
+UNSAFE_END_EXIT = EXIT_FAILURE
 
 
 class PointAbort(LabseqError):
@@ -95,12 +95,13 @@ class RunOutcome:
     def exit_code(self) -> int:
         """:data:`UNSAFE_END_EXIT` when the bench could not be confirmed safe; after a signal,
         128 + its number (130 SIGINT, 143 SIGTERM, 129 SIGHUP); 0 when every point is done;
-        else 1."""
+        else 3 (the bench or an instrument failed; 1 is kept for a judgement)."""
         if self.status == "unsafe-end":
             return UNSAFE_END_EXIT
         if self.status == "interrupted":
             return signal_exit_code(self.signal_name or "SIGINT")
-        return 0 if self.status == "finished" and self.points_done == self.points_total else 1
+        complete = self.status == "finished" and self.points_done == self.points_total
+        return EXIT_OK if complete else EXIT_FAILURE
 
 
 class Sweep:

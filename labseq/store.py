@@ -26,11 +26,14 @@ kept per node; ``points.verdict`` is the point's combined verdict, the worst of 
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import socket
 import sqlite3
+import tempfile
 import time
+import uuid
 from collections.abc import Iterable, Iterator, Mapping
 from contextlib import AbstractContextManager
 from dataclasses import dataclass, field, fields
@@ -51,7 +54,7 @@ from labseq.figures import CAPTURE_FIGURES, CAPTURE_METHODS, VERDICTS
 from labseq.process import process_alive, process_start_time
 
 #: Version of the schema; a file with a higher version is refused, a lower one upgraded.
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 #: The node of every capture and figure of a version-1 file, which knew only one node (the
 #: upgrade fills it in). Everything else names its node: the store has no default of its own.
 _VERSION_1_NODE = "primary"
@@ -156,9 +159,9 @@ CREATE TABLE {{table}} (
     PRIMARY KEY (point_id, node)
 ) WITHOUT ROWID"""
 
-#: The runs table as version 3 has it: a run may end "unsafe-end", and it records its owning
+#: The runs table as version 3 had it: a run may end "unsafe-end", and it records its owning
 #: process's start time.
-_RUNS_TABLE = f"""
+_RUNS_TABLE_3 = f"""
 CREATE TABLE {{table}} (
     id INTEGER PRIMARY KEY,
     sequence_text TEXT NOT NULL,
@@ -182,6 +185,32 @@ _RUN_COLUMNS_2 = (
     "id, sequence_text, sequence_sha256, sequence_path, dut_label, snubber_label, bench_kind, "
     "instruments, software_version, status, started_at, finished_at, notes, pid, host"
 )
+#: The runs table as version 4 has it: version 3's plus the run's UUID (the same in every store
+#: the run is merged or published into) and the bench it ran on (:func:`bench_identity`).
+_RUNS_TABLE_4 = f"""
+CREATE TABLE {{table}} (
+    id INTEGER PRIMARY KEY,
+    sequence_text TEXT NOT NULL,
+    sequence_sha256 TEXT NOT NULL,
+    sequence_path TEXT NOT NULL,
+    dut_label TEXT NOT NULL,
+    snubber_label TEXT NOT NULL,
+    bench_kind TEXT NOT NULL,
+    instruments TEXT NOT NULL DEFAULT '{{{{}}}}',
+    software_version TEXT NOT NULL,
+    status TEXT NOT NULL CHECK (status IN ({_sql_list(RUN_STATUSES)})),
+    started_at TEXT NOT NULL,
+    finished_at TEXT,
+    notes TEXT NOT NULL DEFAULT '',
+    pid INTEGER,
+    host TEXT,
+    process_started REAL,
+    uuid TEXT NOT NULL CHECK (length(uuid) = 36),
+    bench_host TEXT NOT NULL DEFAULT '',
+    bench_id TEXT NOT NULL DEFAULT ''
+)"""
+#: The columns of a version-3 runs table, kept when version 4 rebuilds it.
+_RUN_COLUMNS_3 = _RUN_COLUMNS_2 + ", process_started"
 
 #: The version-2 tables, frozen as that version wrote them; a new file gets these and then every
 #: later upgrade step (as an older file does), so new and upgraded files have the same tables.
@@ -307,7 +336,7 @@ def _upgrade_to_3() -> list[str]:
             "ALTER TABLE captures ADD COLUMN codec TEXT NOT NULL DEFAULT 'raw' "
             f"CHECK (codec IN ({_sql_list(CODECS)}))"
         ]
-        + _rebuilt(_RUNS_TABLE, "runs", _RUN_COLUMNS_2)
+        + _rebuilt(_RUNS_TABLE_3, "runs", _RUN_COLUMNS_2)
         + [
             "ALTER TABLE capture_figures ADD COLUMN natural_frequency_hz REAL",
             "ALTER TABLE capture_figures ADD COLUMN real_pole_decay_rate_per_s REAL",
@@ -316,10 +345,93 @@ def _upgrade_to_3() -> list[str]:
     )
 
 
+def _upgrade_to_4() -> list[str]:
+    """Statements that bring a version-3 file to version 4 (runs gathered from many benches):
+    every run gets a UUID (for a run stored so far, the connection's ``labseq_run_uuid()`` of
+    what the run recorded, :func:`upgraded_run_uuid`) and the bench it ran on (its owner's host
+    and ``labseq_bench_id()`` of that host and the recorded instruments); the foreign keys that
+    reads follow get indexes (a run's captures and its events; a point's captures and a run's
+    points already have theirs, the leading columns of their UNIQUE constraints)."""
+    return [
+        _RUNS_TABLE_4.format(table="runs_new"),
+        f"INSERT INTO runs_new ({_RUN_COLUMNS_3}, uuid, bench_host, bench_id) "
+        f"SELECT {_RUN_COLUMNS_3}, "
+        "labseq_run_uuid(id, started_at, sequence_sha256, host, pid, process_started), "
+        "COALESCE(host, ''), "
+        "labseq_bench_id(COALESCE(host, ''), instruments) FROM runs",
+        "DROP TABLE runs",
+        "ALTER TABLE runs_new RENAME TO runs",
+        "CREATE UNIQUE INDEX runs_uuid ON runs (uuid)",
+        "CREATE INDEX captures_run ON captures (run_id, node)",
+        "CREATE INDEX events_run ON events (run_id)",
+    ]
+
+
 def _upgrade_statements(version: int) -> list[str]:
     """Every statement that brings a file of ``version`` to :data:`SCHEMA_VERSION`: the steps
     from each version to the next, in order (a new step goes at the end)."""
-    return (_upgrade_to_2() if version < 2 else []) + (_upgrade_to_3() if version < 3 else [])
+    return (
+        (_upgrade_to_2() if version < 2 else [])
+        + (_upgrade_to_3() if version < 3 else [])
+        + (_upgrade_to_4() if version < 4 else [])
+    )
+
+
+def new_run_uuid() -> str:
+    """A new run's UUID: version 4 (random), as 36 characters of lower-case text."""
+    return str(uuid.uuid4())
+
+
+#: The namespace of the UUIDs given to runs stored before version 4 (a random UUID, fixed here).
+_UPGRADED_RUN_NAMESPACE = uuid.UUID("5f0c1d2e-8b7a-4c39-9e61-2a4d3b8c7f10")
+
+
+def upgraded_run_uuid(
+    run_id: int,
+    started_at: str,
+    sequence_sha256: str,
+    host: str | None,
+    pid: int | None,
+    process_started: float | None,
+) -> str:
+    """The UUID of a run stored before version 4: a name-based UUID (version 5, RFC 4122 4.3)
+    of what the run recorded — its id, start time, sequence digest and owner. Two copies of the
+    same older file, each upgraded, or one read several times through an upgraded copy
+    (``Store(read_only=True)``), give each run the same UUID, so merging them keeps one."""
+    name = json.dumps([run_id, started_at, sequence_sha256, host, pid, process_started])
+    return str(uuid.uuid5(_UPGRADED_RUN_NAMESPACE, name))
+
+
+#: The ``*IDN?`` fields that name an instrument (IEEE 488.2 10.14): its firmware may change
+#: and its resource string (a port, an address) is how it is reached, not which one it is.
+_IDENTITY_FIELDS = ("manufacturer", "model", "serial")
+
+
+def bench_identity(host: str, instruments: Mapping[str, Any]) -> str:
+    """The bench a run ran on, as ``HOST:DIGEST``: the host that drove it and the first 12 hex
+    digits of the SHA-256 of its instruments' identities — one line ``role=manufacturer,model,
+    serial`` per role, in role order, joined by newlines (UTF-8). The same instruments on the
+    same host give the same identity whatever their firmware or address; a run that recorded no
+    instruments yet has the digest of no lines."""
+    lines = []
+    for role in sorted(instruments):
+        identity = instruments[role]
+        if isinstance(identity, Mapping):
+            values = [str(identity.get(name, "")) for name in _IDENTITY_FIELDS]
+        else:  # an identity kept as the *IDN? reply itself
+            values = [part.strip() for part in str(identity).split(",")][: len(_IDENTITY_FIELDS)]
+        lines.append(f"{role}={','.join(values)}")
+    digest = hashlib.sha256("\n".join(lines).encode("utf-8")).hexdigest()
+    return f"{host}:{digest[:12]}"
+
+
+def _bench_identity_sql(host: str | None, instruments: str | None) -> str:
+    """:func:`bench_identity` for SQL (``labseq_bench_id``), of the stored instruments JSON."""
+    try:
+        recorded = json.loads(instruments or "{}")
+    except ValueError:
+        recorded = {}
+    return bench_identity(host or "", recorded if isinstance(recorded, dict) else {})
 
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
@@ -419,9 +531,14 @@ class PointReadings:
 
 @dataclass(frozen=True)
 class RunRecord:
-    """One run as stored, with its point counts."""
+    """One run as stored, with its point counts. ``id`` numbers it in this store only; ``uuid``
+    names it in every store it is merged or published into, ``bench_id`` is the bench it ran on
+    (:func:`bench_identity` of ``bench_host`` and the instruments)."""
 
     id: int
+    uuid: str
+    bench_host: str
+    bench_id: str
     status: str
     started_at: str
     finished_at: str | None
@@ -523,6 +640,32 @@ def _record(cls: type, row: Mapping[str, Any], **overrides: Any) -> Any:
 # --------------------------------------------------------------------------- opening
 
 
+def _connect_read_only(path: Path) -> sqlite3.Connection:
+    """A connection that reads ``path`` and writes nothing, to it or beside it.
+
+    A store at rest is in the rollback-journal mode its last writer leaves it in
+    (:meth:`Store.close`) and opens with ``mode=ro``, even where this user may not write (an
+    archive share, another user's folder). A file left in WAL mode needs the ``-shm`` index
+    beside it, which SQLite creates where it can; where it cannot and no write-ahead log with
+    commits is beside the file, it is opened ``immutable`` (there is nothing to miss)."""
+    uri = path.resolve().as_uri()
+    conn = sqlite3.connect(f"{uri}?mode=ro", uri=True, timeout=30.0, isolation_level=None)
+    try:
+        conn.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
+    except sqlite3.OperationalError:
+        conn.close()
+        wal = path.with_name(f"{path.name}-wal")
+        if wal.is_file() and wal.stat().st_size > 0:
+            raise StoreFileError(
+                f"{path}: cannot be read here: its last commits are in {wal.name}, which SQLite "
+                f"reads only where it may create {path.name}-shm; copy both files to a folder "
+                "you may write, or open the store once with labseq where it was written"
+            ) from None
+        conn = sqlite3.connect(f"{uri}?immutable=1", uri=True, isolation_level=None)
+    conn.execute("PRAGMA query_only = ON")
+    return conn
+
+
 def _inspect_existing(path: Path) -> int | None:
     """Check an existing file without changing it: its schema version, or None if it is empty.
 
@@ -533,7 +676,7 @@ def _inspect_existing(path: Path) -> int | None:
     if header != _SQLITE_MAGIC:
         raise StoreFileError(f"{path}: not a SQLite database; give a labseq store (.sqlite)")
     try:
-        conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
+        conn = _connect_read_only(path)
         try:
             tables = [row[0] for row in conn.execute("SELECT name FROM sqlite_master")]
             if not tables:
@@ -561,21 +704,42 @@ def _inspect_existing(path: Path) -> int | None:
     return row[0]
 
 
+def _add_functions(conn: sqlite3.Connection) -> None:
+    """The SQL functions the upgrade steps use: ``labseq_run_uuid(...)``
+    (:func:`upgraded_run_uuid`) and ``labseq_bench_id(host, instruments_json)``
+    (:func:`bench_identity`)."""
+    conn.create_function("labseq_run_uuid", 6, upgraded_run_uuid, deterministic=True)
+    conn.create_function("labseq_bench_id", 2, _bench_identity_sql, deterministic=True)
+
+
 class Store:
     """A labseq SQLite store; use as a context manager.
 
     ``Store(path)`` opens the file, creating it when missing unless ``create=False`` (then a
     missing file is a :class:`StoreFileError`, exit status 2). ``codec`` is how the captures
     stored from now on keep their codes (one of :data:`CODECS`); every codec reads.
+
+    ``read_only=True`` opens an existing store for reading and never writes to it or beside it
+    (:func:`_connect_read_only`), so a store that this user may not write reads all the same; a
+    file of an older schema version is read from an upgraded copy in a temporary file, deleted
+    on close. A writer leaves the file at rest in rollback-journal mode when it closes, so that
+    the plain ``sqlite3`` shell, or any reader, opens it read-only with nothing beside it.
     """
 
     def __init__(
-        self, path: str | Path, *, create: bool = True, codec: str = DEFAULT_CODEC
+        self,
+        path: str | Path,
+        *,
+        create: bool = True,
+        codec: str = DEFAULT_CODEC,
+        read_only: bool = False,
     ) -> None:
         if codec not in CODECS:
             raise ValueError(f"codec {codec!r}: give one of {', '.join(CODECS)}")
         self.path = Path(path)
         self.codec = codec
+        self.read_only = read_only
+        self._copy: Path | None = None  # the upgraded copy an older file is read from
         self._compressor = zstandard.ZstdCompressor(level=ZSTD_LEVEL)
         self._decompressor = zstandard.ZstdDecompressor()
         try:
@@ -585,11 +749,14 @@ class Store:
         if kind is not None:
             raise StoreFileError(f"{self.path}: is {kind}, not a regular file; give a store file")
         exists = self.path.is_file() and self.path.stat().st_size > 0
-        if not exists and not create:
+        if not exists and (read_only or not create):
             raise StoreFileError(f"{self.path}: no such store; give --db the path of a run's file")
         version = _inspect_existing(self.path) if exists else None
         try:
-            self._open(version)
+            if read_only:
+                self._open_for_reading(version)
+            else:
+                self._open(version)
         except sqlite3.Error as error:
             raise store_failure(self.path, error) from None
 
@@ -597,6 +764,7 @@ class Store:
         """Connect, set the pragmas, and create or upgrade the tables."""
         conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_S, isolation_level=None)
         conn.row_factory = sqlite3.Row
+        _add_functions(conn)
         self.db = sqlite_utils.Database(conn, execute_plugins=False)
         if version is None:
             conn.execute(f"PRAGMA page_size = {PAGE_SIZE}")
@@ -619,6 +787,32 @@ class Store:
         elif version < SCHEMA_VERSION:
             self._upgrade(version)
 
+    def _open_for_reading(self, version: int | None) -> None:
+        """Open the file read-only; one of an older version through an upgraded copy."""
+        if version is None:
+            raise StoreFileError(f"{self.path}: an empty SQLite database, not a labseq store")
+        conn = _connect_read_only(self.path)
+        if version < SCHEMA_VERSION:
+            handle, name = tempfile.mkstemp(prefix="labseq-read-", suffix=".sqlite")
+            os.close(handle)
+            self._copy = Path(name)
+            copy = sqlite3.connect(self._copy, isolation_level=None)
+            try:
+                conn.backup(copy)
+            finally:
+                conn.close()
+            conn = copy
+        conn.row_factory = sqlite3.Row
+        _add_functions(conn)
+        self.db = sqlite_utils.Database(conn, execute_plugins=False)
+        if version < SCHEMA_VERSION:
+            try:
+                self._upgrade(version)
+            except BaseException:
+                self.close()
+                raise
+        conn.execute("PRAGMA query_only = ON")
+
     def _upgrade(self, version: int) -> None:
         """Bring a file written by an older labseq to :data:`SCHEMA_VERSION`, in one transaction
         (a failure leaves it as it was). Foreign keys are off meanwhile, as SQLite requires for
@@ -639,6 +833,11 @@ class Store:
         finally:
             conn.execute("PRAGMA foreign_keys = ON")
 
+    @property
+    def location(self) -> str:
+        """The file's path, for messages."""
+        return str(self.path)
+
     def __enter__(self) -> Store:
         return self
 
@@ -654,8 +853,20 @@ class Store:
             raise store_failure(self.path, error) from error
 
     def close(self) -> None:
-        """Close the file (SQLite folds the write-ahead log back into it)."""
+        """Close the file. A writer first leaves it at rest: the write-ahead log folded into
+        it and rollback-journal mode, so that it reads with nothing beside it (see the class).
+        While another connection has the file open that cannot be done, and is left to the
+        last writer that closes it."""
+        conn = self.db.conn
+        if not self.read_only and not conn.in_transaction:
+            try:
+                conn.execute("PRAGMA busy_timeout = 0")  # never wait for another connection
+                conn.execute("PRAGMA journal_mode = DELETE")
+            except sqlite3.OperationalError:
+                pass
         self.db.close()
+        if self._copy is not None:
+            self._copy.unlink(missing_ok=True)
 
     # ------------------------------------------------------------------- runs
 
@@ -687,6 +898,8 @@ class Store:
                     "started_at": _now_iso(),
                     "notes": notes,
                     **_owner(),
+                    **_bench(instruments or {}),
+                    "uuid": new_run_uuid(),
                 }
             )
         return int(table.last_pk)
@@ -714,10 +927,13 @@ class Store:
         return True
 
     def set_run_instruments(self, run_id: int, instruments: Mapping[str, Any]) -> None:
-        """Record the identities of the instruments the run is using (on start and on resume)."""
+        """Record the identities of the instruments the run is using (on start and on resume),
+        and so the bench it runs on: this host and those instruments."""
         self._require_run(run_id)
         with self.db.atomic():
-            self.db["runs"].update(run_id, {"instruments": json.dumps(dict(instruments))})
+            self.db["runs"].update(
+                run_id, {"instruments": json.dumps(dict(instruments)), **_bench(instruments)}
+            )
 
     def transaction(self) -> AbstractContextManager[Any]:
         """A block whose writes commit together (nested blocks become savepoints): one disk
@@ -747,6 +963,63 @@ class Store:
         if not rows:
             raise self._unknown_run(run_id)
         return self._run_record(rows[0])
+
+    def runs_by_uuid(self, prefix: str) -> list[RunRecord]:
+        """The runs whose UUID starts with ``prefix`` (lower-case hex digits and dashes; the
+        whole UUID finds one run), oldest first."""
+        if not prefix or prefix.strip("0123456789abcdef-"):
+            raise ValueError(f"UUID prefix {prefix!r}: lower-case hex digits and dashes only")
+        # "~" sorts after every hex digit and dash: the range is the prefix's, on runs_uuid
+        query = _RUNS_QUERY + " WHERE r.uuid >= ? AND r.uuid < ? ORDER BY r.id"
+        return [self._run_record(row) for row in self.db.query(query, [prefix, prefix + "~"])]
+
+    def import_run(self, source: Store, run_id: int) -> int:
+        """Copy run ``run_id`` of the SQLite store ``source`` here with everything stored with
+        it — its row (UUID and bench included), points, captures (their codes as stored, byte
+        for byte), capture and point figures, node verdicts and events — in ONE transaction;
+        return its id here (ids are this store's own). The caller makes sure the run's UUID is
+        not here yet: the unique index refuses a second copy."""
+        read = source.db
+        with self.db.atomic():
+            [run] = read["runs"].rows_where("id = ?", [run_id])
+            new_run_id = self._copy_row("runs", run, id=None)
+            points: dict[int, int] = {}
+            for point in read["points"].rows_where("run_id = ?", [run_id], order_by="id"):
+                points[point["id"]] = self._copy_row("points", point, id=None, run_id=new_run_id)
+            query = "SELECT id FROM captures WHERE run_id = ? ORDER BY id"  # no codes sorted
+            for (capture_id,) in read.execute(query, [run_id]).fetchall():
+                [capture] = read["captures"].rows_where("id = ?", [capture_id])
+                new_capture_id = self._copy_row(
+                    "captures",
+                    capture,
+                    id=None,
+                    run_id=new_run_id,
+                    point_id=points[capture["point_id"]],
+                )
+                for figures in read["capture_figures"].rows_where("capture_id = ?", [capture_id]):
+                    self._copy_row("capture_figures", figures, capture_id=new_capture_id)
+            of_run = "point_id IN (SELECT id FROM points WHERE run_id = ?)"
+            for table in ("point_figures", "node_verdicts"):
+                for row in read[table].rows_where(of_run, [run_id]):
+                    self._copy_row(table, row, point_id=points[row["point_id"]])
+            for event in read["events"].rows_where("run_id = ?", [run_id], order_by="id"):
+                point_id = event["point_id"]
+                self._copy_row(
+                    "events",
+                    event,
+                    id=None,
+                    run_id=new_run_id,
+                    point_id=None if point_id is None else points[point_id],
+                )
+        return new_run_id
+
+    def _copy_row(self, table: str, row: Mapping[str, Any], **changes: Any) -> int:
+        """Insert ``row`` of another store into ``table`` (one of this module's names) with
+        ``changes`` (an ``id`` of None: a new one here); return its rowid (where it has one)."""
+        values = {**row, **changes}
+        if values.get("id", 0) is None:
+            del values["id"]
+        return int(self.db[table].insert(values).last_rowid or 0)
 
     def mark_abandoned_runs(self) -> list[int]:
         """Mark "interrupted" the runs left "running" by a process of this host that is gone,
@@ -976,6 +1249,16 @@ class Store:
         for node, point_id, value in rows:
             methods[(node, point_id)] = (*methods.get((node, point_id), ()), value)
         return methods
+
+    def clipped_points(self, run_id: int) -> set[tuple[str, int]]:
+        """The (node, point id)s of a run where at least one capture clipped."""
+        rows = self.db.execute(
+            "SELECT DISTINCT c.node, c.point_id FROM captures c "
+            "JOIN capture_figures f ON f.capture_id = c.id "
+            "WHERE c.run_id = ? AND f.clipped = 1",
+            [run_id],
+        ).fetchall()
+        return {(node, point_id) for node, point_id in rows}
 
     def capture_figures(self, capture_id: int) -> dict[str, Any] | None:
         """The stored figures of one capture (edges decoded), or None before analysis."""
@@ -1214,6 +1497,12 @@ SELECT r.*,
     (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id) AS points_total,
     (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id AND p.status = 'done') AS points_done
 FROM runs r"""
+
+
+def _bench(instruments: Mapping[str, Any]) -> dict[str, str]:
+    """The columns that name the bench a run is on: this host and ``instruments``."""
+    host = socket.gethostname()
+    return {"bench_host": host, "bench_id": bench_identity(host, instruments)}
 
 
 def run_abandoned(run: RunRecord) -> bool:

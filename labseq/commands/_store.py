@@ -10,7 +10,8 @@ import click
 
 from instruments.text import quoted
 from labseq.errors import InputError
-from labseq.store import Store
+from labseq.store import Store, UnknownRunError
+from labseq.store_api import RunStore
 
 DEFAULT_DB = "labseq.sqlite"
 #: The largest run id a store can hold: SQLite's row ids are signed 64-bit integers.
@@ -29,22 +30,66 @@ def db_option(help_text: str = "The SQLite store.") -> Callable[[Any], Any]:
     )
 
 
-def resolve_run(store: Store, text: str, *, what: str = "RUN") -> int:
-    """A run named on the command line: its id, or ``latest`` for the newest run in the store."""
-    if text.strip().lower() == "latest":
+def read_store(db_path: Path) -> RunStore:
+    """The store ``--db`` names, opened for reading only (the read commands' one way in)."""
+    return Store(db_path, read_only=True)
+
+
+#: The fewest hex digits of a UUID that name a run on the command line.
+UUID_PREFIX_MIN = 8
+
+
+def resolve_run(store: RunStore, text: str, *, what: str = "RUN") -> int:
+    """A run named on the command line: its id in this store, its UUID or the first
+    :data:`UUID_PREFIX_MIN` or more hex digits of it, or ``latest`` for the newest run in the
+    store. Digits alone are an id when the store has a run of that id."""
+    given = text.strip().lower()
+    if given == "latest":
         runs = store.runs()
         if not runs:
-            raise InputError(f"{store.path}: {what} latest: this store holds no runs")
+            raise InputError(f"{store.location}: {what} latest: this store holds no runs")
         return runs[-1].id
-    try:
-        run_id = int(text)
-    except ValueError:
+    hint = (
+        f"give a run id, a run's UUID or its first {UUID_PREFIX_MIN}+ hex digits (see "
+        "`labseq runs`), or 'latest'"
+    )
+    if given.isdigit():
+        run_id = int(given)
+        in_range = 0 < run_id <= MAX_RUN_ID
+        if in_range and (len(given) < UUID_PREFIX_MIN or _has_run(store, run_id)):
+            return run_id
+        if not in_range and len(given) < UUID_PREFIX_MIN:
+            raise InputError(
+                f"{what} {quoted(text)}: a run id is a whole number from 1 to {MAX_RUN_ID} "
+                "(SQLite's largest row id); see `labseq runs` for the ids in this store"
+            )
+    digits = given.replace("-", "")
+    if len(digits) < UUID_PREFIX_MIN or given.strip("0123456789abcdef-"):
+        raise InputError(f"{what} {quoted(text)}: {hint}")
+    found = store.runs_by_uuid(given)
+    if len(found) == 1:
+        return found[0].id
+    if not found:
         raise InputError(
-            f"{what} {quoted(text)}: give a run id (see `labseq runs`) or 'latest'"
-        ) from None
-    if not 0 < run_id <= MAX_RUN_ID:
-        raise InputError(
-            f"{what} {quoted(text)}: a run id is a whole number from 1 to {MAX_RUN_ID} (SQLite's "
-            "largest row id); see `labseq runs` for the ids in this store"
+            f"{store.location}: {what} {quoted(text)}: no run has that id, and no run's UUID "
+            f"starts so; {hint}"
         )
-    return run_id
+    names = ", ".join(f"{run.id} ({run.uuid})" for run in found[:5])
+    raise InputError(
+        f"{store.location}: {what} {quoted(text)} starts the UUID of {len(found)} runs: {names}; "
+        "give more of its digits"
+    )
+
+
+def _has_run(store: RunStore, run_id: int) -> bool:
+    try:
+        store.run(run_id)
+    except UnknownRunError:
+        return False
+    return True
+
+
+def default_folder(what: str, run_id: int) -> str:
+    """The folder a command writes run ``run_id`` into when given no --out: ``report-run3``,
+    ``export-run3`` (one pattern for every command)."""
+    return f"{what}-run{run_id}"

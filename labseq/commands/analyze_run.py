@@ -2,18 +2,22 @@
 
 from __future__ import annotations
 
+import json
 import math
+import sys
 from collections import Counter
 from pathlib import Path
 
 import click
 
+from labseq.commands._gates import run_verdict, strict_failure, strict_option
 from labseq.commands._options import option_quantity
 from labseq.commands._store import db_option, resolve_run
-from labseq.errors import InputError
+from labseq.errors import EXIT_JUDGED, InputError
 from labseq.locks import store_lock
 from labseq.pipeline import analyse_run, stored_sequence
-from labseq.runlog import record_judgement
+from labseq.review import run_object
+from labseq.runlog import JUDGEMENT_KEY, judged_limits
 from labseq.sequence import Sequence, load_sequence
 from labseq.store import Store
 from labseq.units import format_si
@@ -42,8 +46,16 @@ from labseq.units import format_si
     metavar="DURATION",
     help="How long to wait for the store while another labseq process writes it (0: do not).",
 )
+@strict_option
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object for scripts.")
 def command(
-    run: str, db_path: Path, sequence_path: Path | None, allow_other_grid: bool, wait_text: str
+    run: str,
+    db_path: Path,
+    sequence_path: Path | None,
+    allow_other_grid: bool,
+    wait_text: str,
+    strict: bool,
+    as_json: bool,
 ) -> None:
     """Analyse every stored capture of RUN again from its raw codes and re-judge its points.
 
@@ -65,7 +77,7 @@ def command(
         count = analyse_run(store, sequence, run_id, only_missing=False)
         verdicts = Counter(p.verdict or "not judged" for p in store.points(run_id))
         summary = ", ".join(f"{n} {v}" for v, n in sorted(verdicts.items()))
-        record_judgement(
+        _record_judgement(
             store,
             run_id,
             sequence,
@@ -73,10 +85,28 @@ def command(
             same_grid=same_grid,
             summary=f"re-analysed {count} captures; points: {summary}",
         )
-    against = f" against {sequence_path}" if sequence_path else ""
-    click.echo(f"run {run_id}: re-analysed {count} captures{against}; points: {summary}")
-    if not same_grid:
-        click.echo(f"note: {sequence_path}'s grid is not the run's (--allow-other-grid)")
+        verdict = run_verdict(store, run_id)
+        record = store.run(run_id)
+    if as_json:
+        click.echo(
+            json.dumps(
+                {
+                    "run": run_object(record),
+                    "captures_analysed": count,
+                    "points": dict(verdicts),
+                    "sequence_path": None if sequence_path is None else str(sequence_path),
+                    "same_grid": same_grid,
+                },
+                indent=2,
+            )
+        )
+    else:
+        against = f" against {sequence_path}" if sequence_path else ""
+        click.echo(f"run {run_id}: re-analysed {count} captures{against}; points: {summary}")
+        if not same_grid:
+            click.echo(f"note: {sequence_path}'s grid is not the run's (--allow-other-grid)")
+    if strict and strict_failure(run_id, verdict):
+        sys.exit(EXIT_JUDGED)
 
 
 def _grid_text(points: list[tuple[float, float]]) -> str:
@@ -113,4 +143,32 @@ def _check_grid(store: Store, run_id: int, sequence: Sequence, *, allow_other: b
         f"{sequence.path}: its grid ({_grid_text(file_points)}) is not run {run_id}'s "
         f"({_grid_text(run_points)}){kinds}; judging the run against it would mix two tests. "
         "Give --allow-other-grid to judge the run's own points against this file's limits anyway"
+    )
+
+
+def _record_judgement(
+    store: Store,
+    run_id: int,
+    sequence: Sequence,
+    *,
+    source: str,
+    same_grid: bool,
+    summary: str,
+) -> None:
+    """Record in the run's log that its captures were judged again against ``sequence``
+    (``source``: "stored" or "file"), with that sequence's file, hash and limits."""
+    where = "its own stored sequence" if source == "stored" else f"{sequence.path}"
+    store.log_event(
+        run_id,
+        "info",
+        f"re-judged against {where} (sha256 {sequence.sha256[:12]}): {summary}",
+        data={
+            JUDGEMENT_KEY: {
+                "source": source,
+                "sequence_path": str(Path(sequence.path).resolve()),
+                "sequence_sha256": sequence.sha256,
+                "same_grid": same_grid,
+                "limits": judged_limits(sequence),
+            }
+        },
     )

@@ -18,7 +18,7 @@ from labseq.analysis import (
 )
 from labseq.analysis.design import PartSet, leakage_energy_loss_w
 from labseq.commands._options import option_fraction_or_quantity, option_quantity
-from labseq.commands._store import db_option, resolve_run
+from labseq.commands._store import db_option, read_store, resolve_run
 from labseq.errors import InputError
 from labseq.units import format_si
 
@@ -69,6 +69,15 @@ CLAMP_LINES = (
     ("clamp loss", "clamp_loss_w", "W"),
     ("clamp resistor", "clamp_r_ohm", "Ω"),
     ("clamp capacitor", "clamp_c_f", "F"),
+)
+
+
+#: Why a ring frequency alone proposes nothing, and what would do.
+NO_NETWORK = (
+    "design: a ring frequency alone cannot size a snubber: L and Cpar need one more fact. Give "
+    "--leakage (the known leakage inductance), or --added-cap with --ring-freq-added (the ring "
+    "with a known capacitance added), or --damping with --snubber-r and --snubber-c (the ring "
+    "measured with that damper fitted); or --run RUN for a stored run"
 )
 
 
@@ -220,6 +229,8 @@ def command(
             )
     except DesignInputError as exc:
         raise InputError(f"design: {_with_option_names(str(exc))}") from None
+    if proposal is not None and proposal.c_par_f is None:
+        raise InputError(NO_NETWORK)
 
     tool = leakage_w = None
     if proposal is not None and clamp is not None and proposal.loss_w is not None:
@@ -256,7 +267,6 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
     """``design --run``: one proposal per measured point of a stored run, worst peak first, and
     one part set for all of them (:func:`labseq.proposals.propose_for_run`)."""
     from labseq.proposals import propose_for_run
-    from labseq.store import Store
 
     given = {k: option_quantity(options[k], unit, f"--{k.replace('_', '-')}") for k, unit in
              (("loss_budget", "W"), ("cs", "F"))}  # fmt: skip
@@ -266,7 +276,7 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
                 f"design --run: --{name.replace('_', '-')} is not used with --run: every point's "
                 "L and Cpar come from its ring measured with the run's own damper"
             )
-    with Store(db_path, create=False) as store:
+    with read_store(db_path) as store:
         run_id = resolve_run(store, run)
         try:
             found = propose_for_run(

@@ -6,9 +6,16 @@ from pathlib import Path
 
 import click
 
+from labseq.commands._gates import run_verdict, strict_option
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option, resolve_run
-from labseq.commands.run import confirm_hazard, report_outcome, yes_option
+from labseq.commands.run import (
+    confirm_hazard,
+    json_option,
+    outcome_object,
+    report_outcome,
+    yes_option,
+)
 from labseq.pipeline import stored_sequence
 from labseq.progress import Progress
 from labseq.runner import TAKE_OVER_RISK, bench_locks, check_resumable, execute
@@ -30,6 +37,8 @@ from labseq.visa_library import allow_option, sequence_visa_library
 @trace_option
 @yes_option()
 @allow_option()
+@strict_option
+@json_option()
 def command(
     run: str,
     db_path: Path,
@@ -38,6 +47,8 @@ def command(
     trace_path: Path | None,
     yes: bool,
     allowed_libraries: tuple[Path, ...],
+    strict: bool,
+    as_json: bool,
 ) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
 
@@ -63,4 +74,6 @@ def command(
             if start_note:
                 store.log_event(run_id, "safety", start_note)
             outcome = execute(sequence, store, run_id, progress=progress, latch=latch)
-        report_outcome(outcome, db_path, progress, latch)
+        verdict = run_verdict(store, run_id) if strict else None
+        found = outcome_object(outcome, store, db_path) if as_json else None
+        report_outcome(outcome, db_path, progress, latch, verdict, found)
