@@ -574,3 +574,25 @@ def test_analyze_run_refuses_another_grid_unless_asked(db: Path, base_run, tmp_p
     )
     assert code == 0 and "grid is not the run's" in out, err
     assert not judgements(Store(db), 1)[-1].same_grid
+
+
+def test_a_long_or_escaped_reply_is_quoted_short_and_inert() -> None:
+    from instruments.errors import ReplyFormatError
+    from instruments.scpi import ScpiInstrument
+
+    class Stub:
+        label = "meter"
+
+        def __init__(self, reply: str) -> None:
+            self.reply = reply
+
+        def query(self, command: str) -> str:
+            return self.reply
+
+        def reply_error(self, text: str) -> ReplyFormatError:
+            return ReplyFormatError(f"{self.label}: {text}")
+
+    with pytest.raises(ReplyFormatError) as caught:
+        ScpiInstrument.query_float(Stub("\x1b[2J" + "7" * 1_000_000), "MEAS:VOLT?")
+    message = str(caught.value)
+    assert len(message) < 200 and "\x1b" not in message and "\\x1b[2J" in message
