@@ -279,7 +279,7 @@ def review_run(store: RunStore, run_id: int) -> RunReview:
     """Read run ``run_id`` and its points and work out its verdict, grid and worst points."""
     run = store.run(run_id)
     try:
-        sequence, problem = stored_sequence(run), None
+        sequence, problem = stored_sequence(run, store.location), None
     except InputError as exc:  # the stored text no longer validates (a DUT file has moved)
         sequence, problem = None, str(exc)
     stored_nodes = store.node_names(run_id)

@@ -3,7 +3,9 @@
 The runner records every event as it happens (:meth:`labseq.store.Store.log_event`): the bench
 made safe before and after the sweep, the source switched on, instrument errors and retries,
 skipped points, each point's time, signals and how the run ended. ``labseq log RUN`` prints
-them and the run report lists them; both read them here.
+them and the run report lists them; both read them here. ``labseq analyze-run`` records each
+judging of a run's captures as an "info" event (:func:`record_judgement`); :func:`judgements`
+reads them back, with the file and limits each used.
 """
 
 from __future__ import annotations
@@ -14,6 +16,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from labseq.review import point_label
+from labseq.sequence import Sequence
 from labseq.store import EVENT_KINDS, PointRecord
 from labseq.store_api import RunStore
 
@@ -95,3 +98,59 @@ def entry_line(entry: LogEntry) -> str:
     return f"{entry.time_text}  {entry.kind:<10} {entry.message}" + (
         f"  [{extra}]" if extra else ""
     )
+
+
+#: The key of an event's data that records a judging of the run (``labseq analyze-run``).
+JUDGEMENT_KEY = "judgement"
+
+
+@dataclass(frozen=True)
+class Judgement:
+    """One judging of a run's stored captures by ``labseq analyze-run``: when, against which
+    sequence (the run's own, or another file) and its limits per node."""
+
+    time: str  # UTC, ISO 8601
+    source: str  # "stored" (the sequence the run was made with) or "file"
+    sequence_path: str
+    sequence_sha256: str
+    same_grid: bool
+    limits: dict[str, dict[str, Any]]  # node → limit name → value (SI), rating and derating
+
+    @property
+    def rejudged(self) -> bool:
+        """Judged against another file than the sequence the run was made with."""
+        return self.source == "file"
+
+
+def judged_limits(sequence: Sequence) -> dict[str, dict[str, Any]]:
+    """What each node of ``sequence`` is judged against: its limits (SI, None when not set),
+    its rating, derating and settling band."""
+    return {
+        node.name: {
+            **vars(node.limits),
+            "rating_v": node.rating_v,
+            "derating": node.derating,
+            "settling_band": node.settling_band,
+        }
+        for node in sequence.nodes
+    }
+
+
+def judgements(store: RunStore, run_id: int) -> list[Judgement]:
+    """Every judging of run ``run_id`` recorded by ``labseq analyze-run``, oldest first; the
+    last one decides the verdicts the store holds."""
+    found = []
+    for row in store.events(run_id):
+        record = (row["data"] or {}).get(JUDGEMENT_KEY)
+        if row["kind"] == "info" and isinstance(record, dict):
+            found.append(
+                Judgement(
+                    time=row["time"],
+                    source=str(record.get("source", "")),
+                    sequence_path=str(record.get("sequence_path", "")),
+                    sequence_sha256=str(record.get("sequence_sha256", "")),
+                    same_grid=bool(record.get("same_grid", True)),
+                    limits=dict(record.get("limits") or {}),
+                )
+            )
+    return found

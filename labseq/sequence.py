@@ -24,6 +24,7 @@ from typing import Any, NamedTuple
 
 from instruments.command_map import ROLES
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
+from instruments.files import FileProblem, read_regular_file
 from instruments.tomlkeys import Problem, Problems, describe_value, report
 from labseq.analysis.verdict import Limits
 from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
@@ -1078,9 +1079,9 @@ def load_sequence(path: str | Path) -> Sequence:
     """Read and validate the sequence file at ``path``; raise :class:`SequenceError` if unusable."""
     out = Problems(path)
     try:
-        data = out.path.read_bytes()
-    except OSError as exc:
-        out.fail("(file)", f"cannot read: {exc.strerror}")
+        data = read_regular_file(out.path)
+    except FileProblem as problem:
+        out.fail("(file)", str(problem))
         raise SequenceError(out.path, out.sorted()) from None
     document = out.load(data)
     return _sequence(out, document, hashlib.sha256(data).hexdigest())

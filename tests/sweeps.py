@@ -14,7 +14,7 @@ from labseq.cli import main
 from labseq.safety import HANDLED_SIGNALS
 
 ROOT = Path(__file__).resolve().parent.parent
-DEMO_DC = ROOT / "sequences" / "demo_dc_flyback.toml"
+DEMO_DC = ROOT / "labseq" / "examples" / "demo_dc_flyback.toml"
 LABSEQ = [sys.executable, "-m", "labseq"]
 
 

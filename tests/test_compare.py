@@ -183,7 +183,9 @@ def test_bad_input_exits_2(db: Path, tmp_path: Path) -> None:
 
 def small_sequence(tmp_path: Path, name: str) -> Path:
     """A demo regression sequence shrunk to 2 lines × 2 loads × 2 captures."""
-    text = (ROOT / "sequences" / "demo_regression" / f"{name}.toml").read_text(encoding="utf-8")
+    text = (ROOT / "labseq" / "examples" / "demo_regression" / f"{name}.toml").read_text(
+        encoding="utf-8"
+    )
     text = re.sub(r"(?m)^line_values = .*$", 'line_values = ["36 V", "75 V"]', text)
     text = re.sub(r"(?m)^load_values = .*$", 'load_values = ["25 %", "100 %"]', text)
     text = re.sub(r"(?m)^captures_per_point = .*$", "captures_per_point = 2", text)

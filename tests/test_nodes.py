@@ -27,8 +27,8 @@ from labseq.store import SCHEMA_VERSION, CaptureRecord, Store, StoreFileError
 from sim_instruments.flyback import DEMO_DUTS, load_dut
 
 ROOT = Path(__file__).resolve().parent.parent
-DEMO_DC = ROOT / "sequences" / "demo_dc_flyback.toml"
-DEMO_OFFLINE = ROOT / "sequences" / "demo_offline_flyback.toml"
+DEMO_DC = ROOT / "labseq" / "examples" / "demo_dc_flyback.toml"
+DEMO_OFFLINE = ROOT / "labseq" / "examples" / "demo_offline_flyback.toml"
 
 #: The telecom demo's output rectifier as a second node (100 V Schottky, channel 2), with an RC
 #: damper that the simulated bench fits across the diode in place of the DUT file's (none).

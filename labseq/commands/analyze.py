@@ -111,13 +111,11 @@ def _print_table(path: Path, figures: CaptureFigures) -> None:
 
 
 def _plot(path: Path, waveform: FileRecord, figures: CaptureFigures) -> None:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    from matplotlib.figure import Figure  # not pyplot: no backend is chosen
 
     time_s = waveform.t0_s + np.arange(waveform.volts.size) * waveform.sample_interval_s
-    fig, ax = plt.subplots(figsize=(10, 5), layout="constrained")
+    fig = Figure(figsize=(10, 5), layout="constrained")
+    ax = fig.subplots()
     ax.plot(time_s * 1e6, waveform.volts, color=COLOURS["record"], lw=0.8, label="record")
     for index, fit in enumerate(figures.ring_fits):
         if fit is None:
@@ -159,8 +157,6 @@ def _plot(path: Path, waveform: FileRecord, figures: CaptureFigures) -> None:
         fig.savefig(path, dpi=120)
     except OSError as exc:
         raise InputError(f"--plot {path}: cannot write the image: {exc}") from None
-    finally:
-        plt.close(fig)
 
 
 @click.command("analyze")

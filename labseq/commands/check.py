@@ -10,6 +10,7 @@ from labseq.analysis.snubber import SnubberBranch, waveform_method_record_s
 from labseq.bench_kinds import bench_kind
 from labseq.sequence import Sequence, load_sequence
 from labseq.units import format_si
+from labseq.visa_library import allow_option, sequence_visa_library
 
 #: Horizontal divisions of a scope screen: the record spans ten times the time per division
 #: (common practice, no published source).
@@ -44,14 +45,19 @@ def loss_method_warnings(sequence: Sequence) -> list[str]:
 
 @click.command("check")
 @click.argument("sequence_file", metavar="SEQUENCE", type=click.Path(path_type=Path))
-def command(sequence_file: Path) -> None:
-    """Validate SEQUENCE (a sequence file) and print the points a run would walk."""
+@allow_option()
+def command(sequence_file: Path, allowed_libraries: tuple[Path, ...]) -> None:
+    """Validate SEQUENCE (a sequence file) and print the points a run would walk, and the VISA
+    library a run would load (one outside the usual places is refused without
+    --allow-visa-library)."""
     sequence = load_sequence(sequence_file)
+    library = sequence_visa_library(sequence, allowed_libraries)
     grid, dut, snubber = sequence.grid, sequence.dut, sequence.snubber
     kind = "AC rms" if grid.line_is_ac else "DC"
     bench = bench_kind(sequence.bench.kind).describe(sequence.bench)
     click.echo(f"{sequence_file}: ok — {sequence.name} (sha256 {sequence.sha256[:12]})")
     click.echo(f"  bench:   {bench}")
+    click.echo(f"  VISA library: {library}")
     click.echo(f"  DUT:     {dut.label}, switch {format_si(dut.switch_rating_v, 'V')}")
     click.echo(f"  snubber: {snubber.label}")
     if sequence.clamp is not None:

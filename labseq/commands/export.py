@@ -8,6 +8,7 @@ from pathlib import Path
 import click
 
 from labseq.commands._store import db_option, read_store, resolve_run
+from labseq.errors import InputError
 from labseq.export import CAPTURE_FORMATS, export_run
 
 
@@ -33,9 +34,19 @@ def command(run: str, db_path: Path, out_dir: Path | None, captures_format: str)
     """Export run RUN (an id, or 'latest'): points.csv plus the captures (as NPZ or CSV)."""
     with read_store(db_path) as store:
         run_id = resolve_run(store, run)
-        written = export_run(
-            store, run_id, out_dir or Path(f"run-{run_id}"), captures=captures_format
-        )
+        directory = out_dir or Path(f"run-{run_id}")
+        if directory.exists() and not directory.is_dir():
+            raise InputError(
+                f"--out {directory}: is a file, not a directory; give a directory to write the "
+                "export into (it is made if missing; files of an earlier export are replaced)"
+            )
+        try:
+            written = export_run(store, run_id, directory, captures=captures_format)
+        except OSError as exc:
+            raise InputError(
+                f"--out {directory}: cannot write the export there: {exc.strerror or exc}"
+                + (f" ({exc.filename})" if exc.filename else "")
+            ) from None
     click.echo(
         f"run {run_id}: {written.points} points and {written.captures} captures written to "
         f"{written.directory}"

@@ -9,14 +9,16 @@ from typing import Any
 
 import click
 
+from labseq.commands._gates import run_verdict, strict_failure, strict_option
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option
-from labseq.errors import InputError, LabseqError
+from labseq.errors import EXIT_FAILURE, EXIT_JUDGED, EXIT_OK, InputError
 from labseq.progress import Progress
 from labseq.runner import UNSAFE_END_EXIT, RunOutcome, bench_locks, execute, start_run
 from labseq.safety import CAUTIONS, SignalLatch, signal_exit_code
 from labseq.sequence import Sequence, load_sequence
 from labseq.store import Store
+from labseq.visa_library import allow_option, sequence_visa_library
 
 
 def yes_option() -> Callable[[Any], Any]:
@@ -57,15 +59,20 @@ def confirm_hazard(sequence: Sequence, *, yes: bool, progress: Progress) -> str 
         default=False,
         err=True,
     ):
-        raise LabseqError("not confirmed: nothing was switched on")
+        raise InputError("not confirmed: nothing was switched on")  # the answer was no
     return f"started above ES1, confirmed at the terminal: {hazard.describe()}"
 
 
 def report_outcome(
-    outcome: RunOutcome, db_path: Path, progress: Progress, latch: SignalLatch
+    outcome: RunOutcome,
+    db_path: Path,
+    progress: Progress,
+    latch: SignalLatch,
+    verdict: str | None = None,
 ) -> None:
     """Say how the run ended and where its results are; exit with the run's status (or, for a
-    signal that came once the run had ended, 128 + its number)."""
+    signal that came once the run had ended, 128 + its number). ``verdict`` (``--strict``): a
+    run that ended well but did not pass exits 1."""
     done = f"{outcome.points_done}/{outcome.points_total} points"
     click.echo(f"run {outcome.run_id} {outcome.status}: {done} in {db_path}")
     if outcome.status == "unsafe-end":
@@ -80,8 +87,10 @@ def report_outcome(
     ):
         progress.message(f"finish it with: labseq resume {outcome.run_id} --db {db_path}")
     code = outcome.exit_code
-    if latch.first is not None and code in (0, 1):
+    if latch.first is not None and code in (EXIT_OK, EXIT_FAILURE):
         code = signal_exit_code(latch.first)
+    if code == EXIT_OK and verdict is not None and strict_failure(outcome.run_id, verdict):
+        code = EXIT_JUDGED
     sys.exit(code)
 
 
@@ -98,6 +107,8 @@ def report_outcome(
     help="Simulated bench only: inject faults, e.g. 'scope:no-trigger@point=3' (see labseq sim).",
 )
 @trace_option
+@allow_option()
+@strict_option
 def command(
     sequence_path: Path,
     db_path: Path,
@@ -106,6 +117,8 @@ def command(
     yes: bool,
     sim_faults: str,
     trace_path: Path | None,
+    allowed_libraries: tuple[Path, ...],
+    strict: bool,
 ) -> None:
     """Sweep SEQUENCE's grid on its bench (real or simulated) and store the run.
 
@@ -114,11 +127,13 @@ def command(
     an unattended start). Every exit — finished, a point error with abort, Ctrl-C, SIGTERM,
     SIGHUP or an error — switches load and source off and reads them back.
 
-    Exit status: 0 every point done; 1 an error or points missing; 2 bad input; 3 the bench
-    could not be confirmed safe at the end; 128 + the signal number after SIGHUP (129),
-    SIGINT (130) or SIGTERM (143).
+    Exit status: 0 every point done; 1 with --strict, the run's verdict is fail or incomplete;
+    2 bad input; 3 points missing after a bench or instrument failure, or the bench could not
+    be confirmed safe at the end; 128 + the signal number after SIGHUP (129), SIGINT (130) or
+    SIGTERM (143).
     """
     sequence = load_sequence(sequence_path)
+    sequence_visa_library(sequence, allowed_libraries)
     progress = Progress(quiet=quiet)
     latch = SignalLatch().install()
     with Store(db_path) as store, bench_locks(sequence, store), tracing(trace_path):
@@ -130,4 +145,5 @@ def command(
         outcome = execute(
             sequence, store, run_id, progress=progress, sim_faults=sim_faults, latch=latch
         )
-        report_outcome(outcome, db_path, progress, latch)
+        verdict = run_verdict(store, run_id) if strict else None
+        report_outcome(outcome, db_path, progress, latch, verdict)

@@ -28,7 +28,7 @@ from labseq.report import plots
 from labseq.report.html import Markup, Page, esc, table, verdict_cell
 from labseq.report.traces import point_traces
 from labseq.review import PointReview, RunReview, limit_rows, line_text
-from labseq.runlog import run_log
+from labseq.runlog import Judgement, judgements, run_log
 from labseq.store_api import RunStore
 from labseq.units import format_si
 
@@ -328,6 +328,47 @@ def _log_table(page: Page, store: RunStore, review: RunReview) -> None:
         )
 
 
+def judgement_rows(judgement: Judgement) -> list[tuple[str, str, str]]:
+    """The limits of a judging as (node, limit, value) rows, in the catalogue's words."""
+    rows = []
+    for node, limits in judgement.limits.items():
+        rating, derating = limits.get("rating_v"), limits.get("derating")
+        if rating is not None and derating is not None:
+            rows.append((node, "rating × derating", f"{format_si(rating, 'V')} × {derating:g}"))
+        for name, (figure, is_max) in LIMIT_FIGURES.items():
+            value = limits.get(name)
+            if value is not None:
+                relation = "≤" if is_max else "≥"
+                rows.append(
+                    (node, f"{FIGURE_TITLES[figure]} {relation}", format_figure(figure, value))
+                )
+        band = limits.get("settling_band")
+        if band is not None:
+            rows.append((node, "settling band", f"±{100 * band:.3g} % of the step"))
+    return rows
+
+
+def _rejudging(page: Page, store: RunStore, run_id: int) -> bool:
+    """Say, near the verdict, that the run was last judged against another sequence file than
+    the one it was made with (``labseq analyze-run --sequence``), with that file's limits; True
+    when it was."""
+    recorded = judgements(store, run_id)
+    if not recorded or not recorded[-1].rejudged:
+        return False
+    last = recorded[-1]
+    grid = "" if last.same_grid else " (whose line × load grid is not the run's)"
+    page.add(
+        f'<p class="note" id="rejudged"><strong>Re-judged</strong> on '
+        f"{esc(last.time.replace('T', ' ').removesuffix('+00:00'))} UTC against "
+        f"{esc(last.sequence_path)}{esc(grid)} (sha256 {esc(last.sequence_sha256[:12])}): the "
+        "verdicts in this report are against its limits, listed here; the limits after them "
+        "are those the run was made with.</p>"
+    )
+    page.add("<h3>Limits of the re-judging</h3>")
+    page.add(table(["node", "limit", "value"], judgement_rows(last), numeric=[2]))
+    return True
+
+
 def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> ReportFiles:
     """Write ``report.html``, its PNGs and ``points.csv`` for a reviewed run into ``out_dir``."""
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -350,7 +391,12 @@ def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> Repor
         f"{counts['incomplete']} incomplete. The run fails if any point fails, and is "
         "incomplete if any point is incomplete and none fails.</p>"
     )
-    page.add("<h3>Limits the points were judged against</h3>")
+    rejudged = _rejudging(page, store, run.id)
+    page.add(
+        "<h3>Limits of the sequence the run was made with</h3>"
+        if rejudged
+        else "<h3>Limits the points were judged against</h3>"
+    )
     limits = limit_rows(review)
     if limits:
         page.add(table(["limit", "value"], limits, numeric=[1]))
