@@ -14,7 +14,8 @@ A capture CSV starts with a preamble of key/value lines: where it comes from (:d
 and the volts at the bottom and top of the scope's screen (:data:`SCREEN_KEYS`), so that
 ``labseq analyze`` of the file knows which samples clipped. A run on the simulated bench says so
 in the first column of ``points.csv`` (:data:`BENCH_COLUMN`, "SIMULATED" on every row), in each
-capture CSV's origin line and in ``captures.npz``'s :data:`RUN_KEY` array.
+capture CSV's origin line and in ``captures.npz``'s :data:`RUN_KEY` array. CSV cells write
+booleans as ``true`` and ``false`` and an absent value as an empty cell.
 
 The NPZ layout (:data:`SCALING_KEY`, :data:`SCALING_DTYPE`, :func:`codes_key`) is defined here
 once; :mod:`labseq.waveform_files` reads a capture back by it (``labseq analyze --capture``).
@@ -28,6 +29,7 @@ import zipfile
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, fields
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -92,6 +94,14 @@ def volts_key(name: str) -> str:
     return f"{name}_volts"
 
 
+def csv_value(value: object) -> object:
+    """A value as a CSV cell: booleans as ``true``/``false`` (as JSON and most readers spell
+    them), nothing as an empty cell, anything else as itself."""
+    if isinstance(value, bool | np.bool_):
+        return "true" if value else "false"
+    return "" if value is None else value
+
+
 def write_points_csv(store: RunStore, run_id: int, path: Path) -> int:
     """Write the run's points with their figures (per node) to ``path``; return the row count."""
     points = store.points(run_id)
@@ -124,7 +134,7 @@ def write_points_csv(store: RunStore, run_id: int, path: Path) -> int:
                 per_node = figures.get(point.id, {}).get(node, {})
                 for name in names[node]:
                     values += [per_node.get(name, {}).get(stat) for stat in _FIGURE_STATS]
-            writer.writerow(["" if value is None else value for value in values])
+            writer.writerow([csv_value(value) for value in values])
     return len(points)
 
 
@@ -209,6 +219,17 @@ class Exported:
     directory: Path
     points: int
     captures: int
+    captures_format: str = "npz"
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain data for JSON: the folder and what it holds."""
+        return {
+            "directory": str(self.directory),
+            "points": self.points,
+            "captures": self.captures,
+            "captures_format": self.captures_format,
+            "files": sorted(p.name for p in self.directory.iterdir()),
+        }
 
 
 def export_run(store: RunStore, run_id: int, directory: Path, *, captures: str = "npz") -> Exported:
@@ -229,4 +250,4 @@ def export_run(store: RunStore, run_id: int, directory: Path, *, captures: str =
         count = write_captures_npz(store, run_id, directory / CAPTURES_NPZ)
     else:
         count = write_captures_csv(store, run_id, directory / CAPTURES_DIR)
-    return Exported(directory, points, count)
+    return Exported(directory, points, count, captures)

@@ -1251,6 +1251,16 @@ class Store:
             methods[(node, point_id)] = (*methods.get((node, point_id), ()), value)
         return methods
 
+    def clipped_points(self, run_id: int) -> set[tuple[str, int]]:
+        """The (node, point id)s of a run where at least one capture clipped."""
+        rows = self.db.execute(
+            "SELECT DISTINCT c.node, c.point_id FROM captures c "
+            "JOIN capture_figures f ON f.capture_id = c.id "
+            "WHERE c.run_id = ? AND f.clipped = 1",
+            [run_id],
+        ).fetchall()
+        return {(node, point_id) for node, point_id in rows}
+
     def capture_figures(self, capture_id: int) -> dict[str, Any] | None:
         """The stored figures of one capture (edges decoded), or None before analysis."""
         rows = list(self.db["capture_figures"].rows_where("capture_id = ?", [capture_id]))

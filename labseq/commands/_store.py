@@ -87,3 +87,9 @@ def _has_run(store: RunStore, run_id: int) -> bool:
     except UnknownRunError:
         return False
     return True
+
+
+def default_folder(what: str, run_id: int) -> str:
+    """The folder a command writes run ``run_id`` into when given no --out: ``report-run3``,
+    ``export-run3`` (one pattern for every command)."""
+    return f"{what}-run{run_id}"

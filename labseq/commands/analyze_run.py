@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 import sys
 from collections import Counter
@@ -15,6 +16,7 @@ from labseq.commands._store import db_option, resolve_run
 from labseq.errors import EXIT_JUDGED, InputError
 from labseq.locks import store_lock
 from labseq.pipeline import analyse_run, stored_sequence
+from labseq.review import run_object
 from labseq.runlog import JUDGEMENT_KEY, judged_limits
 from labseq.sequence import Sequence, load_sequence
 from labseq.store import Store
@@ -45,6 +47,7 @@ from labseq.units import format_si
     help="How long to wait for the store while another labseq process writes it (0: do not).",
 )
 @strict_option
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object for scripts.")
 def command(
     run: str,
     db_path: Path,
@@ -52,6 +55,7 @@ def command(
     allow_other_grid: bool,
     wait_text: str,
     strict: bool,
+    as_json: bool,
 ) -> None:
     """Analyse every stored capture of RUN again from its raw codes and re-judge its points.
 
@@ -82,10 +86,25 @@ def command(
             summary=f"re-analysed {count} captures; points: {summary}",
         )
         verdict = run_verdict(store, run_id)
-    against = f" against {sequence_path}" if sequence_path else ""
-    click.echo(f"run {run_id}: re-analysed {count} captures{against}; points: {summary}")
-    if not same_grid:
-        click.echo(f"note: {sequence_path}'s grid is not the run's (--allow-other-grid)")
+        record = store.run(run_id)
+    if as_json:
+        click.echo(
+            json.dumps(
+                {
+                    "run": run_object(record),
+                    "captures_analysed": count,
+                    "points": dict(verdicts),
+                    "sequence_path": None if sequence_path is None else str(sequence_path),
+                    "same_grid": same_grid,
+                },
+                indent=2,
+            )
+        )
+    else:
+        against = f" against {sequence_path}" if sequence_path else ""
+        click.echo(f"run {run_id}: re-analysed {count} captures{against}; points: {summary}")
+        if not same_grid:
+            click.echo(f"note: {sequence_path}'s grid is not the run's (--allow-other-grid)")
     if strict and strict_failure(run_id, verdict):
         sys.exit(EXIT_JUDGED)
 

@@ -9,7 +9,13 @@ import click
 from labseq.commands._gates import run_verdict, strict_option
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option, resolve_run
-from labseq.commands.run import confirm_hazard, report_outcome, yes_option
+from labseq.commands.run import (
+    confirm_hazard,
+    json_option,
+    outcome_object,
+    report_outcome,
+    yes_option,
+)
 from labseq.pipeline import stored_sequence
 from labseq.progress import Progress
 from labseq.runner import TAKE_OVER_RISK, bench_locks, check_resumable, execute
@@ -32,6 +38,7 @@ from labseq.visa_library import allow_option, sequence_visa_library
 @yes_option()
 @allow_option()
 @strict_option
+@json_option()
 def command(
     run: str,
     db_path: Path,
@@ -41,6 +48,7 @@ def command(
     yes: bool,
     allowed_libraries: tuple[Path, ...],
     strict: bool,
+    as_json: bool,
 ) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
 
@@ -67,4 +75,5 @@ def command(
                 store.log_event(run_id, "safety", start_note)
             outcome = execute(sequence, store, run_id, progress=progress, latch=latch)
         verdict = run_verdict(store, run_id) if strict else None
-        report_outcome(outcome, db_path, progress, latch, verdict)
+        found = outcome_object(outcome, store, db_path) if as_json else None
+        report_outcome(outcome, db_path, progress, latch, verdict, found)

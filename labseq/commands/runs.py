@@ -3,13 +3,13 @@
 from __future__ import annotations
 
 import json
-from dataclasses import asdict
 from pathlib import Path
 
 import click
 
 from instruments.text import printable
 from labseq.commands._store import db_option, read_store
+from labseq.review import run_object
 from labseq.store import shown_status
 
 
@@ -30,28 +30,7 @@ def command(db_path: Path, as_json: bool) -> None:
         }
     statuses = {run.id: shown_status(run) for run in runs}
     if as_json:
-        fields = (
-            "id",
-            "uuid",
-            "bench_id",
-            "bench_host",
-            "started_at",
-            "finished_at",
-            "status",
-            "dut_label",
-            "snubber_label",
-            "bench_kind",
-            "sequence_path",
-            "sequence_sha256",
-            "points_done",
-            "points_total",
-        )
-        rows = [
-            {name: asdict(run)[name] for name in fields}
-            | {"status": statuses[run.id], "recorded_status": run.status, "label": run.notes}
-            | ({"end_safety": unsafe[run.id]} if run.id in unsafe else {})
-            for run in runs
-        ]
+        rows = [run_object(run, unsafe.get(run.id)) for run in runs]
         click.echo(json.dumps(rows, indent=2))
         return
     if not runs:
