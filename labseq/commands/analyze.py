@@ -90,7 +90,6 @@ def format_figure(edge: EdgeFigures, name: str) -> str:
 
 
 def _print_table(path: Path, figures: CaptureFigures) -> None:
-    from rich.console import Console
     from rich.table import Table
 
     shown = figures.edges if len(figures.edges) <= 6 else [figures.worst]
@@ -102,7 +101,9 @@ def _print_table(path: Path, figures: CaptureFigures) -> None:
         table.add_column(f"edge {index + 1}{marker}", justify="right")
     for name in EDGE_FIGURE_NAMES:
         table.add_row(name, *(format_figure(edge, name) for edge in shown))
-    console = Console()
+    from labseq.progress import make_console
+
+    console = make_console()
     console.print(table)
     if figures.clipped:
         console.print("The record reached full scale: peak and overshoot are lower bounds.")

@@ -143,6 +143,9 @@ def _print_changes(comparison: Comparison) -> None:
         f"baseline run {b.run.id} ({b.run.snubber_label}) → candidate run {c.run.id} "
         f"({c.run.snubber_label})"
     )
+    click.echo(comparison.outcome)
+    for warning in comparison.differences():
+        click.echo(f"warning: not like for like: {warning}")
     click.echo(comparison.summary())
     flags = Counter(change.flag for change in comparison.points)
     click.echo(", ".join(f"{count} {flag}" for flag, count in sorted(flags.items())))

@@ -13,6 +13,7 @@ from labseq.errors import EXIT_FAILURE
 from labseq.locks import instrument_locks
 from labseq.probe import FAILED, probe_bench
 from labseq.sequence import load_sequence
+from labseq.visa_library import allow_option, sequence_visa_library
 
 CAUTION = (
     "probe: each instrument is reset (*RST) and set up as the sequence says; the source's "
@@ -32,7 +33,13 @@ CAUTION = (
     help="Probe only this role (repeat for several); default: all four.",
 )
 @trace_option
-def command(sequence_path: Path, roles: tuple[str, ...], trace_path: Path | None) -> None:
+@allow_option()
+def command(
+    sequence_path: Path,
+    roles: tuple[str, ...],
+    trace_path: Path | None,
+    allowed_libraries: tuple[Path, ...],
+) -> None:
     """Connect to each instrument of SEQUENCE, identify it, and try every command of its map.
 
     Settings are read back, set to a harmless value and read back again; queries are asked; on
@@ -42,6 +49,7 @@ def command(sequence_path: Path, roles: tuple[str, ...], trace_path: Path | None
     any command failed.
     """
     sequence = load_sequence(sequence_path)
+    sequence_visa_library(sequence, allowed_libraries)
     roles = roles or ROLES
     click.echo(CAUTION, err=True)
     with instrument_locks(lock_names(sequence)), tracing(trace_path):

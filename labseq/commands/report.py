@@ -9,9 +9,10 @@ from pathlib import Path
 import click
 
 from labseq.commands._gates import junit_option, strict_failure, strict_option, write_junit
-from labseq.commands._store import db_option, read_store, resolve_run
+from labseq.commands._store import db_option, default_folder, read_store, resolve_run
 from labseq.errors import EXIT_JUDGED, InputError
 from labseq.review import RunReview, review_run, run_summary
+from labseq.runlog import point_problems, run_log
 from labseq.store_api import RunStore
 
 
@@ -55,9 +56,10 @@ def command(
 
             write_junit(run_junit(review), junit_path)
         if output_format == "json":
-            click.echo(json.dumps(run_summary(review), indent=2, ensure_ascii=False))
+            problems = point_problems(run_log(store, run_id))
+            click.echo(json.dumps(run_summary(review, problems), indent=2, ensure_ascii=False))
         else:
-            _write_html(store, review, out_dir or Path(f"report-run{run_id}"))
+            _write_html(store, review, out_dir or Path(default_folder("report", run_id)))
     if strict and strict_failure(run_id, review.verdict):
         sys.exit(EXIT_JUDGED)
 

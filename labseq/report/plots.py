@@ -22,6 +22,7 @@ import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.colors import Normalize, TwoSlopeNorm
 from matplotlib.figure import Figure
+from matplotlib.patches import Rectangle
 
 from labseq.analysis import RingFit
 from labseq.units import format_si
@@ -37,6 +38,14 @@ CHANGE_MAP = "PuOr"
 MISSING_CELL = "#d9d9d9"
 #: Grids with more cells than this are drawn without per-cell text (it would not be legible).
 MAX_ANNOTATED_CELLS = 100
+#: Cell text size (points at the figure's own size). A map is at most MAX_MAP_WIDTH_IN wide and
+#: shown one to a row, never scaled down on a page as wide as the report's (html.CONTENT_WIDTH_PX),
+#: so its cell text reads at this size: at least 9 pt.
+CELL_FONT_PT = 10
+MAX_MAP_WIDTH_IN = 10.0
+#: Outline of a cell beyond its limit: a dark band with a light line inside it, visible on the
+#: dark and the light end of every map.
+OUTLINE_DARK, OUTLINE_LIGHT = "#000000", "#ffffff"
 #: Axis ticks shown at most (evenly thinned beyond).
 MAX_TICKS = 12
 DPI = 100
@@ -62,6 +71,12 @@ def value_map(direction: int) -> str:
     """Colour map of a figure: brighter is always worse (cividis, reversed when higher is
     better)."""
     return VALUE_MAP if direction < 0 else VALUE_MAP + "_r"
+
+
+def change_map(higher_is_better: bool) -> str:
+    """Colour map of a change (candidate − baseline): purple for better, orange for worse, so
+    it is PuOr (purple high) when higher is better, turned round when lower is."""
+    return CHANGE_MAP if higher_is_better else CHANGE_MAP + "_r"
 
 
 def png_bytes(fig: Figure) -> bytes:
@@ -106,12 +121,14 @@ def heat_map(
     centre: float | None = None,
     limits: tuple[float, float] | None = None,
     colour_format: Callable[[float], str] | None = None,
+    outlined: np.ndarray | None = None,
 ) -> Figure:
     """A line (rows) × load (columns) map of ``values``.
 
     ``colour_values`` (default ``values``) sets the colours; ``cell_text(row, column)`` writes
     each cell's words on small grids; NaN cells are grey and read "—". ``centre`` makes the
     scale diverge around that value; ``limits`` fixes the scale (to share it between maps).
+    ``outlined`` (a boolean grid) draws a heavy outline round those cells (beyond a limit).
     """
     shown = values if colour_values is None else colour_values
     cmap = matplotlib.colormaps[cmap_name].with_extremes(bad=MISSING_CELL)
@@ -128,7 +145,7 @@ def heat_map(
     else:
         norm = Normalize(low, high if high > low else low + (abs(low) or 1.0))
     rows, columns = shown.shape
-    width = min(10.0, 3.2 + 0.9 * columns)
+    width = min(MAX_MAP_WIDTH_IN, 3.2 + 0.9 * columns)
     height = min(8.0, 2.0 + 0.55 * rows)
     fig = Figure(figsize=(max(width, 5.2), max(height, 3.2)), layout="constrained")
     ax = fig.subplots()
@@ -158,8 +175,21 @@ def heat_map(
                     cell_text(row, column),
                     ha="center",
                     va="center",
-                    fontsize=8,
+                    fontsize=CELL_FONT_PT,
                     color=colour,
+                )
+    if outlined is not None:
+        for row, column in zip(*np.nonzero(outlined), strict=True):
+            for colour, width in ((OUTLINE_DARK, 4.0), (OUTLINE_LIGHT, 1.3)):
+                ax.add_patch(
+                    Rectangle(
+                        (column + 0.06, row + 0.06),
+                        0.88,
+                        0.88,
+                        fill=False,
+                        edgecolor=colour,
+                        linewidth=width,
+                    )
                 )
     return fig
 
