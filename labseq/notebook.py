@@ -11,9 +11,9 @@ asks for the lists even where pandas is installed. Captures come back as numpy a
 time base (:class:`Capture`: ``time_s``, ``volts``, the clip mask, and the raw codes with the
 scaling that gave the volts).
 
-Everything here reads: the store is opened read-only and nothing is written to it or beside it
-(one written by an older labseq is read through an upgraded temporary copy, the file itself left
-as it is), so a store on an archive share reads too. A run is named by its id or by
+Everything here reads: the store is opened read-only and nothing is written to it or beside it,
+so a store on an archive share or of another user reads as well (one written by an older labseq
+is read from an upgraded temporary copy). A run is named by its id or by
 ``"latest"``. Figures are in SI units, named as :mod:`labseq.figures` names them (``peak_v``,
 ``damping_ratio``, ``snubber_loss_w``…). The store's layout itself, for reading it without
 labseq, is in docs/store-format.md.
@@ -289,5 +289,5 @@ def open_store(path: str | Path, *, records: bool = False) -> StoreData:
     """Open the labseq store at ``path`` for reading its runs, points, figures and captures.
 
     Tables are pandas DataFrames where pandas is installed, else (or with ``records=True``)
-    lists of dicts. A missing file is an error; nothing is created or written."""
+    lists of dicts. The store is opened read-only; a missing file is an error."""
     return StoreData(Store(path, read_only=True), records=records)

@@ -68,8 +68,8 @@ def test_help_design_and_runs_work_without_posix_only_modules(tmp_path):
             snubber_label="s",
             bench_kind="sim",
         )
-        # ended: a run still recorded as running has its process checked through psutil,
-        # whose backend is this system's (on Linux it needs `resource`, blocked here)
+        # Ended: a "running" run would make `runs` ask psutil whether its process lives, and
+        # psutil's Linux backend imports `resource` (its Windows backend does not).
         store.set_run_status(run_id, "finished")
     listed = _labseq_without_posix("runs", "--db", str(db), cwd=tmp_path)
     assert listed.returncode == 0, listed.stderr
