@@ -11,8 +11,9 @@ asks for the lists even where pandas is installed. Captures come back as numpy a
 time base (:class:`Capture`: ``time_s``, ``volts``, the clip mask, and the raw codes with the
 scaling that gave the volts).
 
-Everything here reads: nothing is written to the store, except that a store written by an older
-labseq is upgraded when opened, as every labseq command does. A run is named by its id or by
+Everything here reads: the store is opened read-only and nothing is written to it or beside it,
+so a store on an archive share or of another user reads as well (one written by an older labseq
+is read from an upgraded temporary copy). A run is named by its id or by
 ``"latest"``. Figures are in SI units, named as :mod:`labseq.figures` names them (``peak_v``,
 ``damping_ratio``, ``snubber_loss_w``…). The store's layout itself, for reading it without
 labseq, is in docs/store-format.md.
@@ -288,5 +289,5 @@ def open_store(path: str | Path, *, records: bool = False) -> StoreData:
     """Open the labseq store at ``path`` for reading its runs, points, figures and captures.
 
     Tables are pandas DataFrames where pandas is installed, else (or with ``records=True``)
-    lists of dicts. A missing file is an error; nothing is created."""
-    return StoreData(Store(path, create=False), records=records)
+    lists of dicts. The store is opened read-only; a missing file is an error."""
+    return StoreData(Store(path, read_only=True), records=records)

@@ -12,7 +12,8 @@ WAL with NORMAL; FULL would add a disk sync per capture). A capture is committed
 point's readings and "done" state with its last capture, so a crash leaves every committed capture
 intact and the point pending until it is complete. The schema version is checked on open; a file
 written by a newer labseq is refused without being touched, and one written by an older labseq is
-upgraded in place (:meth:`Store._upgrade`).
+upgraded in place (:meth:`Store._upgrade`). A writer leaves the file at rest in rollback-journal
+mode when it closes, so that it reads with nothing beside it; read-only opens write nothing.
 
 Codes are stored compressed by default (``captures.codec`` says how each capture's are stored:
 ``"zstd"``, Zstandard at level 3, or ``"raw"``); reading them back fetches the ordered capture rows

@@ -74,6 +74,10 @@ class RunStore(Protocol):
         """The nodes a run captured, in order of first capture (the primary first)."""
         ...
 
+    def clipped_points(self, run_id: int) -> set[tuple[str, int]]:
+        """The (node, point id)s of a run where at least one capture clipped."""
+        ...
+
     def node_figures(self, run_id: int) -> dict[int, dict[str, dict[str, dict[str, Any]]]]:
         """Aggregated figures of every node at every point: point id → node → figure →
         {worst, mean, spread, n}."""

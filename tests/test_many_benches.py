@@ -23,6 +23,7 @@ from sweeps import LABSEQ, demo_sequence, run_cli
 from test_store import SCHEMA_V2, Capture, _le_bytes, _table_definitions, new_run, ringing_codes
 
 from labseq import store as store_module
+from labseq.merge import merge_stores
 from labseq.store import (
     SCHEMA_VERSION,
     CaptureRecord,
@@ -392,6 +393,33 @@ def test_merge_leaves_running_runs_and_says_so(
         store.set_run_status(2, "interrupted")
     code, out, _ = run_cli("merge", str(source), "--into", str(target))
     assert code == 0 and "1 run(s) copied (2 as 2), 1 already there" in out
+
+
+def test_a_merge_that_fails_midway_leaves_no_half_run(
+    bench_stores: tuple[Path, Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    first, _ = bench_stores
+    target = tmp_path / "lab.sqlite"
+    copy_row = Store._copy_row
+
+    def fail_at_the_second_runs_events(store: Store, table: str, row, **changes) -> int:
+        if table == "events" and changes["run_id"] == 2:
+            raise OSError("disk gone")  # after its points, captures and figures were inserted
+        return copy_row(store, table, row, **changes)
+
+    monkeypatch.setattr(Store, "_copy_row", fail_at_the_second_runs_events)
+    with pytest.raises(OSError, match="disk gone"):
+        merge_stores([first], target)
+    with Store(target, read_only=True) as into:
+        assert [run.id for run in into.runs()] == [1]  # the first run whole, nothing of the second
+        for table in ("points", "captures", "events"):
+            query = f"SELECT COUNT(*) FROM {table} WHERE run_id <> 1"
+            assert into.db.execute(query).fetchone()[0] == 0, table
+    monkeypatch.undo()
+    [result] = merge_stores([first], target)  # run again, it finishes
+    assert list(result.copied) == [2] and result.already == [1]
+    with Store(target) as into, Store(first, read_only=True) as source:
+        assert _run_contents(into, result.copied[2]) == _run_contents(source, 2)
 
 
 def test_merge_refuses_bad_sources_before_copying_anything(

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import os
 import re
+import shutil
 import sqlite3
 import subprocess
 import sys
@@ -99,6 +100,19 @@ def test_bad_names_are_clear(demo_store: Path, tmp_path: Path) -> None:
     with pytest.raises(InputError, match="no such store"):
         labseq.open_store(tmp_path / "none.sqlite")
     assert not (tmp_path / "none.sqlite").exists()
+
+
+def test_reading_writes_nothing(demo_store: Path, tmp_path: Path) -> None:
+    # a store on an archive share: read through the API, the file and its folder stay as they were
+    folder = tmp_path / "archive"
+    folder.mkdir()
+    db = folder / "labseq.sqlite"
+    shutil.copyfile(demo_store, db)
+    before = db.read_bytes()
+    with labseq.open_store(db, records=True) as store:
+        assert len(store.points(1)) == 4 and len(store.captures(1)) == 8 and store.figures(1)
+    assert db.read_bytes() == before
+    assert sorted(p.name for p in folder.iterdir()) == ["labseq.sqlite"]
 
 
 def readme_python() -> str:

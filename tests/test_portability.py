@@ -60,7 +60,7 @@ def test_help_design_and_runs_work_without_posix_only_modules(tmp_path):
 
     db = tmp_path / "s.sqlite"
     with Store(db) as store:
-        store.create_run(
+        run_id = store.create_run(
             sequence_text="",
             sequence_sha256="",
             sequence_path="x",
@@ -68,6 +68,9 @@ def test_help_design_and_runs_work_without_posix_only_modules(tmp_path):
             snubber_label="s",
             bench_kind="sim",
         )
+        # Ended: a "running" run would make `runs` ask psutil whether its process lives, and
+        # psutil's Linux backend imports `resource` (its Windows backend does not).
+        store.set_run_status(run_id, "finished")
     listed = _labseq_without_posix("runs", "--db", str(db), cwd=tmp_path)
     assert listed.returncode == 0, listed.stderr
     assert "bench-dut" in listed.stdout
