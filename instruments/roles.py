@@ -40,6 +40,7 @@ from instruments.limits import (
     format_number,
 )
 from instruments.scpi import ScpiInstrument, is_response_token, parse_number
+from instruments.text import quoted
 
 #: Relative tolerance under which a number matches an entry of a map's number table.
 _TABLE_RTOL = 1e-9
@@ -141,7 +142,7 @@ class MappedInstrument(ScpiInstrument):
                 return entry
         value = parse_number(reply)
         if value is None:
-            raise self.reply_error(f"reply {reply!r} to {command!r} is not a number")
+            raise self.reply_error(f"reply {quoted(reply)} to {command!r} is not a number")
         return value / spec.scale
 
     def read_number(self, key: str, *, channel: int | None = None) -> float:
@@ -159,7 +160,7 @@ class MappedInstrument(ScpiInstrument):
         if reply in ("0", "OFF", words["off"].upper()):
             return False
         raise self.reply_error(
-            f"reply {reply!r} to {command!r} is neither {words['on']!r} nor {words['off']!r} "
+            f"reply {quoted(reply)} to {command!r} is neither {words['on']!r} nor {words['off']!r} "
             "(nor 1 or 0)"
         )
 
@@ -550,7 +551,7 @@ class Oscilloscope(MappedInstrument):
             return True
         if not is_response_token(reply):
             raise self.reply_error(
-                f"reply {reply!r} to {query!r} is neither "
+                f"reply {quoted(reply)} to {query!r} is neither "
                 f"{self.map.acquisition_done_reply!r} nor a SCPI status value"
             )
         return False
@@ -733,7 +734,7 @@ class Oscilloscope(MappedInstrument):
         value = parse_number(text)
         if value is None or not math.isfinite(value):
             raise self.reply_error(
-                f"{name} in the reply to {query!r} is {text.strip()!r}, not a finite number"
+                f"{name} in the reply to {query!r} is {quoted(text.strip())}, not a finite number"
             )
         return value
 

@@ -32,7 +32,7 @@ from instruments.errors import (
     ReplyFormatError,
     ScpiError,
 )
-from instruments.text import printable
+from instruments.text import printable, quoted
 from instruments.transport import (
     MAX_TEXT_REPLY_BYTES,
     TIMEOUT_CODES,
@@ -97,7 +97,7 @@ class Identity:
         parts = [printable(part).strip() for part in reply.strip().split(",")]
         if len(parts) != 4:
             raise ReplyFormatError(
-                f"*IDN? reply {reply!r} has {len(parts)} fields; IEEE 488.2 10.14 defines 4"
+                f"*IDN? reply {quoted(reply)} has {len(parts)} fields; IEEE 488.2 10.14 defines 4"
             )
         return cls(*parts)
 
@@ -335,7 +335,7 @@ class ScpiInstrument:
         reply = self.query(command)
         value = parse_number(reply)
         if value is None:
-            raise self.reply_error(f"reply {reply!r} to {command!r} is not a number")
+            raise self.reply_error(f"reply {quoted(reply)} to {command!r} is not a number")
         return value
 
     def query_bool(self, command: str) -> bool:
@@ -346,7 +346,7 @@ class ScpiInstrument:
             return True
         if normal in ("0", "OFF"):
             return False
-        raise self.reply_error(f"reply {reply!r} to {command!r} is not 1 or 0")
+        raise self.reply_error(f"reply {quoted(reply)} to {command!r} is not 1 or 0")
 
     def query_floats(self, command: str) -> list[float]:
         """Send a query whose reply is comma-separated numbers."""
@@ -354,9 +354,9 @@ class ScpiInstrument:
         parsed = [parse_number(item) for item in reply.split(",")]
         values = [value for value in parsed if value is not None]
         if len(values) != len(parsed):
-            raise self.reply_error(f"reply {reply!r} to {command!r} is not a list of numbers")
+            raise self.reply_error(f"reply {quoted(reply)} to {command!r} is not a list of numbers")
         if not all(math.isfinite(value) for value in values):
-            raise self.reply_error(f"reply {reply!r} to {command!r} is not finite")
+            raise self.reply_error(f"reply {quoted(reply)} to {command!r} is not finite")
         return values
 
     def check_errors(self, command: str, first_reply: str | None = None) -> None:
@@ -394,7 +394,7 @@ class ScpiInstrument:
         code_text, comma, message = strip_reply_header(reply).partition(",")
         if not comma or not _ERROR_CODE.fullmatch(code_text.strip()):
             raise self.reply_error(
-                f"{ERROR_QUERY} reply {reply!r} does not start with an error code"
+                f"{ERROR_QUERY} reply {quoted(reply)} does not start with an error code"
             )
         return int(code_text), printable(message.strip().strip('"'))
 

@@ -32,7 +32,11 @@ def printable(text: str) -> str:
     return _CONTROLS.sub("", text)
 
 
-def quoted(text: str, limit: int = 60) -> str:
+def quoted(text: object, limit: int = 60) -> str:
     """``text`` in quotes for an error message, cut to ``limit`` characters (a line of a 50 MB
-    file is not echoed whole); ``repr`` shows any control character as its escape."""
+    file is not echoed whole); ``repr`` shows any control character as its escape. A value
+    that is not a string is shown as its ``repr``, cut the same way."""
+    if not isinstance(text, str):
+        shown = repr(text)
+        return shown if len(shown) <= limit else shown[:limit] + "…"
     return repr(text if len(text) <= limit else text[:limit] + "…")

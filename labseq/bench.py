@@ -201,6 +201,10 @@ OFF_ATTEMPTS = 3
 #: Pause between two attempts (a relay or a firmware busy with the last setting gets time).
 OFF_RETRY_PAUSE_S = 0.2
 
+#: SCPI's stand-in numbers (SCPI-1999 vol. 1, 7.2.1.5: 9.9E37 for infinity, 9.91E37 for "not
+#: a number"), which a scope sends for a measurement it could not make: no bus reading.
+SCPI_NOT_A_READING = 9.9e37
+
 #: What is known of the bus (the bulk capacitor) when :func:`make_safe` returns.
 BUS_BELOW = "below"  # read below SAFE_BUS_V
 BUS_ABOVE = "above"  # still read above it when the wait ran out
@@ -219,6 +223,7 @@ class SafeReport:
     bus_v: float | None  # the last bus reading, None when there is none
     messages: list[str]
     bus_timeout_s: float = BUS_DISCHARGE_TIMEOUT_S
+    bus_watched_s: float | None = None  # how long the bus was watched, as measured
 
     @property
     def outputs_off(self) -> bool:
@@ -257,7 +262,10 @@ class SafeReport:
         if self.bus == BUS_BELOW:
             return f"bus {self.bus_v:.1f} V, below {SAFE_BUS_V:g} V (ES1)"
         if self.bus == BUS_ABOVE:
-            return f"bus still {self.bus_v:.1f} V after {self.bus_timeout_s:g} s"
+            watched = (
+                f"{self.bus_watched_s:.0f} s" if self.bus_watched_s is not None else "the wait"
+            )
+            return f"bus still {self.bus_v:.1f} V after {watched} of watching"
         if self.bus == BUS_UNKNOWN:
             return "bus unknown (the scope gave no reading)"
         if self.bus == BUS_HELD:
@@ -293,34 +301,40 @@ def _watch_bus(
     on_reading: Callable[[float], None] | None,
     timeout_s: float,
     poll_s: float,
-) -> tuple[str, float | None]:
+) -> tuple[str, float | None, float]:
     """Read the bus (the primary switch node's mean with the converter stopped) until it is
     below the ES1 DC limit or ``timeout_s`` has passed; a failed reading is tried once more on a
-    fresh session."""
+    fresh session. Returns what is known of the bus, its last reading and how long it was
+    watched (measured, never the timeout assumed)."""
     channel = bench.sequence.primary.channel
-    deadline = time.monotonic() + timeout_s
+    start = time.monotonic()
+    deadline = start + timeout_s
     reopen, failures = fresh, 0
     while True:
         try:
             scope = bench.reopen("scope") if reopen else bench.scope
             reopen = False
             bus_v = scope.measure_mean_v(channel)
-            if not math.isfinite(bus_v):
-                raise ReplyFormatError(f"{scope.label}: bus reading {bus_v!r} is not finite")
+            if not math.isfinite(bus_v) or abs(bus_v) >= SCPI_NOT_A_READING:
+                raise ReplyFormatError(
+                    f"{scope.label}: bus reading {bus_v!r} is no measurement (the scope's "
+                    "value for none, or not finite)"
+                )
         except InstrumentError as error:
             messages.append(f"cannot read the bus voltage: {error}")
             failures += 1
             if failures == 2:
-                return BUS_UNKNOWN, None
+                return BUS_UNKNOWN, None, time.monotonic() - start
             reopen = True
             continue
         if on_reading is not None:
             on_reading(bus_v)
+        now = time.monotonic()
         if bus_v < SAFE_BUS_V:
-            return BUS_BELOW, bus_v
-        if time.monotonic() > deadline:
-            messages.append(f"bus still at {bus_v:.1f} V after {timeout_s:g} s")
-            return BUS_ABOVE, bus_v
+            return BUS_BELOW, bus_v, now - start
+        if now > deadline:
+            messages.append(f"bus still at {bus_v:.1f} V after {now - start:.0f} s of watching")
+            return BUS_ABOVE, bus_v, now - start
         time.sleep(poll_s)
 
 
@@ -345,9 +359,11 @@ def make_safe(
     messages: list[str] = []
     load_off = _switch_off(bench, "load", messages, fresh_sessions)
     source_off = _switch_off(bench, "source", messages, fresh_sessions)
-    bus, bus_v = BUS_NOT_WATCHED, None
+    bus, bus_v, watched_s = BUS_NOT_WATCHED, None, None
     if watch_bus and not source_off:
         bus = BUS_HELD
     elif watch_bus:
-        bus, bus_v = _watch_bus(bench, messages, fresh_sessions, on_bus_reading, timeout_s, poll_s)
-    return SafeReport(load_off, source_off, bus, bus_v, messages, timeout_s)
+        bus, bus_v, watched_s = _watch_bus(
+            bench, messages, fresh_sessions, on_bus_reading, timeout_s, poll_s
+        )
+    return SafeReport(load_off, source_off, bus, bus_v, messages, timeout_s, watched_s)

@@ -23,6 +23,7 @@ from typing import Any
 from instruments.command_map import ROLE_COMMANDS
 from instruments.errors import InstrumentError
 from instruments.roles import MappedInstrument, Oscilloscope
+from instruments.text import quoted
 from labseq.bench import ROLES, open_driver, start_resources
 from labseq.sequence import Sequence
 
@@ -83,7 +84,7 @@ class _RoleProbe:
             before = driver.read_back(key, channel=channel)
             driver.apply(key, value, channel=channel)
             after = driver.read_back(key, channel=channel)
-            detail.append(f"read {before!r}, set {_shown(value)}, reads back {after!r}")
+            detail.append(f"read {quoted(before)}, set {_shown(value)}, reads back {quoted(after)}")
 
     def ask(self, key: str, channel: int | None = None) -> None:
         """Ask query ``key`` and parse its number."""

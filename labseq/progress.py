@@ -88,7 +88,10 @@ class Progress:
     def message(self, text: str, *, error: bool = False, always: bool = False) -> None:
         """A line for the user; errors (and ``always`` lines) are shown even in quiet mode."""
         if error or always or not self.quiet:
-            self.console.print(text, style="bold red" if error else None, markup=False)
+            # soft_wrap: a message stays one line (a terminal wraps it; a log file keeps it)
+            self.console.print(
+                text, style="bold red" if error else None, markup=False, soft_wrap=True
+            )
 
     def waiting(self, text: str | None) -> None:
         """Show what the run is waiting for (``None`` ends it), in place of the bar: as a live

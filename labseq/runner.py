@@ -578,11 +578,13 @@ def _record_ending(
         events.append((kind, f"run {status}: {type(failure).__name__}: {failure}"))
     if latch.count > 1:
         events.append(("safety", f"{latch.count} signals in all; the shutdown ran to its end"))
+    # the status first: when the disk is full, the little room left goes to what matters most
+    recorded = _store_safely(store, lambda: store.set_run_status(run_id, status))
     for kind, message in events:
         _store_safely(
             store, lambda kind=kind, message=message: store.log_event(run_id, kind, message)
         )
-    return _store_safely(store, lambda: store.set_run_status(run_id, status))
+    return recorded
 
 
 def _store_failed(

@@ -25,6 +25,7 @@ from typing import Any, NamedTuple
 from instruments.command_map import ROLES
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
 from instruments.files import FileProblem, read_regular_file
+from instruments.text import quoted
 from instruments.tomlkeys import Problem, Problems, describe_value, report
 from labseq.analysis.verdict import Limits
 from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
@@ -322,7 +323,7 @@ def _read_bench(top: Table, seq_dir: Path) -> tuple[BenchSpec | None, BenchKind 
             if not (_VISA_RESOURCE.match(resource) or _VISA_ALIAS.fullmatch(resource)):
                 top.out.fail(
                     resources_table.key(role),
-                    f"{resource!r} is not a VISA resource string or alias; expected e.g. "
+                    f"{quoted(resource)} is not a VISA resource string or alias; expected e.g. "
                     "'TCPIP0::192.168.1.20::inst0::INSTR', 'USB0::0x1234::0x5678::SN1::INSTR', "
                     "'ASRL3::INSTR' or an alias your VISA library knows, such as 'bench_scope'",
                 )
@@ -338,7 +339,7 @@ def _read_bench(top: Table, seq_dir: Path) -> tuple[BenchSpec | None, BenchKind 
         if serial is not None and "::" in resource and not resource.upper().startswith("ASRL"):
             top.out.fail(
                 f"{table.key('connections')}.{role}",
-                f"serial settings for {resource!r}, which is not a serial port (ASRL...)",
+                f"serial settings for {quoted(resource)}, which is not a serial port (ASRL...)",
             )
 
     if None in (kind, limits, timeout_s, maps, visa_library, connections) or (
@@ -398,7 +399,9 @@ def _resolve_map(out: Problems, key: str, value: str, role: str, seq_dir: Path) 
 
     if not is_map_path(value) and value not in available_families(role):
         shipped = ", ".join(available_families(role))
-        out.fail(key, f"unknown {role} family {value!r}; shipped: {shipped}, or a .toml file path")
+        out.fail(
+            key, f"unknown {role} family {quoted(value)}; shipped: {shipped}, or a .toml file path"
+        )
         return None
     reference = str(seq_dir / value) if is_map_path(value) else value
     if is_map_path(value) and not Path(reference).is_file():
@@ -797,8 +800,8 @@ def _read_node(table: Table) -> NodeSpec | None:
     if isinstance(name, str) and not _NODE_NAME.match(name):
         table.out.fail(
             table.key("name"),
-            f"{name!r} is not a node name; use a short lower-case word (letters, digits, - or _, "
-            'at most 24 characters), e.g. "secondary"',
+            f"{quoted(name)} is not a node name; use a short lower-case word (letters, digits, - "
+            'or _, at most 24 characters), e.g. "secondary"',
         )
         return None
     if (

@@ -690,8 +690,8 @@ def _inspect_existing(path: Path) -> int | None:
             row = conn.execute("SELECT version, application FROM schema_info").fetchone()
         finally:
             conn.close()
-    except sqlite3.DatabaseError as exc:
-        raise StoreFileError(f"{path}: cannot be read as a SQLite database ({exc})") from None
+    except sqlite3.DatabaseError as exc:  # a SQLite file (its header says so) that is damaged
+        raise store_failure(path, exc) from None
     if row is None or row[1] != APPLICATION or not isinstance(row[0], int):
         raise StoreFileError(f"{path}: not a labseq store (its schema_info is not ours)")
     if row[0] > SCHEMA_VERSION:

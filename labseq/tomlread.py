@@ -16,6 +16,7 @@ import math
 from collections.abc import Callable, Iterable
 from typing import Any
 
+from instruments.text import quoted
 from instruments.tomlkeys import Problems, describe_value
 from labseq.units import UnitError, format_si, parse_quantity
 
@@ -164,8 +165,8 @@ class Table:
                 if math.isclose(value, earlier, rel_tol=SAME_VALUE_RTOL):
                     self.out.fail(
                         f"{self.key(name)}[{index}]",
-                        f"duplicate point: {raw[index]!r} is the same value as an earlier entry; "
-                        "each value may appear once",
+                        f"duplicate point: {quoted(raw[index])} is the same value as an earlier "
+                        "entry; each value may appear once",
                     )
                     break
         return results
@@ -186,7 +187,7 @@ def quantity(
     result = parse_quantity(value, unit, what=key)
     if unit == "s" and result != 0 and not _names_unit(value, unit):
         raise ValueError(
-            f"{value!r} has no unit; a duration needs one, e.g. '5 s' or '5000 ms' (a bare "
+            f"{quoted(value)} has no unit; a duration needs one, e.g. '5 s' or '5000 ms' (a bare "
             "number could be meant in either)"
         )
     if minimum is not None and (result < minimum or (result == minimum and not allow_equal)):
@@ -196,7 +197,7 @@ def quantity(
             f"{format_si(minimum, unit)}, e.g. {_example(unit)}"
         )
     if maximum is not None and result > maximum:
-        raise ValueError(f"{value!r} is out of range; must be ≤ {format_si(maximum, unit)}")
+        raise ValueError(f"{quoted(value)} is out of range; must be ≤ {format_si(maximum, unit)}")
     return result
 
 
@@ -213,7 +214,7 @@ def _fraction(value: Any, key: str, allow_zero: bool) -> float:
     if not (0.0 <= result <= 1.0) or (result == 0.0 and not allow_zero):
         low = "0" if allow_zero else "above 0"
         raise ValueError(
-            f"{value!r} is not a valid fraction; write a value {low} up to 1 (e.g. 0.8) or a "
+            f"{quoted(value)} is not a valid fraction; write a value {low} up to 1 (e.g. 0.8) or a "
             f"percentage up to 100 % (e.g. '80 %')"
         )
     return result
@@ -222,9 +223,9 @@ def _fraction(value: Any, key: str, allow_zero: bool) -> float:
 def _integer(value: Any, key: str, minimum: int, maximum: int | None = None) -> int:
     number = parse_quantity(value, "", what=key)
     if number != int(number) or number < minimum:
-        raise ValueError(f"{value!r} is not a whole number ≥ {minimum}")
+        raise ValueError(f"{quoted(value)} is not a whole number ≥ {minimum}")
     if maximum is not None and number > maximum:
-        raise ValueError(f"{value!r} is out of range; must be ≤ {maximum}")
+        raise ValueError(f"{quoted(value)} is out of range; must be ≤ {maximum}")
     return int(number)
 
 
@@ -232,5 +233,5 @@ def _text(value: Any, choices: tuple[str, ...]) -> str:
     if not isinstance(value, str):
         raise ValueError(f"expected a string, got {describe_value(value)}")
     if choices and value.lower() not in choices:
-        raise ValueError(f"{value!r} is not valid; expected {_or_list(choices)}")
+        raise ValueError(f"{quoted(value)} is not valid; expected {_or_list(choices)}")
     return value.lower() if choices else value

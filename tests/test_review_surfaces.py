@@ -32,8 +32,8 @@ from labseq.runlog import point_problems, run_log
 from labseq.store import Store
 from labseq.units import format_si
 
-DEMO = ROOT / "sequences" / "demo_dc_flyback.toml"
-OFFLINE = ROOT / "sequences" / "demo_offline_flyback.toml"
+DEMO = ROOT / "labseq" / "examples" / "demo_dc_flyback.toml"
+OFFLINE = ROOT / "labseq" / "examples" / "demo_offline_flyback.toml"
 
 
 def peak_of(line_v: float, load_a: float) -> float:

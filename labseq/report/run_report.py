@@ -56,6 +56,7 @@ from labseq.runlog import (
     point_problems,
     run_log,
 )
+from labseq.store import shown_status
 from labseq.store_api import RunStore
 from labseq.units import format_si
 
@@ -538,7 +539,9 @@ def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> Repor
             "reading in this report comes from a model of the DUT, not from a measurement.</p>"
         )
     page.add(f"<h1>Run {run.id}: {esc(run.dut_label)}</h1>")
-    page.add(f'<p class="sub">Snubber: {esc(run.snubber_label)} · status {esc(run.status)}</p>')
+    page.add(
+        f'<p class="sub">Snubber: {esc(run.snubber_label)} · status {esc(shown_status(run))}</p>'
+    )
     sentence = headline(review, problems)
     page.add(f'<p class="headline" id="headline">{esc(sentence[0].upper() + sentence[1:])}.</p>')
     if run.status == "unsafe-end":
