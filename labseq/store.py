@@ -26,11 +26,13 @@ kept per node; ``points.verdict`` is the point's combined verdict, the worst of 
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import socket
 import sqlite3
 import time
+import uuid
 from collections.abc import Iterable, Iterator, Mapping
 from contextlib import AbstractContextManager
 from dataclasses import dataclass, field, fields
@@ -49,7 +51,7 @@ from labseq.figures import CAPTURE_FIGURES, CAPTURE_METHODS, VERDICTS
 from labseq.process import process_alive, process_start_time
 
 #: Version of the schema; a file with a higher version is refused, a lower one upgraded.
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 #: The node of every capture and figure of a version-1 file, which knew only one node (the
 #: upgrade fills it in). Everything else names its node: the store has no default of its own.
 _VERSION_1_NODE = "primary"
@@ -154,9 +156,9 @@ CREATE TABLE {{table}} (
     PRIMARY KEY (point_id, node)
 ) WITHOUT ROWID"""
 
-#: The runs table as version 3 has it: a run may end "unsafe-end", and it records its owning
+#: The runs table as version 3 had it: a run may end "unsafe-end", and it records its owning
 #: process's start time.
-_RUNS_TABLE = f"""
+_RUNS_TABLE_3 = f"""
 CREATE TABLE {{table}} (
     id INTEGER PRIMARY KEY,
     sequence_text TEXT NOT NULL,
@@ -180,6 +182,32 @@ _RUN_COLUMNS_2 = (
     "id, sequence_text, sequence_sha256, sequence_path, dut_label, snubber_label, bench_kind, "
     "instruments, software_version, status, started_at, finished_at, notes, pid, host"
 )
+#: The runs table as version 4 has it: version 3's plus the run's UUID (the same in every store
+#: the run is merged or published into) and the bench it ran on (:func:`bench_identity`).
+_RUNS_TABLE_4 = f"""
+CREATE TABLE {{table}} (
+    id INTEGER PRIMARY KEY,
+    sequence_text TEXT NOT NULL,
+    sequence_sha256 TEXT NOT NULL,
+    sequence_path TEXT NOT NULL,
+    dut_label TEXT NOT NULL,
+    snubber_label TEXT NOT NULL,
+    bench_kind TEXT NOT NULL,
+    instruments TEXT NOT NULL DEFAULT '{{{{}}}}',
+    software_version TEXT NOT NULL,
+    status TEXT NOT NULL CHECK (status IN ({_sql_list(RUN_STATUSES)})),
+    started_at TEXT NOT NULL,
+    finished_at TEXT,
+    notes TEXT NOT NULL DEFAULT '',
+    pid INTEGER,
+    host TEXT,
+    process_started REAL,
+    uuid TEXT NOT NULL CHECK (length(uuid) = 36),
+    bench_host TEXT NOT NULL DEFAULT '',
+    bench_id TEXT NOT NULL DEFAULT ''
+)"""
+#: The columns of a version-3 runs table, kept when version 4 rebuilds it.
+_RUN_COLUMNS_3 = _RUN_COLUMNS_2 + ", process_started"
 
 #: The version-2 tables, frozen as that version wrote them; a new file gets these and then every
 #: later upgrade step (as an older file does), so new and upgraded files have the same tables.
@@ -305,7 +333,7 @@ def _upgrade_to_3() -> list[str]:
             "ALTER TABLE captures ADD COLUMN codec TEXT NOT NULL DEFAULT 'raw' "
             f"CHECK (codec IN ({_sql_list(CODECS)}))"
         ]
-        + _rebuilt(_RUNS_TABLE, "runs", _RUN_COLUMNS_2)
+        + _rebuilt(_RUNS_TABLE_3, "runs", _RUN_COLUMNS_2)
         + [
             "ALTER TABLE capture_figures ADD COLUMN natural_frequency_hz REAL",
             "ALTER TABLE capture_figures ADD COLUMN real_pole_decay_rate_per_s REAL",
@@ -314,10 +342,71 @@ def _upgrade_to_3() -> list[str]:
     )
 
 
+def _upgrade_to_4() -> list[str]:
+    """Statements that bring a version-3 file to version 4 (runs gathered from many benches):
+    every run gets a UUID (a new random one for each run stored so far, through the
+    connection's ``labseq_uuid4()``) and the bench it ran on (its owner's host and
+    ``labseq_bench_id()`` of that host and the recorded instruments); the foreign keys that reads
+    follow get indexes (a run's captures and its events; a point's captures and a run's points
+    already have theirs, the leading columns of their UNIQUE constraints)."""
+    return [
+        _RUNS_TABLE_4.format(table="runs_new"),
+        f"INSERT INTO runs_new ({_RUN_COLUMNS_3}, uuid, bench_host, bench_id) "
+        f"SELECT {_RUN_COLUMNS_3}, labseq_uuid4(), COALESCE(host, ''), "
+        "labseq_bench_id(COALESCE(host, ''), instruments) FROM runs",
+        "DROP TABLE runs",
+        "ALTER TABLE runs_new RENAME TO runs",
+        "CREATE UNIQUE INDEX runs_uuid ON runs (uuid)",
+        "CREATE INDEX captures_run ON captures (run_id, node)",
+        "CREATE INDEX events_run ON events (run_id)",
+    ]
+
+
 def _upgrade_statements(version: int) -> list[str]:
     """Every statement that brings a file of ``version`` to :data:`SCHEMA_VERSION`: the steps
     from each version to the next, in order (a new step goes at the end)."""
-    return (_upgrade_to_2() if version < 2 else []) + (_upgrade_to_3() if version < 3 else [])
+    return (
+        (_upgrade_to_2() if version < 2 else [])
+        + (_upgrade_to_3() if version < 3 else [])
+        + (_upgrade_to_4() if version < 4 else [])
+    )
+
+
+def new_run_uuid() -> str:
+    """A new run's UUID: version 4 (random), as 36 characters of lower-case text."""
+    return str(uuid.uuid4())
+
+
+#: The ``*IDN?`` fields that name an instrument (IEEE 488.2 10.14): its firmware may change
+#: and its resource string (a port, an address) is how it is reached, not which one it is.
+_IDENTITY_FIELDS = ("manufacturer", "model", "serial")
+
+
+def bench_identity(host: str, instruments: Mapping[str, Any]) -> str:
+    """The bench a run ran on, as ``HOST:DIGEST``: the host that drove it and the first 12 hex
+    digits of the SHA-256 of its instruments' identities — one line ``role=manufacturer,model,
+    serial`` per role, in role order, joined by newlines (UTF-8). The same instruments on the
+    same host give the same identity whatever their firmware or address; a run that recorded no
+    instruments yet has the digest of no lines."""
+    lines = []
+    for role in sorted(instruments):
+        identity = instruments[role]
+        if isinstance(identity, Mapping):
+            values = [str(identity.get(name, "")) for name in _IDENTITY_FIELDS]
+        else:  # an identity kept as the *IDN? reply itself
+            values = [part.strip() for part in str(identity).split(",")][: len(_IDENTITY_FIELDS)]
+        lines.append(f"{role}={','.join(values)}")
+    digest = hashlib.sha256("\n".join(lines).encode("utf-8")).hexdigest()
+    return f"{host}:{digest[:12]}"
+
+
+def _bench_identity_sql(host: str | None, instruments: str | None) -> str:
+    """:func:`bench_identity` for SQL (``labseq_bench_id``), of the stored instruments JSON."""
+    try:
+        recorded = json.loads(instruments or "{}")
+    except ValueError:
+        recorded = {}
+    return bench_identity(host or "", recorded if isinstance(recorded, dict) else {})
 
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
@@ -366,9 +455,14 @@ class PointReadings:
 
 @dataclass(frozen=True)
 class RunRecord:
-    """One run as stored, with its point counts."""
+    """One run as stored, with its point counts. ``id`` numbers it in this store only; ``uuid``
+    names it in every store it is merged or published into, ``bench_id`` is the bench it ran on
+    (:func:`bench_identity` of ``bench_host`` and the instruments)."""
 
     id: int
+    uuid: str
+    bench_host: str
+    bench_id: str
     status: str
     started_at: str
     finished_at: str | None
@@ -516,6 +610,13 @@ def _inspect_existing(path: Path) -> int | None:
     return row[0]
 
 
+def _add_functions(conn: sqlite3.Connection) -> None:
+    """The SQL functions the upgrade steps use: ``labseq_uuid4()`` (:func:`new_run_uuid`) and
+    ``labseq_bench_id(host, instruments_json)`` (:func:`bench_identity`)."""
+    conn.create_function("labseq_uuid4", 0, new_run_uuid)
+    conn.create_function("labseq_bench_id", 2, _bench_identity_sql, deterministic=True)
+
+
 class Store:
     """A labseq SQLite store; use as a context manager.
 
@@ -539,6 +640,7 @@ class Store:
         version = _inspect_existing(self.path) if exists else None
         conn = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
         conn.row_factory = sqlite3.Row
+        _add_functions(conn)
         self.db = sqlite_utils.Database(conn, execute_plugins=False)
         if version is None:
             conn.execute(f"PRAGMA page_size = {PAGE_SIZE}")
@@ -621,6 +723,8 @@ class Store:
                     "started_at": _now_iso(),
                     "notes": notes,
                     **_owner(),
+                    **_bench(instruments or {}),
+                    "uuid": new_run_uuid(),
                 }
             )
         return int(table.last_pk)
@@ -648,10 +752,13 @@ class Store:
         return True
 
     def set_run_instruments(self, run_id: int, instruments: Mapping[str, Any]) -> None:
-        """Record the identities of the instruments the run is using (on start and on resume)."""
+        """Record the identities of the instruments the run is using (on start and on resume),
+        and so the bench it runs on: this host and those instruments."""
         self._require_run(run_id)
         with self.db.atomic():
-            self.db["runs"].update(run_id, {"instruments": json.dumps(dict(instruments))})
+            self.db["runs"].update(
+                run_id, {"instruments": json.dumps(dict(instruments)), **_bench(instruments)}
+            )
 
     def transaction(self) -> AbstractContextManager[Any]:
         """A block whose writes commit together (nested blocks become savepoints): one disk
@@ -681,6 +788,15 @@ class Store:
         if not rows:
             raise self._unknown_run(run_id)
         return self._run_record(rows[0])
+
+    def runs_by_uuid(self, prefix: str) -> list[RunRecord]:
+        """The runs whose UUID starts with ``prefix`` (lower-case hex digits and dashes; the
+        whole UUID finds one run), oldest first."""
+        if not prefix or prefix.strip("0123456789abcdef-"):
+            raise ValueError(f"UUID prefix {prefix!r}: lower-case hex digits and dashes only")
+        # "~" sorts after every hex digit and dash: the range is the prefix's, on runs_uuid
+        query = _RUNS_QUERY + " WHERE r.uuid >= ? AND r.uuid < ? ORDER BY r.id"
+        return [self._run_record(row) for row in self.db.query(query, [prefix, prefix + "~"])]
 
     def mark_abandoned_runs(self) -> list[int]:
         """Mark "interrupted" the runs left "running" by a process of this host that is gone,
@@ -1135,6 +1251,12 @@ SELECT r.*,
     (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id) AS points_total,
     (SELECT COUNT(*) FROM points p WHERE p.run_id = r.id AND p.status = 'done') AS points_done
 FROM runs r"""
+
+
+def _bench(instruments: Mapping[str, Any]) -> dict[str, str]:
+    """The columns that name the bench a run is on: this host and ``instruments``."""
+    host = socket.gethostname()
+    return {"bench_host": host, "bench_id": bench_identity(host, instruments)}
 
 
 def _owner() -> dict[str, Any]:

@@ -9,7 +9,7 @@ from typing import Any
 import click
 
 from labseq.errors import InputError
-from labseq.store import Store
+from labseq.store import Store, UnknownRunError
 
 DEFAULT_DB = "labseq.sqlite"
 
@@ -26,16 +26,44 @@ def db_option(help_text: str = "The SQLite store.") -> Callable[[Any], Any]:
     )
 
 
+#: The fewest hex digits of a UUID that name a run on the command line.
+UUID_PREFIX_MIN = 8
+
+
 def resolve_run(store: Store, text: str, *, what: str = "RUN") -> int:
-    """A run named on the command line: its id, or ``latest`` for the newest run in the store."""
-    if text.strip().lower() == "latest":
+    """A run named on the command line: its id in this store, its UUID or the first
+    :data:`UUID_PREFIX_MIN` or more hex digits of it, or ``latest`` for the newest run in the
+    store. Digits alone are an id when the store has a run of that id."""
+    given = text.strip().lower()
+    if given == "latest":
         runs = store.runs()
         if not runs:
             raise InputError(f"{store.path}: {what} latest: this store holds no runs")
         return runs[-1].id
+    hint = (
+        f"give a run id, a run's UUID or its first {UUID_PREFIX_MIN}+ hex digits (see "
+        "`labseq runs`), or 'latest'"
+    )
+    if given.isdigit() and (len(given) < UUID_PREFIX_MIN or _has_run(store, int(given))):
+        return int(given)
+    digits = given.replace("-", "")
+    if len(digits) < UUID_PREFIX_MIN or given.strip("0123456789abcdef-"):
+        raise InputError(f"{what} {text!r}: {hint}")
+    found = store.runs_by_uuid(given)
+    if len(found) == 1:
+        return found[0].id
+    if not found:
+        raise InputError(f"{store.path}: {what} {text!r}: no run's UUID starts so; {hint}")
+    names = ", ".join(f"{run.id} ({run.uuid})" for run in found[:5])
+    raise InputError(
+        f"{store.path}: {what} {text!r} starts the UUID of {len(found)} runs: {names}; give more "
+        "of its digits"
+    )
+
+
+def _has_run(store: Store, run_id: int) -> bool:
     try:
-        return int(text)
-    except ValueError:
-        raise InputError(
-            f"{what} {text!r}: give a run id (see `labseq runs`) or 'latest'"
-        ) from None
+        store.run(run_id)
+    except UnknownRunError:
+        return False
+    return True

@@ -16,7 +16,8 @@ from labseq.store import Store
 @db_option()
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON array instead of a table.")
 def command(db_path: Path, as_json: bool) -> None:
-    """List the runs in the store: id, start, status, DUT and snubber, points done/total.
+    """List the runs in the store: id, the first 8 hex digits of its UUID, start, status,
+    points done/total, DUT and snubber (--json: the whole UUID and the bench).
 
     A run whose end could not be confirmed safe (status unsafe-end) is named first, above the
     table, with what its shutdown found."""
@@ -28,6 +29,9 @@ def command(db_path: Path, as_json: bool) -> None:
     if as_json:
         fields = (
             "id",
+            "uuid",
+            "bench_id",
+            "bench_host",
             "started_at",
             "finished_at",
             "status",
@@ -54,10 +58,13 @@ def command(db_path: Path, as_json: bool) -> None:
             f"!! run {run_id}: {found or 'bench NOT confirmed safe at its end'}. "
             f"`labseq resume {run_id}` makes it safe first."
         )
-    click.echo(f"{'id':>4}  {'started (UTC)':19}  {'status':11}  {'points':>9}  DUT / snubber")
+    click.echo(
+        f"{'id':>4}  {'uuid':8}  {'started (UTC)':19}  {'status':11}  {'points':>9}  DUT / snubber"
+    )
     for run in runs:
         points = f"{run.points_done}/{run.points_total}"
         click.echo(
-            f"{run.id:>4}  {run.started_at[:19].replace('T', ' '):19}  {run.status:11}  "
+            f"{run.id:>4}  {run.uuid[:8]}  {run.started_at[:19].replace('T', ' '):19}  "
+            f"{run.status:11}  "
             f"{points:>9}  {run.dut_label} / {run.snubber_label}"
         )
