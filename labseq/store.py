@@ -529,6 +529,41 @@ class StoredCapture(Waveform):
 _CAPTURE_COLUMNS = [f.name for f in fields(StoredCapture) if f.name != "codes"]
 
 
+#: Every stored column of a capture but its codes.
+_STORED_CAPTURE_COLUMNS = _CAPTURE_COLUMNS + ["dtype", "points", "codec"]
+
+
+def decode_codes(
+    blob: bytes,
+    codec: str,
+    dtype: np.dtype,
+    count: int,
+    decompressor: zstandard.ZstdDecompressor | None = None,
+) -> np.ndarray:
+    """A capture's ``count`` codes of ``dtype`` from the bytes stored under ``codec``
+    (read-only, little-endian); ValueError when they are damaged."""
+    size = count * dtype.itemsize
+    try:
+        if codec == "zstd":
+            # a damaged frame may claim any size: check it before decompressing
+            if zstandard.frame_content_size(blob) != size:
+                raise ValueError(f"its zstd frame does not hold {size} bytes")
+            blob = (decompressor or zstandard.ZstdDecompressor()).decompress(blob)
+        elif codec != "raw":
+            raise ValueError(f"unknown codec {codec!r}")
+        if len(blob) != size:
+            raise ValueError(f"{len(blob)} bytes of codes where {count} {dtype.name} take {size}")
+    except zstandard.ZstdError as exc:
+        raise ValueError(str(exc)) from None
+    return np.frombuffer(blob, dtype=dtype)
+
+
+def _point_record_of(row: Mapping[str, Any]) -> PointRecord:
+    """A point's record from its row (in either backend)."""
+    reasons = json.loads(row["verdict_reasons"]) if row["verdict_reasons"] else []
+    return _record(PointRecord, row, line_is_ac=bool(row["line_is_ac"]), verdict_reasons=reasons)
+
+
 def _now_iso(unix_s: float | None = None) -> str:
     """UTC time as ISO 8601 text with milliseconds."""
     moment = datetime.fromtimestamp(time.time() if unix_s is None else unix_s, UTC)
@@ -1210,20 +1245,10 @@ class Store:
         """One capture's codes as stored (read-only, little-endian), decoded by its codec."""
         query = "SELECT codes, codec FROM captures WHERE id = ?"
         blob, codec = self.db.execute(query, [capture_id]).fetchone()
-        size = count * dtype.itemsize
         try:
-            if codec == "zstd":
-                # a damaged frame may claim any size: check it before decompressing
-                if zstandard.frame_content_size(blob) != size:
-                    raise ValueError(f"its zstd frame does not hold {size} bytes")
-                blob = self._decompressor.decompress(blob)
-            if len(blob) != size:
-                raise ValueError(
-                    f"{len(blob)} bytes of codes where {count} {dtype.name} take {size}"
-                )
-        except (ValueError, zstandard.ZstdError) as exc:
+            return decode_codes(blob, codec, dtype, count, self._decompressor)
+        except ValueError as exc:
             raise StoreError(f"{self.path}: capture {capture_id} is damaged: {exc}") from None
-        return np.frombuffer(blob, dtype=dtype)
 
     def _require_run(self, run_id: int) -> None:
         if not list(self.db.query("SELECT 1 FROM runs WHERE id = ?", [run_id])):
@@ -1240,10 +1265,57 @@ class Store:
 
     @staticmethod
     def _point_record(row: Mapping[str, Any]) -> PointRecord:
-        reasons = json.loads(row["verdict_reasons"]) if row["verdict_reasons"] else []
-        return _record(
-            PointRecord, row, line_is_ac=bool(row["line_is_ac"]), verdict_reasons=reasons
-        )
+        return _point_record_of(row)
+
+    # ------------------------------------------------------------------- copying a run out
+
+    def run_row(self, run_id: int) -> dict[str, Any]:
+        """A run's row as stored (columns by name), to copy it into another database."""
+        self._require_run(run_id)
+        return dict(self.db.execute("SELECT * FROM runs WHERE id = ?", [run_id]).fetchone())
+
+    def run_table_rows(self, run_id: int, table: str) -> list[dict[str, Any]]:
+        """A run's rows of ``table`` as stored, in id order (captures without their codes: see
+        :meth:`run_capture_codes`), to copy them into another database."""
+        if table == "points":
+            return self._table_rows("SELECT * FROM points WHERE run_id = ? ORDER BY id", run_id)
+        if table == "captures":
+            return self._table_rows(
+                f"SELECT {', '.join(_STORED_CAPTURE_COLUMNS)} FROM captures "
+                "WHERE run_id = ? ORDER BY id",
+                run_id,
+            )
+        if table == "capture_figures":
+            return self._table_rows(
+                "SELECT f.* FROM capture_figures f JOIN captures c ON c.id = f.capture_id "
+                "WHERE c.run_id = ? ORDER BY f.capture_id",
+                run_id,
+            )
+        if table == "point_figures":
+            return self._table_rows(
+                "SELECT f.* FROM point_figures f JOIN points p ON p.id = f.point_id "
+                "WHERE p.run_id = ? ORDER BY f.point_id, f.node, f.figure",
+                run_id,
+            )
+        if table == "node_verdicts":
+            return self._table_rows(
+                "SELECT v.* FROM node_verdicts v JOIN points p ON p.id = v.point_id "
+                "WHERE p.run_id = ? ORDER BY v.point_id, v.node",
+                run_id,
+            )
+        if table == "events":
+            return self._table_rows("SELECT * FROM events WHERE run_id = ? ORDER BY id", run_id)
+        raise ValueError(f"no table {table!r} of a run's rows")
+
+    def run_capture_codes(self, capture_rows: Iterable[Mapping[str, Any]]) -> Iterator[dict]:
+        """Each of these capture rows (from :meth:`run_table_rows`) with its codes as stored
+        (compressed or not, as its codec says), read one capture at a time."""
+        for row in capture_rows:
+            codes = self.db.execute("SELECT codes FROM captures WHERE id = ?", [row["id"]])
+            yield {**row, "codes": codes.fetchone()[0]}
+
+    def _table_rows(self, query: str, run_id: int) -> list[dict[str, Any]]:
+        return [dict(row) for row in self.db.execute(query, [run_id]).fetchall()]
 
 
 _RUNS_QUERY = """
