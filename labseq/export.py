@@ -26,7 +26,8 @@ from pathlib import Path
 import numpy as np
 
 from instruments import Waveform
-from labseq.store import PointRecord, Store, StoredCapture
+from labseq.store import PointRecord, StoredCapture
+from labseq.store_api import RunStore
 
 POINTS_FILE = "points.csv"
 SEQUENCE_FILE = "sequence.toml"
@@ -72,7 +73,7 @@ def volts_key(name: str) -> str:
     return f"{name}_volts"
 
 
-def write_points_csv(store: Store, run_id: int, path: Path) -> int:
+def write_points_csv(store: RunStore, run_id: int, path: Path) -> int:
     """Write the run's points with their figures (per node) to ``path``; return the row count."""
     points = store.points(run_id)
     figures = store.node_figures(run_id)
@@ -107,7 +108,7 @@ def write_points_csv(store: Store, run_id: int, path: Path) -> int:
     return len(points)
 
 
-def _named_captures(store: Store, run_id: int) -> Iterator[tuple[str, StoredCapture, int]]:
+def _named_captures(store: RunStore, run_id: int) -> Iterator[tuple[str, StoredCapture, int]]:
     index_of_point = {point.id: point.point_index for point in store.points(run_id)}
     nodes = store.node_names(run_id)
     for capture in store.iter_captures(run_id):
@@ -116,7 +117,7 @@ def _named_captures(store: Store, run_id: int) -> Iterator[tuple[str, StoredCapt
         yield capture_name(point_index, capture.capture_index, node), capture, point_index
 
 
-def write_captures_npz(store: Store, run_id: int, path: Path) -> int:
+def write_captures_npz(store: RunStore, run_id: int, path: Path) -> int:
     """Write every capture of the run into one ``.npz``, streaming; return the count."""
     scaling = []
     with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_STORED, allowZip64=True) as archive:
@@ -143,7 +144,7 @@ def write_captures_npz(store: Store, run_id: int, path: Path) -> int:
     return len(scaling)
 
 
-def write_captures_csv(store: Store, run_id: int, directory: Path) -> int:
+def write_captures_csv(store: RunStore, run_id: int, directory: Path) -> int:
     """Write one ``time_s,volts`` CSV per capture into ``directory``; return the count."""
     directory.mkdir(parents=True, exist_ok=True)
     count = 0
@@ -170,7 +171,7 @@ class Exported:
     captures: int
 
 
-def export_run(store: Store, run_id: int, directory: Path, *, captures: str = "npz") -> Exported:
+def export_run(store: RunStore, run_id: int, directory: Path, *, captures: str = "npz") -> Exported:
     """Write run ``run_id`` into ``directory``: ``points.csv``, the sequence file as run, the
     run's record as ``run.json``, and its captures as one NPZ or one CSV each (``captures``, one
     of :data:`CAPTURE_FORMATS`)."""

@@ -16,7 +16,8 @@ from labseq.analysis.design import PartSet, propose_part_set
 from labseq.errors import InputError
 from labseq.pipeline import stored_sequence
 from labseq.sequence import Snubber
-from labseq.store import PointRecord, Store
+from labseq.store import PointRecord
+from labseq.store_api import RunStore
 from labseq.units import format_si
 
 
@@ -44,7 +45,7 @@ class RunProposals:
     part_set: PartSet
 
 
-def _clipped_points(store: Store, points: list[PointRecord], node: str) -> set[int]:
+def _clipped_points(store: RunStore, points: list[PointRecord], node: str) -> set[int]:
     """Ids of the points where any capture of ``node`` reached the scope's full scale."""
     clipped = set()
     for point in points:
@@ -57,7 +58,7 @@ def _clipped_points(store: Store, points: list[PointRecord], node: str) -> set[i
 
 
 def propose_for_run(
-    store: Store, run_id: int, *, loss_budget_w: float | None = None, cs_f: float | None = None
+    store: RunStore, run_id: int, *, loss_budget_w: float | None = None, cs_f: float | None = None
 ) -> RunProposals:
     """Propose Rs and Cs at every done point of run ``run_id`` that has a fitted ring, worst
     peak first, and one part set for all of them. With neither ``cs_f`` nor ``loss_budget_w``

@@ -2,8 +2,8 @@
 
 Everything here works on the figures a run stored per point (worst, mean and spread over the
 point's captures), never on the raw captures, so a review of a large run costs one read of its
-point rows. The only input is a :class:`labseq.store.Store`; nothing is written. The regression
-compare of two reviewed runs is :mod:`labseq.compare`.
+point rows. The only input is a store of runs (:class:`labseq.store_api.RunStore`); nothing is
+written. The regression compare of two reviewed runs is :mod:`labseq.compare`.
 
 Nodes
 -----
@@ -35,7 +35,8 @@ from labseq.figures import (
 from labseq.pipeline import stored_sequence
 from labseq.sequence import DEFAULT_PRIMARY_NAME, NodeSpec
 from labseq.sequence import Sequence as SequenceFile
-from labseq.store import PointRecord, RunRecord, Store
+from labseq.store import PointRecord, RunRecord
+from labseq.store_api import RunStore
 from labseq.units import format_si
 
 # --------------------------------------------------------------------------- text helpers
@@ -255,7 +256,7 @@ def worst_points(points: Sequence[PointReview], polarity: int = 1) -> dict[str, 
     return result
 
 
-def _point_reviews(store: Store, run_id: int, primary: str) -> list[PointReview]:
+def _point_reviews(store: RunStore, run_id: int, primary: str) -> list[PointReview]:
     figures = store.node_figures(run_id)
     verdicts = store.node_verdicts(run_id)
     reviews = []
@@ -274,7 +275,7 @@ def _point_reviews(store: Store, run_id: int, primary: str) -> list[PointReview]
     return reviews
 
 
-def review_run(store: Store, run_id: int) -> RunReview:
+def review_run(store: RunStore, run_id: int) -> RunReview:
     """Read run ``run_id`` and its points and work out its verdict, grid and worst points."""
     run = store.run(run_id)
     try:

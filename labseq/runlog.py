@@ -14,7 +14,8 @@ from dataclasses import dataclass
 from typing import Any
 
 from labseq.review import point_label
-from labseq.store import EVENT_KINDS, PointRecord, Store
+from labseq.store import EVENT_KINDS, PointRecord
+from labseq.store_api import RunStore
 
 
 @dataclass(frozen=True)
@@ -67,7 +68,7 @@ def _value_text(value: Any) -> str:
     return value if isinstance(value, str) else json.dumps(value, separators=(",", ":"))
 
 
-def run_log(store: Store, run_id: int, *, kinds: Iterable[str] = ()) -> list[LogEntry]:
+def run_log(store: RunStore, run_id: int, *, kinds: Iterable[str] = ()) -> list[LogEntry]:
     """The events of run ``run_id`` in the order they happened (only those of ``kinds`` when
     given)."""
     wanted = set(kinds)

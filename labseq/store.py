@@ -718,6 +718,11 @@ class Store:
         finally:
             conn.execute("PRAGMA foreign_keys = ON")
 
+    @property
+    def location(self) -> str:
+        """The file's path, for messages."""
+        return str(self.path)
+
     def __enter__(self) -> Store:
         return self
 

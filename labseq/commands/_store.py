@@ -10,6 +10,7 @@ import click
 
 from labseq.errors import InputError
 from labseq.store import Store, UnknownRunError
+from labseq.store_api import RunStore
 
 DEFAULT_DB = "labseq.sqlite"
 
@@ -26,11 +27,16 @@ def db_option(help_text: str = "The SQLite store.") -> Callable[[Any], Any]:
     )
 
 
+def read_store(db_path: Path) -> RunStore:
+    """The store ``--db`` names, opened for reading only (the read commands' one way in)."""
+    return Store(db_path, create=False)
+
+
 #: The fewest hex digits of a UUID that name a run on the command line.
 UUID_PREFIX_MIN = 8
 
 
-def resolve_run(store: Store, text: str, *, what: str = "RUN") -> int:
+def resolve_run(store: RunStore, text: str, *, what: str = "RUN") -> int:
     """A run named on the command line: its id in this store, its UUID or the first
     :data:`UUID_PREFIX_MIN` or more hex digits of it, or ``latest`` for the newest run in the
     store. Digits alone are an id when the store has a run of that id."""
@@ -38,7 +44,7 @@ def resolve_run(store: Store, text: str, *, what: str = "RUN") -> int:
     if given == "latest":
         runs = store.runs()
         if not runs:
-            raise InputError(f"{store.path}: {what} latest: this store holds no runs")
+            raise InputError(f"{store.location}: {what} latest: this store holds no runs")
         return runs[-1].id
     hint = (
         f"give a run id, a run's UUID or its first {UUID_PREFIX_MIN}+ hex digits (see "
@@ -53,15 +59,15 @@ def resolve_run(store: Store, text: str, *, what: str = "RUN") -> int:
     if len(found) == 1:
         return found[0].id
     if not found:
-        raise InputError(f"{store.path}: {what} {text!r}: no run's UUID starts so; {hint}")
+        raise InputError(f"{store.location}: {what} {text!r}: no run's UUID starts so; {hint}")
     names = ", ".join(f"{run.id} ({run.uuid})" for run in found[:5])
     raise InputError(
-        f"{store.path}: {what} {text!r} starts the UUID of {len(found)} runs: {names}; give more "
-        "of its digits"
+        f"{store.location}: {what} {text!r} starts the UUID of {len(found)} runs: {names}; "
+        "give more of its digits"
     )
 
 
-def _has_run(store: Store, run_id: int) -> bool:
+def _has_run(store: RunStore, run_id: int) -> bool:
     try:
         store.run(run_id)
     except UnknownRunError:

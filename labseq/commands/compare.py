@@ -14,7 +14,7 @@ from pathlib import Path
 
 import click
 
-from labseq.commands._store import db_option, resolve_run
+from labseq.commands._store import db_option, read_store, resolve_run
 from labseq.compare import (
     DEFAULT_COVERAGE,
     DEFAULT_MATCH_TOLERANCE,
@@ -25,7 +25,6 @@ from labseq.compare import (
 from labseq.errors import InputError
 from labseq.figures import FIGURE_DIRECTIONS
 from labseq.review import review_run
-from labseq.store import Store
 
 #: Exit status when the candidate regressed (what a CI job acts on).
 EXIT_REGRESSED = 1
@@ -90,9 +89,9 @@ def command(
     Exits 1 when any point got worse beyond the captures' own spread or went pass → fail.
     """
     with contextlib.ExitStack() as stack:
-        baseline_store = stack.enter_context(Store(db_path, create=False))
+        baseline_store = stack.enter_context(read_store(db_path))
         candidate_store = (
-            stack.enter_context(Store(candidate_db_path, create=False))
+            stack.enter_context(read_store(candidate_db_path))
             if candidate_db_path is not None
             else baseline_store
         )

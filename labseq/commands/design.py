@@ -18,7 +18,7 @@ from labseq.analysis import (
 )
 from labseq.analysis.design import PartSet, leakage_energy_loss_w
 from labseq.commands._options import option_fraction_or_quantity, option_quantity
-from labseq.commands._store import db_option, resolve_run
+from labseq.commands._store import db_option, read_store, resolve_run
 from labseq.errors import InputError
 from labseq.units import format_si
 
@@ -256,7 +256,6 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
     """``design --run``: one proposal per measured point of a stored run, worst peak first, and
     one part set for all of them (:func:`labseq.proposals.propose_for_run`)."""
     from labseq.proposals import propose_for_run
-    from labseq.store import Store
 
     given = {k: option_quantity(options[k], unit, f"--{k.replace('_', '-')}") for k, unit in
              (("loss_budget", "W"), ("cs", "F"))}  # fmt: skip
@@ -266,7 +265,7 @@ def _run_proposals(run: str, db_path: Path, options: dict[str, str | None], as_j
                 f"design --run: --{name.replace('_', '-')} is not used with --run: every point's "
                 "L and Cpar come from its ring measured with the run's own damper"
             )
-    with Store(db_path, create=False) as store:
+    with read_store(db_path) as store:
         run_id = resolve_run(store, run)
         try:
             found = propose_for_run(

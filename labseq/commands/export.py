@@ -7,9 +7,8 @@ from pathlib import Path
 
 import click
 
-from labseq.commands._store import db_option, resolve_run
+from labseq.commands._store import db_option, read_store, resolve_run
 from labseq.export import CAPTURE_FORMATS, export_run
-from labseq.store import Store
 
 
 @click.command("export")
@@ -32,7 +31,7 @@ from labseq.store import Store
 )
 def command(run: str, db_path: Path, out_dir: Path | None, captures_format: str) -> None:
     """Export run RUN (an id, or 'latest'): points.csv plus the captures (as NPZ or CSV)."""
-    with Store(db_path, create=False) as store:
+    with read_store(db_path) as store:
         run_id = resolve_run(store, run)
         written = export_run(
             store, run_id, out_dir or Path(f"run-{run_id}"), captures=captures_format

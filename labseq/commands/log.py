@@ -7,8 +7,8 @@ from pathlib import Path
 
 import click
 
-from labseq.commands._store import db_option, resolve_run
-from labseq.store import EVENT_KINDS, Store
+from labseq.commands._store import db_option, read_store, resolve_run
+from labseq.store import EVENT_KINDS
 
 
 @click.command("log")
@@ -28,7 +28,7 @@ def command(run: str, db_path: Path, kinds: tuple[str, ...], as_json: bool) -> N
     and how the run ended — in the order they happened, times in UTC."""
     from labseq.runlog import entry_line, run_log
 
-    with Store(db_path, create=False) as store:
+    with read_store(db_path) as store:
         run_id = resolve_run(store, run)
         entries = run_log(store, run_id, kinds=kinds)
     if as_json:

@@ -7,10 +7,9 @@ from pathlib import Path
 
 import click
 
-from labseq.commands._store import db_option, resolve_run
+from labseq.commands._store import db_option, read_store, resolve_run
 from labseq.errors import InputError
 from labseq.review import review_run, run_summary
-from labseq.store import Store
 
 
 @click.command("report")
@@ -38,7 +37,7 @@ def command(run: str, db_path: Path, out_dir: Path | None, output_format: str) -
     """
     from labseq.report import build_run_report
 
-    with Store(db_path, create=False) as store:
+    with read_store(db_path) as store:
         run_id = resolve_run(store, run)
         review = review_run(store, run_id)
         if output_format == "json":

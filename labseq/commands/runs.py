@@ -8,8 +8,7 @@ from pathlib import Path
 
 import click
 
-from labseq.commands._store import db_option
-from labseq.store import Store
+from labseq.commands._store import db_option, read_store
 
 
 @click.command("runs")
@@ -21,7 +20,7 @@ def command(db_path: Path, as_json: bool) -> None:
 
     A run whose end could not be confirmed safe (status unsafe-end) is named first, above the
     table, with what its shutdown found."""
-    with Store(db_path, create=False) as store:
+    with read_store(db_path) as store:
         runs = store.runs()
         unsafe = {
             run.id: store.last_safety_check(run.id) for run in runs if run.status == "unsafe-end"

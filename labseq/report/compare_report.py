@@ -24,7 +24,7 @@ from labseq.report.html import Markup, Page, cell, esc, table
 from labseq.report.run_report import LOSS_ASSUMPTIONS, ReportFiles, cell_texts, with_loss_methods
 from labseq.report.traces import point_traces
 from labseq.review import RunReview, line_text
-from labseq.store import Store
+from labseq.store_api import RunStore
 
 #: Figures with maps and table columns, in reading order.
 MAPPED_FIGURES = ("peak_v", "damping_ratio", "settling_time_s", "snubber_loss_w", "efficiency")
@@ -207,7 +207,7 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
 
 
 def _overlays(
-    page: Page, comparison: Comparison, baseline_store: Store, candidate_store: Store
+    page: Page, comparison: Comparison, baseline_store: RunStore, candidate_store: RunStore
 ) -> None:
     for index, change in enumerate(comparison.most_moved(OVERLAY_POINTS)):
         label = comparison.label(change)
@@ -272,7 +272,7 @@ def _rule_text(comparison: Comparison) -> str:
 
 
 def build_compare_report(
-    comparison: Comparison, baseline_store: Store, candidate_store: Store, out_dir: Path
+    comparison: Comparison, baseline_store: RunStore, candidate_store: RunStore, out_dir: Path
 ) -> ReportFiles:
     """Write the compare's ``report.html`` and its PNGs into ``out_dir``."""
     out_dir.mkdir(parents=True, exist_ok=True)

@@ -29,7 +29,7 @@ from labseq.report.html import Markup, Page, esc, table, verdict_cell
 from labseq.report.traces import point_traces
 from labseq.review import PointReview, RunReview, limit_rows, line_text
 from labseq.runlog import run_log
-from labseq.store import Store
+from labseq.store_api import RunStore
 from labseq.units import format_si
 
 #: Rows of the "did not pass" table at most; points.csv has them all.
@@ -217,7 +217,7 @@ def _worst_rows(review: RunReview) -> list[list[str]]:
     return rows
 
 
-def _worst_overlays(page: Page, store: Store, review: RunReview) -> None:
+def _worst_overlays(page: Page, store: RunStore, review: RunReview) -> None:
     """One overlay per distinct worst point, naming the figures it is worst in."""
     by_point: dict[int, tuple[PointReview, list[str]]] = {}
     for figure, worst in review.worst.items():
@@ -247,7 +247,7 @@ def _worst_overlays(page: Page, store: Store, review: RunReview) -> None:
         page.add(page.image(name, plots.png_bytes(fig), caption))
 
 
-def _node_section(page: Page, store: Store, view: RunReview) -> None:
+def _node_section(page: Page, store: RunStore, view: RunReview) -> None:
     """A further node: its limits, its heat maps, its worst points with their overlays."""
     page.section(
         f"node-{view.node_name}",
@@ -305,7 +305,7 @@ def _not_passed_rows(review: RunReview) -> tuple[list[list[str]], int]:
     return rows, len(listed)
 
 
-def _log_table(page: Page, store: Store, review: RunReview) -> None:
+def _log_table(page: Page, store: RunStore, review: RunReview) -> None:
     """The run's events in the order they happened (times in UTC)."""
     entries = run_log(store, review.run.id)
     if not entries:
@@ -328,7 +328,7 @@ def _log_table(page: Page, store: Store, review: RunReview) -> None:
         )
 
 
-def build_run_report(store: Store, review: RunReview, out_dir: Path) -> ReportFiles:
+def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> ReportFiles:
     """Write ``report.html``, its PNGs and ``points.csv`` for a reviewed run into ``out_dir``."""
     out_dir.mkdir(parents=True, exist_ok=True)
     run = review.run

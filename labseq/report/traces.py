@@ -11,7 +11,8 @@ from labseq.analysis import NoEdgeError
 from labseq.pipeline import analyse_waveform
 from labseq.report.plots import Trace
 from labseq.sequence import Sequence
-from labseq.store import Store, StoredCapture
+from labseq.store import StoredCapture
+from labseq.store_api import RunStore
 
 #: Captures drawn per point at most.
 MAX_CAPTURES_DRAWN = 4
@@ -34,7 +35,7 @@ def trace_of(capture: StoredCapture, sequence: Sequence | None) -> Trace:
 
 
 def point_traces(
-    store: Store,
+    store: RunStore,
     point_id: int,
     sequence: Sequence | None,
     limit: int = MAX_CAPTURES_DRAWN,
