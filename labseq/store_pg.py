@@ -37,6 +37,7 @@ from labseq.errors import InputError
 from labseq.figures import CAPTURE_METHODS
 from labseq.store import (
     APPLICATION,
+    PointRecord,
     RunRecord,
     Store,
     StoredCapture,
@@ -399,12 +400,12 @@ class LabDatabase:
             ) from None
         self._psycopg = psycopg
         self.url = url
-        self.path = redact(url)  # how every message names this database
+        self._location = redact(url)  # how every message names this database
         self._secret = _password_of(url)
         try:
             self.conn = psycopg.connect(url, row_factory=dict_row, autocommit=True)
         except psycopg.Error as exc:
-            raise LabDatabaseError(f"{self.path}: cannot connect: {self._clean(exc)}") from None
+            raise LabDatabaseError(f"{self.location}: cannot connect: {self._clean(exc)}") from None
         try:
             self._check_schema(setup)
         except BaseException:
@@ -422,7 +423,7 @@ class LabDatabase:
         return text
 
     def _fail(self, exc: Exception, doing: str) -> LabDatabaseError:
-        return LabDatabaseError(f"{self.path}: {doing}: {self._clean(exc)}")
+        return LabDatabaseError(f"{self.location}: {doing}: {self._clean(exc)}")
 
     def _check_schema(self, setup: bool) -> None:
         try:
@@ -433,7 +434,7 @@ class LabDatabase:
                 if not present:
                     if not setup:
                         raise LabDatabaseInputError(
-                            f"{self.path}: not a labseq lab database (no schema_info table); "
+                            f"{self.location}: not a labseq lab database (no schema_info table); "
                             "`labseq publish RUN --to URL` sets one up"
                         )
                     for statement in _SCHEMA_1:
@@ -447,14 +448,19 @@ class LabDatabase:
             raise self._fail(exc, "cannot read its schema") from None
         if row is None or row["application"] != APPLICATION:
             raise LabDatabaseInputError(
-                f"{self.path}: its schema_info is not labseq's; give another database"
+                f"{self.location}: its schema_info is not labseq's; give another database"
             )
         if row["version"] > SCHEMA_VERSION:
             raise LabDatabaseInputError(
-                f"{self.path}: written by a newer labseq (lab schema version {row['version']}; "
+                f"{self.location}: written by a newer labseq (lab schema version {row['version']}; "
                 f"this labseq {__version__} reads version {SCHEMA_VERSION}); upgrade labseq to "
                 "use it. Nothing was changed."
             )
+
+    @property
+    def location(self) -> str:
+        """The database's URL without its password."""
+        return self._location
 
     def __enter__(self) -> LabDatabase:
         return self
@@ -463,6 +469,7 @@ class LabDatabase:
         self.close()
 
     def close(self) -> None:
+        """Close the connection."""
         self.conn.close()
 
     def _fetch(self, query: str, params: list[Any]) -> list[dict[str, Any]]:
@@ -474,7 +481,8 @@ class LabDatabase:
     # ------------------------------------------------------------------- runs
 
     def runs(self) -> list[RunRecord]:
-        """All runs, oldest first (by start time), with their point counts."""
+        """All runs, oldest first (by start time: ids here count publications, not starts),
+        with their point counts."""
         return [self._run_record(row) for row in self._fetch(_ALL_RUNS, [])]
 
     def run(self, run_id: int) -> RunRecord:
@@ -482,7 +490,7 @@ class LabDatabase:
         if not rows:
             ids = [str(row["id"]) for row in self._fetch(_RUN_IDS, [])]
             known = f"runs here: {', '.join(ids[-20:])}" if ids else "it holds no runs"
-            raise UnknownRunError(f"{self.path}: no run {run_id}; {known}")
+            raise UnknownRunError(f"{self.location}: no run {run_id}; {known}")
         return self._run_record(rows[0])
 
     def runs_by_uuid(self, prefix: str) -> list[RunRecord]:
@@ -508,7 +516,7 @@ class LabDatabase:
 
     # ------------------------------------------------------------------- points
 
-    def points(self, run_id: int, *, status: str | None = None) -> list:
+    def points(self, run_id: int, *, status: str | None = None) -> list[PointRecord]:
         self.run(run_id)
         if status is None:
             rows = self._fetch(_POINTS_OF_RUN, [run_id])
@@ -516,10 +524,10 @@ class LabDatabase:
             rows = self._fetch(_POINTS_WITH_STATUS, [run_id, status])
         return [_point_record_of(row) for row in rows]
 
-    def point(self, point_id: int) -> Any:
+    def point(self, point_id: int) -> PointRecord:
         rows = self._fetch(_POINT, [point_id])
         if not rows:
-            raise StoreError(f"{self.path}: no point with id {point_id}")
+            raise StoreError(f"{self.location}: no point with id {point_id}")
         return _point_record_of(rows[0])
 
     def node_figures(self, run_id: int) -> dict[int, dict[str, dict[str, dict[str, Any]]]]:
@@ -575,14 +583,16 @@ class LabDatabase:
             stored = self._fetch(_CODES, [row["id"]])[0]
             if stored["codes"] is None:
                 raise LabDatabaseInputError(
-                    f"{self.path}: run {row['run_id']} was published without its raw captures "
+                    f"{self.location}: run {row['run_id']} was published without its raw captures "
                     "(--no-captures): read them from its bench's store, or publish it again "
                     "with them"
                 )
             try:
                 codes = decode_codes(bytes(stored["codes"]), stored["codec"], dtype, row["points"])
             except ValueError as exc:
-                raise StoreError(f"{self.path}: capture {row['id']} is damaged: {exc}") from None
+                raise StoreError(
+                    f"{self.location}: capture {row['id']} is damaged: {exc}"
+                ) from None
         return _record(StoredCapture, row, codes=codes)
 
     def capture_figures(self, capture_id: int) -> dict[str, Any] | None:

@@ -11,10 +11,11 @@ import pytest
 
 from labseq.store import Store
 from labseq.store_api import RunStore
+from labseq.store_pg import LabDatabase
 
 ROOT = Path(__file__).resolve().parent.parent
 #: The store backends; a new one is added here.
-BACKENDS = [Store]
+BACKENDS = [Store, LabDatabase]
 #: Modules that only read runs, and so type their store as RunStore.
 READERS = [
     "labseq/review.py",

@@ -13,7 +13,7 @@ from labseq.export import CAPTURE_FORMATS, export_run
 
 @click.command("export")
 @click.argument("run", metavar="RUN")
-@db_option()
+@db_option(lab=True)
 @click.option(
     "--out",
     "out_dir",

@@ -14,7 +14,7 @@ from labseq.review import review_run, run_summary
 
 @click.command("report")
 @click.argument("run", metavar="RUN")
-@db_option()
+@db_option(lab=True)
 @click.option(
     "--out",
     "out_dir",
