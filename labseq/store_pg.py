@@ -28,7 +28,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
-from urllib.parse import parse_qsl, urlencode, urlsplit, urlunsplit
+from urllib.parse import urlsplit, urlunsplit
 
 import numpy as np
 
@@ -335,9 +335,9 @@ def redact(url: str) -> str:
         if ":" in user:
             user = user.split(":", 1)[0] + ":***"
         netloc = f"{user}@{host}"
-    query = urlencode(
-        [(k, "***" if k.lower() == "password" else v) for k, v in parse_qsl(parts.query)],
-        safe="/:",
+    query = "&".join(
+        "password=***" if part.split("=", 1)[0].lower() == "password" else part
+        for part in parts.query.split("&")
     )
     return urlunsplit((parts.scheme, netloc, parts.path, query, parts.fragment))
 
