@@ -36,6 +36,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "design",
     "report",
     "compare",
+    "merge",
     "publish",
 )
 

@@ -1,10 +1,12 @@
 """``labseq publish``: copy a bench's ended runs into the lab database.
 
 Which runs: those named (any run that has ended; one still running is refused, since what is
-published is never updated), or with ``--all`` every finished run of the store that the lab
-database does not hold yet. Each run goes in one transaction of its own
-(:meth:`labseq.store_pg.LabDatabase.publish_run`), so a publish cut short keeps the runs it
-finished and shows nothing of the one it was copying; running it again copies what is missing.
+published is not updated), or with ``--all`` every ended run of the store that the lab database
+does not hold yet (as ``labseq merge`` gathers stores). A run published and then changed on the
+bench (resumed) is kept as published, and the publish says so. Each run goes in one transaction
+of its own (:meth:`labseq.store_pg.LabDatabase.publish_run`), so a publish cut short keeps the
+runs it finished and shows nothing of the one it was copying; running it again copies what is
+missing.
 """
 
 from __future__ import annotations
@@ -14,16 +16,19 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
 from labseq.errors import InputError
+from labseq.merge import ENDED_STATUSES, differs
 from labseq.store import RunRecord, Store
 from labseq.store_pg import LabDatabase, Published
 
 
 @dataclass(frozen=True)
 class PublishPlan:
-    """The runs to publish, and those ``--all`` left out (not finished) with their status."""
+    """The runs to publish; those ``--all`` left out as still running; and those already there
+    whose bench copy has changed since they were published (a resumed run: kept as published)."""
 
     runs: list[RunRecord]
-    not_finished: list[RunRecord]
+    running: list[RunRecord]
+    changed: list[RunRecord]
 
 
 def plan(
@@ -31,32 +36,35 @@ def plan(
     lab: LabDatabase,
     run_ids: Iterable[int],
     *,
-    every_finished: bool,
+    every_ended: bool,
     with_codes: bool,
 ) -> PublishPlan:
     """The runs of ``source`` to publish: ``run_ids`` (each must have ended), and with
-    ``every_finished`` every finished run not yet in ``lab`` (or there without its codes when
-    ``with_codes``)."""
+    ``every_ended`` every ended run that ``lab`` does not hold yet (or holds without its codes
+    when ``with_codes``)."""
     named = [source.run(run_id) for run_id in dict.fromkeys(run_ids)]
     for run in named:
-        if run.status == "running":
+        if run.status not in ENDED_STATUSES:
             raise InputError(
                 f"{source.location}: run {run.id} is still running; publish it once it has "
                 "ended (`labseq runs` shows its status; `labseq resume` finishes a dead one)"
             )
-    if not every_finished:
-        return PublishPlan(named, [])
-    everything = source.runs()
+    everything = source.runs() if every_ended else named
     there = lab.published([run.uuid for run in everything])
-    missing = [
+    wanted = named + [
         run
         for run in everything
-        if run.status == "finished"
+        if run.status in ENDED_STATUSES
         and (run.uuid not in there or (with_codes and not there[run.uuid]))
     ]
-    chosen = {run.id: run for run in [*named, *missing]}
-    left_out = [run for run in everything if run.status != "finished" and run.id not in chosen]
-    return PublishPlan(sorted(chosen.values(), key=lambda run: run.id), left_out)
+    chosen = sorted({run.id: run for run in wanted}.values(), key=lambda run: run.id)
+    running = [run for run in everything if run.status not in ENDED_STATUSES]
+    changed = [
+        run
+        for run in everything
+        if run.uuid in there and differs(run, lab.runs_by_uuid(run.uuid)[0])
+    ]
+    return PublishPlan(chosen, running, changed)
 
 
 @dataclass(frozen=True)

@@ -12,7 +12,8 @@ WAL with NORMAL; FULL would add a disk sync per capture). A capture is committed
 point's readings and "done" state with its last capture, so a crash leaves every committed capture
 intact and the point pending until it is complete. The schema version is checked on open; a file
 written by a newer labseq is refused without being touched, and one written by an older labseq is
-upgraded in place (:meth:`Store._upgrade`).
+upgraded in place (:meth:`Store._upgrade`). A writer leaves the file at rest in rollback-journal
+mode when it closes, so that it reads with nothing beside it; read-only opens write nothing.
 
 Codes are stored compressed by default (``captures.codec`` says how each capture's are stored:
 ``"zstd"``, Zstandard at level 3, or ``"raw"``); reading them back fetches the ordered capture rows
@@ -31,6 +32,7 @@ import json
 import os
 import socket
 import sqlite3
+import tempfile
 import time
 import uuid
 from collections.abc import Iterable, Iterator, Mapping
@@ -344,15 +346,17 @@ def _upgrade_to_3() -> list[str]:
 
 def _upgrade_to_4() -> list[str]:
     """Statements that bring a version-3 file to version 4 (runs gathered from many benches):
-    every run gets a UUID (a new random one for each run stored so far, through the
-    connection's ``labseq_uuid4()``) and the bench it ran on (its owner's host and
-    ``labseq_bench_id()`` of that host and the recorded instruments); the foreign keys that reads
-    follow get indexes (a run's captures and its events; a point's captures and a run's points
-    already have theirs, the leading columns of their UNIQUE constraints)."""
+    every run gets a UUID (for a run stored so far, the connection's ``labseq_run_uuid()`` of
+    what the run recorded, :func:`upgraded_run_uuid`) and the bench it ran on (its owner's host
+    and ``labseq_bench_id()`` of that host and the recorded instruments); the foreign keys that
+    reads follow get indexes (a run's captures and its events; a point's captures and a run's
+    points already have theirs, the leading columns of their UNIQUE constraints)."""
     return [
         _RUNS_TABLE_4.format(table="runs_new"),
         f"INSERT INTO runs_new ({_RUN_COLUMNS_3}, uuid, bench_host, bench_id) "
-        f"SELECT {_RUN_COLUMNS_3}, labseq_uuid4(), COALESCE(host, ''), "
+        f"SELECT {_RUN_COLUMNS_3}, "
+        "labseq_run_uuid(id, started_at, sequence_sha256, host, pid, process_started), "
+        "COALESCE(host, ''), "
         "labseq_bench_id(COALESCE(host, ''), instruments) FROM runs",
         "DROP TABLE runs",
         "ALTER TABLE runs_new RENAME TO runs",
@@ -375,6 +379,26 @@ def _upgrade_statements(version: int) -> list[str]:
 def new_run_uuid() -> str:
     """A new run's UUID: version 4 (random), as 36 characters of lower-case text."""
     return str(uuid.uuid4())
+
+
+#: The namespace of the UUIDs given to runs stored before version 4 (a random UUID, fixed here).
+_UPGRADED_RUN_NAMESPACE = uuid.UUID("5f0c1d2e-8b7a-4c39-9e61-2a4d3b8c7f10")
+
+
+def upgraded_run_uuid(
+    run_id: int,
+    started_at: str,
+    sequence_sha256: str,
+    host: str | None,
+    pid: int | None,
+    process_started: float | None,
+) -> str:
+    """The UUID of a run stored before version 4: a name-based UUID (version 5, RFC 4122 4.3)
+    of what the run recorded — its id, start time, sequence digest and owner. Two copies of the
+    same older file, each upgraded, or one read several times through an upgraded copy
+    (``Store(read_only=True)``), give each run the same UUID, so merging them keeps one."""
+    name = json.dumps([run_id, started_at, sequence_sha256, host, pid, process_started])
+    return str(uuid.uuid5(_UPGRADED_RUN_NAMESPACE, name))
 
 
 #: The ``*IDN?`` fields that name an instrument (IEEE 488.2 10.14): its firmware may change
@@ -607,6 +631,32 @@ def _record(cls: type, row: Mapping[str, Any], **overrides: Any) -> Any:
 # --------------------------------------------------------------------------- opening
 
 
+def _connect_read_only(path: Path) -> sqlite3.Connection:
+    """A connection that reads ``path`` and writes nothing, to it or beside it.
+
+    A store at rest is in the rollback-journal mode its last writer leaves it in
+    (:meth:`Store.close`) and opens with ``mode=ro``, even where this user may not write (an
+    archive share, another user's folder). A file left in WAL mode needs the ``-shm`` index
+    beside it, which SQLite creates where it can; where it cannot and no write-ahead log with
+    commits is beside the file, it is opened ``immutable`` (there is nothing to miss)."""
+    uri = path.resolve().as_uri()
+    conn = sqlite3.connect(f"{uri}?mode=ro", uri=True, timeout=30.0, isolation_level=None)
+    try:
+        conn.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
+    except sqlite3.OperationalError:
+        conn.close()
+        wal = path.with_name(f"{path.name}-wal")
+        if wal.is_file() and wal.stat().st_size > 0:
+            raise StoreFileError(
+                f"{path}: cannot be read here: its last commits are in {wal.name}, which SQLite "
+                f"reads only where it may create {path.name}-shm; copy both files to a folder "
+                "you may write, or open the store once with labseq where it was written"
+            ) from None
+        conn = sqlite3.connect(f"{uri}?immutable=1", uri=True, isolation_level=None)
+    conn.execute("PRAGMA query_only = ON")
+    return conn
+
+
 def _inspect_existing(path: Path) -> int | None:
     """Check an existing file without changing it: its schema version, or None if it is empty.
 
@@ -617,7 +667,7 @@ def _inspect_existing(path: Path) -> int | None:
     if header != _SQLITE_MAGIC:
         raise StoreFileError(f"{path}: not a SQLite database; give a labseq store (.sqlite)")
     try:
-        conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
+        conn = _connect_read_only(path)
         try:
             tables = [row[0] for row in conn.execute("SELECT name FROM sqlite_master")]
             if not tables:
@@ -646,9 +696,10 @@ def _inspect_existing(path: Path) -> int | None:
 
 
 def _add_functions(conn: sqlite3.Connection) -> None:
-    """The SQL functions the upgrade steps use: ``labseq_uuid4()`` (:func:`new_run_uuid`) and
-    ``labseq_bench_id(host, instruments_json)`` (:func:`bench_identity`)."""
-    conn.create_function("labseq_uuid4", 0, new_run_uuid)
+    """The SQL functions the upgrade steps use: ``labseq_run_uuid(...)``
+    (:func:`upgraded_run_uuid`) and ``labseq_bench_id(host, instruments_json)``
+    (:func:`bench_identity`)."""
+    conn.create_function("labseq_run_uuid", 6, upgraded_run_uuid, deterministic=True)
     conn.create_function("labseq_bench_id", 2, _bench_identity_sql, deterministic=True)
 
 
@@ -658,21 +709,37 @@ class Store:
     ``Store(path)`` opens the file, creating it when missing unless ``create=False`` (then a
     missing file is a :class:`StoreFileError`, exit status 2). ``codec`` is how the captures
     stored from now on keep their codes (one of :data:`CODECS`); every codec reads.
+
+    ``read_only=True`` opens an existing store for reading and never writes to it or beside it
+    (:func:`_connect_read_only`), so a store that this user may not write reads all the same; a
+    file of an older schema version is read from an upgraded copy in a temporary file, deleted
+    on close. A writer leaves the file at rest in rollback-journal mode when it closes, so that
+    the plain ``sqlite3`` shell, or any reader, opens it read-only with nothing beside it.
     """
 
     def __init__(
-        self, path: str | Path, *, create: bool = True, codec: str = DEFAULT_CODEC
+        self,
+        path: str | Path,
+        *,
+        create: bool = True,
+        codec: str = DEFAULT_CODEC,
+        read_only: bool = False,
     ) -> None:
         if codec not in CODECS:
             raise ValueError(f"codec {codec!r}: give one of {', '.join(CODECS)}")
         self.path = Path(path)
         self.codec = codec
+        self.read_only = read_only
+        self._copy: Path | None = None  # the upgraded copy an older file is read from
         self._compressor = zstandard.ZstdCompressor(level=ZSTD_LEVEL)
         self._decompressor = zstandard.ZstdDecompressor()
         exists = self.path.is_file() and self.path.stat().st_size > 0
-        if not exists and not create:
+        if not exists and (read_only or not create):
             raise StoreFileError(f"{self.path}: no such store; give --db the path of a run's file")
         version = _inspect_existing(self.path) if exists else None
+        if read_only:
+            self._open_for_reading(version)
+            return
         conn = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
         conn.row_factory = sqlite3.Row
         _add_functions(conn)
@@ -697,6 +764,32 @@ class Store:
                 )
         elif version < SCHEMA_VERSION:
             self._upgrade(version)
+
+    def _open_for_reading(self, version: int | None) -> None:
+        """Open the file read-only; one of an older version through an upgraded copy."""
+        if version is None:
+            raise StoreFileError(f"{self.path}: an empty SQLite database, not a labseq store")
+        conn = _connect_read_only(self.path)
+        if version < SCHEMA_VERSION:
+            handle, name = tempfile.mkstemp(prefix="labseq-read-", suffix=".sqlite")
+            os.close(handle)
+            self._copy = Path(name)
+            copy = sqlite3.connect(self._copy, isolation_level=None)
+            try:
+                conn.backup(copy)
+            finally:
+                conn.close()
+            conn = copy
+        conn.row_factory = sqlite3.Row
+        _add_functions(conn)
+        self.db = sqlite_utils.Database(conn, execute_plugins=False)
+        if version < SCHEMA_VERSION:
+            try:
+                self._upgrade(version)
+            except BaseException:
+                self.close()
+                raise
+        conn.execute("PRAGMA query_only = ON")
 
     def _upgrade(self, version: int) -> None:
         """Bring a file written by an older labseq to :data:`SCHEMA_VERSION`, in one transaction
@@ -730,8 +823,20 @@ class Store:
         self.close()
 
     def close(self) -> None:
-        """Close the file (SQLite folds the write-ahead log back into it)."""
+        """Close the file. A writer first leaves it at rest: the write-ahead log folded into
+        it and rollback-journal mode, so that it reads with nothing beside it (see the class).
+        While another connection has the file open that cannot be done, and is left to the
+        last writer that closes it."""
+        conn = self.db.conn
+        if not self.read_only and not conn.in_transaction:
+            try:
+                conn.execute("PRAGMA busy_timeout = 0")  # never wait for another connection
+                conn.execute("PRAGMA journal_mode = DELETE")
+            except sqlite3.OperationalError:
+                pass
         self.db.close()
+        if self._copy is not None:
+            self._copy.unlink(missing_ok=True)
 
     # ------------------------------------------------------------------- runs
 
@@ -837,6 +942,53 @@ class Store:
         # "~" sorts after every hex digit and dash: the range is the prefix's, on runs_uuid
         query = _RUNS_QUERY + " WHERE r.uuid >= ? AND r.uuid < ? ORDER BY r.id"
         return [self._run_record(row) for row in self.db.query(query, [prefix, prefix + "~"])]
+
+    def import_run(self, source: Store, run_id: int) -> int:
+        """Copy run ``run_id`` of the SQLite store ``source`` here with everything stored with
+        it — its row (UUID and bench included), points, captures (their codes as stored, byte
+        for byte), capture and point figures, node verdicts and events — in ONE transaction;
+        return its id here (ids are this store's own). The caller makes sure the run's UUID is
+        not here yet: the unique index refuses a second copy."""
+        with self.db.atomic():
+            new_run_id = self._copy_row("runs", source.run_row(run_id), id=None)
+            points: dict[int, int] = {}
+            for point in source.run_table_rows(run_id, "points"):
+                points[point["id"]] = self._copy_row("points", point, id=None, run_id=new_run_id)
+            captures: dict[int, int] = {}
+            rows = source.run_table_rows(run_id, "captures")
+            for capture in source.run_capture_codes(rows):
+                captures[capture["id"]] = self._copy_row(
+                    "captures",
+                    capture,
+                    id=None,
+                    run_id=new_run_id,
+                    point_id=points[capture["point_id"]],
+                )
+            for figures in source.run_table_rows(run_id, "capture_figures"):
+                self._copy_row(
+                    "capture_figures", figures, capture_id=captures[figures["capture_id"]]
+                )
+            for table in ("point_figures", "node_verdicts"):
+                for row in source.run_table_rows(run_id, table):
+                    self._copy_row(table, row, point_id=points[row["point_id"]])
+            for event in source.run_table_rows(run_id, "events"):
+                point_id = event["point_id"]
+                self._copy_row(
+                    "events",
+                    event,
+                    id=None,
+                    run_id=new_run_id,
+                    point_id=None if point_id is None else points[point_id],
+                )
+        return new_run_id
+
+    def _copy_row(self, table: str, row: Mapping[str, Any], **changes: Any) -> int:
+        """Insert ``row`` of another store into ``table`` (one of this module's names) with
+        ``changes`` (an ``id`` of None: a new one here); return its rowid (where it has one)."""
+        values = {**row, **changes}
+        if values.get("id", 0) is None:
+            del values["id"]
+        return int(self.db[table].insert(values).last_rowid or 0)
 
     def mark_abandoned_runs(self) -> list[int]:
         """Mark "interrupted" the runs left "running" by a process of this host that is gone,

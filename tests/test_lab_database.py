@@ -511,7 +511,12 @@ def test_running_run_refused_and_all_leaves_unfinished_out(lab_db: str, tmp_path
     assert code == 2 and "still running" in err
     code, out, err = publish(lab_db, db, "--all")
     assert code == 0, err
-    assert "run 1 (" in out and "left out: running" in out and "left out: aborted" in out
-    assert counts(lab_db)["runs"] == 1
-    code, out, err = publish(lab_db, db, "2")  # an ended run, named: published
-    assert code == 0 and counts(lab_db)["runs"] == 2
+    assert "run 1 (" in out and "left out: still running" in out
+    assert "2 run(s) published" in out and counts(lab_db)["runs"] == 2  # aborted and finished
+    # a run changed on the bench since (resumed, then ended again) is kept as published
+    with Store(db) as store:
+        store.claim_run(2)
+        store.set_run_status(2, "finished")
+    code, out, err = publish(lab_db, db, "--all")
+    assert code == 0 and "run 2 (" in out and "kept as published" in out
+    assert counts(lab_db)["runs"] == 2

@@ -65,7 +65,7 @@ def read_store(db_path: Path | str) -> RunStore:
     SQLite file, or a lab database by its URL."""
     if isinstance(db_path, str) and is_lab_url(db_path):
         return LabDatabase(db_path)
-    return Store(db_path, create=False)
+    return Store(db_path, read_only=True)
 
 
 #: The fewest hex digits of a UUID that name a run on the command line.

@@ -24,7 +24,7 @@ from labseq.store_pg import LabDatabase, is_lab_url, redact
     "PGPASSWORD, ~/.pgpass (or PGPASSFILE) or the URL, and is never stored or printed.",
 )
 @db_option("The bench's store the runs are in.")
-@click.option("--all", "every_finished", is_flag=True, help="Every finished run not yet there.")
+@click.option("--all", "every_ended", is_flag=True, help="Every ended run not yet there.")
 @click.option(
     "--no-captures",
     "no_captures",
@@ -33,7 +33,7 @@ from labseq.store_pg import LabDatabase, is_lab_url, redact
     "publish without this adds them.",
 )
 def command(
-    runs: tuple[str, ...], url: str, db_path: Path, every_finished: bool, no_captures: bool
+    runs: tuple[str, ...], url: str, db_path: Path, every_ended: bool, no_captures: bool
 ) -> None:
     """Copy runs (ids, UUIDs or 'latest') of the bench's store into the lab database.
 
@@ -43,15 +43,18 @@ def command(
     database cannot be reached or the copy is cut short."""
     if not is_lab_url(url):
         raise InputError(f"--to {redact(url)}: give a lab database URL, postgresql://USER@HOST/DB")
-    if not runs and not every_finished:
+    if not runs and not every_ended:
         raise InputError("give the runs to publish (ids, UUIDs or 'latest'), or --all")
-    with Store(db_path, create=False) as source, LabDatabase(url, setup=True) as lab:
+    with Store(db_path, read_only=True) as source, LabDatabase(url, setup=True) as lab:
         run_ids = [resolve_run(source, text) for text in runs]
-        chosen = plan(
-            source, lab, run_ids, every_finished=every_finished, with_codes=not no_captures
-        )
-        for run in chosen.not_finished:
-            click.echo(f"run {run.id} ({run.uuid[:8]}) left out: {run.status}, not finished")
+        chosen = plan(source, lab, run_ids, every_ended=every_ended, with_codes=not no_captures)
+        for run in chosen.running:
+            click.echo(f"run {run.id} ({run.uuid[:8]}) left out: still running")
+        for run in chosen.changed:
+            click.echo(
+                f"run {run.id} ({run.uuid[:8]}) changed on the bench since it was published "
+                "(resumed?): kept as published"
+            )
         done = publish(source, lab, chosen.runs, with_codes=not no_captures, on_run=_say)
         where = lab.location
     copied = [item for item in done if item.result.outcome != "already there"]
