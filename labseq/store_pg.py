@@ -258,7 +258,8 @@ _NODE_VERDICTS_OF_RUN = (
 _CAPTURE_ROWS = (
     "SELECT c.id, c.point_id, c.run_id, c.capture_index, c.node, c.channel, c.captured_at, "
     "c.x_increment_s, c.x_origin_s, c.y_increment_v, c.y_origin_v, c.y_reference, c.code_min, "
-    "c.code_max, c.dtype, c.points FROM captures c JOIN points p ON p.id = c.point_id "
+    "c.code_max, c.dtype, c.points, c.codes IS NOT NULL AS has_codes "
+    "FROM captures c JOIN points p ON p.id = c.point_id "
 )
 _CAPTURES_OF_POINT = _CAPTURE_ROWS + "WHERE c.point_id = %s ORDER BY c.capture_index, c.id"
 _CAPTURES_OF_NODE = (
@@ -562,15 +563,21 @@ class LabDatabase:
     def captures(
         self, point_id: int, *, with_codes: bool = True, node: str | None = None
     ) -> list[StoredCapture]:
+        """A point's captures in order; with ``with_codes``, only those whose codes are here (a
+        run published with ``--no-captures`` has none: the report then says so)."""
         if node is None:
             rows = self._fetch(_CAPTURES_OF_POINT, [point_id])
         else:
             rows = self._fetch(_CAPTURES_OF_NODE, [point_id, node])
-        return [self._capture(row, with_codes) for row in rows]
+        return [
+            self._capture(row, with_codes) for row in rows if row["has_codes"] or not with_codes
+        ]
 
     def iter_captures(
         self, run_id: int, *, with_codes: bool = True, only_unanalysed: bool = False
     ) -> Iterator[StoredCapture]:
+        """A run's captures in point and capture order; with ``with_codes``, a run published
+        without its codes is an error (an export must not leave them out unsaid)."""
         self.run(run_id)
         query = _UNANALYSED_OF_RUN if only_unanalysed else _CAPTURES_OF_RUN
         for row in self._fetch(query, [run_id]):

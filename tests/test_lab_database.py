@@ -387,15 +387,21 @@ def test_dropped_connection_is_exit_3_nothing_half_visible_and_rerun_completes(
 # --------------------------------------------------------------------------- captures later
 
 
-def test_no_captures_then_captures_added_in_one_go(benches: Benches, lab_db: str) -> None:
+def test_no_captures_then_captures_added_in_one_go(
+    benches: Benches, lab_db: str, tmp_path: Path
+) -> None:
     code, out, err = publish(lab_db, benches.b, "--all", "--no-captures")
-    assert code == 0, err and "no codes" in out
+    assert code == 0, err
+    assert "no codes" in out
     with LabDatabase(lab_db) as lab:
         (run,) = lab.runs()
         figures = lab.node_figures(run.id)
         assert figures and len(list(lab.iter_captures(run.id, with_codes=False))) > 0
     code, _, err = run_cli("export", "latest", "--db", lab_db, "--out", "/nonexistent/x")
     assert code == 2 and "without its raw captures" in err
+    code, out, err = run_cli("report", "latest", "--db", lab_db, "--out", str(tmp_path / "r"))
+    assert code == 0, err
+    assert "No captures stored for this point." in (tmp_path / "r" / "report.html").read_text()
     code, out, err = publish(lab_db, benches.b, "--all")
     assert code == 0, err
     assert "captures added" in out
