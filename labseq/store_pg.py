@@ -24,6 +24,7 @@ never prints a password: every message names the database by :func:`redact` of i
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -353,6 +354,19 @@ def _password_of(url: str) -> str | None:
         return urlsplit(url).password
 
 
+#: Seconds to wait for a connection when neither the URL nor PGCONNECT_TIMEOUT says (libpq's
+#: default is to wait as long as the operating system does, minutes for a host that is down).
+CONNECT_TIMEOUT_S = 15
+
+
+def _connect_defaults(url: str) -> dict[str, Any]:
+    """Connection settings labseq adds where the user gave none."""
+    from psycopg.conninfo import conninfo_to_dict
+
+    given = "connect_timeout" in conninfo_to_dict(url) or "PGCONNECT_TIMEOUT" in os.environ
+    return {} if given else {"connect_timeout": CONNECT_TIMEOUT_S}
+
+
 def _values(row: dict[str, Any], names: list[str]) -> list[Any]:
     """A source row's values in the order of ``names``; a column the bench's store has and this
     database lacks (a newer labseq wrote the store) stops the publish rather than drop it."""
@@ -404,7 +418,9 @@ class LabDatabase:
         self._location = redact(url)  # how every message names this database
         self._secret = _password_of(url)
         try:
-            self.conn = psycopg.connect(url, row_factory=dict_row, autocommit=True)
+            self.conn = psycopg.connect(
+                url, row_factory=dict_row, autocommit=True, **_connect_defaults(url)
+            )
         except psycopg.Error as exc:
             raise LabDatabaseError(f"{self.location}: cannot connect: {self._clean(exc)}") from None
         try:
@@ -446,7 +462,8 @@ class LabDatabase:
                     return
                 row = self.conn.execute(_SCHEMA_ROW).fetchone()
         except self._psycopg.Error as exc:
-            raise self._fail(exc, "cannot read its schema") from None
+            doing = "cannot read or set up its schema" if setup else "cannot read its schema"
+            raise self._fail(exc, doing) from None
         if row is None or row["application"] != APPLICATION:
             raise LabDatabaseInputError(
                 f"{self.location}: its schema_info is not labseq's; give another database"

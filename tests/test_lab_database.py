@@ -276,9 +276,12 @@ def test_runs_filters_cross_benches(benches: Benches, lab_db: str) -> None:
 # --------------------------------------------------------------------------- cut short
 
 
-def _wait_for(condition, what: str, timeout_s: float = 60.0) -> None:
+def _wait_for(condition, what: str, process=None, timeout_s: float = 60.0) -> None:
+    """Wait until ``condition()``; fail at once if ``process`` ends first (saying why)."""
     deadline = time.monotonic() + timeout_s
     while not condition():
+        if process is not None and process.poll() is not None:
+            raise AssertionError(f"the publisher ended first: {process.communicate()}")
         if time.monotonic() > deadline:
             raise AssertionError(f"timed out waiting for {what}")
         time.sleep(0.05)
@@ -337,7 +340,7 @@ def test_publish_killed_midway_shows_nothing_then_rerun_completes(
     held_events.execute("LOCK TABLE events IN SHARE MODE")
     process = _start_publish(lab_db, benches.a, "--all")
     try:
-        _wait_for(lambda: _blocked_publisher(lab_db) is not None, "the publisher to block")
+        _wait_for(lambda: _blocked_publisher(lab_db) is not None, "the publisher to block", process)
         # its captures are written (the table grew) and not one of them is visible
         assert _uncommitted_bytes(lab_db) > empty_size
         assert counts(lab_db) == published_one
@@ -366,7 +369,7 @@ def test_dropped_connection_is_exit_3_nothing_half_visible_and_rerun_completes(
 ) -> None:
     process = _start_publish(lab_db, benches.b, "--all")
     try:
-        _wait_for(lambda: _blocked_publisher(lab_db) is not None, "the publisher to block")
+        _wait_for(lambda: _blocked_publisher(lab_db) is not None, "the publisher to block", process)
         with psycopg.connect(lab_db, autocommit=True) as admin:
             # the server ends the publisher's session as a dropped network would
             admin.execute("SELECT pg_terminate_backend(%s)", [_blocked_publisher(lab_db)])
