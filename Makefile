@@ -20,15 +20,15 @@ $(STAMP): pyproject.toml | $(BIN)/python
 DEMO := demo-output
 demo: $(STAMP)
 	@mkdir -p $(DEMO)
-	$(BIN)/labseq run sequences/demo_dc_flyback.toml --db $(DEMO)/labseq.sqlite --label "make demo"
+	$(BIN)/labseq run labseq/examples/demo_dc_flyback.toml --db $(DEMO)/labseq.sqlite --label "make demo"
 	$(BIN)/labseq runs --db $(DEMO)/labseq.sqlite
 	$(BIN)/labseq export latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/export
 	$(BIN)/labseq report latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/report
-	$(BIN)/labseq run sequences/demo_offline_flyback.toml --db $(DEMO)/labseq.sqlite --quiet
+	$(BIN)/labseq run labseq/examples/demo_offline_flyback.toml --db $(DEMO)/labseq.sqlite --quiet
 	$(BIN)/labseq report latest --db $(DEMO)/labseq.sqlite --out $(DEMO)/offline-report
 	rm -f $(DEMO)/regression.sqlite $(DEMO)/regression.sqlite-*
-	$(BIN)/labseq run sequences/demo_regression/baseline.toml --db $(DEMO)/regression.sqlite --quiet
-	$(BIN)/labseq run sequences/demo_regression/candidate.toml --db $(DEMO)/regression.sqlite --quiet
+	$(BIN)/labseq run labseq/examples/demo_regression/baseline.toml --db $(DEMO)/regression.sqlite --quiet
+	$(BIN)/labseq run labseq/examples/demo_regression/candidate.toml --db $(DEMO)/regression.sqlite --quiet
 	$(BIN)/labseq compare 1 2 --db $(DEMO)/regression.sqlite --report $(DEMO)/compare
 	@echo "Results in $(DEMO)/: labseq.sqlite (every raw capture), report/report.html,"
 	@echo "offline-report/report.html, export/points.csv, and the regression in compare/report.html"

@@ -12,7 +12,7 @@ import math
 import time
 from abc import ABC, abstractmethod
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -361,6 +361,23 @@ class Waveform:
         """Whether any sample sits at the bottom or top of the screen."""
         mask = self.clip_mask()
         return mask is not None and bool(mask.any())
+
+    def screen_volts(self) -> tuple[float, float] | None:
+        """The volts at the bottom and top codes of the screen, computed as the samples' volts
+        are (so a sample at an edge reads exactly that number); None for a scope that sends
+        volts, which clip at no known code."""
+        if self.code_min is None or self.code_max is None:
+            return None
+        edges = replace(self, codes=np.array([self.code_min, self.code_max], dtype=np.float64))
+        bottom, top = edges.volts()
+        return float(bottom), float(top)
+
+    def clipped_edges(self) -> list[str]:
+        """Which edges of the screen samples sit at: "bottom", "top", both or none."""
+        if self.code_min is None or self.code_max is None:
+            return []
+        edges = [("bottom", self.codes <= self.code_min), ("top", self.codes >= self.code_max)]
+        return [name for name, at in edges if bool(at.any())]
 
 
 class Oscilloscope(MappedInstrument):

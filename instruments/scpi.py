@@ -32,6 +32,7 @@ from instruments.errors import (
     ReplyFormatError,
     ScpiError,
 )
+from instruments.text import printable
 from instruments.transport import (
     MAX_TEXT_REPLY_BYTES,
     TIMEOUT_CODES,
@@ -91,8 +92,9 @@ class Identity:
 
     @classmethod
     def parse(cls, reply: str) -> Identity:
-        """Parse ``manufacturer,model,serial,firmware``; ``0`` stands for an absent field."""
-        parts = [part.strip() for part in reply.strip().split(",")]
+        """Parse ``manufacturer,model,serial,firmware``; ``0`` stands for an absent field. Each
+        field is kept :func:`~instruments.text.printable` (it is shown and stored for display)."""
+        parts = [printable(part).strip() for part in reply.strip().split(",")]
         if len(parts) != 4:
             raise ReplyFormatError(
                 f"*IDN? reply {reply!r} has {len(parts)} fields; IEEE 488.2 10.14 defines 4"
@@ -394,7 +396,7 @@ class ScpiInstrument:
             raise self.reply_error(
                 f"{ERROR_QUERY} reply {reply!r} does not start with an error code"
             )
-        return int(code_text), message.strip().strip('"')
+        return int(code_text), printable(message.strip().strip('"'))
 
     def configure(self, *commands: str) -> None:
         """Send configuration commands and raise any error they queued.

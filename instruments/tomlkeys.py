@@ -23,6 +23,9 @@ from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any, NamedTuple
 
+from instruments.files import FileProblem, read_regular_file
+from instruments.text import quoted
+
 
 class Problem(NamedTuple):
     """One thing wrong in a file: where (its key and line) and what."""
@@ -37,7 +40,7 @@ def describe_value(value: Any) -> str:
     if isinstance(value, bool):
         return "a boolean"
     if isinstance(value, str):
-        return f"the string {value!r}"
+        return f"the string {quoted(value)}"
     if isinstance(value, int | float):
         return f"the number {value!r}"
     if isinstance(value, list):
@@ -87,16 +90,18 @@ class Problems:
 
     def load(self, data: bytes | None = None) -> dict[str, Any] | None:
         """The file's TOML document (read from the file unless its ``data`` is given); None,
-        with the problem recorded, when it cannot be read, is not UTF-8 text or not TOML."""
+        with the problem recorded, when it is not a regular file, cannot be read, is not UTF-8
+        text or not TOML. A UTF-8 byte-order mark (as some Windows editors write) is skipped."""
         try:
-            raw = self.path.read_bytes() if data is None else data
-        except OSError as exc:
-            self.fail("(file)", f"cannot read: {exc.strerror or exc}")
+            raw = read_regular_file(self.path) if data is None else data
+        except FileProblem as problem:
+            self.fail("(file)", str(problem))
             return None
         try:
-            self.text = raw.decode("utf-8")
-        except UnicodeDecodeError:
-            self.fail("(file)", "not UTF-8 text")
+            self.text = raw.decode("utf-8").removeprefix("\ufeff")
+        except UnicodeDecodeError as exc:
+            line = raw[: exc.start].count(b"\n") + 1
+            self.found.append(Problem("(file)", "not UTF-8 text", line))
             return None
         return self.parse(self.text)
 
@@ -106,6 +111,13 @@ class Problems:
         self.text = text
         try:
             return tomllib.loads(text)
+        except RecursionError:
+            self.fail(
+                "(syntax)",
+                "arrays or tables nested too deeply to read; a labseq file "
+                "nests a few levels at most",
+            )
+            return None
         except tomllib.TOMLDecodeError as exc:
             match = re.search(r"line (\d+)", str(exc))
             line = int(match.group(1)) if match else None

@@ -121,6 +121,12 @@ def bench_kind(name: str) -> BenchKind:
     return getattr(importlib.import_module(entry.module), entry.attribute)
 
 
+def is_simulated(name: str) -> bool:
+    """Whether a run recorded with bench kind ``name`` ran on a bench with no hardware behind
+    it (False for a kind this labseq does not know)."""
+    return name in BENCH_KINDS and bench_kind(name).simulated
+
+
 def owner_of(key: str) -> str | None:
     """The kind that alone reads ``[bench]`` key ``key``, or None for a generic key."""
     return next((name for name, entry in BENCH_KINDS.items() if key in entry.keys), None)

@@ -18,12 +18,13 @@ import sys
 import click
 
 from labseq import __version__
-from labseq.errors import LabseqError
+from labseq.errors import EXIT_FAILURE, EXIT_INPUT, LabseqError
 from labseq.safety import Interrupted
 
 #: Modules under ``labseq.commands`` that each add one command to the group.
 COMMAND_MODULES: tuple[str, ...] = (
     "sim",
+    "examples",
     "check",
     "probe",
     "run",
@@ -58,7 +59,23 @@ class _CommandGroup(click.Group):
         return importlib.import_module(f"labseq.commands.{module}").command
 
 
-@click.group(cls=_CommandGroup, context_settings={"help_option_names": ["-h", "--help"]})
+#: The exit statuses, as ``labseq --help`` shows them (``\b``: click keeps the lines as they are).
+EXIT_STATUS_HELP = """\b
+Exit status:
+  0        done (and, where judged, passed)
+  1        judged: a regression (compare), or a failing or incomplete
+           run under --strict (run, resume, analyze-run, report)
+  2        bad input: a file, an option or a value
+  3        a bench, instrument or store failure, an unsafe end, or an
+           unexpected error
+  128 + n  ended by signal n: 129 SIGHUP, 130 Ctrl-C, 143 SIGTERM"""
+
+
+@click.group(
+    cls=_CommandGroup,
+    context_settings={"help_option_names": ["-h", "--help"]},
+    epilog=EXIT_STATUS_HELP,
+)
 @click.version_option(__version__, prog_name="labseq")
 def group() -> None:
     """Prove a flyback snubber at every line and load corner, on a real or simulated bench."""
@@ -105,13 +122,13 @@ def _run(argv: list[str] | None) -> None:
         sys.exit(130)
     except click.ClickException as exc:
         exc.show()
-        sys.exit(2 if isinstance(exc, click.UsageError | click.BadParameter) else exc.exit_code)
+        sys.exit(EXIT_INPUT)  # a usage error, a bad parameter, a file click could not open
     except LabseqError as exc:
         click.echo(f"labseq: error: {exc}", err=True)
         sys.exit(exc.exit_code)
     except InstrumentError as exc:
         click.echo(f"labseq: instrument error: {exc}", err=True)
-        sys.exit(1)
+        sys.exit(EXIT_FAILURE)
     except KeyboardInterrupt:
         click.echo("labseq: interrupted", err=True)
         sys.exit(130)
@@ -126,4 +143,4 @@ def _run(argv: list[str] | None) -> None:
             "(set LABSEQ_DEBUG=1 for the traceback)",
             err=True,
         )
-        sys.exit(1)
+        sys.exit(EXIT_FAILURE)  # never 1, which says "judged"

@@ -46,10 +46,14 @@ from labseq.review import (
     PointReview,
     RunReview,
     grid_cells,
+    limit_rows,
     node_polarity,
     point_label,
+    point_object,
+    run_object,
     worst_points,
 )
+from labseq.units import format_si
 
 
 @dataclass(frozen=True)
@@ -152,13 +156,84 @@ class Comparison:
         return bool(self.regressions)
 
     def label(self, change: PointChange) -> str:
-        """The setpoints of a change as text (the candidate's when both runs have the point)."""
-        return self.label_of(change.either)
+        """The setpoints of a change as text (the candidate's when both runs have the point),
+        the load as a share of each run's own rated load: "36 V / 550 mA (25 %)", or, when the
+        two runs' rated loads differ, "36 V / 550 mA (22.9 % of the baseline's rated load, 25 %
+        of the candidate's)"."""
+        if change.candidate is None:
+            return self.label_of(change.baseline, "baseline")
+        if change.baseline is None or self._same_rated_load:
+            return self.label_of(change.candidate, "candidate")
+        point = change.candidate.point
+        shares = [
+            f"{100 * point.load_a / rated:.3g} % of the {side}'s rated load"
+            for side, rated in (
+                ("baseline", self.baseline.rated_load_a),
+                ("candidate", self.candidate.rated_load_a),
+            )
+            if rated
+        ]
+        return point_label(point) + (f" ({', '.join(shares)})" if shares else "")
 
-    def label_of(self, point: PointReview) -> str:
-        """The setpoints of a point of either run as text."""
-        rated = self.candidate.rated_load_a or self.baseline.rated_load_a
-        return point_label(point.point, rated)
+    def label_of(self, point: PointReview, side: str = "candidate") -> str:
+        """The setpoints of a point of run ``side`` ("baseline" or "candidate") as text, the
+        load as a share of that run's own rated load."""
+        return point_label(point.point, getattr(self, side).rated_load_a)
+
+    @property
+    def _same_rated_load(self) -> bool:
+        b, c = self.baseline.rated_load_a, self.candidate.rated_load_a
+        return b == c or b is None or c is None or math.isclose(b, c, rel_tol=self.rel_tol)
+
+    @property
+    def outcome(self) -> str:
+        """The compare's outcome with the candidate's own verdict, in words: "no regression —
+        candidate still fails 5 points", "regressed at 2 points — candidate fails 7 points",
+        "no regression — candidate passes every point"."""
+        counts = self.candidate.verdict_counts
+        total = len(self.candidate.points)
+        if counts["fail"]:
+            still = "still " if self.baseline.verdict_counts["fail"] else ""
+            own = f"candidate {still}fails {counts['fail']} of {total} points"
+        elif counts["incomplete"]:
+            own = f"candidate incomplete at {counts['incomplete']} of {total} points"
+        else:
+            own = f"candidate passes every point ({total})"
+        regressions = len(self.regressions)
+        change = f"regressed at {regressions} point(s)" if regressions else "no regression"
+        return f"{change} — {own}"
+
+    def differences(self) -> list[str]:
+        """What makes the two runs not like for like: another DUT, grid, limits or bench kind.
+        Each is a warning in the report, the console and the JSON."""
+        b, c = self.baseline, self.candidate
+        found = []
+        if b.run.dut_label != c.run.dut_label:
+            found.append(f"different DUTs: {b.run.dut_label!r} → {c.run.dut_label!r}")
+        if not self._same_rated_load:
+            found.append(
+                f"different rated loads: {format_si(b.rated_load_a, 'A')} → "
+                f"{format_si(c.rated_load_a, 'A')} (each point's share is of its own run's)"
+            )
+        only_b = sum(1 for p in self.points if p.candidate is None)
+        only_c = sum(1 for p in self.points if p.baseline is None)
+        if only_b or only_c:
+            found.append(
+                f"different grids: {only_b} baseline point(s) have no match in the candidate, "
+                f"{only_c} candidate point(s) none in the baseline"
+            )
+        limits_b, limits_c = dict(limit_rows(b)), dict(limit_rows(c))
+        changed = [
+            f"{what} {limits_b.get(what, '—')} → {limits_c.get(what, '—')}"
+            for what in dict.fromkeys([*limits_b, *limits_c])
+            if what not in ("snubber", "clamp") and limits_b.get(what) != limits_c.get(what)
+        ]
+        if changed:
+            found.append("different limits: " + "; ".join(changed))
+        if b.simulated != c.simulated:
+            kinds = ["simulated" if r.simulated else "real" for r in (b, c)]
+            found.append(f"different benches: {kinds[0]} → {kinds[1]}")
+        return found
 
     @property
     def line_values_v(self) -> tuple[float, ...]:
@@ -519,14 +594,19 @@ def comparison_summary(comparison: Comparison) -> dict[str, Any]:
         return {"point_index": review.point.point_index, "verdict": review.verdict}
 
     return {
-        "baseline": comparison.baseline.run.id,
-        "candidate": comparison.candidate.run.id,
+        "baseline": run_object(comparison.baseline.run, comparison.baseline.end_safety),
+        "candidate": run_object(comparison.candidate.run, comparison.candidate.end_safety),
         "regressed": comparison.regressed,
         "nodes": [
             comparison.candidate.node_names[0],
             *shared_nodes(comparison.baseline, comparison.candidate),
         ],
+        "outcome": comparison.outcome,
         "summary": comparison.summary(),
+        "warnings": comparison.differences(),
+        "baseline_verdict": comparison.baseline.verdict,
+        "candidate_verdict": comparison.candidate.verdict,
+        "candidate_verdict_counts": comparison.candidate.verdict_counts,
         "rule": {
             "coverage_k": comparison.coverage,
             "match_tolerance": comparison.rel_tol,
@@ -536,9 +616,12 @@ def comparison_summary(comparison: Comparison) -> dict[str, Any]:
         "worst_regression": None if worst is None else comparison.describe_regression(worst),
         "points": [
             {
-                "line_v": p.either.point.line_v,
-                "line_is_ac": p.either.point.line_is_ac,
-                "load_a": p.either.point.load_a,
+                **point_object(
+                    p.either.point.point_index,
+                    p.either.point.line_v,
+                    p.either.point.line_is_ac,
+                    p.either.point.load_a,
+                ),
                 "flag": p.flag,
                 "baseline": side(p.baseline),
                 "candidate": side(p.candidate),

@@ -1,14 +1,21 @@
 """A run's points as CSV and its captures as NPZ or CSV files: the library side of ``labseq
 export``, which the run report also uses for its ``points.csv``.
 
-``points.csv`` has one row per point: setpoints, readbacks, meter readings, efficiency, the
-combined verdict and the per-point figures (worst, mean, spread, n of each) of the primary node,
-then for each further node its verdict and figures in columns prefixed by its name
-(``secondary_verdict``, ``secondary_peak_v_worst``…). Captures go either into one
-``captures.npz`` (per capture ``<name>_codes`` as stored, ``<name>_volts``, and a ``scaling``
-table with one row per capture) or into ``captures/<name>.csv`` files of ``time_s,volts``, where
-``<name>`` is ``p<point index>_c<capture index>``, followed by ``_<node>`` for a node other than
-the primary. Captures are read and written one at a time.
+``points.csv`` has one row per point: the bench (real or simulated), setpoints, readbacks, meter
+readings, efficiency, the combined verdict and the per-point figures (worst, mean, spread, n of
+each) of the primary node, then for each further node its verdict and figures in columns prefixed by
+its name (``secondary_verdict``, ``secondary_peak_v_worst``…). Captures go either into one
+``captures.npz`` (per capture ``<name>_codes`` as stored, ``<name>_volts``, and a ``scaling`` table
+with one row per capture) or into ``captures/<name>.csv`` files of ``time_s,volts``, where
+``<name>`` is ``p<point index>_c<capture index>``, followed by ``_<node>`` for a node other than the
+primary. Captures are read and written one at a time.
+
+A capture CSV starts with a preamble of key/value lines: where it comes from (:data:`ORIGIN_KEY`)
+and the volts at the bottom and top of the scope's screen (:data:`SCREEN_KEYS`), so that
+``labseq analyze`` of the file knows which samples clipped. A run on the simulated bench says so
+in the first column of ``points.csv`` (:data:`BENCH_COLUMN`, "SIMULATED" on every row), in each
+capture CSV's origin line and in ``captures.npz``'s :data:`RUN_KEY` array. CSV cells write
+booleans as ``true`` and ``false`` and an absent value as an empty cell.
 
 The NPZ layout (:data:`SCALING_KEY`, :data:`SCALING_DTYPE`, :func:`codes_key`) is defined here
 once; :mod:`labseq.waveform_files` reads a capture back by it (``labseq analyze --capture``).
@@ -22,10 +29,12 @@ import zipfile
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, fields
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from instruments import Waveform
+from labseq.bench_kinds import is_simulated
 from labseq.store import PointRecord, StoredCapture
 from labseq.store_api import RunStore
 
@@ -35,6 +44,18 @@ RUN_FILE = "run.json"
 CAPTURES_NPZ = "captures.npz"
 CAPTURES_DIR = "captures"
 CAPTURE_FORMATS = ("npz", "csv")
+
+#: The first column of ``points.csv``: the bench each point was measured on, on every row (so
+#: the mark survives a spreadsheet's sorting and filtering and no CSV reader trips on it).
+BENCH_COLUMN = "bench"
+BENCH_WORDS = {True: "SIMULATED", False: "real"}
+#: Preamble keys of a capture CSV: where it comes from, and the volts at the bottom and top of
+#: the scope's screen (absent for a scope that sends volts, which clip at no known code).
+ORIGIN_KEY = "Source"
+SCREEN_KEYS = ("Screen Bottom V", "Screen Top V")
+#: The array of ``captures.npz`` that holds the run's record as JSON text (id, bench kind,
+#: whether simulated).
+RUN_KEY = "run"
 
 #: The scaling a capture's codes need to become volts and times, in the order of the scaling
 #: table's columns: those of :class:`instruments.Waveform` (NaN code limits: a scope that sends
@@ -73,6 +94,14 @@ def volts_key(name: str) -> str:
     return f"{name}_volts"
 
 
+def csv_value(value: object) -> object:
+    """A value as a CSV cell: booleans as ``true``/``false`` (as JSON and most readers spell
+    them), nothing as an empty cell, anything else as itself."""
+    if isinstance(value, bool | np.bool_):
+        return "true" if value else "false"
+    return "" if value is None else value
+
+
 def write_points_csv(store: RunStore, run_id: int, path: Path) -> int:
     """Write the run's points with their figures (per node) to ``path``; return the row count."""
     points = store.points(run_id)
@@ -86,25 +115,26 @@ def write_points_csv(store: RunStore, run_id: int, path: Path) -> int:
         node: sorted({name for per_point in figures.values() for name in per_point.get(node, {})})
         for node in nodes
     }
-    header = list(_POINT_COLUMNS)
+    header = [BENCH_COLUMN, *_POINT_COLUMNS]
     for index, node in enumerate(nodes):
         prefix = f"{node}_" if index else ""
         header += [f"{node}_verdict"] if index else []
         header += [f"{prefix}{name}_{stat}" for name in names[node] for stat in _FIGURE_STATS]
+    bench = BENCH_WORDS[is_simulated(store.run(run_id).bench_kind)]
     with path.open("w", newline="", encoding="utf-8") as handle:
         writer = csv.writer(handle)
         writer.writerow(header)
         for point in points:
             row = asdict(point)
             row["verdict_reasons"] = "; ".join(point.verdict_reasons)
-            values = [row[column] for column in _POINT_COLUMNS]
+            values = [bench, *(row[column] for column in _POINT_COLUMNS)]
             for index, node in enumerate(nodes):
                 if index:
                     values.append(verdicts.get(point.id, {}).get(node, (None,))[0])
                 per_node = figures.get(point.id, {}).get(node, {})
                 for name in names[node]:
                     values += [per_node.get(name, {}).get(stat) for stat in _FIGURE_STATS]
-            writer.writerow(["" if value is None else value for value in values])
+            writer.writerow([csv_value(value) for value in values])
     return len(points)
 
 
@@ -117,6 +147,16 @@ def _named_captures(store: RunStore, run_id: int) -> Iterator[tuple[str, StoredC
         yield capture_name(point_index, capture.capture_index, node), capture, point_index
 
 
+def _run_facts(store: RunStore, run_id: int) -> dict[str, object]:
+    """What an export says of the run its captures come from."""
+    record = store.run(run_id)
+    return {
+        "run_id": run_id,
+        "bench_kind": record.bench_kind,
+        "simulated": is_simulated(record.bench_kind),
+    }
+
+
 def write_captures_npz(store: RunStore, run_id: int, path: Path) -> int:
     """Write every capture of the run into one ``.npz``, streaming; return the count."""
     scaling = []
@@ -125,6 +165,8 @@ def write_captures_npz(store: RunStore, run_id: int, path: Path) -> int:
         def put(key: str, array: np.ndarray) -> None:
             with archive.open(f"{key}.npy", "w", force_zip64=True) as member:
                 np.lib.format.write_array(member, array, allow_pickle=False)
+
+        put(RUN_KEY, np.array(json.dumps(_run_facts(store, run_id))))
 
         for name, capture, point_index in _named_captures(store, run_id):
             put(codes_key(name), capture.codes)
@@ -147,15 +189,23 @@ def write_captures_npz(store: RunStore, run_id: int, path: Path) -> int:
 def write_captures_csv(store: RunStore, run_id: int, directory: Path) -> int:
     """Write one ``time_s,volts`` CSV per capture into ``directory``; return the count."""
     directory.mkdir(parents=True, exist_ok=True)
+    facts = _run_facts(store, run_id)
+    bench = "the SIMULATED bench" if facts["simulated"] else "a real bench"
     count = 0
     for name, capture, _ in _named_captures(store, run_id):
         table = np.column_stack([capture.time_s(), capture.volts()])
+        preamble = [f"{ORIGIN_KEY},labseq run {run_id} capture {name} on {bench}"]
+        screen = capture.screen_volts()
+        if screen is not None:
+            preamble += [
+                f"{key},{volts:.9g}" for key, volts in zip(SCREEN_KEYS, screen, strict=True)
+            ]
         np.savetxt(
             directory / f"{name}.csv",
             table,
             fmt="%.9g",
             delimiter=",",
-            header="time_s,volts",
+            header="\n".join([*preamble, "time_s,volts"]),
             comments="",
         )
         count += 1
@@ -169,6 +219,17 @@ class Exported:
     directory: Path
     points: int
     captures: int
+    captures_format: str = "npz"
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain data for JSON: the folder and what it holds."""
+        return {
+            "directory": str(self.directory),
+            "points": self.points,
+            "captures": self.captures,
+            "captures_format": self.captures_format,
+            "files": sorted(p.name for p in self.directory.iterdir()),
+        }
 
 
 def export_run(store: RunStore, run_id: int, directory: Path, *, captures: str = "npz") -> Exported:
@@ -189,4 +250,4 @@ def export_run(store: RunStore, run_id: int, directory: Path, *, captures: str =
         count = write_captures_npz(store, run_id, directory / CAPTURES_NPZ)
     else:
         count = write_captures_csv(store, run_id, directory / CAPTURES_DIR)
-    return Exported(directory, points, count)
+    return Exported(directory, points, count, captures)

@@ -144,6 +144,27 @@ def shown_unit(figure: str) -> str:
     return "%" if FIGURE[figure].fraction else figure_unit(figure)
 
 
+def figure_title(figure: str, polarity: int = 1) -> str:
+    """The plain title of a figure ("peak stress"; a falling node's peak is its "peak reverse
+    voltage"); the figure's name when the catalogue gives it no title."""
+    if figure == "peak_v" and polarity < 0:
+        return "peak reverse voltage"
+    return FIGURE_TITLES.get(figure, figure)
+
+
+def bound_relation(figure: str, polarity: int = 1) -> str:
+    """How a value of ``figure`` from a clipped capture relates to the truth, as shown before
+    it: "≥" when the true value may be higher, "≤" when lower, "" when clipping does not bound
+    it. A falling node's signed peak may be more negative than a clipped capture shows."""
+    bound = FIGURE[figure].clip_bound if figure in FIGURE else None
+    if bound is None:
+        return ""
+    higher = bound == "lower"
+    if polarity < 0 and figure in SIGNED_FIGURES:
+        higher = not higher
+    return "≥" if higher else "≤"
+
+
 MINUS = "\u2212"
 
 

@@ -13,18 +13,21 @@ Pure with respect to the bench: nothing here opens an instrument.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from instruments import Waveform
+from instruments.tomlkeys import report
 from labseq.analysis import CaptureFigures, NoEdgeError, SnubberBranch, aggregate, analyze_capture
 from labseq.analysis import judge as judge_point
 from labseq.analysis.capture import ClampFigures, clamp_figures
 from labseq.analysis.verdict import worst_verdict
+from labseq.errors import InputError
 from labseq.figures import CAPTURE_FIGURES
-from labseq.sequence import NodeSpec, Sequence, parse_sequence
-from labseq.store import PointRecord, RunRecord, Store
+from labseq.sequence import NodeSpec, Sequence, SequenceError, parse_sequence
+from labseq.store import PointRecord, RunRecord, Store, StoreError
 
 
 @dataclass(frozen=True)
@@ -35,11 +38,27 @@ class NodeResult:
     clamp: ClampFigures | None = None
 
 
-def stored_sequence(run: RunRecord) -> Sequence:
-    """The sequence ``run`` was made with, validated again from the text stored with it;
-    :class:`labseq.sequence.SequenceError` when it no longer validates (e.g. a DUT file it
-    names has moved)."""
-    return parse_sequence(run.sequence_text, run.sequence_path, sha256=run.sequence_sha256)
+class StoredSequenceError(StoreError, InputError):
+    """The sequence text stored with a run no longer validates (edited or damaged in the
+    store, or a file it names has moved): a store failure, named against the store."""
+
+    exit_code = 3
+
+
+def stored_sequence(run: RunRecord, store_location: str | Path) -> Sequence:
+    """The sequence ``run`` (of the store at ``store_location``) was made with, validated again
+    from the text stored with it; :class:`StoredSequenceError` when it no longer validates. Its
+    problems name the store and the run, not the file on disk it was once read from (which
+    may have changed since, and is not what was checked)."""
+    try:
+        return parse_sequence(run.sequence_text, run.sequence_path, sha256=run.sequence_sha256)
+    except SequenceError as error:
+        problems = "\n".join(report(store_location, error.problems).splitlines()[1:])
+        raise StoredSequenceError(
+            f"{store_location}: the sequence stored with run {run.id} (read from "
+            f"{run.sequence_path} when the run started) no longer validates; its lines:\n"
+            f"{problems}"
+        ) from None
 
 
 def analysis_options(sequence: Sequence | None, node: NodeSpec | None) -> dict[str, Any]:

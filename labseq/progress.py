@@ -3,6 +3,7 @@ nothing at all in quiet mode (errors still reach stderr)."""
 
 from __future__ import annotations
 
+import sys
 import time
 
 from rich.console import Console
@@ -20,6 +21,21 @@ from labseq.units import format_si
 
 #: Where no live line can be drawn (stderr is not a terminal), a wait is printed this often.
 WAIT_PRINT_INTERVAL_S = 10.0
+#: Width given to output that is not a terminal (a file, a pipe, a CI log): wide enough that
+#: nothing is wrapped, which the reader's own viewer does better.
+UNWRAPPED_WIDTH = 10_000
+
+
+def make_console(*, stderr: bool = False) -> Console:
+    """A rich console for stdout (or stderr) that wraps only on a terminal: written to a file or
+    a pipe, every line stays whole (a resource string, a caution, a table row never split)."""
+    stream = sys.stderr if stderr else sys.stdout
+    terminal = stream.isatty()
+    return Console(
+        stderr=stderr,
+        soft_wrap=not terminal,
+        width=None if terminal else UNWRAPPED_WIDTH,
+    )
 
 
 class Progress:
@@ -27,7 +43,7 @@ class Progress:
 
     def __init__(self, *, quiet: bool = False, console: Console | None = None) -> None:
         self.quiet = quiet
-        self.console = console or Console(stderr=True)
+        self.console = console or make_console(stderr=True)
         self._bar: RichProgress | None = None
         self._task = None
         self._status: Status | None = None

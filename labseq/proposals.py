@@ -67,7 +67,7 @@ def propose_for_run(
     :class:`labseq.errors.InputError` when no point has a fitted ring;
     :class:`labseq.analysis.DesignInputError` naming the point when its figures cannot be
     designed from."""
-    sequence = stored_sequence(store.run(run_id))
+    sequence = stored_sequence(store.run(run_id), store.location)
     node = sequence.primary.name
     points = store.points(run_id, status="done")
     figures = store.point_figures(run_id, node=node)

@@ -16,6 +16,8 @@ more negative peak is worse.
 
 from __future__ import annotations
 
+import math
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
@@ -26,16 +28,21 @@ from labseq.analysis.snubber import METHOD_LABELS
 from labseq.analysis.verdict import LIMIT_FIGURES, worst_verdict
 from labseq.errors import InputError
 from labseq.figures import (
+    FIGURE,
     FIGURE_DIRECTIONS,
     FIGURE_TITLES,
+    SIGNED_FIGURES,
     VERDICTS_WORST_FIRST,
+    bound_relation,
     figure_direction,
+    figure_title,
+    format_change,
     format_figure,
 )
 from labseq.pipeline import stored_sequence
 from labseq.sequence import DEFAULT_PRIMARY_NAME, NodeSpec
 from labseq.sequence import Sequence as SequenceFile
-from labseq.store import PointRecord, RunRecord
+from labseq.store import PointRecord, RunRecord, shown_status
 from labseq.store_api import RunStore
 from labseq.units import format_si
 
@@ -137,6 +144,26 @@ class RunReview:
     end_safety: str | None = None
     #: How each (node, point id)'s snubber loss was obtained: "waveform" and/or "cv2f".
     loss_methods: dict[tuple[str, int], tuple[str, ...]] = field(default_factory=dict)
+    #: The (node, point id)s where at least one capture clipped: their clip-bounded figures are
+    #: bounds, shown as "≥ 89.6 V".
+    clipped: frozenset[tuple[str, int]] = frozenset()
+
+    @property
+    def simulated(self) -> bool:
+        """Whether the run was made on the simulated bench (no hardware, modelled readings)."""
+        return self.run.bench_kind == SIMULATED_BENCH_KIND
+
+    def is_clipped(self, point: PointReview) -> bool:
+        """Whether a capture of the viewed node clipped at ``point``."""
+        return (self.node_name, point.point.id) in self.clipped
+
+    def figure_text(self, figure: str, point: PointReview, value: float | None = None) -> str:
+        """The point's value of ``figure`` in words, marked as a bound where a capture clipped
+        and clipping bounds the figure: "≥ 89.6 V"."""
+        value = point.value(figure) if value is None else value
+        text = format_figure(figure, value)
+        bound = bound_relation(figure, self.polarity) if self.is_clipped(point) else ""
+        return f"{bound} {text}" if bound and value is not None else text
 
     def loss_method(self, point: PointReview) -> str | None:
         """How the viewed node's snubber loss at ``point`` was obtained, as shown beside it:
@@ -187,6 +214,38 @@ class RunReview:
         """The point's setpoints as text."""
         return point_label(point.point, self.rated_load_a)
 
+    def excesses(self, point: PointReview) -> list[LimitExcess]:
+        """Every limited figure of every node at ``point`` with its distance to its limit
+        (positive: beyond it), the farthest beyond first."""
+        if self.sequence is None:
+            return []
+        found = []
+        for spec in self.sequence.nodes:
+            figures = point.nodes.get(spec.name, {})
+            clipped = (spec.name, point.point.id) in self.clipped
+            for limit_name, (figure, is_max) in LIMIT_FIGURES.items():
+                limit = getattr(spec.limits, limit_name)
+                if limit is None or (figure == "efficiency" and spec is not self.sequence.primary):
+                    continue
+                stats = point.figures.get(figure) if figure == "efficiency" else figures.get(figure)
+                if stats is None or stats.value is None:
+                    continue
+                found.append(
+                    LimitExcess(
+                        node=spec.name,
+                        figure=figure,
+                        value=stats.value,
+                        limit=limit,
+                        is_max=is_max,
+                        polarity=spec.polarity,
+                        is_derated_rating=figure == "peak_v"
+                        and math.isclose(limit, spec.derated_rating_v),
+                        bounded=clipped and bound_relation(figure, spec.polarity) != "",
+                        several_nodes=len(self.sequence.nodes) > 1,
+                    )
+                )
+        return sorted(found, key=lambda e: -e.share)
+
     def grid(self, figure: str) -> np.ndarray:
         """Values of ``figure`` over line (rows) × load (columns); NaN where absent."""
         return grid_values(self.points, self.line_values_v, self.load_values_a, figure)
@@ -202,6 +261,87 @@ class RunReview:
 
     def _cells(self) -> list[tuple[int, int]]:
         return grid_cells(self.points, self.line_values_v, self.load_values_a)
+
+
+#: The bench kind of the simulated bench (:mod:`labseq.sim_bench`).
+SIMULATED_BENCH_KIND = "sim"
+
+
+@dataclass(frozen=True)
+class LimitExcess:
+    """How far one figure of one node at a point is from its limit: ``excess`` is positive
+    beyond the limit (the figure fails), negative inside it (the margin left)."""
+
+    node: str
+    figure: str
+    value: float  # in the node's own sign
+    limit: float
+    is_max: bool
+    polarity: int
+    is_derated_rating: bool  # the peak limit is the node's rating × derating
+    bounded: bool = False  # the value comes from a clipped capture: a bound
+    several_nodes: bool = False
+
+    @property
+    def excess(self) -> float:
+        """How far beyond the limit (negative: inside it), in the figure's unit."""
+        magnitude = self.polarity < 0 and self.figure in SIGNED_FIGURES
+        judged = abs(self.value) if magnitude else self.value
+        return judged - self.limit if self.is_max else self.limit - judged
+
+    @property
+    def share(self) -> float:
+        """The excess as a fraction of the limit, so figures of different units rank."""
+        return self.excess / abs(self.limit) if self.limit else math.copysign(math.inf, self.excess)
+
+    @property
+    def beyond(self) -> bool:
+        return self.excess > 0
+
+    def words(self) -> str:
+        """ "peak stress 147 V, 27 V over the derated rating"; "damping ratio 0.08, 0.02 under
+        the 0.1 limit"; inside the limit: "…, 2 V under the derated rating"."""
+        title = figure_title(self.figure, self.polarity)
+        if self.several_nodes:
+            title = f"{self.node} {title}"
+        value = format_figure(self.figure, self.value)
+        if self.bounded:
+            value = f"{bound_relation(self.figure, self.polarity)} {value}"
+        distance = format_change(self.figure, abs(self.excess)).lstrip("+±")
+        if self.beyond:
+            side = "over" if self.is_max else "under"
+        else:
+            side = "under" if self.is_max else "above"
+        limit = (
+            "the derated rating"
+            if self.is_derated_rating
+            else f"the {format_figure(self.figure, self.limit)} limit"
+        )
+        return f"{title} {value}, {distance} {side} {limit}"
+
+
+def reason_words(reason: str) -> str:
+    """A stored verdict reason in words: a reason stored by an older labseq named the figure by
+    its key and a ratio in engineering notation ("damping_ratio 266 m breaks limit ≥ 100 m");
+    this gives "damping ratio 0.266 breaks limit ≥ 0.1". Reasons in words pass unchanged."""
+    node, separator, rest = reason.partition(": ")
+    if separator and node not in FIGURE and _OLD_REASON.match(rest):
+        prefix = f"{node}: "
+    else:
+        prefix, rest = "", reason
+    found = _OLD_REASON.match(rest)
+    if found is None or found["figure"] not in FIGURE:
+        return reason
+    figure = found["figure"]
+    text = figure_title(figure) + rest[len(figure) :]
+    if not FIGURE[figure].unit and not FIGURE[figure].fraction:
+        text = _PREFIXED.sub(lambda m: f"{float(m[1]) * _PREFIX_SCALE[m[2]]:.3g}", text)
+    return prefix + text
+
+
+_OLD_REASON = re.compile(r"^(?P<figure>[a-z]+_[a-z_]+)(?=[ :])")
+_PREFIXED = re.compile(r"(-?\d+(?:\.\d+)?) ([munpk])(?![A-Za-z])")
+_PREFIX_SCALE = {"p": 1e-12, "n": 1e-9, "u": 1e-6, "m": 1e-3, "k": 1e3}
 
 
 def grid_cells(
@@ -279,7 +419,7 @@ def review_run(store: RunStore, run_id: int) -> RunReview:
     """Read run ``run_id`` and its points and work out its verdict, grid and worst points."""
     run = store.run(run_id)
     try:
-        sequence, problem = stored_sequence(run), None
+        sequence, problem = stored_sequence(run, store.location), None
     except InputError as exc:  # the stored text no longer validates (a DUT file has moved)
         sequence, problem = None, str(exc)
     stored_nodes = store.node_names(run_id)
@@ -304,6 +444,7 @@ def review_run(store: RunStore, run_id: int) -> RunReview:
         node_name=node_names[0],
         end_safety=store.last_safety_check(run_id) if run.status == "unsafe-end" else None,
         loss_methods=store.capture_methods(run_id, "snubber_loss_method"),
+        clipped=frozenset(store.clipped_points(run_id)),
     )
 
 
@@ -339,6 +480,54 @@ def limit_rows(review: RunReview) -> list[tuple[str, str]]:
     return rows
 
 
+# --------------------------------------------------------------------------- machine output
+
+#: The fields of a stored run in every command's JSON (``runs``, ``report``, ``compare``,
+#: ``run``, ``resume``, ``export``, ``analyze-run``): one shape for a run everywhere.
+RUN_FIELDS = (
+    "id",
+    "uuid",
+    "bench_id",
+    "bench_host",
+    "started_at",
+    "finished_at",
+    "status",
+    "dut_label",
+    "snubber_label",
+    "bench_kind",
+    "sequence_path",
+    "sequence_sha256",
+    "points_done",
+    "points_total",
+    "notes",
+)
+
+
+def run_object(run: RunRecord, end_safety: str | None = None) -> dict[str, Any]:
+    """A run as every command's JSON gives it: :data:`RUN_FIELDS` with its true status (a run
+    recorded as running whose process has died is "interrupted"; ``recorded_status`` keeps
+    what the store says), its label, whether the bench was the simulated one, and (for a run
+    that ended unsafe) what its shutdown found."""
+    return {
+        **{name: getattr(run, name) for name in RUN_FIELDS},
+        "status": shown_status(run),
+        "recorded_status": run.status,
+        "label": run.notes,
+        "simulated": run.bench_kind == SIMULATED_BENCH_KIND,
+        "end_safety": end_safety,
+    }
+
+
+def point_object(point_index: int, line_v: float, line_is_ac: bool, load_a: float) -> dict:
+    """A point's setpoints as every command's JSON gives them (SI numbers)."""
+    return {
+        "point_index": point_index,
+        "line_v": line_v,
+        "line_is_ac": line_is_ac,
+        "load_a": load_a,
+    }
+
+
 def _node_limits(spec: NodeSpec) -> dict[str, Any]:
     return {
         **vars(spec.limits),
@@ -362,14 +551,15 @@ def _worst_summary(worst: Mapping[str, WorstPoint]) -> dict[str, Any]:
     }
 
 
-def run_summary(review: RunReview) -> dict[str, Any]:
-    """The review as plain data for JSON: verdict, limits, one row per point, worst points."""
+def run_summary(review: RunReview, problems: Mapping[int, str] | None = None) -> dict[str, Any]:
+    """The review as plain data for JSON: the run, its headline, verdict, limits, one row per
+    point (with why it did not pass), worst points. ``problems``: as for :func:`not_passed`."""
+    why = {item.point.point.id: item.why for item in not_passed(review, problems)}
     sequence = review.sequence
     views = {name: review.node_view(name) for name in review.node_names}
     return {
-        "run": review.run.id,
-        "status": review.run.status,
-        "end_safety": review.end_safety,
+        "run": run_object(review.run, review.end_safety),
+        "headline": headline(review, problems),
         "verdict": review.verdict,
         "verdict_counts": review.verdict_counts,
         "dut": review.run.dut_label,
@@ -391,12 +581,12 @@ def run_summary(review: RunReview) -> dict[str, Any]:
         "sequence_problem": review.sequence_problem,
         "points": [
             {
-                "point_index": p.point.point_index,
-                "line_v": p.point.line_v,
-                "line_is_ac": p.point.line_is_ac,
-                "load_a": p.point.load_a,
+                **point_object(
+                    p.point.point_index, p.point.line_v, p.point.line_is_ac, p.point.load_a
+                ),
                 "status": p.point.status,
                 "verdict": p.verdict,
+                "why": why.get(p.point.id),
                 "verdict_reasons": p.point.verdict_reasons,
                 "figures": {name: vars(stats) for name, stats in p.figures.items()},
                 "nodes": {
@@ -415,3 +605,87 @@ def run_summary(review: RunReview) -> dict[str, Any]:
         "worst": _worst_summary(review.worst),
         "worst_by_node": {name: _worst_summary(view.worst) for name, view in views.items()},
     }
+
+
+# --------------------------------------------------------------------------- in words
+
+
+@dataclass(frozen=True)
+class NotPassed:
+    """A point that did not pass, with why: the limits it is beyond (farthest first) and, for a
+    point that could not be judged, what stopped it."""
+
+    point: PointReview
+    beyond: list[LimitExcess]
+    why: str
+
+    @property
+    def severity(self) -> tuple[int, float]:
+        """Sort key, worst first: failing points by how far beyond a limit (as a share of the
+        limit), then failing points with nothing to measure it by, then incomplete ones."""
+        if self.point.verdict == "fail":
+            return (0, -self.beyond[0].share) if self.beyond else (1, 0.0)
+        return (2, 0.0)
+
+
+def not_passed(review: RunReview, problems: Mapping[int, str] | None = None) -> list[NotPassed]:
+    """The points that did not pass, worst first, each with its reason in words.
+
+    ``problems`` maps a point id to what stopped it being measured (read from the run's log,
+    :func:`labseq.runlog.point_problems`)."""
+    problems = problems or {}
+    found = []
+    for point in review.points:
+        if point.verdict == "pass":
+            continue
+        beyond = [e for e in review.excesses(point) if e.beyond]
+        found.append(NotPassed(point, beyond, _why(point, beyond, problems.get(point.point.id))))
+    return sorted(found, key=lambda item: item.severity)
+
+
+def _why(point: PointReview, beyond: Sequence[LimitExcess], problem: str | None) -> str:
+    if problem is not None:
+        return problem
+    if point.point.status == "pending":
+        return "not measured: the run ended before this point"
+    if point.point.status == "failed":
+        return "not measured: the point failed (no reason recorded)"
+    stored = [reason_words(reason) for reason in point.reasons]
+    if beyond:
+        # the distances for failed limits, and what else kept the point from passing
+        undetermined = [reason for reason in stored if "breaks limit" not in reason]
+        return "; ".join([e.words() for e in beyond] + undetermined)
+    return "; ".join(stored) or point.point.status
+
+
+def headline(review: RunReview, problems: Mapping[int, str] | None = None) -> str:
+    """The run's outcome in one sentence a manager can read, e.g. "fails at 6 of 16 points;
+    worst: peak stress 147 V at 75 V / 2.2 A, 27 V over the derated rating"."""
+    total = len(review.points)
+    if total == 0:
+        return "no points recorded"
+    counts = review.verdict_counts
+    listed = not_passed(review, problems)
+    if counts["fail"]:
+        incomplete = counts["incomplete"]
+        more = f" ({incomplete} more could not be judged)" if incomplete else ""
+        worst = listed[0]
+        where = review.label(worst.point)
+        start = f"fails at {counts['fail']} of {total} points{more}; worst: "
+        if worst.beyond:
+            title, _, rest = worst.beyond[0].words().partition(", ")
+            return f"{start}{title} at {where}, {rest}"
+        return f"{start}{where}: {worst.why}"
+    if counts["incomplete"]:
+        first = listed[0]
+        return (
+            f"incomplete: {counts['incomplete']} of {total} points could not be judged "
+            f"(e.g. {review.label(first.point)}: {first.why}); the other {counts['pass']} pass"
+        )
+    closest = [(excess, point) for point in review.points for excess in review.excesses(point)[:1]]
+    sentence = f"passes at all {total} points"
+    if closest:
+        excess, point = max(closest, key=lambda pair: pair[0].share)
+        title, _, rest = excess.words().partition(", ")
+        sentence += f"; closest to a limit: {title} at {review.label(point)}, {rest}"
+    return sentence

@@ -16,6 +16,7 @@ while the next capture is acquired, so it does not slow the sweep down.
 from __future__ import annotations
 
 import socket
+import sqlite3
 import time
 from collections.abc import Callable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -25,18 +26,27 @@ from dataclasses import dataclass, field
 from instruments import Waveform
 from instruments.errors import InstrumentError, ScpiError
 from labseq.bench import Bench, SafeReport, lock_names, make_safe, open_bench
-from labseq.errors import LabseqError
+from labseq.errors import EXIT_FAILURE, EXIT_OK, LabseqError
 from labseq.locks import run_locks
 from labseq.pipeline import analyse_or_error, analyse_run, judge_stored_point, store_figures
 from labseq.progress import Progress
 from labseq.safety import SAFE_BUS_V, Interrupted, SignalLatch, signal_exit_code
 from labseq.sequence import Sequence
-from labseq.store import CaptureRecord, PointReadings, PointRecord, RunRecord, Store
+from labseq.store import (
+    CaptureRecord,
+    PointReadings,
+    PointRecord,
+    RunRecord,
+    Store,
+    StoreError,
+    store_failure,
+)
+from labseq.units import format_si
 
 #: How often the scope is asked whether its single acquisition is in.
 ACQUISITION_POLL_S = 0.005
 #: Exit status of a run whose end could not be confirmed safe (it overrides every other one).
-UNSAFE_END_EXIT = 3
+UNSAFE_END_EXIT = EXIT_FAILURE
 
 
 class PointAbort(LabseqError):
@@ -85,12 +95,13 @@ class RunOutcome:
     def exit_code(self) -> int:
         """:data:`UNSAFE_END_EXIT` when the bench could not be confirmed safe; after a signal,
         128 + its number (130 SIGINT, 143 SIGTERM, 129 SIGHUP); 0 when every point is done;
-        else 1."""
+        else 3 (the bench or an instrument failed; 1 is kept for a judgement)."""
         if self.status == "unsafe-end":
             return UNSAFE_END_EXIT
         if self.status == "interrupted":
             return signal_exit_code(self.signal_name or "SIGINT")
-        return 0 if self.status == "finished" and self.points_done == self.points_total else 1
+        complete = self.status == "finished" and self.points_done == self.points_total
+        return EXIT_OK if complete else EXIT_FAILURE
 
 
 class Sweep:
@@ -179,6 +190,25 @@ class Sweep:
             scope.wait_acquisition(settings.acquisition_timeout_s, ACQUISITION_POLL_S)
             return [scope.fetch_waveform(node.channel) for node in self.sequence.nodes]
 
+    def clip_warning(self, index: int, number: int, waveforms: list[Waveform]) -> bool:
+        """Warn on the console when a capture clipped (once a point): its peak figures are then
+        only bounds. True when a warning was given."""
+        found = []
+        for node, waveform in zip(self.sequence.nodes, waveforms, strict=True):
+            edges, screen = waveform.clipped_edges(), waveform.screen_volts()
+            if edges and screen is not None:
+                at = " and ".join(
+                    f"{edge} ({format_si(screen[edge == 'top'], 'V')})" for edge in edges
+                )
+                found.append(f"{node.name} clipped at the {at} of the screen")
+        if found:
+            self.progress.message(
+                f"point {index}: capture {number}: {'; '.join(found)} - the figures there are "
+                "bounds, not measurements; widen the channel's volts_per_div or move its offset",
+                error=True,
+            )
+        return bool(found)
+
     def read_point(self) -> PointReadings:
         """Meter on the line input, load and source readbacks; efficiency = Pout / Pin."""
         bench = self.bench
@@ -213,9 +243,11 @@ class Sweep:
         self._wait("settle", seq.grid.settle_s)
         already = self.store.acquisitions(point.id)
         wanted = seq.grid.captures_per_point
+        clipped = False  # warned of this point's clipping (once a point)
         for number in range(already + 1, wanted + 1):
             self.progress.point(index, total, point.line_v, point.load_a, number, wanted)
             waveforms = self.acquire()
+            clipped = clipped or self.clip_warning(index, number, waveforms)
             last = number == wanted
             readings = self.read_point() if last else None
             records = [
@@ -284,6 +316,8 @@ class Sweep:
         kind = "scpi-error" if isinstance(error, ScpiError) else "fault"
         data = {"code": error.code} if isinstance(error, ScpiError) else {}
         self.log(kind, f"{point.line_v:g} V / {point.load_a:g} A: {error}", point.id, **data)
+        then = "aborting the run" if self.sequence.on_point_error == "abort" else "skipped"
+        self.progress.message(f"point {point.point_index + 1}: {error} - {then}", error=True)
         if self.sequence.on_point_error == "abort":
             raise PointAbort(
                 f"point {point.point_index + 1} failed (on_point_error = abort): {error}"
@@ -379,7 +413,7 @@ def _shutdown(
             on_bus_reading=on_bus_reading,
         )
         acknowledge()
-        _log_safety(store, run_id, report, "end of run")
+        _store_safely(store, lambda: _log_safety(store, run_id, report, "end of run"))
     finally:
         bench.close()
     progress.stop()
@@ -476,11 +510,18 @@ def execute(
             failure = failure or error
     progress.stop()
     if unfinished:
-        store.log_event(run_id, "info", "a store write cut short by the ending was rolled back")
+        _store_safely(
+            store,
+            lambda: store.log_event(
+                run_id, "info", "a store write cut short by the ending was rolled back"
+            ),
+        )
     status = _ending(failure, report, latch.first is not None)
-    _record_ending(store, run_id, status, failure, latch)
+    recorded = _record_ending(store, run_id, status, failure, latch)
     if latch.first is not None:
         progress.message(f"run interrupted by {latch.first}", error=True)
+    if status == "failed" and isinstance(failure, sqlite3.Error):
+        raise _store_failed(store, run_id, failure, report, recorded) from failure
     if status == "failed":
         raise failure  # type: ignore[misc]
     if failure is not None and not isinstance(failure, Interrupted):
@@ -511,20 +552,58 @@ def _reopen_quietly(sequence: Sequence, store: Store, run_id: int) -> Bench | No
         return None
 
 
+def _store_safely(store: Store, write: Callable[[], object]) -> bool:
+    """Do one store write after the sweep has ended; False, with the write rolled back, when
+    the store fails (locked by another process, disk full, damaged). The bench is made safe
+    whatever the store does, and each later write is still tried: the run's status above all."""
+    try:
+        write()
+    except sqlite3.Error:
+        store.rollback_unfinished()
+        return False
+    return True
+
+
 def _record_ending(
     store: Store, run_id: int, status: str, failure: BaseException | None, latch: SignalLatch
-) -> None:
-    """Log why the run ended and store its status."""
+) -> bool:
+    """Log why the run ended and store its status; False when the status could not be stored
+    (the store failed: the run then reads "running" with a process that is gone, which
+    ``labseq runs`` shows as interrupted, and ``labseq resume`` takes it up)."""
+    events: list[tuple[str, str]] = []
     if latch.first is not None:
-        store.log_event(run_id, "safety", f"run interrupted by {latch.first}")
+        events.append(("safety", f"run interrupted by {latch.first}"))
     if failure is not None and not isinstance(failure, Interrupted):
         kind = "fault" if not isinstance(failure, PointAbort) else "info"
-        store.log_event(run_id, kind, f"run {status}: {type(failure).__name__}: {failure}")
+        events.append((kind, f"run {status}: {type(failure).__name__}: {failure}"))
     if latch.count > 1:
-        store.log_event(
-            run_id, "safety", f"{latch.count} signals in all; the shutdown ran to its end"
+        events.append(("safety", f"{latch.count} signals in all; the shutdown ran to its end"))
+    for kind, message in events:
+        _store_safely(
+            store, lambda kind=kind, message=message: store.log_event(run_id, kind, message)
         )
-    store.set_run_status(run_id, status)
+    return _store_safely(store, lambda: store.set_run_status(run_id, status))
+
+
+def _store_failed(
+    store: Store,
+    run_id: int,
+    failure: sqlite3.Error,
+    report: SafeReport | None,
+    recorded: bool,
+) -> StoreError:
+    """The error that ends a run whose store failed under it, saying what became of the bench
+    and of the run."""
+    bench = "the bench was not opened" if report is None else f"the bench: {report.summary()}"
+    run = (
+        f"run {run_id} is marked failed"
+        if recorded
+        else f"run {run_id}'s status could not be written either (it shows as interrupted)"
+    )
+    return StoreError(
+        f"{store_failure(store.path, failure)}; {bench}; {run}; every capture committed before "
+        f"is kept: `labseq resume {run_id}` finishes it once the store can be written"
+    )
 
 
 def start_run(sequence: Sequence, store: Store, *, label: str = "") -> int:

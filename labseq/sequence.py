@@ -24,6 +24,7 @@ from typing import Any, NamedTuple
 
 from instruments.command_map import ROLES
 from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
+from instruments.files import FileProblem, read_regular_file
 from instruments.tomlkeys import Problem, Problems, describe_value, report
 from labseq.analysis.verdict import Limits
 from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
@@ -537,7 +538,11 @@ def _read_grid(top: Table, dut: Dut | None, bench: BenchSpec | None) -> Grid | N
     line_values = table.values("line_values", lambda v, k: quantity(v, "V", k, 0.0, False))
     frequency = table.quantity("line_frequency", "Hz", default=None)
     rated_load_a = dut.rated_load_a if dut is not None else None
-    load_values = table.values("load_values", lambda v, k: _load_value(v, k, rated_load_a))
+    # a [dut] given but refused has its own problem reported: its loads are not judged again
+    dut_refused = dut is None and "dut" in top.data
+    load_values = table.values(
+        "load_values", lambda v, k: _load_value(v, k, rated_load_a, dut_refused)
+    )
     settle_s = table.quantity("settle", "s", minimum=0.0, allow_equal=True, maximum=MAX_SETTLE_S)
     captures = table.integer("captures_per_point", maximum=MAX_CAPTURES_PER_POINT)
     table.finish()
@@ -629,11 +634,16 @@ def _check_load_values(
             out.fail(f"{key}[{index}]", f"{shown} is above bench.limits.load_max_current {limit}")
 
 
-def _load_value(value: Any, key: str, rated_load_a: float | None) -> float:
-    """A load in amps, or in percent of the DUT's rated load."""
+def _load_value(
+    value: Any, key: str, rated_load_a: float | None, dut_refused: bool = False
+) -> float:
+    """A load in amps, or in percent of the DUT's rated load; NaN for a percentage of a [dut]
+    that was refused (one problem per cause: the [dut] value is the one reported)."""
     if isinstance(value, str) and "%" in value:
+        if rated_load_a is None and dut_refused:
+            return math.nan
         if rated_load_a is None:
-            raise ValueError("a percentage needs dut.rated_load, which is missing or invalid")
+            raise ValueError("a percentage needs dut.rated_load, which is missing")
         return quantity(value, "%", key, 0.0, False) / 100.0 * rated_load_a
     return quantity(value, "A", key, 0.0, False)
 
@@ -1078,9 +1088,9 @@ def load_sequence(path: str | Path) -> Sequence:
     """Read and validate the sequence file at ``path``; raise :class:`SequenceError` if unusable."""
     out = Problems(path)
     try:
-        data = out.path.read_bytes()
-    except OSError as exc:
-        out.fail("(file)", f"cannot read: {exc.strerror}")
+        data = read_regular_file(out.path)
+    except FileProblem as problem:
+        out.fail("(file)", str(problem))
         raise SequenceError(out.path, out.sorted()) from None
     document = out.load(data)
     return _sequence(out, document, hashlib.sha256(data).hexdigest())

@@ -47,6 +47,8 @@ import sqlite_utils
 import zstandard
 
 from instruments import Waveform
+from instruments.files import not_regular
+from instruments.text import quoted
 from labseq import __version__
 from labseq.errors import InputError, LabseqError
 from labseq.figures import CAPTURE_FIGURES, CAPTURE_METHODS, VERDICTS
@@ -437,15 +439,66 @@ _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 
 class StoreError(LabseqError):
-    """The store cannot do what was asked."""
+    """The store cannot do what was asked: it is damaged, locked by another process, or its
+    disk is full (exit status 3, a store failure)."""
+
+    exit_code = 3
 
 
 class StoreFileError(StoreError, InputError):
     """The file named by the user is missing, not a SQLite database, not ours, or too new."""
 
+    exit_code = 2
+
 
 class UnknownRunError(StoreError, InputError):
     """No run with that id in the store."""
+
+    exit_code = 2
+
+
+#: How long a write waits for another connection's write to end before the store counts as
+#: locked (SQLite's busy timeout).
+BUSY_TIMEOUT_S = 30.0
+
+
+def store_failure(path: Path, error: sqlite3.Error) -> StoreError:
+    """What a failure of SQLite means for the user of the store at ``path``, as one message."""
+    text = str(error)
+    if "locked" in text or "busy" in text:
+        why = (
+            "the store is locked by another process writing it (SQLite: "
+            f"{text}); wait for that process to end, or use another --db"
+        )
+    elif "full" in text:
+        why = (
+            f"no room to write (SQLite: {text}): the disk, or a size limit set on the file, is "
+            "full; free some space. Everything committed before is kept"
+        )
+    elif isinstance(error, sqlite3.DatabaseError) and not isinstance(
+        error, sqlite3.OperationalError | sqlite3.IntegrityError | sqlite3.ProgrammingError
+    ):
+        why = (
+            f"the file is damaged (SQLite: {text}); keep a copy, and recover what can be read "
+            "with the sqlite3 shell's .recover command into a new file"
+        )
+    else:
+        why = f"the store failed (SQLite: {type(error).__name__}: {text})"
+    return StoreError(f"{path}: {why}")
+
+
+def _json_field(text: str | None, where: str, path: Path) -> Any:
+    """A JSON column read back; :class:`StoreError` naming the column and row when the text
+    stored there is not JSON (the file was edited or damaged)."""
+    if text is None:
+        return None
+    try:
+        return json.loads(text)
+    except (ValueError, RecursionError):
+        raise StoreError(
+            f"{path}: {where} is damaged (not JSON: {quoted(str(text), 40)}); the rest of the "
+            "store can still be read"
+        ) from None
 
 
 # --------------------------------------------------------------------------- records
@@ -582,9 +635,34 @@ def decode_codes(
     return np.frombuffer(blob, dtype=dtype)
 
 
-def _point_record_of(row: Mapping[str, Any]) -> PointRecord:
-    """A point's record from its row (in either backend)."""
-    reasons = json.loads(row["verdict_reasons"]) if row["verdict_reasons"] else []
+def _run_record_of(row: Mapping[str, Any], location: Any, **overrides: Any) -> RunRecord:
+    """A run's record from its row (in either backend; ``location`` names the store)."""
+    try:
+        instruments = _json_field(row["instruments"], f"run {row['id']}'s instruments", location)
+    except StoreError as damaged:  # the identities are shown, never computed with
+        instruments = {"(damaged)": str(damaged)}
+    if not isinstance(instruments, dict):
+        instruments = {"(damaged)": f"run {row['id']}'s instruments are not a table"}
+    return _record(RunRecord, row, instruments=instruments, **overrides)
+
+
+def _edges_of(capture_id: int, text: str | None, location: Any) -> list[dict[str, Any]]:
+    """A capture's per-edge figures from their JSON (inverse of :func:`_edges_json`)."""
+    where = f"capture {capture_id}'s edge figures (capture_figures.edges_json)"
+    table = _json_field(text, where, location)
+    if not table:
+        return []
+    try:
+        return [dict(zip(table["names"], row, strict=True)) for row in table["rows"]]
+    except (KeyError, TypeError, ValueError):
+        raise StoreError(f"{location}: {where} is damaged (not names and rows)") from None
+
+
+def _point_record_of(row: Mapping[str, Any], location: Any) -> PointRecord:
+    """A point's record from its row (in either backend; ``location`` names the store in the
+    message about damaged verdict reasons)."""
+    where = f"point {row['id']}'s verdict reasons"
+    reasons = _json_field(row["verdict_reasons"] or None, where, location) or []
     return _record(PointRecord, row, line_is_ac=bool(row["line_is_ac"]), verdict_reasons=reasons)
 
 
@@ -612,14 +690,6 @@ def _edges_json(edges: list[Mapping[str, Any]]) -> str:
     names = list(dict.fromkeys(name for edge in edges for name in edge))
     rows = [[edge.get(name) for name in names] for edge in edges]
     return json.dumps({"names": names, "rows": rows}, separators=(",", ":"))
-
-
-def _edges_from_json(text: str | None) -> list[dict[str, Any]]:
-    """Inverse of :func:`_edges_json`."""
-    if not text:
-        return []
-    table = json.loads(text)
-    return [dict(zip(table["names"], row, strict=True)) for row in table["rows"]]
 
 
 def _record(cls: type, row: Mapping[str, Any], **overrides: Any) -> Any:
@@ -733,14 +803,27 @@ class Store:
         self._copy: Path | None = None  # the upgraded copy an older file is read from
         self._compressor = zstandard.ZstdCompressor(level=ZSTD_LEVEL)
         self._decompressor = zstandard.ZstdDecompressor()
+        try:
+            kind = not_regular(self.path.stat().st_mode)
+        except OSError:
+            kind = None
+        if kind is not None:
+            raise StoreFileError(f"{self.path}: is {kind}, not a regular file; give a store file")
         exists = self.path.is_file() and self.path.stat().st_size > 0
         if not exists and (read_only or not create):
             raise StoreFileError(f"{self.path}: no such store; give --db the path of a run's file")
         version = _inspect_existing(self.path) if exists else None
-        if read_only:
-            self._open_for_reading(version)
-            return
-        conn = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
+        try:
+            if read_only:
+                self._open_for_reading(version)
+            else:
+                self._open(version)
+        except sqlite3.Error as error:
+            raise store_failure(self.path, error) from None
+
+    def _open(self, version: int | None) -> None:
+        """Connect, set the pragmas, and create or upgrade the tables."""
+        conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_S, isolation_level=None)
         conn.row_factory = sqlite3.Row
         _add_functions(conn)
         self.db = sqlite_utils.Database(conn, execute_plugins=False)
@@ -819,8 +902,16 @@ class Store:
     def __enter__(self) -> Store:
         return self
 
-    def __exit__(self, *exc: object) -> None:
-        self.close()
+    def __exit__(self, kind: object, error: BaseException | None, trace: object) -> None:
+        """Close the file; a failure of SQLite inside the block becomes a :class:`StoreError`
+        naming the file and what went wrong (damaged, locked, full)."""
+        try:
+            self.close()
+        except sqlite3.Error:
+            if error is None:
+                raise
+        if isinstance(error, sqlite3.Error):
+            raise store_failure(self.path, error) from error
 
     def close(self) -> None:
         """Close the file. A writer first leaves it at rest: the write-ahead log folded into
@@ -994,13 +1085,7 @@ class Store:
         """Mark "interrupted" the runs left "running" by a process of this host that is gone,
         and say so in each run's event log (a killed runner could not write it itself)."""
         host = socket.gethostname()
-        abandoned = [
-            run
-            for run in self.runs()
-            if run.status == "running"
-            and run.host == host
-            and not process_alive(run.pid, run.process_started)
-        ]
+        abandoned = [run for run in self.runs() if run_abandoned(run)]
         for run in abandoned:
             self.set_run_status(run.id, "interrupted")
             self.log_event(
@@ -1153,7 +1238,8 @@ class Store:
         )
         result: dict[int, dict[str, tuple[str, list[str]]]] = {}
         for row in self.db.query(query, [run_id]):
-            reasons = json.loads(row["verdict_reasons"])
+            where = f"point {row['point_id']}'s {row['node']} verdict reasons"
+            reasons = _json_field(row["verdict_reasons"], where, self.path)
             result.setdefault(row["point_id"], {})[row["node"]] = (row["verdict"], reasons)
         return result
 
@@ -1224,13 +1310,23 @@ class Store:
             methods[(node, point_id)] = (*methods.get((node, point_id), ()), value)
         return methods
 
+    def clipped_points(self, run_id: int) -> set[tuple[str, int]]:
+        """The (node, point id)s of a run where at least one capture clipped."""
+        rows = self.db.execute(
+            "SELECT DISTINCT c.node, c.point_id FROM captures c "
+            "JOIN capture_figures f ON f.capture_id = c.id "
+            "WHERE c.run_id = ? AND f.clipped = 1",
+            [run_id],
+        ).fetchall()
+        return {(node, point_id) for node, point_id in rows}
+
     def capture_figures(self, capture_id: int) -> dict[str, Any] | None:
         """The stored figures of one capture (edges decoded), or None before analysis."""
         rows = list(self.db["capture_figures"].rows_where("capture_id = ?", [capture_id]))
         if not rows:
             return None
         result = dict(rows[0])
-        result["edges"] = _edges_from_json(result.pop("edges_json"))
+        result["edges"] = self._edges(capture_id, result.pop("edges_json"))
         return result
 
     # ------------------------------------------------------------------- events
@@ -1262,7 +1358,7 @@ class Store:
         """A run's events in order, ``data`` decoded."""
         rows = self.db["events"].rows_where("run_id = ?", [run_id], order_by="id")
         return [
-            {**row, "data": None if row["data"] is None else json.loads(row["data"])}
+            {**row, "data": _json_field(row["data"], f"event {row['id']}'s data", self.path)}
             for row in rows
         ]
 
@@ -1407,6 +1503,9 @@ class Store:
         except ValueError as exc:
             raise StoreError(f"{self.path}: capture {capture_id} is damaged: {exc}") from None
 
+    def _edges(self, capture_id: int, text: str | None) -> list[dict[str, Any]]:
+        return _edges_of(capture_id, text, self.path)
+
     def _require_run(self, run_id: int) -> None:
         if not list(self.db.query("SELECT 1 FROM runs WHERE id = ?", [run_id])):
             raise self._unknown_run(run_id)
@@ -1416,13 +1515,11 @@ class Store:
         known = f"runs in this store: {', '.join(ids)}" if ids else "this store holds no runs"
         return UnknownRunError(f"{self.path}: no run {run_id}; {known}")
 
-    @staticmethod
-    def _run_record(row: Mapping[str, Any]) -> RunRecord:
-        return _record(RunRecord, row, instruments=json.loads(row["instruments"]))
+    def _run_record(self, row: Mapping[str, Any]) -> RunRecord:
+        return _run_record_of(row, self.path)
 
-    @staticmethod
-    def _point_record(row: Mapping[str, Any]) -> PointRecord:
-        return _point_record_of(row)
+    def _point_record(self, row: Mapping[str, Any]) -> PointRecord:
+        return _point_record_of(row, self.path)
 
     # ------------------------------------------------------------------- copying a run out
 
@@ -1486,6 +1583,22 @@ def _bench(instruments: Mapping[str, Any]) -> dict[str, str]:
     """The columns that name the bench a run is on: this host and ``instruments``."""
     host = socket.gethostname()
     return {"bench_host": host, "bench_id": bench_identity(host, instruments)}
+
+
+def run_abandoned(run: RunRecord) -> bool:
+    """Whether ``run`` is recorded as running by a process of this host that is gone (killed,
+    crashed, or its store failed under it): it is in truth interrupted."""
+    return (
+        run.status == "running"
+        and run.host == socket.gethostname()
+        and not process_alive(run.pid, run.process_started)
+    )
+
+
+def shown_status(run: RunRecord) -> str:
+    """The run's status as it truly is: "interrupted" for a run recorded as running whose
+    process has died, else the recorded status (read-only: nothing is written)."""
+    return "interrupted" if run_abandoned(run) else run.status
 
 
 def _owner() -> dict[str, Any]:

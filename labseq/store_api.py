@@ -34,7 +34,7 @@ class RunStore(Protocol):
 
     def __enter__(self) -> RunStore: ...
 
-    def __exit__(self, *exc: object) -> None: ...
+    def __exit__(self, kind: object, error: BaseException | None, trace: object) -> None: ...
 
     def close(self) -> None:
         """Let go of the store (its file or connection)."""
@@ -106,6 +106,10 @@ class RunStore(Protocol):
     def capture_figures(self, capture_id: int) -> dict[str, Any] | None:
         """One capture's stored figures (with ``edges``: the figures of every edge), or None
         before analysis."""
+        ...
+
+    def clipped_points(self, run_id: int) -> set[tuple[str, int]]:
+        """The (node, point id)s of a run where at least one capture clipped."""
         ...
 
     def capture_methods(self, run_id: int, name: str) -> dict[tuple[str, int], tuple[str, ...]]:

@@ -44,9 +44,11 @@ from labseq.store import (
     StoredCapture,
     StoreError,
     UnknownRunError,
-    _edges_from_json,
+    _edges_of,
+    _json_field,
     _point_record_of,
     _record,
+    _run_record_of,
     decode_codes,
 )
 
@@ -280,6 +282,10 @@ _CAPTURE_METHOD_ROWS = (
     "(to_jsonb(f) ->> %s) AS method FROM captures c "
     "JOIN capture_figures f ON f.capture_id = c.id WHERE c.run_id = %s ORDER BY method"
 )
+_CLIPPED = (
+    "SELECT DISTINCT c.node, c.point_id FROM captures c "
+    "JOIN capture_figures f ON f.capture_id = c.id WHERE c.run_id = %s AND f.clipped = 1"
+)
 _EVENTS_OF_RUN = "SELECT * FROM events WHERE run_id = %s ORDER BY id"
 _LAST_SAFETY = (
     "SELECT message, (data::jsonb ->> 'when') AS heading FROM events "
@@ -320,6 +326,8 @@ class LabDatabaseError(StoreError):
 
 class LabDatabaseInputError(StoreError, InputError):
     """The URL names no usable lab database (not ours, too new, not set up): exit status 2."""
+
+    exit_code = 2
 
 
 def is_lab_url(text: str) -> bool:
@@ -483,7 +491,7 @@ class LabDatabase:
     def __enter__(self) -> LabDatabase:
         return self
 
-    def __exit__(self, *exc: object) -> None:
+    def __exit__(self, kind: object, error: BaseException | None, trace: object) -> None:
         self.close()
 
     def close(self) -> None:
@@ -522,11 +530,8 @@ class LabDatabase:
         rows = self._fetch(_PUBLISHED, [uuids])
         return {row["uuid"]: row["with_codes"] for row in rows}
 
-    @staticmethod
-    def _run_record(row: dict[str, Any]) -> RunRecord:
-        return _record(
-            RunRecord, row, uuid=str(row["uuid"]), instruments=json.loads(row["instruments"])
-        )
+    def _run_record(self, row: dict[str, Any]) -> RunRecord:
+        return _run_record_of(row, self.location, uuid=str(row["uuid"]))
 
     def last_safety_check(self, run_id: int) -> str | None:
         rows = self._fetch(_LAST_SAFETY, [run_id])
@@ -540,13 +545,13 @@ class LabDatabase:
             rows = self._fetch(_POINTS_OF_RUN, [run_id])
         else:
             rows = self._fetch(_POINTS_WITH_STATUS, [run_id, status])
-        return [_point_record_of(row) for row in rows]
+        return [_point_record_of(row, self.location) for row in rows]
 
     def point(self, point_id: int) -> PointRecord:
         rows = self._fetch(_POINT, [point_id])
         if not rows:
             raise StoreError(f"{self.location}: no point with id {point_id}")
-        return _point_record_of(rows[0])
+        return _point_record_of(rows[0], self.location)
 
     def node_figures(self, run_id: int) -> dict[int, dict[str, dict[str, dict[str, Any]]]]:
         result: dict[int, dict[str, dict[str, dict[str, Any]]]] = {}
@@ -566,7 +571,8 @@ class LabDatabase:
     def node_verdicts(self, run_id: int) -> dict[int, dict[str, tuple[str, list[str]]]]:
         result: dict[int, dict[str, tuple[str, list[str]]]] = {}
         for row in self._fetch(_NODE_VERDICTS_OF_RUN, [run_id]):
-            reasons = json.loads(row["verdict_reasons"])
+            where = f"point {row['point_id']}'s {row['node']} verdict reasons"
+            reasons = _json_field(row["verdict_reasons"], where, self.location)
             result.setdefault(row["point_id"], {})[row["node"]] = (row["verdict"], reasons)
         return result
 
@@ -624,8 +630,12 @@ class LabDatabase:
         if not rows:
             return None
         result = dict(rows[0])
-        result["edges"] = _edges_from_json(result.pop("edges_json"))
+        result["edges"] = _edges_of(capture_id, result.pop("edges_json"), self.location)
         return result
+
+    def clipped_points(self, run_id: int) -> set[tuple[str, int]]:
+        """The (node, point id)s of a run where at least one capture clipped."""
+        return {(row["node"], row["point_id"]) for row in self._fetch(_CLIPPED, [run_id])}
 
     def capture_methods(self, run_id: int, name: str) -> dict[tuple[str, int], tuple[str, ...]]:
         if name not in CAPTURE_METHODS:
@@ -641,7 +651,7 @@ class LabDatabase:
 
     def events(self, run_id: int) -> list[dict[str, Any]]:
         return [
-            {**row, "data": None if row["data"] is None else json.loads(row["data"])}
+            {**row, "data": _json_field(row["data"], f"event {row['id']}'s data", self.location)}
             for row in self._fetch(_EVENTS_OF_RUN, [run_id])
         ]
 

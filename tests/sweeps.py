@@ -14,7 +14,7 @@ from labseq.cli import main
 from labseq.safety import HANDLED_SIGNALS
 
 ROOT = Path(__file__).resolve().parent.parent
-DEMO_DC = ROOT / "sequences" / "demo_dc_flyback.toml"
+DEMO_DC = ROOT / "labseq" / "examples" / "demo_dc_flyback.toml"
 LABSEQ = [sys.executable, "-m", "labseq"]
 
 
@@ -73,7 +73,9 @@ def demo_sequence(
 
 def small_sequence(tmp_path: Path, name: str) -> Path:
     """A demo regression sequence shrunk to 2 lines × 2 loads × 2 captures."""
-    text = (ROOT / "sequences" / "demo_regression" / f"{name}.toml").read_text(encoding="utf-8")
+    text = (ROOT / "labseq" / "examples" / "demo_regression" / f"{name}.toml").read_text(
+        encoding="utf-8"
+    )
     text = re.sub(r"(?m)^line_values = .*$", 'line_values = ["36 V", "75 V"]', text)
     text = re.sub(r"(?m)^load_values = .*$", 'load_values = ["25 %", "100 %"]', text)
     text = re.sub(r"(?m)^captures_per_point = .*$", "captures_per_point = 2", text)

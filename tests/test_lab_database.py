@@ -131,6 +131,9 @@ def assert_same_run(source: Store, lab: LabDatabase, uuid: str) -> None:
         assert {
             (n, lab_index[p]): v for (n, p), v in lab.capture_methods(theirs.id, name).items()
         } == {(n, index[p]): v for (n, p), v in source.capture_methods(mine.id, name).items()}
+    assert {(n, lab_index[p]) for n, p in lab.clipped_points(theirs.id)} == {
+        (n, index[p]) for n, p in source.clipped_points(mine.id)
+    }
     src_captures = list(source.iter_captures(mine.id))
     lab_captures = list(lab.iter_captures(theirs.id))
     assert len(lab_captures) == len(src_captures) > 0
@@ -400,7 +403,7 @@ def test_no_captures_then_captures_added_in_one_go(
         (run,) = lab.runs()
         figures = lab.node_figures(run.id)
         assert figures and len(list(lab.iter_captures(run.id, with_codes=False))) > 0
-    code, _, err = run_cli("export", "latest", "--db", lab_db, "--out", "/nonexistent/x")
+    code, _, err = run_cli("export", "latest", "--db", lab_db, "--out", str(tmp_path / "x"))
     assert code == 2 and "without its raw captures" in err
     code, out, err = run_cli("report", "latest", "--db", lab_db, "--out", str(tmp_path / "r"))
     assert code == 0, err

@@ -78,7 +78,7 @@ def _modules_after(*args: str, cwd: Path) -> set[str]:
     [
         ["--help"],
         ["runs", "--db", "missing.sqlite"],
-        ["check", str(ROOT / "sequences" / "template_real_bench.toml")],
+        ["check", str(ROOT / "labseq" / "examples" / "template_real_bench.toml")],
         ["report", "--help"],
         ["analyze", "--help"],
     ],
@@ -93,6 +93,8 @@ def test_commands_that_need_no_simulator_do_not_import_it(args: list[str], tmp_p
 def test_checking_a_simulated_sequence_reads_its_dut_file_without_the_physics(
     tmp_path: Path,
 ) -> None:
-    loaded = _modules_after("check", str(ROOT / "sequences" / "demo_dc_flyback.toml"), cwd=tmp_path)
+    loaded = _modules_after(
+        "check", str(ROOT / "labseq" / "examples" / "demo_dc_flyback.toml"), cwd=tmp_path
+    )
     assert "sim_instruments" in loaded  # the DUT file, read by the simulator's own reader
     assert loaded.isdisjoint({"scipy", "matplotlib"})

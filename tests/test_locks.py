@@ -46,10 +46,10 @@ def test_second_process_is_refused_on_same_store_and_same_bench(tmp_path, make_s
     _out, err = first.communicate(timeout=120)
     assert first.returncode == 0, err
 
-    assert same_store.returncode == 1
+    assert same_store.returncode == 3  # the store is busy: not a judgement
     assert "in use by another labseq process" in same_store.stderr
     assert str(db) in same_store.stderr
-    assert other_store.returncode == 1
+    assert other_store.returncode == 3
     assert "the instrument TCPIP::127.0.0.1::" in other_store.stderr
     assert "Traceback" not in same_store.stderr + other_store.stderr
 
@@ -264,7 +264,7 @@ def test_analyze_run_waits_for_the_store(tmp_path, lock_home):
     holder.start()
     ready.wait(10)
     code, _out, err = run_cli("analyze-run", "1", "--db", str(db), "--wait", "0")
-    assert code == 1 and f"the store {db} is in use by another labseq process" in err
+    assert code == 3 and f"the store {db} is in use by another labseq process" in err
     code, out, err = run_cli("analyze-run", "1", "--db", str(db), "--wait", "60 s")
     holder.join()
     assert code == 0, err

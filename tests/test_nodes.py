@@ -27,8 +27,8 @@ from labseq.store import SCHEMA_VERSION, CaptureRecord, Store, StoreFileError
 from sim_instruments.flyback import DEMO_DUTS, load_dut
 
 ROOT = Path(__file__).resolve().parent.parent
-DEMO_DC = ROOT / "sequences" / "demo_dc_flyback.toml"
-DEMO_OFFLINE = ROOT / "sequences" / "demo_offline_flyback.toml"
+DEMO_DC = ROOT / "labseq" / "examples" / "demo_dc_flyback.toml"
+DEMO_OFFLINE = ROOT / "labseq" / "examples" / "demo_offline_flyback.toml"
 
 #: The telecom demo's output rectifier as a second node (100 V Schottky, channel 2), with an RC
 #: damper that the simulated bench fits across the diode in place of the DUT file's (none).
@@ -230,7 +230,9 @@ def test_secondary_verdict_judges_the_peak_magnitude(dc_run: tuple[Store, int, P
         margin_v = figures[point.id]["secondary"]["stress_margin_v"]["worst"]
         assert margin_v == pytest.approx(limit_v - abs(peak_v))
         status, reasons = verdicts[point.id]["secondary"]
-        assert any(r.startswith("peak_v") for r in reasons) == (abs(peak_v) > limit_v)
+        assert any(r.startswith("peak reverse voltage ") for r in reasons) == (
+            abs(peak_v) > limit_v
+        )
         # the point's verdict is the worst of its nodes', reasons named by node
         statuses = {status, verdicts[point.id]["primary"][0]}
         expected = (
@@ -249,6 +251,7 @@ def test_falling_peak_magnitude_against_a_limit() -> None:
     failing = aggregate([{"peak_v": -170.0}], polarity=-1)
     verdict = judge(failing, limits, polarity=-1)
     assert verdict.status == "fail" and "|peak| ≤ 160 V" in verdict.reasons[0]
+    assert verdict.reasons[0].startswith("peak reverse voltage -170 V")
 
 
 # --------------------------------------------------------------------------- report and compare

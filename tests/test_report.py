@@ -24,7 +24,7 @@ from labseq.store import CaptureRecord, PointReadings, Store
 from labseq.units import format_si
 
 ROOT = Path(__file__).resolve().parent.parent
-DEMO_SEQUENCE = ROOT / "sequences" / "demo_dc_flyback.toml"
+DEMO_SEQUENCE = ROOT / "labseq" / "examples" / "demo_dc_flyback.toml"
 LINES_V = (36.0, 48.0, 60.0, 75.0)
 LOADS_A = (0.55, 1.1, 1.65, 2.2)
 #: The demo sequence's limit: switch rating 150 V × derating 0.8.

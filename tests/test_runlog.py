@@ -24,7 +24,7 @@ def faulty_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
     code, _, err = run_cli(
         "run", str(path), "--db", str(db), "--quiet", "--sim-faults", "scope:no-trigger@point=2"
     )
-    assert code == 1, err  # a point is missing
+    assert code == 3, err  # a point is missing after the scope failed
     return db
 
 

@@ -21,7 +21,8 @@ from labseq.sequence import (
     parse_sequence,
 )
 
-SEQUENCES = Path(__file__).resolve().parent.parent / "sequences"
+ROOT = Path(__file__).resolve().parent.parent
+SEQUENCES = ROOT / "labseq" / "examples"
 DEMO_DC = SEQUENCES / "demo_dc_flyback.toml"
 TEMPLATE = SEQUENCES / "template_real_bench.toml"
 
@@ -378,7 +379,7 @@ def test_missing_file_and_non_utf8(tmp_path: Path) -> None:
 
 
 def test_sim_dut_path_relative_to_sequence_file(tmp_path: Path) -> None:
-    dut_text = SEQUENCES.parent / "sim_instruments" / "duts" / "telecom_dc_flyback.toml"
+    dut_text = ROOT / "sim_instruments" / "duts" / "telecom_dc_flyback.toml"
     (tmp_path / "duts").mkdir()
     (tmp_path / "duts" / "mine.toml").write_text(dut_text.read_text())
     path = edited(DEMO_DC, tmp_path, replace_line("dut", 'dut = "duts/mine.toml"'))

@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 from labseq.cli import main
 from labseq.sequence import Sequence, SequenceError, parse_sequence
 
-SEQUENCES = Path(__file__).resolve().parent.parent / "sequences"
+SEQUENCES = Path(__file__).resolve().parent.parent / "labseq" / "examples"
 BASES = {
     name: (SEQUENCES / name).read_text(encoding="utf-8")
     for name in ("demo_dc_flyback.toml", "demo_offline_flyback.toml", "template_real_bench.toml")

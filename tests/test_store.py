@@ -137,7 +137,7 @@ def test_damaged_codes_are_a_clear_error(db: Path, codec: str) -> None:
             store.captures(points[0])
         assert len(store.captures(points[0], with_codes=False)) == 1
     code, _, err = run_cli("export", str(run_id), "--db", str(db), "--out", str(db.parent / "x"))
-    assert code == 1 and "is damaged" in err and str(db) in err and "Traceback" not in err
+    assert code == 3 and "is damaged" in err and str(db) in err and "Traceback" not in err
 
 
 def test_float64_codes_refused(db: Path) -> None:
@@ -601,10 +601,18 @@ def test_cli_export_csv(filled_db: tuple[Path, int, list[int]], tmp_path: Path) 
         "p001_c00.csv",
         "p001_c01.csv",
     ]
-    assert files[0].read_text().splitlines()[0] == "time_s,volts"
-    table = np.loadtxt(files[0], delimiter=",", skiprows=1)
+    lines = files[0].read_text().splitlines()
+    header = lines.index("time_s,volts")  # below the preamble: origin and screen limits
+    assert lines[0].startswith("Source,labseq run 1 capture p000_c00 on ")
+    table = np.loadtxt(files[0], delimiter=",", skiprows=header + 1)
     with Store(db) as store:
         stored = store.captures(points[0])[0]
+    screen = dict(line.split(",") for line in lines[1:header])
+    if stored.code_min is not None:  # the screen's edges in volts, as the samples are computed
+        bottom, top = (float(screen[key]) for key in ("Screen Bottom V", "Screen Top V"))
+        edges = np.array([stored.code_min, stored.code_max], dtype=np.float64)
+        expected = (edges - stored.y_reference) * stored.y_increment_v + stored.y_origin_v
+        np.testing.assert_allclose([bottom, top], expected, rtol=1e-8)
     np.testing.assert_allclose(table[:, 0], stored.time_s(), rtol=1e-8)
     np.testing.assert_allclose(table[:, 1], stored.volts(), rtol=1e-8)
 

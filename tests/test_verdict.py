@@ -46,17 +46,21 @@ def test_fail_reasons_name_figure_value_and_limit() -> None:
         point, Limits(max_peak_v=600.0, max_snubber_loss_w=0.1, min_efficiency=0.9), efficiency=0.87
     )
     assert verdict.status == "fail"
-    assert "peak_v 612 V breaks limit ≤ 600 V" in verdict.reasons
-    assert "snubber_loss_w 125 mW breaks limit ≤ 100 mW" in verdict.reasons
+    # reasons in words with units: the figure's title, never its key; a ratio as a plain number
+    assert "peak stress 612 V breaks limit ≤ 600 V" in verdict.reasons
+    assert "snubber loss 125 mW breaks limit ≤ 100 mW" in verdict.reasons
     assert "efficiency 87 % breaks limit ≥ 90 %" in verdict.reasons
+    low = judge(aggregate([capture(damping_ratio=0.0266)]), Limits(min_damping_ratio=0.1))
+    assert low.reasons == ["damping ratio 0.0266 breaks limit ≥ 0.1"]
 
 
 def test_incomplete_without_captures_or_a_fit() -> None:
     empty = judge(aggregate([]), Limits(max_peak_v=600.0))
     assert empty.status == "incomplete"
-    assert empty.reasons == ["peak_v: no captures analysed; limit ≤ 600 V"]
+    assert empty.reasons == ["peak stress: no captures analysed; limit ≤ 600 V"]
     no_fit = judge(aggregate([capture(damping_ratio=None)]), Limits(min_damping_ratio=0.2))
-    assert no_fit.status == "incomplete" and "damping_ratio: not determined" in no_fit.reasons[0]
+    assert no_fit.status == "incomplete" and "damping ratio: not determined" in no_fit.reasons[0]
+    assert no_fit.reasons[0].endswith("limit ≥ 0.2")
     no_meter = judge(aggregate([capture()]), Limits(min_efficiency=0.85), efficiency=None)
     assert no_meter.status == "incomplete"
 

@@ -21,12 +21,12 @@ import numpy as np
 
 from labseq.figures import (
     BOUNDED_BY_CLIPPING,
-    FIGURE_UNITS,
     SIGNED_FIGURES,
     WORST_IS_MAX,
     WORST_IS_MIN,
+    figure_title,
+    format_figure,
 )
-from labseq.units import format_si
 
 
 @dataclass(frozen=True)
@@ -128,12 +128,6 @@ def worst_verdict(verdicts: Iterable[str]) -> Literal["pass", "fail", "incomplet
     return "incomplete" if "incomplete" in seen or not seen else "pass"
 
 
-def _text(name: str, value: float) -> str:
-    if name == "efficiency":
-        return f"{100 * value:.3g} %"
-    return format_si(value, FIGURE_UNITS.get(name, ""))
-
-
 def judge(
     point: PointFigures, limits: Limits, efficiency: float | None = None, *, polarity: int = 1
 ) -> Verdict:
@@ -141,8 +135,8 @@ def judge(
 
     Fail when any worst value is beyond its limit; otherwise incomplete when a limited figure is
     missing, or is a clipped bound that could hide a failure; otherwise pass. Reasons name the
-    figure, its value and the limit in engineering notation. On a falling node (``polarity``
-    −1) the peak limit applies to the magnitude of the peak.
+    figure in words (its catalogue title), its value and the limit with their units. On a
+    falling node (``polarity`` −1) the peak limit applies to the magnitude of the peak.
     """
     failures: list[str] = []
     missing: list[str] = []
@@ -153,21 +147,22 @@ def judge(
         value = efficiency if figure == "efficiency" else point.worst(figure)
         magnitude = polarity < 0 and figure in SIGNED_FIGURES
         relation = ("|peak| " if magnitude else "") + ("≤" if is_max else "≥")
-        wanted = f"limit {relation} {_text(figure, limit)}"
+        wanted = f"limit {relation} {format_figure(figure, limit)}"
+        title = figure_title(figure, polarity)
         if value is None:
             why = "no captures analysed" if point.n_captures == 0 else "not determined"
-            missing.append(f"{figure}: {why}; {wanted}")
+            missing.append(f"{title}: {why}; {wanted}")
             continue
         judged = abs(value) if magnitude else value
         beyond = judged > limit if is_max else judged < limit
         clipped = point.n_clipped and figure in BOUNDED_BY_CLIPPING
         if beyond:
             bound = " (a bound: the capture clipped)" if clipped else ""
-            failures.append(f"{figure} {_text(figure, value)}{bound} breaks {wanted}")
+            failures.append(f"{title} {format_figure(figure, value)}{bound} breaks {wanted}")
         elif clipped:
             missing.append(
-                f"{figure} {_text(figure, value)} is only a bound ({point.n_clipped} clipped "
-                f"capture(s)); {wanted} cannot be shown"
+                f"{title} {format_figure(figure, value)} is only a bound ({point.n_clipped} "
+                f"clipped capture(s)); {wanted} cannot be shown"
             )
     if failures:
         return Verdict("fail", failures + missing)

@@ -8,12 +8,15 @@ from typing import Any
 
 import click
 
+from instruments.text import quoted
 from labseq.errors import InputError
 from labseq.store import Store, UnknownRunError
 from labseq.store_api import RunStore
 from labseq.store_pg import LabDatabase, is_lab_url, redact
 
 DEFAULT_DB = "labseq.sqlite"
+#: The largest run id a store can hold: SQLite's row ids are signed 64-bit integers.
+MAX_RUN_ID = 2**63 - 1
 
 
 class StoreLocation(click.ParamType):
@@ -86,19 +89,30 @@ def resolve_run(store: RunStore, text: str, *, what: str = "RUN") -> int:
         f"give a run id, a run's UUID or its first {UUID_PREFIX_MIN}+ hex digits (see "
         "`labseq runs`), or 'latest'"
     )
-    if given.isdigit() and (len(given) < UUID_PREFIX_MIN or _has_run(store, int(given))):
-        return int(given)
+    if given.isdigit():
+        run_id = int(given)
+        in_range = 0 < run_id <= MAX_RUN_ID
+        if in_range and (len(given) < UUID_PREFIX_MIN or _has_run(store, run_id)):
+            return run_id
+        if not in_range and len(given) < UUID_PREFIX_MIN:
+            raise InputError(
+                f"{what} {quoted(text)}: a run id is a whole number from 1 to {MAX_RUN_ID} "
+                "(SQLite's largest row id); see `labseq runs` for the ids in this store"
+            )
     digits = given.replace("-", "")
     if len(digits) < UUID_PREFIX_MIN or given.strip("0123456789abcdef-"):
-        raise InputError(f"{what} {text!r}: {hint}")
+        raise InputError(f"{what} {quoted(text)}: {hint}")
     found = store.runs_by_uuid(given)
     if len(found) == 1:
         return found[0].id
     if not found:
-        raise InputError(f"{store.location}: {what} {text!r}: no run's UUID starts so; {hint}")
+        raise InputError(
+            f"{store.location}: {what} {quoted(text)}: no run has that id, and no run's UUID "
+            f"starts so; {hint}"
+        )
     names = ", ".join(f"{run.id} ({run.uuid})" for run in found[:5])
     raise InputError(
-        f"{store.location}: {what} {text!r} starts the UUID of {len(found)} runs: {names}; "
+        f"{store.location}: {what} {quoted(text)} starts the UUID of {len(found)} runs: {names}; "
         "give more of its digits"
     )
 
@@ -109,3 +123,9 @@ def _has_run(store: RunStore, run_id: int) -> bool:
     except UnknownRunError:
         return False
     return True
+
+
+def default_folder(what: str, run_id: int) -> str:
+    """The folder a command writes run ``run_id`` into when given no --out: ``report-run3``,
+    ``export-run3`` (one pattern for every command)."""
+    return f"{what}-run{run_id}"

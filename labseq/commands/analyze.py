@@ -90,7 +90,6 @@ def format_figure(edge: EdgeFigures, name: str) -> str:
 
 
 def _print_table(path: Path, figures: CaptureFigures) -> None:
-    from rich.console import Console
     from rich.table import Table
 
     shown = figures.edges if len(figures.edges) <= 6 else [figures.worst]
@@ -102,7 +101,9 @@ def _print_table(path: Path, figures: CaptureFigures) -> None:
         table.add_column(f"edge {index + 1}{marker}", justify="right")
     for name in EDGE_FIGURE_NAMES:
         table.add_row(name, *(format_figure(edge, name) for edge in shown))
-    console = Console()
+    from labseq.progress import make_console
+
+    console = make_console()
     console.print(table)
     if figures.clipped:
         console.print("The record reached full scale: peak and overshoot are lower bounds.")
@@ -111,13 +112,11 @@ def _print_table(path: Path, figures: CaptureFigures) -> None:
 
 
 def _plot(path: Path, waveform: FileRecord, figures: CaptureFigures) -> None:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    from matplotlib.figure import Figure  # not pyplot: no backend is chosen
 
     time_s = waveform.t0_s + np.arange(waveform.volts.size) * waveform.sample_interval_s
-    fig, ax = plt.subplots(figsize=(10, 5), layout="constrained")
+    fig = Figure(figsize=(10, 5), layout="constrained")
+    ax = fig.subplots()
     ax.plot(time_s * 1e6, waveform.volts, color=COLOURS["record"], lw=0.8, label="record")
     for index, fit in enumerate(figures.ring_fits):
         if fit is None:
@@ -159,8 +158,6 @@ def _plot(path: Path, waveform: FileRecord, figures: CaptureFigures) -> None:
         fig.savefig(path, dpi=120)
     except OSError as exc:
         raise InputError(f"--plot {path}: cannot write the image: {exc}") from None
-    finally:
-        plt.close(fig)
 
 
 @click.command("analyze")

@@ -1,7 +1,8 @@
 """``labseq compare BASELINE CANDIDATE``: did a change make any point worse?
 
 Exit status: 0 when no point got worse beyond its thresholds and no verdict went pass → fail,
-1 when one did (the worst such point is named), 2 on bad input (unknown run, missing store).
+1 when one did (the worst such point is named), 2 on bad input (unknown run, missing store),
+3 when a store cannot be read (and on any unexpected failure: never 1).
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ from pathlib import Path
 
 import click
 
+from labseq.commands._gates import junit_option, write_junit
 from labseq.commands._store import StoreLocation, db_option, read_store, resolve_run
 from labseq.compare import (
     DEFAULT_COVERAGE,
@@ -22,12 +24,12 @@ from labseq.compare import (
     compare_runs,
     comparison_summary,
 )
-from labseq.errors import InputError
+from labseq.errors import EXIT_JUDGED, InputError
 from labseq.figures import FIGURE_DIRECTIONS
 from labseq.review import review_run
 
 #: Exit status when the candidate regressed (what a CI job acts on).
-EXIT_REGRESSED = 1
+EXIT_REGRESSED = EXIT_JUDGED
 #: Points printed at most; --json and --report have them all.
 MAX_PRINTED_POINTS = 40
 
@@ -73,6 +75,7 @@ MAX_PRINTED_POINTS = 40
     type=click.Choice(list(FIGURE_DIRECTIONS)),
     help="A figure whose worsening is reported but does not fail the compare (repeatable).",
 )
+@junit_option
 def command(
     baseline: str,
     candidate: str,
@@ -83,6 +86,7 @@ def command(
     tolerance: float,
     coverage: float,
     ignored: tuple[str, ...],
+    junit_path: Path | None,
 ) -> None:
     """Compare run CANDIDATE against run BASELINE (ids, or 'latest') point by point.
 
@@ -112,6 +116,10 @@ def command(
                 )
             except OSError as exc:
                 raise InputError(f"--report {report_dir}: cannot write the report: {exc}") from None
+    if junit_path is not None:
+        from labseq.junit import compare_junit
+
+        write_junit(compare_junit(comparison), junit_path)
     if as_json:
         click.echo(json.dumps(comparison_summary(comparison), indent=2, ensure_ascii=False))
     else:
@@ -135,6 +143,9 @@ def _print_changes(comparison: Comparison) -> None:
         f"baseline run {b.run.id} ({b.run.snubber_label}) → candidate run {c.run.id} "
         f"({c.run.snubber_label})"
     )
+    click.echo(comparison.outcome)
+    for warning in comparison.differences():
+        click.echo(f"warning: not like for like: {warning}")
     click.echo(comparison.summary())
     flags = Counter(change.flag for change in comparison.points)
     click.echo(", ".join(f"{count} {flag}" for flag, count in sorted(flags.items())))

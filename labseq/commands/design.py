@@ -72,6 +72,15 @@ CLAMP_LINES = (
 )
 
 
+#: Why a ring frequency alone proposes nothing, and what would do.
+NO_NETWORK = (
+    "design: a ring frequency alone cannot size a snubber: L and Cpar need one more fact. Give "
+    "--leakage (the known leakage inductance), or --added-cap with --ring-freq-added (the ring "
+    "with a known capacitance added), or --damping with --snubber-r and --snubber-c (the ring "
+    "measured with that damper fitted); or --run RUN for a stored run"
+)
+
+
 def _with_option_names(message: str) -> str:
     """Replace keyword names in a design message by the command's option names."""
     names = {**OPTIONS, **CLAMP_OPTIONS}
@@ -220,6 +229,8 @@ def command(
             )
     except DesignInputError as exc:
         raise InputError(f"design: {_with_option_names(str(exc))}") from None
+    if proposal is not None and proposal.c_par_f is None:
+        raise InputError(NO_NETWORK)
 
     tool = leakage_w = None
     if proposal is not None and clamp is not None and proposal.loss_w is not None:

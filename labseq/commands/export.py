@@ -3,12 +3,15 @@ is :mod:`labseq.export`'s)."""
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import click
 
-from labseq.commands._store import db_option, read_store, resolve_run
+from labseq.commands._store import db_option, default_folder, read_store, resolve_run
+from labseq.errors import InputError
 from labseq.export import CAPTURE_FORMATS, export_run
+from labseq.review import run_object
 
 
 @click.command("export")
@@ -19,7 +22,7 @@ from labseq.export import CAPTURE_FORMATS, export_run
     "out_dir",
     type=click.Path(path_type=Path),
     default=None,
-    help="Directory to write into [default: run-<RUN>].",
+    help="Folder to write into [default: export-run<ID>].",
 )
 @click.option(
     "--captures",
@@ -29,13 +32,32 @@ from labseq.export import CAPTURE_FORMATS, export_run
     show_default=True,
     help="One .npz with all captures, or one CSV per capture.",
 )
-def command(run: str, db_path: Path, out_dir: Path | None, captures_format: str) -> None:
-    """Export run RUN (an id, or 'latest'): points.csv plus the captures (as NPZ or CSV)."""
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object for scripts.")
+def command(
+    run: str, db_path: Path, out_dir: Path | None, captures_format: str, as_json: bool
+) -> None:
+    """Export run RUN (an id, or 'latest'): points.csv plus the captures (as NPZ or CSV).
+
+    points.csv writes booleans as true/false and an absent value as an empty cell."""
     with read_store(db_path) as store:
         run_id = resolve_run(store, run)
-        written = export_run(
-            store, run_id, out_dir or Path(f"run-{run_id}"), captures=captures_format
-        )
+        directory = out_dir or Path(default_folder("export", run_id))
+        if directory.exists() and not directory.is_dir():
+            raise InputError(
+                f"--out {directory}: is a file, not a directory; give a directory to write the "
+                "export into (it is made if missing; files of an earlier export are replaced)"
+            )
+        try:
+            written = export_run(store, run_id, directory, captures=captures_format)
+        except OSError as exc:
+            raise InputError(
+                f"--out {directory}: cannot write the export there: {exc.strerror or exc}"
+                + (f" ({exc.filename})" if exc.filename else "")
+            ) from None
+        record = store.run(run_id)
+    if as_json:
+        click.echo(json.dumps({"run": run_object(record), **written.as_dict()}, indent=2))
+        return
     click.echo(
         f"run {run_id}: {written.points} points and {written.captures} captures written to "
         f"{written.directory}"

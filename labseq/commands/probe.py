@@ -9,9 +9,11 @@ import click
 
 from labseq.bench import ROLES, lock_names
 from labseq.commands._options import trace_option, tracing
+from labseq.errors import EXIT_FAILURE
 from labseq.locks import instrument_locks
 from labseq.probe import FAILED, probe_bench
 from labseq.sequence import load_sequence
+from labseq.visa_library import allow_option, sequence_visa_library
 
 CAUTION = (
     "probe: each instrument is reset (*RST) and set up as the sequence says; the source's "
@@ -31,16 +33,23 @@ CAUTION = (
     help="Probe only this role (repeat for several); default: all four.",
 )
 @trace_option
-def command(sequence_path: Path, roles: tuple[str, ...], trace_path: Path | None) -> None:
+@allow_option()
+def command(
+    sequence_path: Path,
+    roles: tuple[str, ...],
+    trace_path: Path | None,
+    allowed_libraries: tuple[Path, ...],
+) -> None:
     """Connect to each instrument of SEQUENCE, identify it, and try every command of its map.
 
     Settings are read back, set to a harmless value and read back again; queries are asked; on
     the scope one acquisition is triggered at once (where its map can) and one waveform
     fetched. One line per command says what was sent, what came back and whether it worked:
-    the first thing to run with a new instrument or a new map (see DEVELOPERS.md). Exits 1 if
+    the first thing to run with a new instrument or a new map (see DEVELOPERS.md). Exits 3 if
     any command failed.
     """
     sequence = load_sequence(sequence_path)
+    sequence_visa_library(sequence, allowed_libraries)
     roles = roles or ROLES
     click.echo(CAUTION, err=True)
     with instrument_locks(lock_names(sequence)), tracing(trace_path):
@@ -56,7 +65,7 @@ def command(sequence_path: Path, roles: tuple[str, ...], trace_path: Path | None
     counts = {outcome: sum(line.outcome == outcome for line in lines) for outcome in _OUTCOMES}
     click.echo(", ".join(f"{count} {outcome}" for outcome, count in counts.items()))
     if failed:
-        sys.exit(1)
+        sys.exit(EXIT_FAILURE)  # an instrument failed a command: not a judgement
 
 
 _OUTCOMES = ("ok", "failed", "not mapped", "skipped")

@@ -6,14 +6,22 @@ from pathlib import Path
 
 import click
 
+from labseq.commands._gates import run_verdict, strict_option
 from labseq.commands._options import trace_option, tracing
 from labseq.commands._store import db_option, resolve_run
-from labseq.commands.run import confirm_hazard, report_outcome, yes_option
+from labseq.commands.run import (
+    confirm_hazard,
+    json_option,
+    outcome_object,
+    report_outcome,
+    yes_option,
+)
 from labseq.pipeline import stored_sequence
 from labseq.progress import Progress
 from labseq.runner import TAKE_OVER_RISK, bench_locks, check_resumable, execute
 from labseq.safety import SignalLatch
 from labseq.store import Store
+from labseq.visa_library import allow_option, sequence_visa_library
 
 
 @click.command("resume")
@@ -28,8 +36,19 @@ from labseq.store import Store
 )
 @trace_option
 @yes_option()
+@allow_option()
+@strict_option
+@json_option()
 def command(
-    run: str, db_path: Path, quiet: bool, take_over: bool, trace_path: Path | None, yes: bool
+    run: str,
+    db_path: Path,
+    quiet: bool,
+    take_over: bool,
+    trace_path: Path | None,
+    yes: bool,
+    allowed_libraries: tuple[Path, ...],
+    strict: bool,
+    as_json: bool,
 ) -> None:
     """Continue RUN (an id, or 'latest') where it stopped — even after the runner was killed.
 
@@ -42,7 +61,10 @@ def command(
     latch = SignalLatch().install()
     with Store(db_path, create=False) as store:
         run_id = resolve_run(store, run)
-        sequence = stored_sequence(store.run(run_id))
+        sequence = stored_sequence(store.run(run_id), store.path)
+        sequence_visa_library(
+            sequence, allowed_libraries, f"{db_path}: run {run_id}'s bench.visa_library"
+        )
         with bench_locks(sequence, store), tracing(trace_path):
             before = check_resumable(store, run_id, take_over=take_over)
             pending = before.points_done < before.points_total
@@ -52,4 +74,6 @@ def command(
             if start_note:
                 store.log_event(run_id, "safety", start_note)
             outcome = execute(sequence, store, run_id, progress=progress, latch=latch)
-        report_outcome(outcome, db_path, progress, latch)
+        verdict = run_verdict(store, run_id) if strict else None
+        found = outcome_object(outcome, store, db_path) if as_json else None
+        report_outcome(outcome, db_path, progress, latch, verdict, found)

@@ -3,13 +3,15 @@
 from __future__ import annotations
 
 import json
-from dataclasses import asdict
 from pathlib import Path
 
 import click
 
+from instruments.text import printable
 from labseq.commands._store import db_option, read_store
+from labseq.review import run_object
 from labseq.run_filter import RunFilter, parse_moment
+from labseq.store import shown_status
 
 
 @click.command("runs")
@@ -30,12 +32,13 @@ def command(
     until: str | None,
 ) -> None:
     """List the runs in the store: id, the first 8 hex digits of its UUID, start, status,
-    points done/total, DUT and snubber, and the bench's host (--json: the whole UUID and the
-    bench). --db postgresql://… lists a lab database's runs from every bench; the filters pick
-    runs by DUT, snubber, bench and start date (UTC) in either.
+    points done/total, DUT and snubber, label, and the bench's host (--json: the whole UUID and
+    the bench). --db postgresql://… lists a lab database's runs from every bench; the filters
+    pick runs by DUT, snubber, bench and start date (UTC) in either.
 
     A run whose end could not be confirmed safe (status unsafe-end) is named first, above the
-    table, with what its shutdown found."""
+    table, with what its shutdown found. A run recorded as running whose process has died
+    (killed, crashed) is shown as interrupted, and named below the table."""
     chosen = RunFilter(
         dut=dut,
         snubber=snubber,
@@ -49,28 +52,9 @@ def command(
         unsafe = {
             run.id: store.last_safety_check(run.id) for run in runs if run.status == "unsafe-end"
         }
+    statuses = {run.id: shown_status(run) for run in runs}
     if as_json:
-        fields = (
-            "id",
-            "uuid",
-            "bench_id",
-            "bench_host",
-            "started_at",
-            "finished_at",
-            "status",
-            "dut_label",
-            "snubber_label",
-            "bench_kind",
-            "sequence_path",
-            "sequence_sha256",
-            "points_done",
-            "points_total",
-        )
-        rows = [
-            {name: asdict(run)[name] for name in fields}
-            | ({"end_safety": unsafe[run.id]} if run.id in unsafe else {})
-            for run in runs
-        ]
+        rows = [run_object(run, unsafe.get(run.id)) for run in runs]
         click.echo(json.dumps(rows, indent=2))
         return
     if not runs:
@@ -82,13 +66,21 @@ def command(
             f"`labseq resume {run_id}` makes it safe first."
         )
     click.echo(
-        f"{'id':>4}  {'uuid':8}  {'started (UTC)':19}  {'status':11}  {'points':>9}  DUT / snubber"
+        f"{'id':>4}  {'uuid':8}  {'started (UTC)':19}  {'status':11}  {'points':>9}  "
+        "DUT / snubber  [label]"
     )
     for run in runs:
         points = f"{run.points_done}/{run.points_total}"
+        label = f"  [{printable(run.notes)}]" if run.notes else ""
         click.echo(
             f"{run.id:>4}  {run.uuid[:8]}  {run.started_at[:19].replace('T', ' '):19}  "
-            f"{run.status:11}  "
-            f"{points:>9}  {run.dut_label} / {run.snubber_label}"
+            f"{statuses[run.id]:11}  {points:>9}  {run.dut_label} / {run.snubber_label}{label}"
             + (f"  @ {run.bench_host}" if run.bench_host else "")
         )
+    for run in runs:
+        if statuses[run.id] != run.status:
+            click.echo(
+                f"run {run.id}: recorded as running, but its process {run.pid} has ended "
+                f"(killed, crashed or its store failed); `labseq resume {run.id}` makes the "
+                "bench safe first and finishes it"
+            )

@@ -10,6 +10,8 @@ own help, so listing labseq's commands does not import the simulator.
 
 from __future__ import annotations
 
+import json
+import sys
 import time
 from typing import Any
 
@@ -56,6 +58,11 @@ def _options() -> list[click.Parameter]:
             ["--seed"], type=int, default=0, show_default=True, help="Seed of every random draw."
         ),
         click.Option(
+            ["--json", "as_json"],
+            is_flag=True,
+            help="Print the resource strings as one JSON object (one line), then serve.",
+        ),
+        click.Option(
             ["--dialect"],
             type=click.Choice(DIALECTS),
             default=DIALECTS[0],
@@ -75,6 +82,19 @@ class _SimCommand(click.Command):
         return super().get_params(ctx)
 
 
+def sim_object(bench: Any, dialect: str, faults: str) -> dict[str, Any]:
+    """The running simulated bench for JSON: its DUT, dialect, faults and each role's VISA
+    resource string (the same strings the text output prints)."""
+    return {
+        "dut": bench.design.label,
+        "dialect": dialect,
+        "faults": faults or None,
+        "resources": dict(bench.resources),
+        "simulated": True,
+        "notice": SIMULATION_NOTICE,
+    }
+
+
 @click.command("sim", cls=_SimCommand)
 def command(**options: Any) -> None:
     """Serve a simulated source, load, meter and scope on TCP ports until interrupted."""
@@ -91,6 +111,11 @@ def command(**options: Any) -> None:
             dialect=dialect,
         )
         try:
+            if options["as_json"]:
+                click.echo(json.dumps(sim_object(bench, dialect, options["faults"])), nl=True)
+                sys.stdout.flush()
+                while True:
+                    time.sleep(3600)
             click.echo(
                 f"Simulated bench for {bench.design.label} ({dialect} dialect: maps {dialect!r})"
             )
@@ -103,6 +128,6 @@ def command(**options: Any) -> None:
             while True:
                 time.sleep(3600)
         except Interrupted:
-            click.echo("Simulated bench stopped.")
+            click.echo("Simulated bench stopped.", err=options["as_json"])
         finally:
             bench.stop()

@@ -20,11 +20,12 @@ from labseq.figures import (
     shown_unit,
 )
 from labseq.report import plots
-from labseq.report.html import Markup, Page, cell, esc, table
+from labseq.report.html import Markup, Page, cell, esc, long_cell, safety_text, table
 from labseq.report.run_report import LOSS_ASSUMPTIONS, ReportFiles, cell_texts, with_loss_methods
 from labseq.report.traces import point_traces
-from labseq.review import RunReview, line_text
+from labseq.review import RunReview, grid_cells, line_text
 from labseq.store_api import RunStore
+from labseq.units import format_si
 
 #: Figures with maps and table columns, in reading order.
 MAPPED_FIGURES = ("peak_v", "damping_ratio", "settling_time_s", "snubber_loss_w", "efficiency")
@@ -42,6 +43,11 @@ _FLAG_CLASS = {
     "missing in baseline": "c-missing",
     "missing in candidate": "c-missing",
 }
+
+
+def _word_cell(text: str, css_class: str = "") -> Markup:
+    """A cell of a word or two that never breaks inside a word ("better", "fail → pass")."""
+    return cell(text, f"{css_class} word".strip())
 
 
 def _change_cell(change: FigureChange | None) -> Markup | str:
@@ -69,8 +75,8 @@ def _change_rows(comparison: Comparison) -> tuple[list[list[Markup | str]], int]
     rows = [
         [
             comparison.label(p),
-            cell(p.flag, _FLAG_CLASS[p.flag]),
-            _verdicts(p),
+            _word_cell(p.flag, _FLAG_CLASS[p.flag]),
+            _word_cell(_verdicts(p)),
             *(_change_cell(p.changes.get(figure)) for figure in MAPPED_FIGURES),
         ]
         for p in listed[:MAX_LISTED_POINTS]
@@ -90,14 +96,14 @@ def _node_change_rows(comparison: Comparison, node: str) -> list[list[Markup | s
         rows.append(
             [
                 comparison.label(change),
-                cell(flag, _FLAG_CLASS[flag]),
+                _word_cell(flag, _FLAG_CLASS[flag]),
                 *(_change_cell(changes.get(figure)) for figure in NODE_FIGURES),
             ]
         )
     return rows[:MAX_LISTED_POINTS]
 
 
-def _run_rows(baseline: RunReview, candidate: RunReview) -> list[list[str]]:
+def _run_rows(baseline: RunReview, candidate: RunReview) -> list[list[Markup | str]]:
     def both(value: Callable[[RunReview], object]) -> list[str]:
         return [str(value(baseline)), str(value(candidate))]
 
@@ -110,12 +116,14 @@ def _run_rows(baseline: RunReview, candidate: RunReview) -> list[list[str]]:
         ["verdict", *both(lambda r: r.verdict)],
         ["points", *both(counts)],
         ["DUT", *both(lambda r: r.run.dut_label)],
+        ["rated load", *both(lambda r: format_si(r.rated_load_a, "A") if r.rated_load_a else "—")],
         ["snubber", *both(lambda r: r.run.snubber_label)],
+        ["bench", *both(lambda r: "simulated" if r.simulated else r.run.bench_kind)],
         ["status", *both(lambda r: r.run.status)],
         ["started (UTC)", *both(lambda r: r.run.started_at)],
         ["labseq version", *both(lambda r: r.run.software_version)],
-        ["sequence file", *both(lambda r: r.run.sequence_path)],
-        ["sequence SHA-256", *both(lambda r: r.run.sequence_sha256)],
+        ["sequence file", *map(long_cell, both(lambda r: r.run.sequence_path))],
+        ["sequence SHA-256", *map(long_cell, both(lambda r: r.run.sequence_sha256))],
     ]
 
 
@@ -123,6 +131,24 @@ def _axes(comparison: Comparison) -> tuple[list[str], list[str]]:
     is_ac = comparison.points[0].either.point.line_is_ac if comparison.points else False
     lines = [line_text(value, is_ac) for value in comparison.line_values_v]
     return lines, plots.axis_texts(comparison.load_values_a, "A")
+
+
+def _beyond(comparison: Comparison, side: str, figure: str) -> np.ndarray:
+    """The compare grid, True where run ``side``'s point is beyond its own limit on ``figure``."""
+    review: RunReview = getattr(comparison, side)
+    beyond = np.zeros((len(comparison.line_values_v), len(comparison.load_values_a)), dtype=bool)
+    cells = grid_cells(
+        [p.either for p in comparison.points], comparison.line_values_v, comparison.load_values_a
+    )
+    primary = review.node_names[0]
+    for (row, column), change in zip(cells, comparison.points, strict=True):
+        point = getattr(change, side)
+        if point is not None:
+            beyond[row, column] = any(
+                e.beyond and e.figure == figure and e.node == primary
+                for e in review.excesses(point)
+            )
+    return beyond
 
 
 def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
@@ -156,6 +182,7 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
             values,
             lines,
             loads,
+            outlined=_beyond(comparison, side, figure),
             colour_values=values * scale,
             title=f"{title.capitalize()}: {side} (run {run_id})",
             colour_label=colour_label,
@@ -165,7 +192,8 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
             colour_format=formatted(format_figure),
         )
         caption = (
-            f"{title.capitalize()} of the {side} run; both runs share the scale, brighter is worse."
+            f"{title.capitalize()} of the {side} run; both runs share the scale, brighter is "
+            "worse; outlined cells are beyond that run's limit."
         )
         if figure == "snubber_loss_w":
             caption += " Each cell names its method. " + LOSS_ASSUMPTIONS
@@ -176,28 +204,32 @@ def _figure_maps(page: Page, comparison: Comparison, figure: str) -> None:
     if not np.isfinite(delta).any():
         return
     flags = comparison.flag_grid(figure)
-    direction = "higher" if FIGURE_DIRECTIONS[figure] > 0 else "lower"
+    higher_better = FIGURE_DIRECTIONS[figure] > 0
+    direction = "higher" if higher_better else "lower"
 
     def change_text(row: int, column: int) -> str:
         value = delta[row, column]
         flag = flags[row][column] or ""
         return f"{format_change(figure, float(value))}\n{flag}" if math.isfinite(value) else flag
 
+    # One sign everywhere: cells, colour bar and text all give candidate − baseline; the colour
+    # map is turned so that purple is better whichever way the figure improves.
     fig = plots.heat_map(
         delta,
         lines,
         loads,
-        colour_values=delta * FIGURE_DIRECTIONS[figure] * scale,
-        cmap_name=plots.CHANGE_MAP,
+        colour_values=delta * scale,
+        cmap_name=plots.change_map(higher_better),
         centre=0.0,
         title=f"{title.capitalize()}: change, candidate − baseline ({direction} is better)",
-        colour_label=f"improvement ({unit})" if unit else "improvement",
+        colour_label=f"candidate − baseline ({unit})" if unit else "candidate − baseline",
         cell_text=change_text,
         colour_format=formatted(format_change),
     )
     caption = (
-        f"Change of {title} at each point and whether it is beyond the captures' own spread; "
-        "purple is better, orange worse."
+        f"Change of {title} at each point (candidate − baseline, the sign used everywhere in this "
+        "report) and whether it is beyond the captures' own spread; purple is better, orange "
+        "worse."
     )
     page.add(
         '<div class="maps">'
@@ -278,6 +310,12 @@ def build_compare_report(
     out_dir.mkdir(parents=True, exist_ok=True)
     b, c = comparison.baseline, comparison.candidate
     page = Page(out_dir, f"labseq compare: run {b.run.id} → run {c.run.id}")
+    simulated = [side for side, r in (("baseline", b), ("candidate", c)) if r.simulated]
+    if simulated:
+        page.add(
+            f'<p class="simulated" id="simulated">Simulated bench ({" and ".join(simulated)}): '
+            "no hardware was driven; those readings come from a model of the DUT.</p>"
+        )
     page.add(f"<h1>Compare: run {b.run.id} (baseline) → run {c.run.id} (candidate)</h1>")
     page.add(
         f'<p class="sub">{esc(b.run.snubber_label)} → {esc(c.run.snubber_label)} · '
@@ -286,8 +324,19 @@ def build_compare_report(
 
     page.section("verdict", "Outcome")
     regressions = comparison.regressions
-    word, css = ("regressed", "v-fail") if regressions else ("no regression", "v-pass")
-    page.add(f'<p><span class="badge {css}">{esc(word)}</span></p>')
+    if regressions:
+        word, css = "regressed", "v-fail"
+    elif c.verdict == "pass":
+        word, css = "no regression", "v-pass"
+    else:  # nothing got worse, but the candidate does not pass: not a green result
+        word, css = "no regression", "v-incomplete"
+    outcome = comparison.outcome.removeprefix(word).lstrip(" —")
+    page.add(
+        f'<p class="headline" id="outcome"><span class="badge {css}">{esc(word)}</span> '
+        f"— {esc(outcome)}</p>"
+    )
+    for warning in comparison.differences():
+        page.add(f'<p class="warning">Not like for like: {esc(warning)}.</p>')
     page.paragraph(comparison.summary() + ".")
     if regressions:
         page.paragraph(
@@ -332,5 +381,5 @@ def build_compare_report(
         lineterm="",
     )
     page.add(f"<pre>{esc(chr(10).join(diff) or 'The two sequence files are identical.')}</pre>")
-    page.safety()
+    page.safety(safety_text(c.sequence.dut.line_is_ac if c.sequence else None))
     return ReportFiles(page.write(), None, page.images)

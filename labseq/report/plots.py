@@ -4,6 +4,9 @@ Colours are colour-blind safe: cividis for value maps (monotonic in lightness an
 any common colour-vision deficiency), the ColorBrewer PuOr diverging map for changes, and the
 Okabe–Ito palette (Color Universal Design, 2002) for lines. Every map cell also carries its value
 in words when the grid is small enough to read, so nothing depends on colour alone.
+
+Figures are :class:`matplotlib.figure.Figure` objects rendered straight to PNG: nothing here
+imports pyplot or chooses a backend, so importing labseq in a notebook leaves its plotting alone.
 """
 
 from __future__ import annotations
@@ -14,16 +17,15 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import matplotlib
+import matplotlib.ticker
+import numpy as np
+from matplotlib.axes import Axes
+from matplotlib.colors import Normalize, TwoSlopeNorm
+from matplotlib.figure import Figure
+from matplotlib.patches import Rectangle
 
-matplotlib.use("Agg")
-
-import matplotlib.pyplot as plt  # noqa: E402 (the backend is chosen first)
-import numpy as np  # noqa: E402
-from matplotlib.colors import Normalize, TwoSlopeNorm  # noqa: E402
-from matplotlib.figure import Figure  # noqa: E402
-
-from labseq.analysis import RingFit  # noqa: E402
-from labseq.units import format_si  # noqa: E402
+from labseq.analysis import RingFit
+from labseq.units import format_si
 
 #: Okabe & Ito palette, in the order lines are drawn.
 OKABE_ITO = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000")
@@ -36,6 +38,14 @@ CHANGE_MAP = "PuOr"
 MISSING_CELL = "#d9d9d9"
 #: Grids with more cells than this are drawn without per-cell text (it would not be legible).
 MAX_ANNOTATED_CELLS = 100
+#: Cell text size (points at the figure's own size). A map is at most MAX_MAP_WIDTH_IN wide and
+#: shown one to a row, never scaled down on a page as wide as the report's (html.CONTENT_WIDTH_PX),
+#: so its cell text reads at this size: at least 9 pt.
+CELL_FONT_PT = 10
+MAX_MAP_WIDTH_IN = 10.0
+#: Outline of a cell beyond its limit: a dark band with a light line inside it, visible on the
+#: dark and the light end of every map.
+OUTLINE_DARK, OUTLINE_LIGHT = "#000000", "#ffffff"
 #: Axis ticks shown at most (evenly thinned beyond).
 MAX_TICKS = 12
 DPI = 100
@@ -63,13 +73,16 @@ def value_map(direction: int) -> str:
     return VALUE_MAP if direction < 0 else VALUE_MAP + "_r"
 
 
+def change_map(higher_is_better: bool) -> str:
+    """Colour map of a change (candidate − baseline): purple for better, orange for worse, so
+    it is PuOr (purple high) when higher is better, turned round when lower is."""
+    return CHANGE_MAP if higher_is_better else CHANGE_MAP + "_r"
+
+
 def png_bytes(fig: Figure) -> bytes:
-    """Render ``fig`` as PNG and close it."""
+    """Render ``fig`` as PNG (a figure made without pyplot is not kept anywhere once dropped)."""
     buffer = io.BytesIO()
-    try:
-        fig.savefig(buffer, format="png", dpi=DPI)
-    finally:
-        plt.close(fig)
+    fig.savefig(buffer, format="png", dpi=DPI)
     return buffer.getvalue()
 
 
@@ -78,7 +91,7 @@ def _tick_positions(count: int) -> list[int]:
     return list(range(0, count, step))
 
 
-def _axes_labels(ax: plt.Axes, lines_text: Sequence[str], loads_text: Sequence[str]) -> None:
+def _axes_labels(ax: Axes, lines_text: Sequence[str], loads_text: Sequence[str]) -> None:
     """Line values down the side and load values along the bottom, at the cell centres."""
     rows, columns = _tick_positions(len(lines_text)), _tick_positions(len(loads_text))
     ax.set_yticks([r + 0.5 for r in rows], [lines_text[i] for i in rows])
@@ -108,15 +121,17 @@ def heat_map(
     centre: float | None = None,
     limits: tuple[float, float] | None = None,
     colour_format: Callable[[float], str] | None = None,
+    outlined: np.ndarray | None = None,
 ) -> Figure:
     """A line (rows) × load (columns) map of ``values``.
 
     ``colour_values`` (default ``values``) sets the colours; ``cell_text(row, column)`` writes
     each cell's words on small grids; NaN cells are grey and read "—". ``centre`` makes the
     scale diverge around that value; ``limits`` fixes the scale (to share it between maps).
+    ``outlined`` (a boolean grid) draws a heavy outline round those cells (beyond a limit).
     """
     shown = values if colour_values is None else colour_values
-    cmap = plt.get_cmap(cmap_name).with_extremes(bad=MISSING_CELL)
+    cmap = matplotlib.colormaps[cmap_name].with_extremes(bad=MISSING_CELL)
     finite = shown[np.isfinite(shown)]
     if limits is not None:
         low, high = limits
@@ -130,9 +145,10 @@ def heat_map(
     else:
         norm = Normalize(low, high if high > low else low + (abs(low) or 1.0))
     rows, columns = shown.shape
-    width = min(10.0, 3.2 + 0.9 * columns)
+    width = min(MAX_MAP_WIDTH_IN, 3.2 + 0.9 * columns)
     height = min(8.0, 2.0 + 0.55 * rows)
-    fig, ax = plt.subplots(figsize=(max(width, 5.2), max(height, 3.2)), layout="constrained")
+    fig = Figure(figsize=(max(width, 5.2), max(height, 3.2)), layout="constrained")
+    ax = fig.subplots()
     mesh = ax.pcolormesh(
         np.ma.masked_invalid(shown), cmap=cmap, norm=norm, edgecolors="white", linewidth=0.5
     )
@@ -159,8 +175,21 @@ def heat_map(
                     cell_text(row, column),
                     ha="center",
                     va="center",
-                    fontsize=8,
+                    fontsize=CELL_FONT_PT,
                     color=colour,
+                )
+    if outlined is not None:
+        for row, column in zip(*np.nonzero(outlined), strict=True):
+            for colour, width in ((OUTLINE_DARK, 4.0), (OUTLINE_LIGHT, 1.3)):
+                ax.add_patch(
+                    Rectangle(
+                        (column + 0.06, row + 0.06),
+                        0.88,
+                        0.88,
+                        fill=False,
+                        edgecolor=colour,
+                        linewidth=width,
+                    )
                 )
     return fig
 
@@ -213,7 +242,8 @@ def overlay(
     every = [trace for _, traces, _ in groups for trace in traces]
     start_s, stop_s = _window_s(every)
     scale, unit = _time_scale(stop_s - start_s)
-    fig, ax = plt.subplots(figsize=(10, 4.2), layout="constrained")
+    fig = Figure(figsize=(10, 4.2), layout="constrained")
+    ax = fig.subplots()
     one_group = len(groups) == 1
     for name, traces, colours in groups:
         for index, trace in enumerate(traces):

@@ -20,15 +20,42 @@ from labseq.analysis.verdict import LIMIT_FIGURES
 from labseq.export import write_points_csv
 from labseq.figures import (
     FIGURE_TITLES,
+    bound_relation,
     figure_direction,
+    format_change,
     format_figure,
     shown_unit,
 )
 from labseq.report import plots
-from labseq.report.html import Markup, Page, esc, table, verdict_cell
+from labseq.report.html import (
+    Markup,
+    Page,
+    esc,
+    long_cell,
+    prose_cell,
+    safety_text,
+    table,
+    verdict_cell,
+)
 from labseq.report.traces import point_traces
-from labseq.review import PointReview, RunReview, limit_rows, line_text
-from labseq.runlog import run_log
+from labseq.review import (
+    PointReview,
+    RunReview,
+    grid_cells,
+    headline,
+    limit_rows,
+    line_text,
+    not_passed,
+)
+from labseq.runlog import (
+    FoldedTimings,
+    Judgement,
+    LogEntry,
+    folded_log,
+    judgements,
+    point_problems,
+    run_log,
+)
 from labseq.store_api import RunStore
 from labseq.units import format_si
 
@@ -69,14 +96,51 @@ def verdict_grid_table(review: RunReview) -> str:
     )
 
 
-def cell_texts(values: np.ndarray, describe: Callable[[float], str]) -> Callable[[int, int], str]:
-    """Cell text of a map: ``describe(value)``, or "—" where there is no value."""
+def cell_texts(
+    values: np.ndarray, describe: Callable[[float], str], bounds: np.ndarray | None = None
+) -> Callable[[int, int], str]:
+    """Cell text of a map: ``describe(value)``, or "—" where there is no value; a cell whose
+    ``bounds`` entry is "≥" or "≤" (a clipped capture's bound) reads "≥ 89.6 V"."""
 
     def text(row: int, column: int) -> str:
         value = values[row, column]
-        return describe(float(value)) if math.isfinite(value) else "—"
+        if not math.isfinite(value):
+            return "—"
+        bound = "" if bounds is None else bounds[row, column]
+        return f"{bound} {describe(float(value))}" if bound else describe(float(value))
 
     return text
+
+
+def bound_grid(review: RunReview, figure: str) -> np.ndarray:
+    """Line × load grid of "≥"/"≤" where the viewed node's value of ``figure`` is a clipped
+    capture's bound, "" elsewhere."""
+    relation = bound_relation(figure, review.polarity)
+    bounds = np.full((len(review.line_values_v), len(review.load_values_a)), "", dtype=object)
+    if relation:
+        for (row, column), point in zip(_cells(review), review.points, strict=True):
+            if review.is_clipped(point):
+                bounds[row, column] = relation
+    return bounds
+
+
+def beyond_grid(review: RunReview, figure: str) -> np.ndarray:
+    """Line × load grid, True where the viewed node's ``figure`` is beyond its limit."""
+    beyond = np.zeros((len(review.line_values_v), len(review.load_values_a)), dtype=bool)
+    for (row, column), point in zip(_cells(review), review.points, strict=True):
+        beyond[row, column] = any(
+            e.beyond and e.figure == figure and e.node == review.node_name
+            for e in review.excesses(point)
+        )
+    return beyond
+
+
+def _cells(review: RunReview) -> list[tuple[int, int]]:
+    return grid_cells(review.points, review.line_values_v, review.load_values_a)
+
+
+#: What an outlined cell means, said in every map caption that has one.
+OUTLINE_NOTE = "Outlined cells are beyond the limit."
 
 
 def _prefix(review: RunReview) -> str:
@@ -92,11 +156,14 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
     rating_v = review.derated_rating_v
     word = review.peak_word
     where = "switch-node voltage" if review.polarity > 0 else f"{review.node_title.lower()} voltage"
+    peak_bounds = bound_grid(review, "peak_v")
     if np.isfinite(peak).any():
         if rating_v:
             share = 100 * np.abs(peak) / rating_v
             texts = cell_texts(
-                peak, lambda v: f"{format_si(v, 'V')}\n{100 * abs(v) / rating_v:.0f} %"
+                peak,
+                lambda v: f"{format_si(v, 'V')}\n{100 * abs(v) / rating_v:.0f} %",
+                peak_bounds,
             )
             fig = plots.heat_map(
                 peak,
@@ -107,8 +174,9 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
                 f"({format_si(rating_v, 'V')})",
                 colour_label="|peak| / derated rating (%)",
                 cell_text=texts,
+                outlined=beyond_grid(review, "peak_v"),
             )
-            caption = f"Peak {where}; 100 % is the rating × derating."
+            caption = f"Peak {where}; 100 % is the rating × derating. {OUTLINE_NOTE}"
         else:
             fig = plots.heat_map(
                 peak,
@@ -116,9 +184,11 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
                 loads,
                 title=word.capitalize(),
                 colour_label="peak (V)",
-                cell_text=cell_texts(peak, lambda v: format_si(v, "V")),
+                cell_text=cell_texts(peak, lambda v: format_si(v, "V"), peak_bounds),
             )
             caption = f"Peak {where} (no rating known: the sequence does not describe the node)."
+        if peak_bounds.any():
+            caption += " " + CLIP_NOTE
         maps.append((f"{_prefix(review)}map_peak", caption, plots.png_bytes(fig)))
     damping = "damping_ratio" if np.isfinite(review.grid("damping_ratio")).any() else "q_factor"
     for figure, name in (
@@ -132,7 +202,9 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
         values = review.grid(figure)
         if not np.isfinite(values).any():
             continue
-        texts = cell_texts(values, lambda v, f=figure: format_figure(f, v))
+        bounds = bound_grid(review, figure)
+        texts = cell_texts(values, lambda v, f=figure: format_figure(f, v), bounds)
+        beyond = beyond_grid(review, figure)
         if figure == "snubber_loss_w":
             texts = with_loss_methods(review, texts)
         shown = 100 * values if figure == "efficiency" else values
@@ -148,13 +220,24 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
             colour_label=f"{FIGURE_TITLES[figure]}" + (f" ({unit})" if unit else ""),
             cell_text=texts,
             colour_format=None if figure == "efficiency" else _colour_format(figure),
+            outlined=beyond,
         )
         caption = f"{FIGURE_TITLES[figure].capitalize()} at each point; brighter is worse."
+        if beyond.any():
+            caption += " " + OUTLINE_NOTE
+        if bounds.any():
+            caption += " " + CLIP_NOTE
         if figure == "snubber_loss_w":
             caption += " Each cell names its method. " + LOSS_ASSUMPTIONS
         maps.append((_prefix(review) + name, caption, plots.png_bytes(fig)))
     return maps
 
+
+#: What a "≥" cell means, said in the caption of a map that has one.
+CLIP_NOTE = (
+    "A value marked ≥ (or ≤) is a bound: a capture there clipped at the scope's screen edge, so "
+    "the true value may be worse."
+)
 
 #: What the snubber loss figure assumes, shown where it is.
 LOSS_ASSUMPTIONS = (
@@ -191,6 +274,8 @@ def _colour_format(figure: str) -> Callable[[float], str]:
 
 
 def _worst_rows(review: RunReview) -> list[list[str]]:
+    """One row per figure: its worst value and where, its limit, whether that value is within
+    the limit and by how much, and the point's own verdict (which other figures may decide)."""
     spec = review.node_spec
     limit_of = {
         figure: (
@@ -203,18 +288,39 @@ def _worst_rows(review: RunReview) -> list[list[str]]:
     rows = []
     for figure, worst in review.worst.items():
         relation, limit = limit_of.get(figure, ("", None))
-        value = format_figure(figure, worst.value)
+        value = review.figure_text(figure, worst.point, worst.value)
         method = review.loss_method(worst.point) if figure == "snubber_loss_w" else None
+        excess = next(
+            (
+                e
+                for e in review.excesses(worst.point)
+                if e.figure == figure and e.node == review.node_name
+            ),
+            None,
+        )
+        if excess is None:
+            own: Markup | str = "no limit" if limit is None else "—"
+            margin = "—"
+        else:
+            own = verdict_cell("fail" if excess.beyond else "pass")
+            side = ("over" if excess.is_max else "under") if excess.beyond else "to spare"
+            margin = f"{format_change(figure, abs(excess.excess)).lstrip('+±')} {side}"
         rows.append(
             [
                 review.peak_word if figure == "peak_v" else FIGURE_TITLES[figure],
                 f"{value} ({method})" if method else value,
                 review.label(worst.point),
                 f"{relation} {format_figure(figure, limit)}" if limit is not None else "—",
+                own,
+                margin,
                 verdict_cell(worst.point.verdict),
             ]
         )
     return rows
+
+
+#: Header of the worst-point tables: the figure's own verdict, then the point's.
+WORST_HEADER = ["figure", "worst value", "at", "limit", "this figure", "margin"]
 
 
 def _worst_overlays(page: Page, store: RunStore, review: RunReview) -> None:
@@ -262,8 +368,8 @@ def _node_section(page: Page, store: RunStore, view: RunReview) -> None:
         return
     page.add('<div class="maps">' + "".join(figures) + "</div>")
     page.add(f"<h3>Worst point for each figure ({esc(view.node_name)})</h3>")
-    header = ["figure", "worst value", "at", "limit", f"{view.node_name} verdict there"]
-    page.add(table(header, _worst_rows(view), numeric=[1]))
+    header = [*WORST_HEADER, f"the point's {view.node_name} verdict"]
+    page.add(table(header, _worst_rows(view), numeric=[1, 5]))
     _worst_overlays(page, store, view)
 
 
@@ -281,60 +387,160 @@ def _identity_rows(review: RunReview) -> list[list[str]]:
     ]
     if review.sequence is not None and review.sequence.clamp is not None:
         rows.insert(6, ["clamp", review.sequence.clamp.label])
-    rows += [[f"{role} identity", str(identity)] for role, identity in run.instruments.items()]
     rows += [
         ["labseq version", run.software_version],
-        ["sequence file", run.sequence_path],
-        ["sequence SHA-256", run.sequence_sha256],
+        ["sequence file", long_cell(run.sequence_path)],
+        ["sequence SHA-256", long_cell(run.sequence_sha256)],
         ["host", run.host or "—"],
         ["notes", run.notes or "—"],
     ]
     return rows
 
 
-def _not_passed_rows(review: RunReview) -> tuple[list[list[str]], int]:
-    listed = [p for p in review.points if p.verdict != "pass"]
+#: The parts of an instrument's identity (its ``*IDN?`` reply and its resource), in the order of
+#: the instruments table.
+IDENTITY_FIELDS = ("manufacturer", "model", "serial", "firmware", "resource")
+
+
+def _instrument_rows(review: RunReview) -> list[list[str]]:
+    """One row per role: manufacturer, model, serial, firmware and resource."""
+    rows = []
+    for role, identity in review.run.instruments.items():
+        if isinstance(identity, dict):
+            known = [str(identity.get(name) or "—") for name in IDENTITY_FIELDS]
+            rest = {k: v for k, v in identity.items() if k not in IDENTITY_FIELDS}
+            if rest:  # anything else the bench recorded stays visible
+                known[-1] += " (" + ", ".join(f"{k}: {v}" for k, v in rest.items()) + ")"
+        else:
+            known = [str(identity), "—", "—", "—", "—"]
+        rows.append([role, *known])
+    return rows
+
+
+def _not_passed_rows(review: RunReview, problems: dict[int, str]) -> tuple[list[list[str]], int]:
+    listed = not_passed(review, problems)
     rows = [
-        [
-            review.label(p),
-            verdict_cell(p.verdict),
-            "; ".join(p.point.verdict_reasons) or p.point.status,
-        ]
-        for p in listed[:MAX_LISTED_POINTS]
+        [review.label(item.point), verdict_cell(item.point.verdict), prose_cell(item.why)]
+        for item in listed[:MAX_LISTED_POINTS]
     ]
     return rows, len(listed)
 
 
-def _log_table(page: Page, store: RunStore, review: RunReview) -> None:
-    """The run's events in the order they happened (times in UTC)."""
-    entries = run_log(store, review.run.id)
+#: Event kinds counted above the run log, with what they are called there.
+LOG_COUNTS = {
+    "fault": "faults",
+    "scpi-error": "instrument errors",
+    "retry": "retries",
+    "skip": "skipped points",
+    "safety": "safety events",
+}
+
+
+def _log_row(entry: LogEntry | FoldedTimings) -> list[Markup | str]:
+    if isinstance(entry, FoldedTimings):
+        return [entry.first.time_text, "timing", prose_cell(entry.message), "every point", ""]
+    return [
+        entry.time_text,
+        entry.kind,
+        prose_cell(entry.message),
+        entry.point_text,
+        prose_cell(entry.data_text),
+    ]
+
+
+def _log_table(page: Page, entries: list[LogEntry], run_id: int) -> None:
+    """The run's events in the order they happened (times in UTC), each point's timing folded
+    into one line, with a count of each kind above."""
     if not entries:
         page.paragraph("No events recorded for this run.", "note")
         return
-    rows = [
-        [
-            entry.time_text,
-            entry.kind,
-            entry.message,
-            entry.point_text,
-            entry.data_text,
-        ]
-        for entry in entries[:MAX_LISTED_EVENTS]
-    ]
+    counts = dict.fromkeys(LOG_COUNTS, 0)
+    for entry in entries:
+        if entry.kind in counts:
+            counts[entry.kind] += 1
+    page.paragraph(" · ".join(f"{LOG_COUNTS[kind]}: {n}" for kind, n in counts.items()))
+    folded = folded_log(entries)
+    rows = [_log_row(entry) for entry in folded[:MAX_LISTED_EVENTS]]
     page.add(table(["time (UTC)", "kind", "event", "point", "data"], rows))
-    if len(entries) > len(rows):
-        page.paragraph(
-            f"… and {len(entries) - len(rows)} more: see labseq log {review.run.id}.", "note"
-        )
+    if len(folded) > len(rows):
+        page.paragraph(f"… and {len(folded) - len(rows)} more: see labseq log {run_id}.", "note")
+
+
+def _line_is_ac(review: RunReview) -> bool | None:
+    """Whether the DUT takes AC (offline), from its sequence, else its points; None unknown."""
+    if review.sequence is not None:
+        return review.sequence.dut.line_is_ac
+    return review.points[0].point.line_is_ac if review.points else None
+
+
+def _highest_peak_v(review: RunReview) -> float | None:
+    """The largest |peak| any node reached in the run."""
+    peaks = [
+        abs(stats["peak_v"].value)
+        for point in review.points
+        for stats in point.nodes.values()
+        if "peak_v" in stats and stats["peak_v"].value is not None
+    ]
+    return max(peaks) if peaks else None
+
+
+def judgement_rows(judgement: Judgement) -> list[tuple[str, str, str]]:
+    """The limits of a judging as (node, limit, value) rows, in the catalogue's words."""
+    rows = []
+    for node, limits in judgement.limits.items():
+        rating, derating = limits.get("rating_v"), limits.get("derating")
+        if rating is not None and derating is not None:
+            rows.append((node, "rating × derating", f"{format_si(rating, 'V')} × {derating:g}"))
+        for name, (figure, is_max) in LIMIT_FIGURES.items():
+            value = limits.get(name)
+            if value is not None:
+                relation = "≤" if is_max else "≥"
+                rows.append(
+                    (node, f"{FIGURE_TITLES[figure]} {relation}", format_figure(figure, value))
+                )
+        band = limits.get("settling_band")
+        if band is not None:
+            rows.append((node, "settling band", f"±{100 * band:.3g} % of the step"))
+    return rows
+
+
+def _rejudging(page: Page, store: RunStore, run_id: int) -> bool:
+    """Say, near the verdict, that the run was last judged against another sequence file than
+    the one it was made with (``labseq analyze-run --sequence``), with that file's limits; True
+    when it was."""
+    recorded = judgements(store, run_id)
+    if not recorded or not recorded[-1].rejudged:
+        return False
+    last = recorded[-1]
+    grid = "" if last.same_grid else " (whose line × load grid is not the run's)"
+    page.add(
+        f'<p class="note" id="rejudged"><strong>Re-judged</strong> on '
+        f"{esc(last.time.replace('T', ' ').removesuffix('+00:00'))} UTC against "
+        f"{esc(last.sequence_path)}{esc(grid)} (sha256 {esc(last.sequence_sha256[:12])}): the "
+        "verdicts in this report are against its limits, listed here; the limits after them "
+        "are those the run was made with.</p>"
+    )
+    page.add("<h3>Limits of the re-judging</h3>")
+    page.add(table(["node", "limit", "value"], judgement_rows(last), numeric=[2]))
+    return True
 
 
 def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> ReportFiles:
     """Write ``report.html``, its PNGs and ``points.csv`` for a reviewed run into ``out_dir``."""
     out_dir.mkdir(parents=True, exist_ok=True)
     run = review.run
+    entries = run_log(store, run.id)
+    problems = point_problems(entries)
     page = Page(out_dir, f"labseq run {run.id}: {run.dut_label}")
+    if review.simulated:
+        page.add(
+            '<p class="simulated" id="simulated">Simulated bench: no hardware was driven; every '
+            "reading in this report comes from a model of the DUT, not from a measurement.</p>"
+        )
     page.add(f"<h1>Run {run.id}: {esc(run.dut_label)}</h1>")
     page.add(f'<p class="sub">Snubber: {esc(run.snubber_label)} · status {esc(run.status)}</p>')
+    sentence = headline(review, problems)
+    page.add(f'<p class="headline" id="headline">{esc(sentence[0].upper() + sentence[1:])}.</p>')
     if run.status == "unsafe-end":
         found = review.end_safety or "bench NOT confirmed safe (no record of its shutdown)"
         page.add(
@@ -350,7 +556,12 @@ def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> Repor
         f"{counts['incomplete']} incomplete. The run fails if any point fails, and is "
         "incomplete if any point is incomplete and none fails.</p>"
     )
-    page.add("<h3>Limits the points were judged against</h3>")
+    rejudged = _rejudging(page, store, run.id)
+    page.add(
+        "<h3>Limits of the sequence the run was made with</h3>"
+        if rejudged
+        else "<h3>Limits the points were judged against</h3>"
+    )
     limits = limit_rows(review)
     if limits:
         page.add(table(["limit", "value"], limits, numeric=[1]))
@@ -363,9 +574,9 @@ def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> Repor
 
     page.section("grid", "Verdict at each point (line × load)")
     page.add(verdict_grid_table(review))
-    rows, total = _not_passed_rows(review)
+    rows, total = _not_passed_rows(review, problems)
     if rows:
-        page.add(f"<h3>Points that did not pass ({total})</h3>")
+        page.add(f"<h3>Points that did not pass ({total}), worst first</h3>")
         page.add(table(["point", "verdict", "why"], rows))
         if total > len(rows):
             page.paragraph(f"… and {total - len(rows)} more: see points.csv.", "note")
@@ -378,8 +589,8 @@ def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> Repor
 
     page.section("worst", "Worst point for each figure")
     if review.worst:
-        header = ["figure", "worst value", "at", "limit", "verdict there"]
-        page.add(table(header, _worst_rows(review), numeric=[1]))
+        header = [*WORST_HEADER, "the point's verdict"]
+        page.add(table(header, _worst_rows(review), numeric=[1, 5]))
         _worst_overlays(page, store, review)
     else:
         page.paragraph("No figures stored for this run yet.", "note")
@@ -389,13 +600,17 @@ def build_run_report(store: RunStore, review: RunReview, out_dir: Path) -> Repor
 
     page.section("identity", "DUT, snubber, bench and software")
     page.add(table(["what", "value"], _identity_rows(review)))
+    instruments = _instrument_rows(review)
+    if instruments:
+        page.add("<h3>Instruments</h3>")
+        page.add(table(["role", *IDENTITY_FIELDS], instruments))
 
     page.section("log", "Run log")
-    _log_table(page, store, review)
+    _log_table(page, entries, run.id)
 
     page.section("sequence", "Sequence file as run")
     page.add(Markup(f"<pre>{esc(run.sequence_text)}</pre>"))
-    page.safety()
+    page.safety(safety_text(_line_is_ac(review), _highest_peak_v(review)))
 
     csv_path = out_dir / "points.csv"
     write_points_csv(store, run.id, csv_path)

@@ -17,10 +17,10 @@ or key where that applies, and what would be valid.
 
 from __future__ import annotations
 
-import stat
 from collections.abc import Callable
 from pathlib import Path
 
+from instruments.files import FileProblem, check_regular_file
 from labseq.errors import InputError
 from labseq.waveform_files.arrays import read_npy, read_npz, refuse
 from labseq.waveform_files.record import (
@@ -53,25 +53,14 @@ READERS: dict[str, Reader] = {
 def _check_regular_file(path: Path) -> None:
     """Refuse what is not a regular file, before opening it (opening a FIFO would block)."""
     try:
-        mode = path.stat().st_mode
-    except FileNotFoundError:
-        raise InputError(f"{path}: no such file") from None
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read it: {exc.strerror or exc}") from None
-    kinds = {
-        stat.S_ISDIR: "a directory",
-        stat.S_ISFIFO: "a named pipe (FIFO)",
-        stat.S_ISCHR: "a character device",
-        stat.S_ISBLK: "a block device",
-        stat.S_ISSOCK: "a socket",
-    }
-    kind = next((kind for test, kind in kinds.items() if test(mode)), None)
-    if kind is not None or not stat.S_ISREG(mode):
+        check_regular_file(path)
+    except FileProblem as problem:
+        if problem.kind is None:
+            raise InputError(f"{path}: {problem}") from None
         raise InputError(
-            f"{path}: is {kind or 'not a regular file'}, not a waveform file; save the record to "
-            "a file and give that (labseq reads a file twice: once for its layout, then the "
-            "samples)"
-        )
+            f"{path}: is {problem.kind}, not a waveform file; save the record to a file and give "
+            "that (labseq reads a file twice: once for its layout, then the samples)"
+        ) from None
 
 
 def read_waveform(

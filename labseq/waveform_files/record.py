@@ -9,6 +9,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
+from instruments.text import quoted
 from labseq.analysis import MIN_RECORD_SAMPLES
 from labseq.errors import InputError
 
@@ -55,11 +56,6 @@ class Column:
     index: int
     name: str
     unit: str | None = None
-
-
-def quoted(text: str, limit: int = 60) -> str:
-    """``text`` in quotes for an error message, cut to ``limit`` characters."""
-    return repr(text if len(text) <= limit else text[:limit] + "…")
 
 
 def listing(names: Sequence[str], limit: int = 12) -> str:

@@ -31,13 +31,14 @@ import operator
 import re
 import warnings
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TextIO
 
 import numpy as np
 
 from labseq.errors import InputError
+from labseq.export import SCREEN_KEYS
 from labseq.waveform_files.record import (
     TIME_UNITS_HINT,
     Column,
@@ -86,6 +87,7 @@ _PREAMBLE_WORDS = (
     "instrument",
     "xinc",
     "xorigin",
+    "screen",
 )
 #: Preamble keys (normalised) that give the time base where a file has no time column.
 _INTERVAL_KEYS = {"sampleinterval", "samplinginterval", "sampleperiod", "xincrement", "dt"}
@@ -574,6 +576,29 @@ def _time_base(path: Path, layout: Layout, scale: float) -> tuple[float, float]:
     return interval, _preamble_time(path, layout, _ORIGIN_KEYS, scale) or 0.0
 
 
+def _with_screen(path: Path, layout: Layout, waveform: FileRecord) -> FileRecord:
+    """The record with its clipped samples marked, where the preamble gives the volts at the
+    bottom and top of the scope's screen (as ``labseq export`` writes them): a sample at or
+    beyond either edge is where the true voltage is unknown."""
+    keys = [_key(name) for name in SCREEN_KEYS]
+    if not all(key in layout.preamble for key in keys):
+        return waveform
+    edges = []
+    for key, name in zip(keys, SCREEN_KEYS, strict=True):
+        value, number = layout.preamble[key]
+        try:
+            edges.append(float(value))
+        except ValueError:
+            raise InputError(
+                f"{path}: line {number}, {name}: {quoted(value, 30)} is not a number of volts"
+            ) from None
+    bottom, top = edges
+    if not bottom < top:
+        raise InputError(f"{path}: the screen's bottom {bottom:g} V is not below its top {top:g} V")
+    volts = waveform.volts
+    return replace(waveform, clipped=(volts <= bottom) | (volts >= top))
+
+
 def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None) -> FileRecord:
     """Read one voltage column of a text file with its times (see the module notes)."""
     layout = read_layout(path)
@@ -609,6 +634,7 @@ def read_text_waveform(path: Path, *, channel: str | None, time_unit: str | None
         waveform = FileRecord(volts, interval, origin)
         times = f"times from column {quoted(layout.time.name, 40)}"
         times += f" in {unit_source}" if scale != 1.0 else ""
+    waveform = _with_screen(path, layout, waveform)
     hint = None
     if not unit_source and waveform.sample_interval_s >= LONG_STEP_S:
         hint = (

@@ -57,7 +57,7 @@ from labseq.store import CaptureRecord, Store
 from sim_instruments import scope
 from sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
 
-DEMO = Path(__file__).resolve().parents[2] / "sequences" / "demo_offline_flyback.toml"
+DEMO = Path(__file__).resolve().parents[2] / "labseq" / "examples" / "demo_offline_flyback.toml"
 SIZES = (2_000_000, 3_000_000)
 SLOW_SIZE = 10_000_000
 #: Samples of the record a fresh process warms up on before its high-water is measured.

@@ -32,7 +32,7 @@ from labseq.pipeline import analyse_run
 from labseq.sequence import load_sequence
 from labseq.store import CAPTURE_FIGURES, CaptureRecord, Store
 
-DEMO = Path(__file__).resolve().parents[2] / "sequences" / "demo_dc_flyback.toml"
+DEMO = Path(__file__).resolve().parents[2] / "labseq" / "examples" / "demo_dc_flyback.toml"
 POINTS = 16
 CAPTURES_PER_POINT = 3
 SAMPLES = 1_000_000

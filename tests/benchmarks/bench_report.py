@@ -25,7 +25,7 @@ from labseq.report import build_run_report
 from labseq.review import review_run
 from labseq.store import CaptureRecord, Store
 
-SEQUENCE = Path(__file__).resolve().parents[2] / "sequences" / "demo_dc_flyback.toml"
+SEQUENCE = Path(__file__).resolve().parents[2] / "labseq" / "examples" / "demo_dc_flyback.toml"
 LINES = 100
 LOADS = 100
 CAPTURED_POINTS = 4

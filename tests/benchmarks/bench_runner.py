@@ -17,7 +17,7 @@ from labseq.runner import execute, start_run
 from labseq.sequence import load_sequence
 from labseq.store import Store
 
-DEMO = Path(__file__).resolve().parents[2] / "sequences" / "demo_dc_flyback.toml"
+DEMO = Path(__file__).resolve().parents[2] / "labseq" / "examples" / "demo_dc_flyback.toml"
 MAX_OVERHEAD = 0.10
 
 

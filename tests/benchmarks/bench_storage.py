@@ -41,7 +41,7 @@ from labseq.store import (
     Store,
 )
 
-SEQUENCE = Path(__file__).resolve().parents[2] / "sequences" / "demo_dc_flyback.toml"
+SEQUENCE = Path(__file__).resolve().parents[2] / "labseq" / "examples" / "demo_dc_flyback.toml"
 LINES_V = (36.0, 48.0, 60.0, 75.0)
 LOADS_A = (0.55, 1.1, 1.65, 2.2)
 CAPTURES_PER_POINT = 3
