@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test soak clean ngspice
+.PHONY: demo test soak clean ngspice postgresql
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -33,7 +33,7 @@ demo: $(STAMP)
 	@echo "Results in $(DEMO)/: labseq.sqlite (every raw capture), report/report.html,"
 	@echo "offline-report/report.html, export/points.csv, and the regression in compare/report.html"
 
-test: $(STAMP) ngspice
+test: $(STAMP) ngspice postgresql
 	$(BIN)/ruff check .
 	$(BIN)/python -m pytest -q -p no:cacheprovider --ignore=tests/benchmarks
 	$(BIN)/python -m pytest -q -s -p no:cacheprovider tests/benchmarks
@@ -48,6 +48,13 @@ soak: $(STAMP)
 ngspice:
 	@command -v ngspice >/dev/null 2>&1 || { apt-get update -qq && apt-get install -y -qq ngspice >/dev/null; } \
 		|| echo "ngspice could not be installed: its reference checks will skip"
+
+# PostgreSQL (Debian's package) is the lab database that `labseq publish` writes to; the tests start
+# a throwaway server from its binaries. Where it cannot be installed those tests skip and say why.
+postgresql:
+	@ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1 || command -v initdb >/dev/null 2>&1 \
+		|| { apt-get update -qq && apt-get install -y -qq postgresql >/dev/null; } \
+		|| echo "PostgreSQL could not be installed: the lab database tests will skip"
 
 clean:
 	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache

@@ -44,7 +44,7 @@ def _same_file(first: Path, second: Path) -> bool:
         return False
 
 
-def _differs(source: RunRecord, merged: RunRecord) -> bool:
+def differs(source: RunRecord, merged: RunRecord) -> bool:
     """True when a run's source copy no longer matches the one merged (resumed or re-judged
     since): its status, end or point counts."""
     return (source.status, source.finished_at, source.points_done, source.points_total) != (
@@ -86,7 +86,7 @@ def merge_stores(
                 held = into.runs_by_uuid(run.uuid)
                 if held:
                     result.already.append(run.id)
-                    if _differs(run, held[0]):
+                    if differs(run, held[0]):
                         result.changed.append(run.id)
                     continue
                 result.copied[run.id] = into.import_run(store, run.id)

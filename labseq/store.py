@@ -606,6 +606,66 @@ class StoredCapture(Waveform):
 _CAPTURE_COLUMNS = [f.name for f in fields(StoredCapture) if f.name != "codes"]
 
 
+#: Every stored column of a capture but its codes.
+_STORED_CAPTURE_COLUMNS = _CAPTURE_COLUMNS + ["dtype", "points", "codec"]
+
+
+def decode_codes(
+    blob: bytes,
+    codec: str,
+    dtype: np.dtype,
+    count: int,
+    decompressor: zstandard.ZstdDecompressor | None = None,
+) -> np.ndarray:
+    """A capture's ``count`` codes of ``dtype`` from the bytes stored under ``codec``
+    (read-only, little-endian); ValueError when they are damaged."""
+    size = count * dtype.itemsize
+    try:
+        if codec == "zstd":
+            # a damaged frame may claim any size: check it before decompressing
+            if zstandard.frame_content_size(blob) != size:
+                raise ValueError(f"its zstd frame does not hold {size} bytes")
+            blob = (decompressor or zstandard.ZstdDecompressor()).decompress(blob)
+        elif codec != "raw":
+            raise ValueError(f"unknown codec {codec!r}")
+        if len(blob) != size:
+            raise ValueError(f"{len(blob)} bytes of codes where {count} {dtype.name} take {size}")
+    except zstandard.ZstdError as exc:
+        raise ValueError(str(exc)) from None
+    return np.frombuffer(blob, dtype=dtype)
+
+
+def _run_record_of(row: Mapping[str, Any], location: Any, **overrides: Any) -> RunRecord:
+    """A run's record from its row (in either backend; ``location`` names the store)."""
+    try:
+        instruments = _json_field(row["instruments"], f"run {row['id']}'s instruments", location)
+    except StoreError as damaged:  # the identities are shown, never computed with
+        instruments = {"(damaged)": str(damaged)}
+    if not isinstance(instruments, dict):
+        instruments = {"(damaged)": f"run {row['id']}'s instruments are not a table"}
+    return _record(RunRecord, row, instruments=instruments, **overrides)
+
+
+def _edges_of(capture_id: int, text: str | None, location: Any) -> list[dict[str, Any]]:
+    """A capture's per-edge figures from their JSON (inverse of :func:`_edges_json`)."""
+    where = f"capture {capture_id}'s edge figures (capture_figures.edges_json)"
+    table = _json_field(text, where, location)
+    if not table:
+        return []
+    try:
+        return [dict(zip(table["names"], row, strict=True)) for row in table["rows"]]
+    except (KeyError, TypeError, ValueError):
+        raise StoreError(f"{location}: {where} is damaged (not names and rows)") from None
+
+
+def _point_record_of(row: Mapping[str, Any], location: Any) -> PointRecord:
+    """A point's record from its row (in either backend; ``location`` names the store in the
+    message about damaged verdict reasons)."""
+    where = f"point {row['id']}'s verdict reasons"
+    reasons = _json_field(row["verdict_reasons"] or None, where, location) or []
+    return _record(PointRecord, row, line_is_ac=bool(row["line_is_ac"]), verdict_reasons=reasons)
+
+
 def _now_iso(unix_s: float | None = None) -> str:
     """UTC time as ISO 8601 text with milliseconds."""
     moment = datetime.fromtimestamp(time.time() if unix_s is None else unix_s, UTC)
@@ -980,30 +1040,29 @@ class Store:
         for byte), capture and point figures, node verdicts and events — in ONE transaction;
         return its id here (ids are this store's own). The caller makes sure the run's UUID is
         not here yet: the unique index refuses a second copy."""
-        read = source.db
         with self.db.atomic():
-            [run] = read["runs"].rows_where("id = ?", [run_id])
-            new_run_id = self._copy_row("runs", run, id=None)
+            new_run_id = self._copy_row("runs", source.run_row(run_id), id=None)
             points: dict[int, int] = {}
-            for point in read["points"].rows_where("run_id = ?", [run_id], order_by="id"):
+            for point in source.run_table_rows(run_id, "points"):
                 points[point["id"]] = self._copy_row("points", point, id=None, run_id=new_run_id)
-            query = "SELECT id FROM captures WHERE run_id = ? ORDER BY id"  # no codes sorted
-            for (capture_id,) in read.execute(query, [run_id]).fetchall():
-                [capture] = read["captures"].rows_where("id = ?", [capture_id])
-                new_capture_id = self._copy_row(
+            captures: dict[int, int] = {}
+            rows = source.run_table_rows(run_id, "captures")
+            for capture in source.run_capture_codes(rows):
+                captures[capture["id"]] = self._copy_row(
                     "captures",
                     capture,
                     id=None,
                     run_id=new_run_id,
                     point_id=points[capture["point_id"]],
                 )
-                for figures in read["capture_figures"].rows_where("capture_id = ?", [capture_id]):
-                    self._copy_row("capture_figures", figures, capture_id=new_capture_id)
-            of_run = "point_id IN (SELECT id FROM points WHERE run_id = ?)"
+            for figures in source.run_table_rows(run_id, "capture_figures"):
+                self._copy_row(
+                    "capture_figures", figures, capture_id=captures[figures["capture_id"]]
+                )
             for table in ("point_figures", "node_verdicts"):
-                for row in read[table].rows_where(of_run, [run_id]):
+                for row in source.run_table_rows(run_id, table):
                     self._copy_row(table, row, point_id=points[row["point_id"]])
-            for event in read["events"].rows_where("run_id = ?", [run_id], order_by="id"):
+            for event in source.run_table_rows(run_id, "events"):
                 point_id = event["point_id"]
                 self._copy_row(
                     "events",
@@ -1439,31 +1498,13 @@ class Store:
         """One capture's codes as stored (read-only, little-endian), decoded by its codec."""
         query = "SELECT codes, codec FROM captures WHERE id = ?"
         blob, codec = self.db.execute(query, [capture_id]).fetchone()
-        size = count * dtype.itemsize
         try:
-            if codec == "zstd":
-                # a damaged frame may claim any size: check it before decompressing
-                if zstandard.frame_content_size(blob) != size:
-                    raise ValueError(f"its zstd frame does not hold {size} bytes")
-                blob = self._decompressor.decompress(blob)
-            if len(blob) != size:
-                raise ValueError(
-                    f"{len(blob)} bytes of codes where {count} {dtype.name} take {size}"
-                )
-        except (ValueError, zstandard.ZstdError) as exc:
+            return decode_codes(blob, codec, dtype, count, self._decompressor)
+        except ValueError as exc:
             raise StoreError(f"{self.path}: capture {capture_id} is damaged: {exc}") from None
-        return np.frombuffer(blob, dtype=dtype)
 
     def _edges(self, capture_id: int, text: str | None) -> list[dict[str, Any]]:
-        """A capture's per-edge figures from their JSON (inverse of :func:`_edges_json`)."""
-        where = f"capture {capture_id}'s edge figures (capture_figures.edges_json)"
-        table = _json_field(text, where, self.path)
-        if not table:
-            return []
-        try:
-            return [dict(zip(table["names"], row, strict=True)) for row in table["rows"]]
-        except (KeyError, TypeError, ValueError):
-            raise StoreError(f"{self.path}: {where} is damaged (not names and rows)") from None
+        return _edges_of(capture_id, text, self.path)
 
     def _require_run(self, run_id: int) -> None:
         if not list(self.db.query("SELECT 1 FROM runs WHERE id = ?", [run_id])):
@@ -1475,22 +1516,60 @@ class Store:
         return UnknownRunError(f"{self.path}: no run {run_id}; {known}")
 
     def _run_record(self, row: Mapping[str, Any]) -> RunRecord:
-        try:
-            instruments = _json_field(
-                row["instruments"], f"run {row['id']}'s instruments", self.path
-            )
-        except StoreError as damaged:  # the identities are shown, never computed with
-            instruments = {"(damaged)": str(damaged)}
-        if not isinstance(instruments, dict):
-            instruments = {"(damaged)": f"run {row['id']}'s instruments are not a table"}
-        return _record(RunRecord, row, instruments=instruments)
+        return _run_record_of(row, self.path)
 
     def _point_record(self, row: Mapping[str, Any]) -> PointRecord:
-        where = f"point {row['id']}'s verdict reasons"
-        reasons = _json_field(row["verdict_reasons"] or None, where, self.path) or []
-        return _record(
-            PointRecord, row, line_is_ac=bool(row["line_is_ac"]), verdict_reasons=reasons
-        )
+        return _point_record_of(row, self.path)
+
+    # ------------------------------------------------------------------- copying a run out
+
+    def run_row(self, run_id: int) -> dict[str, Any]:
+        """A run's row as stored (columns by name), to copy it into another database."""
+        self._require_run(run_id)
+        return dict(self.db.execute("SELECT * FROM runs WHERE id = ?", [run_id]).fetchone())
+
+    def run_table_rows(self, run_id: int, table: str) -> list[dict[str, Any]]:
+        """A run's rows of ``table`` as stored, in id order (captures without their codes: see
+        :meth:`run_capture_codes`), to copy them into another database."""
+        if table == "points":
+            return self._table_rows("SELECT * FROM points WHERE run_id = ? ORDER BY id", run_id)
+        if table == "captures":
+            return self._table_rows(
+                f"SELECT {', '.join(_STORED_CAPTURE_COLUMNS)} FROM captures "
+                "WHERE run_id = ? ORDER BY id",
+                run_id,
+            )
+        if table == "capture_figures":
+            return self._table_rows(
+                "SELECT f.* FROM capture_figures f JOIN captures c ON c.id = f.capture_id "
+                "WHERE c.run_id = ? ORDER BY f.capture_id",
+                run_id,
+            )
+        if table == "point_figures":
+            return self._table_rows(
+                "SELECT f.* FROM point_figures f JOIN points p ON p.id = f.point_id "
+                "WHERE p.run_id = ? ORDER BY f.point_id, f.node, f.figure",
+                run_id,
+            )
+        if table == "node_verdicts":
+            return self._table_rows(
+                "SELECT v.* FROM node_verdicts v JOIN points p ON p.id = v.point_id "
+                "WHERE p.run_id = ? ORDER BY v.point_id, v.node",
+                run_id,
+            )
+        if table == "events":
+            return self._table_rows("SELECT * FROM events WHERE run_id = ? ORDER BY id", run_id)
+        raise ValueError(f"no table {table!r} of a run's rows")
+
+    def run_capture_codes(self, capture_rows: Iterable[Mapping[str, Any]]) -> Iterator[dict]:
+        """Each of these capture rows (from :meth:`run_table_rows`) with its codes as stored
+        (compressed or not, as its codec says), read one capture at a time."""
+        for row in capture_rows:
+            codes = self.db.execute("SELECT codes FROM captures WHERE id = ?", [row["id"]])
+            yield {**row, "codes": codes.fetchone()[0]}
+
+    def _table_rows(self, query: str, run_id: int) -> list[dict[str, Any]]:
+        return [dict(row) for row in self.db.execute(query, [run_id]).fetchall()]
 
 
 _RUNS_QUERY = """

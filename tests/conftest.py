@@ -97,3 +97,34 @@ def raw_client() -> Iterator[Callable[..., RawScpiClient]]:
     yield connect
     for client in clients:
         client.close()
+
+
+# -- a PostgreSQL server for the lab database tests -------------------------------------------
+
+
+@pytest.fixture(scope="session")
+def pg_server() -> Iterator[Any]:
+    """A throwaway PostgreSQL server (tests/pgserver.py) for the whole session; the tests that
+    use it skip, saying why, where psycopg or the server is missing."""
+    pytest.importorskip("psycopg", reason="psycopg is not installed: pip install 'labseq[lab]'")
+    import pgserver
+
+    try:
+        server = pgserver.start()
+    except pgserver.Unavailable as exc:
+        pytest.skip(f"no PostgreSQL server for the lab database tests: {exc}")
+    yield server
+    server.stop()
+
+
+@pytest.fixture
+def lab_db(pg_server: Any) -> str:
+    """The URL (password included) of a new, empty database on the test server."""
+    import secrets
+
+    import psycopg
+
+    name = f"lab_{secrets.token_hex(6)}"
+    with psycopg.connect(pg_server.url(), autocommit=True) as conn:
+        conn.execute(f"CREATE DATABASE {name}")  # a name made here, not user text
+    return pg_server.url(name)

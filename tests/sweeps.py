@@ -71,6 +71,19 @@ def demo_sequence(
     return path
 
 
+def small_sequence(tmp_path: Path, name: str) -> Path:
+    """A demo regression sequence shrunk to 2 lines × 2 loads × 2 captures."""
+    text = (ROOT / "labseq" / "examples" / "demo_regression" / f"{name}.toml").read_text(
+        encoding="utf-8"
+    )
+    text = re.sub(r"(?m)^line_values = .*$", 'line_values = ["36 V", "75 V"]', text)
+    text = re.sub(r"(?m)^load_values = .*$", 'load_values = ["25 %", "100 %"]', text)
+    text = re.sub(r"(?m)^captures_per_point = .*$", "captures_per_point = 2", text)
+    path = tmp_path / f"{name}.toml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
 def run_cli(*args: str) -> tuple[int, str, str]:
     """Run ``labseq`` in-process as a user would; return (exit status, stdout, stderr).
 

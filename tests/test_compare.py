@@ -9,7 +9,8 @@ import re
 from pathlib import Path
 
 import pytest
-from test_report import LINES_V, LOADS_A, ROOT, make_run, parse_page, run_cli
+from sweeps import small_sequence
+from test_report import LINES_V, LOADS_A, make_run, parse_page, run_cli
 
 from labseq.compare import DEFAULT_COVERAGE, compare_figure, compare_runs
 from labseq.figures import NOISE_FLOORS
@@ -179,19 +180,6 @@ def test_bad_input_exits_2(db: Path, tmp_path: Path) -> None:
 
 
 # --------------------------------------------------------------------------- simulated sweep
-
-
-def small_sequence(tmp_path: Path, name: str) -> Path:
-    """A demo regression sequence shrunk to 2 lines × 2 loads × 2 captures."""
-    text = (ROOT / "labseq" / "examples" / "demo_regression" / f"{name}.toml").read_text(
-        encoding="utf-8"
-    )
-    text = re.sub(r"(?m)^line_values = .*$", 'line_values = ["36 V", "75 V"]', text)
-    text = re.sub(r"(?m)^load_values = .*$", 'load_values = ["25 %", "100 %"]', text)
-    text = re.sub(r"(?m)^captures_per_point = .*$", "captures_per_point = 2", text)
-    path = tmp_path / f"{name}.toml"
-    path.write_text(text, encoding="utf-8")
-    return path
 
 
 @pytest.fixture(scope="module")

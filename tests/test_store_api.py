@@ -11,10 +11,11 @@ import pytest
 
 from labseq.store import Store
 from labseq.store_api import RunStore
+from labseq.store_pg import LabDatabase
 
 ROOT = Path(__file__).resolve().parent.parent
 #: The store backends; a new one is added here.
-BACKENDS = [Store]
+BACKENDS = [Store, LabDatabase]
 #: Modules that only read runs, and so type their store as RunStore.
 READERS = [
     "labseq/review.py",
@@ -87,3 +88,33 @@ def test_readers_ask_only_for_the_protocol(module: str) -> None:
         and node.value.id in store_names
     }
     assert called <= set(_members()), f"{module} calls {sorted(called - set(_members()))}"
+
+
+def test_lab_database_tables_hold_every_column_of_the_sqlite_store(tmp_path: Path) -> None:
+    """Publishing copies a run's rows by column name: each table of the lab database has every
+    column the bench's store has (a store schema change needs a lab schema change too)."""
+    import sqlite3
+
+    from labseq import store_pg
+
+    specs = {
+        "runs": store_pg._RUNS,
+        "points": store_pg._POINTS,
+        "captures": store_pg._CAPTURES,
+        "capture_figures": store_pg._CAPTURE_FIGURES,
+        "point_figures": store_pg._POINT_FIGURES,
+        "node_verdicts": store_pg._NODE_VERDICTS,
+        "events": store_pg._EVENTS,
+    }
+    Store(tmp_path / "s.sqlite").close()
+    with sqlite3.connect(tmp_path / "s.sqlite") as conn:
+        for table, spec in specs.items():
+            columns = {row[1] for row in conn.execute(f"PRAGMA table_info({table})")}
+            lab_columns = set(store_pg._names(spec))
+            assert columns <= lab_columns, (table, columns - lab_columns)
+            extra = lab_columns - columns
+            assert extra == (
+                {"nodes", "with_codes", "published_at", "published_by"}
+                if table == "runs"
+                else set()
+            ), table

@@ -12,26 +12,62 @@ from instruments.text import quoted
 from labseq.errors import InputError
 from labseq.store import Store, UnknownRunError
 from labseq.store_api import RunStore
+from labseq.store_pg import LabDatabase, is_lab_url, redact
 
 DEFAULT_DB = "labseq.sqlite"
 #: The largest run id a store can hold: SQLite's row ids are signed 64-bit integers.
 MAX_RUN_ID = 2**63 - 1
 
 
-def db_option(help_text: str = "The SQLite store.") -> Callable[[Any], Any]:
-    """The ``--db PATH`` option (default ``labseq.sqlite`` in the working directory)."""
+class StoreLocation(click.ParamType):
+    """A store on the command line: a SQLite file's path, or (where ``lab`` is allowed) a lab
+    database's ``postgresql://`` URL, kept as text."""
+
+    name = "store"
+
+    def __init__(self, *, lab: bool) -> None:
+        self.lab = lab
+
+    def convert(self, value: Any, param: Any, ctx: Any) -> Path | str:
+        if isinstance(value, Path):
+            return value
+        if is_lab_url(str(value)):
+            if self.lab:
+                return str(value)
+            self.fail(
+                f"{redact(str(value))}: a lab database is written by `labseq publish` and read "
+                "by runs, report, compare, design --run, export and log; give the bench's SQLite "
+                "file",
+                param,
+                ctx,
+            )
+        if str(value).endswith(("/", "\\")) or Path(value).is_dir():
+            self.fail(f"{value}: a directory; give a store file", param, ctx)
+        return Path(value)
+
+
+def db_option(help_text: str = "The SQLite store.", *, lab: bool = False) -> Callable[[Any], Any]:
+    """The ``--db`` option (default ``labseq.sqlite`` in the working directory); with ``lab``
+    it may also name a lab database (``postgresql://…``)."""
+    if lab:
+        help_text += (
+            " Or a lab database: postgresql://USER@HOST/DB (password from PGPASSWORD or ~/.pgpass)."
+        )
     return click.option(
         "--db",
         "db_path",
-        type=click.Path(path_type=Path, dir_okay=False),
+        type=StoreLocation(lab=lab),
         default=DEFAULT_DB,
         show_default=True,
         help=help_text,
     )
 
 
-def read_store(db_path: Path) -> RunStore:
-    """The store ``--db`` names, opened for reading only (the read commands' one way in)."""
+def read_store(db_path: Path | str) -> RunStore:
+    """The store ``--db`` names, opened for reading only (the read commands' one way in): a
+    SQLite file, or a lab database by its URL."""
+    if isinstance(db_path, str) and is_lab_url(db_path):
+        return LabDatabase(db_path)
     return Store(db_path, read_only=True)
 
 

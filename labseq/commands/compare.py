@@ -16,7 +16,7 @@ from pathlib import Path
 import click
 
 from labseq.commands._gates import junit_option, write_junit
-from labseq.commands._store import db_option, read_store, resolve_run
+from labseq.commands._store import StoreLocation, db_option, read_store, resolve_run
 from labseq.compare import (
     DEFAULT_COVERAGE,
     DEFAULT_MATCH_TOLERANCE,
@@ -37,13 +37,13 @@ MAX_PRINTED_POINTS = 40
 @click.command("compare")
 @click.argument("baseline", metavar="BASELINE")
 @click.argument("candidate", metavar="CANDIDATE")
-@db_option("The store holding the baseline (and the candidate, unless --candidate-db).")
+@db_option("The store holding the baseline (and the candidate, unless --candidate-db).", lab=True)
 @click.option(
     "--candidate-db",
     "candidate_db_path",
-    type=click.Path(path_type=Path),
+    type=StoreLocation(lab=True),
     default=None,
-    help="The store holding the candidate [default: --db].",
+    help="The store holding the candidate [default: --db]: a SQLite file or a lab database.",
 )
 @click.option(
     "--report",

@@ -184,7 +184,7 @@ def _ripple_v(ripple: str | None, clamp_voltage_v: float | None) -> float | None
     metavar="RUN",
     help="Propose for every point of a stored run (id or 'latest'), worst peak first.",
 )
-@db_option("The store holding --run.")
+@db_option("The store holding --run.", lab=True)
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object (SI numbers).")
 def command(
     as_json: bool, clamp_ripple: str | None, run: str | None, db_path: Path, **options: str | None

@@ -16,7 +16,7 @@ from labseq.review import run_object
 
 @click.command("export")
 @click.argument("run", metavar="RUN")
-@db_option()
+@db_option(lab=True)
 @click.option(
     "--out",
     "out_dir",

@@ -13,7 +13,7 @@ from labseq.store import EVENT_KINDS
 
 @click.command("log")
 @click.argument("run", metavar="RUN")
-@db_option()
+@db_option(lab=True)
 @click.option(
     "--kind",
     "kinds",

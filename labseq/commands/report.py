@@ -18,7 +18,7 @@ from labseq.store_api import RunStore
 
 @click.command("report")
 @click.argument("run", metavar="RUN")
-@db_option()
+@db_option(lab=True)
 @click.option(
     "--out",
     "out_dir",
