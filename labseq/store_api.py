@@ -112,10 +112,6 @@ class RunStore(Protocol):
         before analysis."""
         ...
 
-    def clipped_points(self, run_id: int) -> set[tuple[str, int]]:
-        """The (node, point id)s of a run where at least one capture clipped."""
-        ...
-
     def capture_methods(self, run_id: int, name: str) -> dict[tuple[str, int], tuple[str, ...]]:
         """The distinct values of the capture method ``name`` at each (node, point id)."""
         ...
