@@ -301,7 +301,7 @@ class LimitExcess:
         """ "peak stress 147 V, 27 V over the derated rating"; "damping ratio 0.08, 0.02 under
         the 0.1 limit"; inside the limit: "…, 2 V under the derated rating"."""
         title = figure_title(self.figure, self.polarity)
-        if self.several_nodes:
+        if self.several_nodes and self.figure != "efficiency":  # efficiency is the point's
             title = f"{self.node} {title}"
         value = format_figure(self.figure, self.value)
         if self.bounded:
@@ -669,9 +669,11 @@ def headline(review: RunReview, problems: Mapping[int, str] | None = None) -> st
         return f"{start}{where}: {worst.why}"
     if counts["incomplete"]:
         first = listed[0]
+        example = reason_words(first.point.reasons[0]) if first.point.reasons else first.why
+        passing = f"; the other {counts['pass']} pass" if counts["pass"] else ""
         return (
             f"incomplete: {counts['incomplete']} of {total} points could not be judged "
-            f"(e.g. {review.label(first.point)}: {first.why}); the other {counts['pass']} pass"
+            f"(e.g. {review.label(first.point)}: {example}){passing}"
         )
     closest = [(excess, point) for point in review.points for excess in review.excesses(point)[:1]]
     sentence = f"passes at all {total} points"
