@@ -550,6 +550,8 @@ def run_summary(review: RunReview, problems: Mapping[int, str] | None = None) ->
     views = {name: review.node_view(name) for name in review.node_names}
     return {
         "run": run_object(review.run, review.end_safety),
+        "status": review.run.status,  # (also in "run": kept here for scripts that read it)
+        "end_safety": review.end_safety,
         "headline": headline(review, problems),
         "verdict": review.verdict,
         "verdict_counts": review.verdict_counts,
