@@ -170,5 +170,7 @@ def find_key_line(text: str, key: str) -> int | None:
         while target:
             if target in found:
                 return found[target]
-            target = re.sub(r"(\[\d+\]|\.?[^.\[]*)$", "", target, count=1)
+            shorter = re.sub(r"(\[\d+\]|\.?[^.\[]*)$", "", target, count=1)
+            # a key ending in "[" (not an index) would not get shorter: drop its last character
+            target = shorter if shorter != target else target[:-1]
     return None

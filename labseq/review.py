@@ -302,7 +302,7 @@ class LimitExcess:
         """ "peak stress 147 V, 27 V over the derated rating"; "damping ratio 0.08, 0.02 under
         the 0.1 limit"; inside the limit: "…, 2 V under the derated rating"."""
         title = figure_title(self.figure, self.polarity)
-        if self.several_nodes:
+        if self.several_nodes and self.figure != "efficiency":  # efficiency is the point's
             title = f"{self.node} {title}"
         value = format_figure(self.figure, self.value)
         if self.bounded:
@@ -559,6 +559,8 @@ def run_summary(review: RunReview, problems: Mapping[int, str] | None = None) ->
     views = {name: review.node_view(name) for name in review.node_names}
     return {
         "run": run_object(review.run, review.end_safety),
+        "status": review.run.status,  # (also in "run": kept here for scripts that read it)
+        "end_safety": review.end_safety,
         "headline": headline(review, problems),
         "verdict": review.verdict,
         "verdict_counts": review.verdict_counts,
@@ -678,9 +680,11 @@ def headline(review: RunReview, problems: Mapping[int, str] | None = None) -> st
         return f"{start}{where}: {worst.why}"
     if counts["incomplete"]:
         first = listed[0]
+        example = reason_words(first.point.reasons[0]) if first.point.reasons else first.why
+        passing = f"; the other {counts['pass']} pass" if counts["pass"] else ""
         return (
             f"incomplete: {counts['incomplete']} of {total} points could not be judged "
-            f"(e.g. {review.label(first.point)}: {first.why}); the other {counts['pass']} pass"
+            f"(e.g. {review.label(first.point)}: {example}){passing}"
         )
     closest = [(excess, point) for point in review.points for excess in review.excesses(point)[:1]]
     sentence = f"passes at all {total} points"

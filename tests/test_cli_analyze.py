@@ -14,6 +14,7 @@ import pytest
 from click.testing import CliRunner
 
 from labseq.cli import group, main
+from labseq.errors import InputError
 
 PROJECT = Path(__file__).resolve().parents[1]
 FS, F_RING, ZETA = 2e9, 18e6, 0.06
@@ -208,8 +209,10 @@ def test_design_text_and_json() -> None:
     # Severns: Cs = P/(V²·fsw) and Cpar = 1/((2πf)²·L).
     assert data["cs_f"] == pytest.approx(0.5 / (400**2 * 100e3))
     assert data["c_par_f"] == pytest.approx(1 / ((2 * math.pi * 25e6) ** 2 * 200e-9))
-    partial = json.loads(runner.invoke(group, ["design", "--ring-freq", "25MHz", "--json"]).output)
-    assert partial["c_par_f"] is None and partial["r_ohm"] is None
+    # a ring frequency alone sizes nothing: a clear error, never a table or object of blanks
+    alone = runner.invoke(group, ["design", "--ring-freq", "25MHz", "--json"])
+    assert isinstance(alone.exception, InputError) and alone.output == ""
+    assert "a ring frequency alone cannot size a snubber" in str(alone.exception)
 
 
 @pytest.mark.parametrize(

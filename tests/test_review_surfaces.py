@@ -452,3 +452,16 @@ def test_sim_json_gives_the_resource_strings(tmp_path: Path) -> None:
         re.fullmatch(r"TCPIP::127\.0\.0\.1::\d+::SOCKET", r) for r in found["resources"].values()
     )
     assert found["simulated"] is True
+
+
+def test_incomplete_run_sentence_names_one_reason(db: Path) -> None:
+    text = DEMO.read_text(encoding="utf-8").replace(
+        'resistor_power_budget = "0.5 W"', 'resistor_power_budget = "5 W"'
+    )
+    with Store(db) as store:
+        run_id = make_run(store, peak_scale=0.35, sequence_text=text, incomplete_at=(36.0, 0.55))
+        sentence = headline(review_run(store, run_id))
+    assert sentence == (
+        "incomplete: 1 of 16 points could not be judged (e.g. 36 V / 550 mA (25 %): damping "
+        "ratio: not determined); the other 15 pass"
+    )

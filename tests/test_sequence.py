@@ -409,3 +409,10 @@ def test_cli_check_bad_file_exit_2(tmp_path: Path) -> None:
     assert code == 2
     assert "grid.setle" in err and "did you mean 'settle'" in err and str(path) in err
     assert "Traceback" not in err + out
+
+
+def test_a_key_ending_in_a_bracket_is_located_without_looping() -> None:
+    # A problem key such as "commands.x[" (a fuzzed command map's) once never got shorter while
+    # its line was looked up, and `check` spun for good; it is found at its parent's line.
+    assert find_key_line("[commands]\nx = 1\n", "commands.x[") == 2
+    assert find_key_line("a = 1\n", "b[c") is None

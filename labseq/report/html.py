@@ -15,16 +15,16 @@ from pathlib import Path
 from labseq import __version__
 from labseq.units import format_si
 
-#: The usual cautions for an offline (mains-input) DUT, shown at the end of its report.
-SAFETY_NOTE = (
+#: The usual cautions for an offline (mains-input) DUT.
+OFFLINE_CAUTIONS = (
     "An offline converter's switch node carries hazardous voltage, and its bulk capacitor holds "
     "charge after the source is turned off: discharge it and confirm with a meter before "
     "touching the board. Isolate the device under test as the bench requires, measure the "
     "switch node with a differential or suitably rated probe, and never defeat the "
     "oscilloscope's protective earth. "
 )
-#: The cautions for a DC-input DUT.
-DC_SAFETY_NOTE = (
+#: The cautions for a DC-input DUT ({peak}: the highest switch-node voltage the run saw).
+DC_CAUTIONS = (
     "This DUT takes a DC input: its switch node carries the input voltage plus the reflected "
     "voltage and the ring, {peak}and its input capacitors hold charge after the source is "
     "turned off. Above 60 V DC (the ES1 limit of IEC 62368-1) treat it as hazardous: discharge "
@@ -36,6 +36,8 @@ DEFERENCE = (
     "These results support, and do not replace, local electrical codes, the laboratory's own "
     "rules and licensed practice."
 )
+#: The safety note of an offline DUT's report (and of one whose input is not known).
+SAFETY_NOTE = OFFLINE_CAUTIONS + DEFERENCE
 #: Width of the report's text column in CSS pixels (max-width less the side padding): images
 #: no wider than this are shown at their own size.
 CONTENT_WIDTH_PX = 1070
@@ -46,8 +48,8 @@ def safety_text(line_is_ac: bool | None, peak_v: float | None = None) -> str:
     highest switch-node voltage the run saw when known."""
     if line_is_ac is False:
         peak = "" if peak_v is None else f"up to {format_si(abs(peak_v), 'V')} in this run, "
-        return DC_SAFETY_NOTE.format(peak=peak) + DEFERENCE
-    return SAFETY_NOTE + DEFERENCE
+        return DC_CAUTIONS.format(peak=peak) + DEFERENCE
+    return SAFETY_NOTE
 
 
 _CSS = """
@@ -197,7 +199,7 @@ class Page:
         path.write_text(self.render(), encoding="utf-8")
         return path
 
-    def safety(self, text: str = SAFETY_NOTE + DEFERENCE) -> None:
+    def safety(self, text: str = SAFETY_NOTE) -> None:
         """The safety note (:func:`safety_text`, matched to the DUT) as the last section."""
         self.section("safety", "Safety")
         self.parts.append(f'<div class="safety"><p>{esc(text)}</p></div>')
