@@ -499,15 +499,14 @@ RUN_FIELDS = (
     "sequence_sha256",
     "points_done",
     "points_total",
-    "notes",
 )
 
 
 def run_object(run: RunRecord, end_safety: str | None = None) -> dict[str, Any]:
     """A run as every command's JSON gives it: :data:`RUN_FIELDS` with its true status (a run
     recorded as running whose process has died is "interrupted"; ``recorded_status`` keeps
-    what the store says), its label, whether the bench was the simulated one, and (for a run
-    that ended unsafe) what its shutdown found."""
+    what the store says), its label (``run --label``), whether the bench was the simulated
+    one, and (for a run that ended unsafe) what its shutdown found."""
     return {
         **{name: getattr(run, name) for name in RUN_FIELDS},
         "status": shown_status(run),

@@ -202,7 +202,7 @@ def _names_but_id(spec: tuple[str, ...]) -> list[str]:
     return [column.split()[0] for column in spec if not column.startswith("id ")]
 
 
-def _table(name: str, spec: tuple[str, ...], extra: tuple[str, ...] = ()) -> str:
+def _create_table(name: str, spec: tuple[str, ...], extra: tuple[str, ...] = ()) -> str:
     return f"CREATE TABLE {name} ({', '.join(spec + extra)})"
 
 
@@ -210,20 +210,20 @@ def _table(name: str, spec: tuple[str, ...], extra: tuple[str, ...] = ()) -> str
 _SCHEMA_1 = [
     "CREATE TABLE schema_info (version integer NOT NULL, application text NOT NULL, "
     "created_by text NOT NULL, created_at text NOT NULL)",
-    _table("runs", _RUNS),
+    _create_table("runs", _RUNS),
     "CREATE INDEX runs_dut ON runs (dut_label)",
     "CREATE INDEX runs_snubber ON runs (snubber_label)",
     "CREATE INDEX runs_bench ON runs (bench_id)",
     "CREATE INDEX runs_started ON runs (started_at)",
-    _table("points", _POINTS, ("UNIQUE (run_id, point_index)",)),
-    _table("captures", _CAPTURES, ("UNIQUE (point_id, node, capture_index)",)),
+    _create_table("points", _POINTS, ("UNIQUE (run_id, point_index)",)),
+    _create_table("captures", _CAPTURES, ("UNIQUE (point_id, node, capture_index)",)),
     # the codes are compressed already (zstd): stored out of line without a second compression
     "ALTER TABLE captures ALTER COLUMN codes SET STORAGE EXTERNAL",
     "CREATE INDEX captures_run ON captures (run_id, node)",
-    _table("capture_figures", _CAPTURE_FIGURES),
-    _table("point_figures", _POINT_FIGURES, ("PRIMARY KEY (point_id, node, figure)",)),
-    _table("node_verdicts", _NODE_VERDICTS, ("PRIMARY KEY (point_id, node)",)),
-    _table("events", _EVENTS),
+    _create_table("capture_figures", _CAPTURE_FIGURES),
+    _create_table("point_figures", _POINT_FIGURES, ("PRIMARY KEY (point_id, node, figure)",)),
+    _create_table("node_verdicts", _NODE_VERDICTS, ("PRIMARY KEY (point_id, node)",)),
+    _create_table("events", _EVENTS),
     "CREATE INDEX events_run ON events (run_id)",
     "CREATE INDEX events_point ON events (point_id)",
 ]

@@ -399,7 +399,7 @@ def test_one_run_object_in_every_commands_json(db: Path, tmp_path: Path) -> None
     seen.append(exported["run"])
     assert exported["points"] == 16 and "points.csv" in exported["files"]
     assert {tuple(sorted(obj)) for obj in seen} == {
-        tuple(sorted([*RUN_FIELDS, "simulated", "end_safety"]))
+        tuple(sorted([*RUN_FIELDS, "simulated", "end_safety", "recorded_status", "label"]))
     }
     assert all(obj == seen[0] for obj in seen) and seen[0]["id"] == run_id
     assert report["headline"].startswith("fails at")
