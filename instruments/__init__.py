@@ -1,10 +1,10 @@
 """SCPI instrument drivers over PyVISA: one base class, one small class per bench role."""
 
-from instruments.block import encode_block, parse_block
-from instruments.command_map import CommandMap, available_families, load_command_map
-from instruments.connection import Connection, SerialSettings
-from instruments.limits import LoadLimits, ScopeLimits, SourceLimits
-from instruments.roles import (
+from labseq_instruments.block import encode_block, parse_block
+from labseq_instruments.command_map import CommandMap, available_families, load_command_map
+from labseq_instruments.connection import Connection, SerialSettings
+from labseq_instruments.limits import LoadLimits, ScopeLimits, SourceLimits
+from labseq_instruments.roles import (
     ElectronicLoad,
     LineSource,
     MappedInstrument,
@@ -13,7 +13,7 @@ from instruments.roles import (
     PowerMeter,
     Waveform,
 )
-from instruments.scpi import Identity, ScpiInstrument, open_resource
+from labseq_instruments.scpi import Identity, ScpiInstrument, open_resource
 
 __all__ = [
     "CommandMap",

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from instruments.errors import BlockFormatError
+from labseq_instruments.errors import BlockFormatError
 
 #: Payload formats a scope may send, by the name a command map uses.
 DATA_FORMATS: dict[str, str] = {

@@ -21,10 +21,10 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
-from instruments.block import BYTE_ORDERS, DATA_FORMATS
-from instruments.errors import CommandMapError, UnsafeTextError
-from instruments.limits import ScopeLimits, check_text
-from instruments.tomlkeys import Problems, did_you_mean
+from labseq_instruments.block import BYTE_ORDERS, DATA_FORMATS
+from labseq_instruments.errors import CommandMapError, UnsafeTextError
+from labseq_instruments.limits import ScopeLimits, check_text
+from labseq_instruments.tomlkeys import Problems, did_you_mean
 
 MAPS_DIR = Path(__file__).with_name("command_maps")
 ROLES = ("source", "load", "meter", "scope")
@@ -153,7 +153,7 @@ ROLE_WORD_GROUPS = {
     for role, commands in ROLE_COMMANDS.items()
 }
 
-#: Waveform payload formats: the binary ones of :mod:`instruments.block`, and comma-separated
+#: Waveform payload formats: the binary ones of :mod:`labseq_instruments.block`, and comma-separated
 #: ASCII numbers (the slow fallback every scope offers).
 WAVEFORM_FORMATS = (*DATA_FORMATS, "ascii")
 #: Scaling values of a capture: volts = (code − y_reference) × y_increment + y_origin,

@@ -11,7 +11,7 @@ import math
 from collections.abc import Iterable
 from dataclasses import dataclass
 
-from instruments.errors import LimitError, UnsafeTextError
+from labseq_instruments.errors import LimitError, UnsafeTextError
 
 
 @dataclass(frozen=True)

@@ -1,6 +1,6 @@
 """One small class per bench role: line source, electronic load, power meter, oscilloscope.
 
-Every role takes its commands from a :class:`~instruments.command_map.CommandMap` of its role
+Every role takes its commands from a :class:`~labseq_instruments.command_map.CommandMap` of its role
 (the generic maps by default): command strings, keywords, value conversions and reply forms.
 Every setter validates all its arguments against the role's declared limits before the first
 byte is sent.
@@ -18,20 +18,20 @@ from typing import Any
 import numpy as np
 from pyvisa.resources import MessageBasedResource
 
-from instruments.block import (
+from labseq_instruments.block import (
     decode_items,
     decode_payload,
     parse_ascii_values,
     payload_dtype,
     signed_codes,
 )
-from instruments.command_map import (
+from labseq_instruments.command_map import (
     ROLE_COMMANDS,
     CommandMap,
     load_command_map,
 )
-from instruments.errors import CommandMapError, InstrumentTimeout, LimitError
-from instruments.limits import (
+from labseq_instruments.errors import CommandMapError, InstrumentTimeout, LimitError
+from labseq_instruments.limits import (
     LoadLimits,
     SourceLimits,
     check_count,
@@ -39,8 +39,8 @@ from instruments.limits import (
     check_word,
     format_number,
 )
-from instruments.scpi import ScpiInstrument, is_response_token, parse_number
-from instruments.text import quoted
+from labseq_instruments.scpi import ScpiInstrument, is_response_token, parse_number
+from labseq_instruments.text import quoted
 
 #: Relative tolerance under which a number matches an entry of a map's number table.
 _TABLE_RTOL = 1e-9
@@ -599,7 +599,7 @@ class Oscilloscope(MappedInstrument):
         set them (one error-queue read for all: each costs a round trip).
 
         Nothing is sent when this session last set exactly these and nothing since can have
-        changed them (:attr:`~instruments.scpi.ScpiInstrument.known_settings`); when any one
+        changed them (:attr:`~labseq_instruments.scpi.ScpiInstrument.known_settings`); when any one
         differs, all are sent again, in order, so a scope that resets its format on a new
         source still gets the right one.
         """
@@ -620,10 +620,10 @@ class Oscilloscope(MappedInstrument):
         ``compound_queries`` in the map (and a binary format) the scaling queries, the data
         query and the error-queue query go in one message, one round trip; otherwise each is
         a query of its own. Either way an error the instrument queued during the fetch is
-        raised as :class:`~instruments.errors.ScpiError`.
+        raised as :class:`~labseq_instruments.errors.ScpiError`.
 
         Unsigned codes are returned as the signed codes of the same width, with the reference
-        and the code limits moved to match (:func:`~instruments.block.signed_codes`).
+        and the code limits moved to match (:func:`~labseq_instruments.block.signed_codes`).
         """
         self._select(self._channel(channel))
         if self.map.compound_queries and self._payload_dtype is not None:

@@ -2,8 +2,8 @@
 
 One base does the plumbing once (opening with the link's settings, error translation, the
 error queue, binary blocks, the SCPI trace); how reply bytes are read is a transport strategy
-(:mod:`instruments.transport`); each bench role is a small subclass that only knows its
-commands, and takes them from a command map (:mod:`instruments.roles`).
+(:mod:`labseq_instruments.transport`); each bench role is a small subclass that only knows its
+commands, and takes them from a command map (:mod:`labseq_instruments.roles`).
 """
 
 from __future__ import annotations
@@ -22,9 +22,9 @@ import pyvisa
 from pyvisa import constants
 from pyvisa.resources import MessageBasedResource
 
-from instruments import block
-from instruments.connection import Connection
-from instruments.errors import (
+from labseq_instruments import block
+from labseq_instruments.connection import Connection
+from labseq_instruments.errors import (
     BlockFormatError,
     ConnectionLost,
     InstrumentError,
@@ -32,8 +32,8 @@ from instruments.errors import (
     ReplyFormatError,
     ScpiError,
 )
-from instruments.text import printable, quoted
-from instruments.transport import (
+from labseq_instruments.text import printable, quoted
+from labseq_instruments.transport import (
     MAX_TEXT_REPLY_BYTES,
     TIMEOUT_CODES,
     VisaTransport,
@@ -55,7 +55,7 @@ ERROR_QUERY = "SYST:ERR?"
 
 #: Every SCPI exchange is logged here at DEBUG level: the command sent, the reply received and
 #: how long it took. ``--trace FILE`` on a bench command writes this logger to FILE.
-trace_log = logging.getLogger("instruments.trace")
+trace_log = logging.getLogger("labseq_instruments.trace")
 
 #: IEEE 488.2 decimal numeric data in its flexible form (NRf, 7.7.2: NR1, NR2 and NR3), and the
 #: INFinity, NINFinity and NAN keywords of SCPI-1999 vol. 1, 7.2.1.5.
@@ -93,7 +93,8 @@ class Identity:
     @classmethod
     def parse(cls, reply: str) -> Identity:
         """Parse ``manufacturer,model,serial,firmware``; ``0`` stands for an absent field. Each
-        field is kept :func:`~instruments.text.printable` (it is shown and stored for display)."""
+        field is kept :func:`~labseq_instruments.text.printable` (it is shown and stored for
+        display)."""
         parts = [printable(part).strip() for part in reply.strip().split(",")]
         if len(parts) != 4:
             raise ReplyFormatError(

@@ -10,7 +10,7 @@ are reported together in one message::
       line 30, limits.max_qq: unknown key; did you mean 'max_q'?
 
 Each reader raises its own error with that message (:class:`labseq.sequence.SequenceError`,
-:class:`instruments.errors.CommandMapError`, ``sim_instruments``' ``DutFileError``). This
+:class:`labseq_instruments.errors.CommandMapError`, ``sim_instruments``' ``DutFileError``). This
 module knows TOML, not what the files mean; it imports nothing of labseq.
 """
 
@@ -23,8 +23,8 @@ from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any, NamedTuple
 
-from instruments.files import FileProblem, read_regular_file
-from instruments.text import quoted
+from labseq_instruments.files import FileProblem, read_regular_file
+from labseq_instruments.text import quoted
 
 
 class Problem(NamedTuple):

@@ -1,7 +1,8 @@
 """How messages are sent to a VISA resource and reply bytes read from it: a generic path for
 any VISA library, and a fast path for pyvisa-py's raw sockets.
 
-:class:`~instruments.scpi.ScpiInstrument` sends every message and reads every reply through one
+:class:`~labseq_instruments.scpi.ScpiInstrument` sends every message and reads every reply through
+one
 of these strategies, chosen once when the session is opened (:func:`choose_transport`):
 
 * :class:`VisaTransport` uses only public VISA calls (``viRead`` in chunks, device clear), so it
@@ -30,7 +31,12 @@ import pyvisa
 from pyvisa import constants
 from pyvisa.resources import MessageBasedResource
 
-from instruments.errors import BlockFormatError, ConnectionLost, InstrumentTimeout, ReplyFormatError
+from labseq_instruments.errors import (
+    BlockFormatError,
+    ConnectionLost,
+    InstrumentTimeout,
+    ReplyFormatError,
+)
 
 #: Bytes asked of the VISA layer per read while receiving a block payload.
 BLOCK_CHUNK_BYTES = 1 << 20

@@ -17,7 +17,10 @@ from typing import Any
 
 import pyvisa
 
-from instruments import (
+from labseq.bench_kinds import Started, bench_kind
+from labseq.safety import SAFE_BUS_V
+from labseq.sequence import Sequence
+from labseq_instruments import (
     ElectronicLoad,
     LineSource,
     LoadLimits,
@@ -26,12 +29,9 @@ from instruments import (
     SourceLimits,
     load_command_map,
 )
-from instruments.command_map import ROLES
-from instruments.errors import InstrumentError, ReplyFormatError, ScpiError
-from instruments.roles import MappedInstrument
-from labseq.bench_kinds import Started, bench_kind
-from labseq.safety import SAFE_BUS_V
-from labseq.sequence import Sequence
+from labseq_instruments.command_map import ROLES
+from labseq_instruments.errors import InstrumentError, ReplyFormatError, ScpiError
+from labseq_instruments.roles import MappedInstrument
 
 #: How long the runner waits for a real bench's bus to fall below the safe limit.
 BUS_DISCHARGE_TIMEOUT_S = 300.0

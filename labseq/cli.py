@@ -4,7 +4,8 @@ Each module in ``labseq.commands`` exposes ``command`` (a click command), import
 command is run or listed: ``labseq runs`` loads the store and nothing of the bench, and no
 command module imports the simulator or scipy before its command needs them. Errors the user can
 act on arrive as :class:`labseq.errors.LabseqError` or
-:class:`instruments.errors.InstrumentError` and are printed as one line; set ``LABSEQ_DEBUG=1``
+:class:`labseq_instruments.errors.InstrumentError` and are printed as one line; set
+``LABSEQ_DEBUG=1``
 to see the traceback of an unexpected failure.
 """
 
@@ -113,7 +114,7 @@ def end_process(code: int) -> None:
 
 def _run(argv: list[str] | None) -> None:
     """Run the group; known errors become a message and an exit status (SystemExit)."""
-    from instruments.errors import InstrumentError
+    from labseq_instruments.errors import InstrumentError
 
     try:
         group.main(args=argv, prog_name="labseq", standalone_mode=False)

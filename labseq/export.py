@@ -33,10 +33,10 @@ from typing import Any
 
 import numpy as np
 
-from instruments import Waveform
 from labseq.bench_kinds import is_simulated
 from labseq.store import PointRecord, StoredCapture
 from labseq.store_api import RunStore
+from labseq_instruments import Waveform
 
 POINTS_FILE = "points.csv"
 SEQUENCE_FILE = "sequence.toml"
@@ -58,7 +58,8 @@ SCREEN_KEYS = ("Screen Bottom V", "Screen Top V")
 RUN_KEY = "run"
 
 #: The scaling a capture's codes need to become volts and times, in the order of the scaling
-#: table's columns: those of :class:`instruments.Waveform` (NaN code limits: a scope that sends
+#: table's columns: those of :class:`labseq_instruments.Waveform` (NaN code limits: a scope that
+#: sends
 #: volts, which clip at no known code).
 SCALING_FIELDS: tuple[str, ...] = tuple(f.name for f in fields(Waveform) if f.name != "codes")
 #: The name of the scaling table in ``captures.npz``, and its row: one per capture.

@@ -18,8 +18,6 @@ from typing import Any
 
 import numpy as np
 
-from instruments import Waveform
-from instruments.tomlkeys import report
 from labseq.analysis import CaptureFigures, NoEdgeError, SnubberBranch, aggregate, analyze_capture
 from labseq.analysis import judge as judge_point
 from labseq.analysis.capture import ClampFigures, clamp_figures
@@ -28,6 +26,8 @@ from labseq.errors import InputError
 from labseq.figures import CAPTURE_FIGURES
 from labseq.sequence import NodeSpec, Sequence, SequenceError, parse_sequence
 from labseq.store import PointRecord, RunRecord, Store, StoreError
+from labseq_instruments import Waveform
+from labseq_instruments.tomlkeys import report
 
 
 @dataclass(frozen=True)

@@ -20,12 +20,12 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
 
-from instruments.command_map import ROLE_COMMANDS
-from instruments.errors import InstrumentError
-from instruments.roles import MappedInstrument, Oscilloscope
-from instruments.text import quoted
 from labseq.bench import ROLES, open_driver, start_resources
 from labseq.sequence import Sequence
+from labseq_instruments.command_map import ROLE_COMMANDS
+from labseq_instruments.errors import InstrumentError
+from labseq_instruments.roles import MappedInstrument, Oscilloscope
+from labseq_instruments.text import quoted
 
 #: Outcomes of one probe line.
 OK, FAILED, NOT_MAPPED, SKIPPED = "ok", "failed", "not mapped", "skipped"

@@ -23,8 +23,6 @@ from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass, field
 
-from instruments import Waveform
-from instruments.errors import InstrumentError, ScpiError
 from labseq.bench import Bench, SafeReport, lock_names, make_safe, open_bench
 from labseq.errors import EXIT_FAILURE, EXIT_OK, LabseqError
 from labseq.locks import run_locks
@@ -42,6 +40,8 @@ from labseq.store import (
     store_failure,
 )
 from labseq.units import format_si
+from labseq_instruments import Waveform
+from labseq_instruments.errors import InstrumentError, ScpiError
 
 #: How often the scope is asked whether its single acquisition is in.
 ACQUISITION_POLL_S = 0.005

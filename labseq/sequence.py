@@ -22,11 +22,6 @@ from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any, NamedTuple
 
-from instruments.command_map import ROLES
-from instruments.connection import FLOW_CONTROLS, PARITIES, TERMINATIONS, Connection, SerialSettings
-from instruments.files import FileProblem, read_regular_file
-from instruments.text import quoted
-from instruments.tomlkeys import Problem, Problems, describe_value, report
 from labseq.analysis.verdict import Limits
 from labseq.bench_kinds import BENCH_KINDS, BenchKind, bench_kind, owner_of
 from labseq.errors import InputError
@@ -34,6 +29,17 @@ from labseq.figures import DEFAULT_DERATING, DEFAULT_SETTLING_BAND
 from labseq.safety import ES1_AC_RMS_V, ES1_DC_V
 from labseq.tomlread import MISSING, SAME_VALUE_RTOL, Table, quantity
 from labseq.units import format_si
+from labseq_instruments.command_map import ROLES
+from labseq_instruments.connection import (
+    FLOW_CONTROLS,
+    PARITIES,
+    TERMINATIONS,
+    Connection,
+    SerialSettings,
+)
+from labseq_instruments.files import FileProblem, read_regular_file
+from labseq_instruments.text import quoted
+from labseq_instruments.tomlkeys import Problem, Problems, describe_value, report
 
 #: Bounds that keep every value ``check`` accepts runnable to its end (common practice, no
 #: published source): a value beyond them is a typing slip, never a plan, and would otherwise
@@ -67,7 +73,7 @@ _VISA_RESOURCE = re.compile(r"^(TCPIP|USB|GPIB|ASRL|VXI|PXI|VICP)[^:\s]*::\S+$",
 
 class SequenceError(InputError):
     """A sequence file that cannot be used; ``problems`` lists every problem found, each with
-    its key and line (:class:`instruments.tomlkeys.Problem`)."""
+    its key and line (:class:`labseq_instruments.tomlkeys.Problem`)."""
 
     def __init__(self, path: Path, problems: list[Problem]) -> None:
         self.path = path
@@ -394,8 +400,8 @@ def _resolve_map(out: Problems, key: str, value: str, role: str, seq_dir: Path) 
     """A ``role`` command map shipped in instruments/command_maps/<role>, or a file path
     (relative to the sequence file); it is loaded and validated here, so a bad map is reported
     before anything is opened."""
-    from instruments.command_map import available_families, is_map_path, load_command_map
-    from instruments.errors import CommandMapError
+    from labseq_instruments.command_map import available_families, is_map_path, load_command_map
+    from labseq_instruments.errors import CommandMapError
 
     if not is_map_path(value) and value not in available_families(role):
         shipped = ", ".join(available_families(role))
@@ -930,8 +936,8 @@ def _check_nodes_on_bench(
 
 def _scope_map(scope_map: str) -> Any:
     """The scope command map (None when it cannot be loaded: reported elsewhere)."""
-    from instruments.command_map import load_command_map
-    from instruments.errors import CommandMapError
+    from labseq_instruments.command_map import load_command_map
+    from labseq_instruments.errors import CommandMapError
 
     try:
         return load_command_map(scope_map)
@@ -954,8 +960,8 @@ def _check_scope_limits(
 ) -> None:
     """The scope settings inside the limits its command map declares (the checks the driver
     makes again before sending), so the set-up cannot fail once the run has started."""
-    from instruments.errors import LimitError
-    from instruments.limits import check_count, check_setpoint
+    from labseq_instruments.errors import LimitError
+    from labseq_instruments.limits import check_count, check_setpoint
 
     command_map = _scope_map(bench.scope_map)
     if command_map is None or primary is None or acquisition is None:

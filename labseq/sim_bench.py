@@ -1,8 +1,9 @@
-"""The simulated bench as a bench kind: the one place labseq meets :mod:`sim_instruments`.
+"""The simulated bench as a bench kind: the one place labseq meets :mod:`labseq_sim_instruments`.
 
 Registered as kind ``"sim"`` in :data:`labseq.bench_kinds.BENCH_KINDS`, so it is imported only
 when a sequence names a simulated bench, or by ``labseq sim``. Reading such a sequence loads its
-DUT file (:mod:`sim_instruments.flyback_design`: TOML and units, no physics) to check the file
+DUT file (:mod:`labseq_sim_instruments.flyback_design`: TOML and units, no physics) to check the
+file
 against it; starting a run starts the simulated bench in this process — its SCPI servers on
 loopback, the physics imported only then — with the sequence's parts fitted (:func:`sim_design`),
 reached through PyVISA exactly like a real bench.
@@ -14,13 +15,13 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from instruments.tomlkeys import describe_value
 from labseq.bench_kinds import BenchKind, Fail, Started
 from labseq.errors import InputError
-from sim_instruments import DIALECTS, SECONDARY_CHANNEL
-from sim_instruments.faults import KINDS as FAULT_KINDS
-from sim_instruments.faults import ROLES as FAULT_ROLES
-from sim_instruments.flyback_design import (
+from labseq_instruments.tomlkeys import describe_value
+from labseq_sim_instruments import DIALECTS, SECONDARY_CHANNEL
+from labseq_sim_instruments.faults import KINDS as FAULT_KINDS
+from labseq_sim_instruments.faults import ROLES as FAULT_ROLES
+from labseq_sim_instruments.flyback_design import (
     DEMO_DUTS,
     DutFileError,
     FlybackDesign,
@@ -30,7 +31,7 @@ from sim_instruments.flyback_design import (
 
 if TYPE_CHECKING:
     from labseq.sequence import BenchSpec, Clamp, Dut, NodeSpec, Sequence
-    from sim_instruments.bench import SimBench
+    from labseq_sim_instruments.bench import SimBench
 
 __all__ = [
     "DEMO_DUTS",
@@ -126,8 +127,8 @@ class SimulatedBench(BenchKind):
 
     def start(self, sequence: Sequence, *, faults: str = "", seed: int = 0) -> Started:
         """Start the simulated bench for ``sequence`` with its parts fitted (:func:`sim_design`)."""
-        from sim_instruments.bench import SimBench
-        from sim_instruments.faults import FaultSpecError
+        from labseq_sim_instruments.bench import SimBench
+        from labseq_sim_instruments.faults import FaultSpecError
 
         settings: SimSettings = sequence.bench.settings
         try:
@@ -179,9 +180,9 @@ def serve(
     """A started simulated bench for ``labseq sim``: the DUT ``dut`` (a demo name or a DUT
     file) as its file describes it. Bad input, or a port that cannot be served, is an
     :class:`InputError`."""
-    from sim_instruments.bench import SimBench
-    from sim_instruments.faults import FaultSpecError
-    from sim_instruments.server import ServerConfigError
+    from labseq_sim_instruments.bench import SimBench
+    from labseq_sim_instruments.faults import FaultSpecError
+    from labseq_sim_instruments.server import ServerConfigError
 
     try:
         design = load_dut(resolve_dut(dut))

@@ -46,13 +46,13 @@ import numpy as np
 import sqlite_utils
 import zstandard
 
-from instruments import Waveform
-from instruments.files import not_regular
-from instruments.text import quoted
 from labseq import __version__
 from labseq.errors import InputError, LabseqError
 from labseq.figures import CAPTURE_FIGURES, CAPTURE_METHODS, VERDICTS
 from labseq.process import process_alive, process_start_time
+from labseq_instruments import Waveform
+from labseq_instruments.files import not_regular
+from labseq_instruments.text import quoted
 
 #: Version of the schema; a file with a higher version is refused, a lower one upgraded.
 SCHEMA_VERSION = 4

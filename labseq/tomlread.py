@@ -1,5 +1,5 @@
 """Sequence files read table by table: every value converted to SI and checked, every problem
-recorded with its key and line (:class:`instruments.tomlkeys.Problems`, the error style every
+recorded with its key and line (:class:`labseq_instruments.tomlkeys.Problems`, the error style every
 labseq file shares).
 
 A :class:`Table` is one TOML table being read. Each getter takes a key, records it as known,
@@ -16,9 +16,9 @@ import math
 from collections.abc import Callable, Iterable
 from typing import Any
 
-from instruments.text import quoted
-from instruments.tomlkeys import Problems, describe_value
 from labseq.units import UnitError, format_si, parse_quantity
+from labseq_instruments.text import quoted
+from labseq_instruments.tomlkeys import Problems, describe_value
 
 #: A key that is not in its table (distinct from any value the file can hold).
 MISSING = object()

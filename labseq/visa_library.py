@@ -20,8 +20,8 @@ from typing import TYPE_CHECKING, Any
 
 import click
 
-from instruments.tomlkeys import find_key_line
 from labseq.errors import InputError
+from labseq_instruments.tomlkeys import find_key_line
 
 if TYPE_CHECKING:
     from labseq.sequence import Sequence

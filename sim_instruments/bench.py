@@ -13,9 +13,9 @@ from types import TracebackType
 
 import numpy as np
 
-from sim_instruments.faults import ROLES, FaultPlan, FaultSpec, FiredFault, parse_fault_specs
-from sim_instruments.flyback import FlybackDesign, FlybackModel
-from sim_instruments.instruments import (
+from labseq_sim_instruments.faults import ROLES, FaultPlan, FaultSpec, FiredFault, parse_fault_specs
+from labseq_sim_instruments.flyback import FlybackDesign, FlybackModel
+from labseq_sim_instruments.instruments import (
     DIALECTS,
     GENERIC,
     BenchState,
@@ -25,7 +25,7 @@ from sim_instruments.instruments import (
     SimSource,
     SimulatedRole,
 )
-from sim_instruments.server import ScpiServer, check_host
+from labseq_sim_instruments.server import ScpiServer, check_host
 
 INSTRUMENT_CLASSES: dict[str, type[SimulatedRole]] = {
     "source": SimSource,
@@ -38,7 +38,7 @@ INSTRUMENT_CLASSES: dict[str, type[SimulatedRole]] = {
 class SimBench:
     """Source, load, meter and scope as SCPI servers, one TCP port each, one shared model.
 
-    ``faults`` is a fault spec string (see :mod:`sim_instruments.faults`) or a list of specs;
+    ``faults`` is a fault spec string (see :mod:`labseq_sim_instruments.faults`) or a list of specs;
     ``dialect`` is the command set every instrument speaks (:data:`DIALECTS`: ``generic`` or
     ``alt``); ``seed`` fixes every random draw (reading noise, trigger jitter, line phase), so a
     test sees the same bench each time; ``ports`` maps roles to fixed ports (default: free ports).

@@ -37,8 +37,8 @@ import time
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
-from instruments.command_map import ROLES
-from sim_instruments.server import HeaderPattern, Interceptor, ParsedMessage
+from labseq_instruments.command_map import ROLES
+from labseq_sim_instruments.server import HeaderPattern, Interceptor, ParsedMessage
 
 KINDS = ("no-reply", "drop", "scpi-error", "no-trigger", "malformed", "refuse-off", "stuck-on")
 MOMENTS = ("call", "point", "off")

@@ -8,10 +8,11 @@ the oscilloscope samples :meth:`switch_node_v` (and, when the DUT declares its o
 Operating point (a textbook flyback power stage, e.g. Pressman, *Switching Power Supply Design*):
 input power Pin = Pout + losses, with the losses (RC damper, RCD clamp, leakage-loop damping,
 capacitive turn-on and the design's other losses) taken from the integrated turn-off transient of
-:mod:`sim_instruments.flyback_transient`, so Pin and the transient are iterated together. DCM
+:mod:`labseq_sim_instruments.flyback_transient`, so Pin and the transient are iterated together. DCM
 when the energy ½·Lm·Ipk²·fsw that delivers Pin fits in the period (on-time plus demagnetisation
 time Lm·Ipk/Vr), CCM otherwise with the ideal duty D = Vr/(Vin + Vr). The output rectifier's
-ring (:mod:`sim_instruments.flyback_secondary`) follows from the primary's period; its damper and
+ring (:mod:`labseq_sim_instruments.flyback_secondary`) follows from the primary's period; its
+damper and
 loop losses join the input power, and the two are iterated until they agree.
 """
 
@@ -24,15 +25,15 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import brentq
 
-from sim_instruments.flyback_design import (
+from labseq_sim_instruments.flyback_design import (
     DEMO_DUTS,
     DutFileError,
     FlybackDesign,
     load_dut,
     resolve_dut,
 )
-from sim_instruments.flyback_secondary import SecondaryNetwork, SecondaryPeriod
-from sim_instruments.flyback_transient import NodeNetwork, PeriodResult
+from labseq_sim_instruments.flyback_secondary import SecondaryNetwork, SecondaryPeriod
+from labseq_sim_instruments.flyback_transient import NodeNetwork, PeriodResult
 
 __all__ = [
     "DEMO_DUTS",
@@ -313,7 +314,8 @@ class FlybackModel:
     def _run(self, bulk_v: float, load_a: float) -> _Solution:
         """Solve the primary's steady state, then the rectifier's, until their losses agree.
 
-        The rectifier's losses (:mod:`sim_instruments.flyback_secondary`) depend on the primary's
+        The rectifier's losses (:mod:`labseq_sim_instruments.flyback_secondary`) depend on the
+        primary's
         period only weakly, through its currents, so they enter the primary's solve as a fixed
         input power and the two are solved in turn until that power stops moving.
         """

@@ -20,7 +20,7 @@ The clamp ``voltage`` is the design's nominal clamp voltage above the bus; the s
 capacitor settles wherever R, C and the energy balance put it, starting from that value.
 
 Every problem of a file is reported at once, each naming the file, the key and its line, and
-what would be valid (:mod:`instruments.tomlkeys`).
+what would be valid (:mod:`labseq_instruments.tomlkeys`).
 """
 
 from __future__ import annotations
@@ -31,8 +31,8 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
-from instruments.tomlkeys import Problems, describe_value
 from labseq.units import UnitError, parse_quantity
+from labseq_instruments.tomlkeys import Problems, describe_value
 
 DUT_DIR = Path(__file__).resolve().parent / "duts"
 
@@ -59,7 +59,8 @@ class SecondaryRectifier:
     """The output rectifier diode and what rings with it once the primary switch turns on.
 
     ``loop_inductance_h`` is the secondary side's own loop (winding leakage and traces); the
-    ring also sees the primary leakage referred by n² (:mod:`sim_instruments.flyback_secondary`).
+    ring also sees the primary leakage referred by n²
+    (:mod:`labseq_sim_instruments.flyback_secondary`).
     A ``pn`` diode stores charge ``carrier_lifetime_s`` × forward current; a Schottky stores none.
     """
 

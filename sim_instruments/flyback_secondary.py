@@ -1,6 +1,7 @@
 """The flyback's secondary rectifier node: the diode's anode–cathode voltage over one period.
 
-Same time base as the primary switch node (:mod:`sim_instruments.flyback_transient`): t = 0 at
+Same time base as the primary switch node (:mod:`labseq_sim_instruments.flyback_transient`): t = 0
+at
 the primary's turn-off command, the primary turns on again at ``off_time_s``.
 
 Off-time (primary switch off), from the primary node v(t) through the ideal transformer: the
@@ -43,8 +44,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize, signal
 
-from sim_instruments.flyback_design import FlybackDesign
-from sim_instruments.flyback_transient import POINTS_PER_RING_PERIOD
+from labseq_sim_instruments.flyback_design import FlybackDesign
+from labseq_sim_instruments.flyback_transient import POINTS_PER_RING_PERIOD
 
 
 @dataclass(frozen=True)

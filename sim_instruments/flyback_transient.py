@@ -31,7 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.integrate import solve_ivp
 
-from sim_instruments.flyback_design import FlybackDesign
+from labseq_sim_instruments.flyback_design import FlybackDesign
 
 #: Time constant of the node's fall at turn-on (a switching time typical of the MOSFETs modelled).
 TURN_ON_FALL_TIME_S = 5e-9

@@ -17,10 +17,10 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from sim_instruments import DIALECTS, PRIMARY_CHANNEL, SECONDARY_CHANNEL
-from sim_instruments import scope as acquisition
-from sim_instruments.flyback import FlybackModel, LineReading, OperatingPoint
-from sim_instruments.server import (
+from labseq_sim_instruments import DIALECTS, PRIMARY_CHANNEL, SECONDARY_CHANNEL
+from labseq_sim_instruments import scope as acquisition
+from labseq_sim_instruments.flyback import FlybackModel, LineReading, OperatingPoint
+from labseq_sim_instruments.server import (
     Block,
     Call,
     Command,

@@ -8,8 +8,8 @@ from typing import Any
 
 import pytest
 
-from sim_instruments.bench import SimBench
-from sim_instruments.flyback import DEMO_DUTS, FlybackDesign, load_dut
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackDesign, load_dut
 
 
 @pytest.fixture

@@ -17,7 +17,7 @@ import numpy as np  # noqa: E402
 from waveforms import quantise  # noqa: E402
 
 from labseq.analysis import SnubberBranch, analyze_capture  # noqa: E402
-from sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut  # noqa: E402
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut  # noqa: E402
 
 NOISE_LEVELS_V = (0.0, 0.5, 2.0)
 SAMPLE_RATE_HZ = 2e9

@@ -1,6 +1,7 @@
 """The analysis on the simulated bench's own switch-node waveforms, against the model's physics.
 
-The flyback model (:mod:`sim_instruments.flyback`) is sampled directly, as a scope would see it
+The flyback model (:mod:`labseq_sim_instruments.flyback`) is sampled directly, as a scope would see
+it
 (2 GS/s, 8 bits over 200 V, a little noise), and analysed. The references are the model's design
 values and the eigenvalues of the switch-node network linearised at the plateau.
 """
@@ -14,7 +15,7 @@ import pytest
 from waveforms import quantise
 
 from labseq.analysis import EdgeFigures, analyze_capture
-from sim_instruments.flyback import DEMO_DUTS, FlybackDesign, FlybackModel, load_dut
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackDesign, FlybackModel, load_dut
 
 SAMPLE_RATE_HZ = 2e9
 SCOPE_RANGE_V = (-20.0, 180.0)  # 8 divisions of 25 V

@@ -10,7 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from instruments.block import (
+from labseq_instruments.block import (
     decode_payload,
     encode_block,
     length_digit_count,
@@ -21,7 +21,7 @@ from instruments.block import (
     signed_codes,
     split_block,
 )
-from instruments.errors import BlockFormatError
+from labseq_instruments.errors import BlockFormatError
 
 FORMATS = ("int8", "int16", "float32")
 ORDERS = ("big", "little")

@@ -22,8 +22,8 @@ import pytest
 
 from labseq.analysis import CaptureFigures, SnubberBranch, analyze_capture
 from labseq.analysis.capture import ClampFigures, clamp_figures, clamp_level_v
-from sim_instruments import scope
-from sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
+from labseq_sim_instruments import scope
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
 
 DESIGN = load_dut(DEMO_DUTS["offline_ac"])
 MODEL = FlybackModel(DESIGN)

@@ -6,13 +6,13 @@ from pathlib import Path
 
 import pytest
 
-from instruments.command_map import (
+from labseq_instruments.command_map import (
     MAPS_DIR,
     ROLE_COMMANDS,
     available_families,
     load_command_map,
 )
-from instruments.errors import CommandMapError
+from labseq_instruments.errors import CommandMapError
 
 GENERIC_TEXT = (MAPS_DIR / "scope" / "generic.toml").read_text()
 

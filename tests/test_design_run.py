@@ -13,7 +13,7 @@ from sweeps import demo_sequence, run_cli
 from labseq.runner import run_sequence
 from labseq.sequence import load_sequence
 from labseq.store import Store
-from sim_instruments.flyback import DEMO_DUTS, load_dut
+from labseq_sim_instruments.flyback import DEMO_DUTS, load_dut
 
 #: A matched damper on the demo DUT's ~215 pF node behind 250 nH: Rs ≈ √(L/C) ≈ 34 Ω and
 #: Cs ≈ 3 × Cpar (Severns, "Design of Snubbers for Power Circuits"; the 3–4 × ratio is common

@@ -17,15 +17,15 @@ import numpy as np
 import pytest
 from sweeps import DEMO_DC, demo_sequence, run_cli
 
-from instruments.command_map import MAPS_DIR, ROLE_COMMANDS, ROLES, load_command_map
-from instruments.connection import Connection, SerialSettings
-from instruments.errors import CommandMapError, LimitError, ScpiError
-from instruments.limits import SourceLimits
-from instruments.roles import LineSource, Oscilloscope
-from instruments.transport import PyvisaPySocketTransport, VisaTransport
 from labseq.sequence import SequenceError, load_sequence
 from labseq.store import Store
-from sim_instruments.flyback import DEMO_DUTS, load_dut
+from labseq_instruments.command_map import MAPS_DIR, ROLE_COMMANDS, ROLES, load_command_map
+from labseq_instruments.connection import Connection, SerialSettings
+from labseq_instruments.errors import CommandMapError, LimitError, ScpiError
+from labseq_instruments.limits import SourceLimits
+from labseq_instruments.roles import LineSource, Oscilloscope
+from labseq_instruments.transport import PyvisaPySocketTransport, VisaTransport
+from labseq_sim_instruments.flyback import DEMO_DUTS, load_dut
 
 HERE = Path(__file__).resolve().parent
 ALT_MAPS = 'maps = { source = "alt", load = "alt", meter = "alt", scope = "alt" }'
@@ -348,7 +348,7 @@ def test_bench_maps_aliases_and_connections_in_a_sequence(tmp_path):
 
 
 def test_the_sequence_takes_the_simulator_dialects(tmp_path):
-    from sim_instruments.instruments import DIALECTS
+    from labseq_sim_instruments.instruments import DIALECTS
 
     text = DEMO_DC.read_text(encoding="utf-8")
     for dialect in DIALECTS:

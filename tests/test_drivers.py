@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from instruments.block import encode_block
-from instruments.command_map import load_command_map
-from instruments.errors import (
+from labseq_instruments.block import encode_block
+from labseq_instruments.command_map import load_command_map
+from labseq_instruments.errors import (
     BlockFormatError,
     ConnectionLost,
     InstrumentError,
@@ -28,9 +28,9 @@ from instruments.errors import (
     ScpiError,
     UnsafeTextError,
 )
-from instruments.limits import LoadLimits, SourceLimits
-from instruments.roles import ElectronicLoad, LineSource, Oscilloscope, PowerMeter
-from instruments.scpi import Identity, ScpiInstrument
+from labseq_instruments.limits import LoadLimits, SourceLimits
+from labseq_instruments.roles import ElectronicLoad, LineSource, Oscilloscope, PowerMeter
+from labseq_instruments.scpi import Identity, ScpiInstrument
 
 Reply = str | bytes | None
 Handler = Callable[[str], Reply]

@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 
-from sim_instruments.flyback import DEMO_DUTS, DutFileError, load_dut, resolve_dut
+from labseq_sim_instruments.flyback import DEMO_DUTS, DutFileError, load_dut, resolve_dut
 
 TELECOM_TEXT = DEMO_DUTS["telecom_dc"].read_text(encoding="utf-8")
 

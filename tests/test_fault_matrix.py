@@ -45,9 +45,9 @@ from labseq.progress import Progress
 from labseq.runner import claim_for_resume, execute, run_sequence
 from labseq.sequence import load_sequence
 from labseq.store import Store
-from sim_instruments.bench import SimBench
-from sim_instruments.faults import KINDS, ROLES
-from sim_instruments.flyback import DEMO_DUTS, FlybackDesign, load_dut
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.faults import KINDS, ROLES
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackDesign, load_dut
 
 #: Kinds that act on off commands only: they land in the shutdown (tests/test_safe_ending.py).
 SHUTDOWN_KINDS = {"refuse-off", "stuck-on"}

@@ -10,8 +10,8 @@ from typing import TYPE_CHECKING
 import pytest
 
 from labseq.cli import main
-from sim_instruments.bench import SimBench
-from sim_instruments.faults import FaultSpec, FaultSpecError, parse_fault_specs
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.faults import FaultSpec, FaultSpecError, parse_fault_specs
 
 if TYPE_CHECKING:
     from tests.conftest import RawScpiClient

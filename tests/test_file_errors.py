@@ -10,10 +10,10 @@ from pathlib import Path
 import pytest
 from sweeps import DEMO_DC
 
-from instruments.command_map import MAPS_DIR, load_command_map
-from instruments.errors import CommandMapError
 from labseq.sequence import SequenceError, load_sequence
-from sim_instruments.flyback import DEMO_DUTS, DutFileError, load_dut
+from labseq_instruments.command_map import MAPS_DIR, load_command_map
+from labseq_instruments.errors import CommandMapError
+from labseq_sim_instruments.flyback import DEMO_DUTS, DutFileError, load_dut
 
 #: (a shipped file, a key in it, its misspelling, how to read the file, the error it raises)
 CASES = [

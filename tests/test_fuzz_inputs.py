@@ -29,10 +29,10 @@ from test_sequence_fuzz import key_paths, to_toml, values
 from test_waveform_files import assert_same_figures
 from waveforms import record
 
-from instruments.command_map import MAPS_DIR, CommandMap, load_command_map
-from instruments.errors import CommandMapError
 from labseq.cli import main
-from sim_instruments.flyback import DEMO_DUTS, DutFileError, FlybackDesign, load_dut
+from labseq_instruments.command_map import MAPS_DIR, CommandMap, load_command_map
+from labseq_instruments.errors import CommandMapError
+from labseq_sim_instruments.flyback import DEMO_DUTS, DutFileError, FlybackDesign, load_dut
 
 DUT_TEXT = DEMO_DUTS["telecom_dc"].read_text(encoding="utf-8")
 MAP_TEXT = (MAPS_DIR / "scope" / "generic.toml").read_text(encoding="utf-8")

@@ -25,10 +25,10 @@ import pytest
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
-from instruments.errors import InstrumentError
-from instruments.limits import LoadLimits, SourceLimits
-from instruments.roles import ElectronicLoad, LineSource, Oscilloscope, PowerMeter
-from instruments.scpi import ScpiInstrument
+from labseq_instruments.errors import InstrumentError
+from labseq_instruments.limits import LoadLimits, SourceLimits
+from labseq_instruments.roles import ElectronicLoad, LineSource, Oscilloscope, PowerMeter
+from labseq_instruments.scpi import ScpiInstrument
 
 TIMEOUT_S = 0.2
 #: A call makes a few queries, each bounded by TIMEOUT_S; well past this it is hung.

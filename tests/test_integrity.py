@@ -22,11 +22,11 @@ import pytest
 from sweeps import demo_sequence, run_cli
 
 import labseq.store as store_module
-from instruments.scpi import Identity
-from instruments.text import printable
 from labseq.bench import SafeReport, make_safe
 from labseq.runlog import judgements
 from labseq.store import Store, shown_status
+from labseq_instruments.scpi import Identity
+from labseq_instruments.text import printable
 
 #: The store of one small finished run on the simulated bench, made once for the module.
 
@@ -441,7 +441,7 @@ def test_instrument_text_is_printable(raw: str, clean: str) -> None:
 def test_identity_and_error_texts_are_stripped() -> None:
     identity = Identity.parse("ACME\x1b[31m,Model 7\x1b[0m,SN\r42,1.0\x9b2J")
     assert identity == Identity("ACME", "Model 7", "SN 42", "1.0")
-    from instruments.scpi import ScpiInstrument
+    from labseq_instruments.scpi import ScpiInstrument
 
     parsed = ScpiInstrument._parse_error(
         type("I", (), {"reply_error": None})(), '-113,"Undefined header\x1b[2J"'
@@ -577,8 +577,8 @@ def test_analyze_run_refuses_another_grid_unless_asked(db: Path, base_run, tmp_p
 
 
 def test_a_long_or_escaped_reply_is_quoted_short_and_inert() -> None:
-    from instruments.errors import ReplyFormatError
-    from instruments.scpi import ScpiInstrument
+    from labseq_instruments.errors import ReplyFormatError
+    from labseq_instruments.scpi import ScpiInstrument
 
     class Stub:
         label = "meter"

@@ -34,8 +34,8 @@ from labseq.analysis.snubber import (
 )
 from labseq.errors import InputError
 from labseq.waveform_files import check_uniform, read_waveform
-from sim_instruments import scope
-from sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
+from labseq_sim_instruments import scope
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
 
 #: Small blocks and batches: a prime, so that boundaries fall everywhere in the record.
 SMALL_BLOCK, SMALL_BATCH = 997, 5

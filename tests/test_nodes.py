@@ -14,7 +14,6 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from instruments.tomlkeys import find_key_line
 from labseq.analysis.verdict import Limits, aggregate, judge
 from labseq.compare import compare_runs, comparison_summary
 from labseq.export import write_captures_npz, write_points_csv
@@ -24,7 +23,8 @@ from labseq.runner import run_sequence
 from labseq.sequence import SequenceError, load_sequence
 from labseq.sim_bench import sim_design
 from labseq.store import SCHEMA_VERSION, CaptureRecord, Store, StoreFileError
-from sim_instruments.flyback import DEMO_DUTS, load_dut
+from labseq_instruments.tomlkeys import find_key_line
+from labseq_sim_instruments.flyback import DEMO_DUTS, load_dut
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_DC = ROOT / "labseq" / "examples" / "demo_dc_flyback.toml"

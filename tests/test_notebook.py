@@ -196,9 +196,9 @@ def test_importing_labseq_leaves_matplotlib_alone() -> None:
         import importlib, pkgutil, sys
         import matplotlib
         matplotlib.use("svg")
-        import labseq, instruments, sim_instruments
+        import labseq, labseq_instruments, labseq_sim_instruments
         names = []
-        for package in (labseq, instruments, sim_instruments):
+        for package in (labseq, labseq_instruments, labseq_sim_instruments):
             for module in pkgutil.walk_packages(package.__path__, package.__name__ + "."):
                 if not module.name.endswith("__main__"):
                     importlib.import_module(module.name)

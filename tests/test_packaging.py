@@ -18,7 +18,9 @@ from sweeps import run_cli
 from labseq.commands.examples import example_files
 
 ROOT = Path(__file__).resolve().parent.parent
-PACKAGES = ("labseq", "instruments", "sim_instruments")
+#: The installed import names (the folders instruments/ and sim_instruments/ install prefixed).
+PACKAGES = ("labseq", "labseq_instruments", "labseq_sim_instruments")
+FOLDERS = {"instruments": "labseq_instruments", "sim_instruments": "labseq_sim_instruments"}
 
 
 def _shipped_data() -> list[str]:
@@ -28,7 +30,11 @@ def _shipped_data() -> list[str]:
         *ROOT.glob("instruments/command_maps/**/*.toml"),
     ]
     data += ROOT.glob("sim_instruments/duts/*.toml")
-    return sorted(path.relative_to(ROOT).as_posix() for path in data)
+    names = [path.relative_to(ROOT).as_posix() for path in data]
+    return sorted(
+        FOLDERS.get(name.split("/")[0], name.split("/")[0]) + "/" + name.split("/", 1)[1]
+        for name in names
+    )
 
 
 def test_examples_lists_and_copies(tmp_path: Path) -> None:
@@ -111,7 +117,7 @@ def test_examples_from_an_installed_wheel(wheel: Path, tmp_path: Path) -> None:
         archive.extractall(site)
     env = {**os.environ, "PYTHONPATH": str(site)}
     where = subprocess.run(
-        [sys.executable, "-c", "import labseq, instruments; print(labseq.__file__)"],
+        [sys.executable, "-c", "import labseq, labseq_instruments; print(labseq.__file__)"],
         capture_output=True, text=True, env=env, cwd=tmp_path, timeout=60, check=True,
     )  # fmt: skip
     assert Path(where.stdout.strip()).is_relative_to(site)

@@ -18,7 +18,7 @@ import pytest
 from scipy import signal
 from scipy.optimize import curve_fit
 
-from sim_instruments.flyback import DEMO_DUTS, FlybackDesign, FlybackModel, load_dut
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackDesign, FlybackModel, load_dut
 
 TELECOM = load_dut(DEMO_DUTS["telecom_dc"])
 OFFLINE = load_dut(DEMO_DUTS["offline_ac"])

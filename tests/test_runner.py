@@ -19,7 +19,7 @@ from labseq.progress import Progress
 from labseq.runner import claim_for_resume, execute, run_sequence, start_run
 from labseq.sequence import load_sequence
 from labseq.store import Store
-from sim_instruments.flyback import DEMO_DUTS, load_dut
+from labseq_sim_instruments.flyback import DEMO_DUTS, load_dut
 
 
 def _design_for(sequence):

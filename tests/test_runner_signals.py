@@ -27,8 +27,8 @@ from sweeps import LABSEQ, demo_sequence
 
 from labseq.sequence import load_sequence
 from labseq.store import Store
-from sim_instruments.bench import SimBench
-from sim_instruments.flyback import DEMO_DUTS, FlybackDesign, load_dut
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackDesign, load_dut
 
 #: Generous bound on any one labseq process here (a busy 2-core machine is slow, never stuck).
 PROCESS_TIMEOUT_S = 120.0

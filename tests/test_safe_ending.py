@@ -38,7 +38,7 @@ from test_runner_signals import PROCESS_TIMEOUT_S, demo_design, outputs, run_lab
 from labseq.bench import BUS_DISCHARGE_TIMEOUT_S, ROLES
 from labseq.sequence import SequenceError, parse_sequence
 from labseq.store import Store
-from sim_instruments.bench import SimBench
+from labseq_sim_instruments.bench import SimBench
 
 #: The exit status of a run whose end could not be confirmed safe (labseq run --help).
 UNSAFE_END_EXIT = 3

@@ -21,10 +21,10 @@ from scipy.optimize import brentq
 from test_physics import SAMPLE_S, after_first_peak, fit_ring, node_capacitance_f, ring_mode
 from test_sim_scope import read_errors, transfer
 
-from sim_instruments.bench import SimBench
-from sim_instruments.flyback import DEMO_DUTS, FlybackDesign, FlybackModel, load_dut
-from sim_instruments.flyback_secondary import recovery_current_a
-from sim_instruments.flyback_transient import NodeNetwork
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackDesign, FlybackModel, load_dut
+from labseq_sim_instruments.flyback_secondary import recovery_current_a
+from labseq_sim_instruments.flyback_transient import NodeNetwork
 
 TELECOM = load_dut(DEMO_DUTS["telecom_dc"])  # Schottky rectifier, no damper across it
 OFFLINE = load_dut(DEMO_DUTS["offline_ac"])  # pn rectifier with an RC damper across it

@@ -24,14 +24,14 @@ from pathlib import Path
 import pytest
 from sweeps import ROOT, demo_sequence
 
-from instruments.errors import LimitError, UnsafeTextError
-from instruments.roles import Oscilloscope
 from labseq.cli import main
 from labseq.runner import run_sequence
 from labseq.sequence import SequenceError, load_sequence
 from labseq.store import Store
-from sim_instruments.bench import SimBench
-from sim_instruments.server import ServerConfigError
+from labseq_instruments.errors import LimitError, UnsafeTextError
+from labseq_instruments.roles import Oscilloscope
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.server import ServerConfigError
 
 #: User text that is both SQL and HTML an attacker (or an accident) might write.
 HOSTILE = "x'); DROP TABLE runs; -- <script>alert(1)</script>"

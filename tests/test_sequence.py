@@ -11,7 +11,6 @@ from pathlib import Path
 import pytest
 from sweeps import run_cli
 
-from instruments.tomlkeys import find_key_line
 from labseq.errors import InputError
 from labseq.sequence import (
     BenchLimits,
@@ -20,6 +19,7 @@ from labseq.sequence import (
     load_sequence,
     parse_sequence,
 )
+from labseq_instruments.tomlkeys import find_key_line
 
 ROOT = Path(__file__).resolve().parent.parent
 SEQUENCES = ROOT / "labseq" / "examples"

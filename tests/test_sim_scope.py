@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 import pyvisa
 
-from sim_instruments import scope as acquisition
-from sim_instruments.bench import SimBench
-from sim_instruments.flyback import DEMO_DUTS, FlybackDesign, load_dut
+from labseq_sim_instruments import scope as acquisition
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackDesign, load_dut
 
 LINE_V = 48.0
 LOAD_A = 2.0

@@ -16,8 +16,8 @@ from typing import TYPE_CHECKING
 
 import pytest
 
-from sim_instruments.bench import SimBench
-from sim_instruments.server import (
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.server import (
     ERROR_QUEUE_LENGTH,
     Block,
     Call,
@@ -148,7 +148,8 @@ def test_numbers_with_exponents_suffixes_and_keywords(client: RawScpiClient) -> 
 
 def test_chained_commands_start_from_the_root(client: RawScpiClient) -> None:
     # IEEE 488.2 §7.1 program message units separated by ';' and §8.4.1 response units joined
-    # by ';'. Path rule kept simple (documented in sim_instruments.server): each from the root.
+    # by ';'. Path rule kept simple (documented in labseq_sim_instruments.server): each from the
+    # root.
     reply = client.query("SOUR:VOLT 7;OUTP ON;*OPC?;SOUR:VOLT?;OUTP?")
     assert reply.split(";") == ["1", format_number(7.0), "1"]
 

@@ -19,7 +19,7 @@ from labseq.review import review_run
 from labseq.runner import run_sequence
 from labseq.sequence import load_sequence
 from labseq.store import Store
-from sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
 
 SAMPLE_RATE_HZ = 2e9
 SCOPE_RANGE_V = (-20.0, 180.0)

@@ -191,7 +191,7 @@ def test_process_killed_mid_commit_leaves_nothing_half_written(db: Path) -> None
         f"""
         import os, numpy as np
         from labseq.store import Store, CaptureRecord
-        from instruments import Waveform
+        from labseq_instruments import Waveform
         codes = np.arange(-128, 128, dtype=np.int8)
         wf = Waveform(codes, 1e-9, 0.0, 1.0, 0.0, 0.0, -128, 127)
         store = Store({str(db)!r})

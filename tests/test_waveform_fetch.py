@@ -17,11 +17,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from instruments import transport
-from instruments.command_map import MAPS_DIR, load_command_map
-from instruments.errors import CommandMapError, ReplyFormatError, ScpiError
-from instruments.roles import Oscilloscope
-from sim_instruments.bench import SimBench
+from labseq_instruments import transport
+from labseq_instruments.command_map import MAPS_DIR, load_command_map
+from labseq_instruments.errors import CommandMapError, ReplyFormatError, ScpiError
+from labseq_instruments.roles import Oscilloscope
+from labseq_sim_instruments.bench import SimBench
 
 GENERIC_FETCH = ":WAVeform:SCALing?;:WAVeform:DATA?;SYST:ERR?"
 GENERIC_SETTINGS = [":WAVeform:SOURce CHANnel{}", ":WAVeform:FORMat INT8", "SYST:ERR?"]
@@ -45,7 +45,7 @@ def _capture(scope: Oscilloscope, volts_per_div: float = 20.0) -> None:
 @pytest.fixture
 def sent(caplog: pytest.LogCaptureFixture) -> Callable[[], list[str]]:
     """What the drivers have sent since the last call, from the SCPI trace."""
-    caplog.set_level(logging.DEBUG, logger="instruments.trace")
+    caplog.set_level(logging.DEBUG, logger="labseq_instruments.trace")
 
     def commands() -> list[str]:
         lines = [record.getMessage() for record in caplog.records]

@@ -15,10 +15,10 @@ from sweeps import run_cli
 from test_store import new_run
 from waveforms import record
 
-from instruments import Waveform
 from labseq.analysis import analyze_capture
 from labseq.store import CaptureRecord, Store
 from labseq.waveform_files.text import HEAD_BYTES
+from labseq_instruments import Waveform
 
 #: The scope's screen in the exported captures: 8-bit codes over −50…750 V.
 LSB_V, ORIGIN_V = 800.0 / 256, 350.0

@@ -69,7 +69,7 @@ def tracing(path: Path | None) -> Iterator[None]:
     except OSError as error:
         raise InputError(f"--trace {path}: cannot write there ({error.strerror})") from None
     handler.setFormatter(logging.Formatter(TRACE_FORMAT, datefmt="%Y-%m-%d %H:%M:%S"))
-    logger = logging.getLogger("instruments.trace")
+    logger = logging.getLogger("labseq_instruments.trace")
     previous = logger.level, logger.propagate
     logger.addHandler(handler)
     logger.setLevel(logging.DEBUG)

@@ -8,11 +8,11 @@ from typing import Any
 
 import click
 
-from instruments.text import quoted
 from labseq.errors import InputError
 from labseq.store import Store, UnknownRunError
 from labseq.store_api import RunStore
 from labseq.store_pg import LabDatabase, is_lab_url, redact
+from labseq_instruments.text import quoted
 
 DEFAULT_DB = "labseq.sqlite"
 #: The largest run id a store can hold: SQLite's row ids are signed 64-bit integers.

@@ -7,11 +7,11 @@ from pathlib import Path
 
 import click
 
-from instruments.text import printable
 from labseq.commands._store import db_option, read_store
 from labseq.review import run_object
 from labseq.run_filter import RunFilter, parse_moment
 from labseq.store import shown_status
+from labseq_instruments.text import printable
 
 
 @click.command("runs")

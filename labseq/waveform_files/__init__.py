@@ -20,7 +20,6 @@ from __future__ import annotations
 from collections.abc import Callable
 from pathlib import Path
 
-from instruments.files import FileProblem, check_regular_file
 from labseq.errors import InputError
 from labseq.waveform_files.arrays import read_npy, read_npz, refuse
 from labseq.waveform_files.record import (
@@ -31,6 +30,7 @@ from labseq.waveform_files.record import (
     quoted,
 )
 from labseq.waveform_files.text import read_text_waveform
+from labseq_instruments.files import FileProblem, check_regular_file
 
 __all__ = ["MAX_ABS_VOLTS", "UNIFORM_TOLERANCE", "FileRecord", "check_uniform", "read_waveform"]
 

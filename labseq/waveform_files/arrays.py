@@ -7,7 +7,6 @@ from pathlib import Path
 
 import numpy as np
 
-from instruments import Waveform
 from labseq.errors import InputError
 from labseq.export import SCALING_FIELDS, SCALING_KEY, codes_key
 from labseq.waveform_files.record import (
@@ -20,6 +19,7 @@ from labseq.waveform_files.record import (
     quoted,
     time_scale,
 )
+from labseq_instruments import Waveform
 
 CANONICAL_NAMES = ("time_s", "volts")
 #: Fields of the scaling table of ``labseq export``'s ``captures.npz`` (:mod:`labseq.export`)

@@ -9,9 +9,9 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from instruments.text import quoted
 from labseq.analysis import MIN_RECORD_SAMPLES
 from labseq.errors import InputError
+from labseq_instruments.text import quoted
 
 #: Largest deviation of one time step from the mean step, as a fraction of it. Text files round
 #: times to a few significant digits, so exact equality cannot be asked for; a missing sample
@@ -31,7 +31,7 @@ Where = Callable[[int], str]
 class FileRecord:
     """A uniformly sampled record read from a waveform file: ``volts[k]`` at
     ``t0_s + k·sample_interval_s`` (the scope's own record, codes and scaling, is
-    :class:`instruments.Waveform`).
+    :class:`labseq_instruments.Waveform`).
 
     ``clipped`` marks the samples at the edge of the scope's screen, where the true voltage is
     unknown (None where the file does not say). ``note`` says what was read where the file held

@@ -47,15 +47,15 @@ import numpy as np
 import pytest
 from peak_memory import resident_high_water_available, resident_peak_bytes
 
-from instruments.roles import Waveform
 from labseq.analysis import analyze_capture
 from labseq.cli import main as labseq_main
 from labseq.pipeline import analyse_or_error, analysis_options, store_figures
 from labseq.runner import start_run
 from labseq.sequence import Sequence, load_sequence
 from labseq.store import CaptureRecord, Store
-from sim_instruments import scope
-from sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
+from labseq_instruments.roles import Waveform
+from labseq_sim_instruments import scope
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
 
 DEMO = Path(__file__).resolve().parents[2] / "labseq" / "examples" / "demo_offline_flyback.toml"
 SIZES = (2_000_000, 3_000_000)

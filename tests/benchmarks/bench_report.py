@@ -19,11 +19,11 @@ import numpy as np
 import pytest
 from paired import interleaved_times, paired
 
-from instruments import Waveform
 from labseq.figures import FIGURE_DIRECTIONS
 from labseq.report import build_run_report
 from labseq.review import review_run
 from labseq.store import CaptureRecord, Store
+from labseq_instruments import Waveform
 
 SEQUENCE = Path(__file__).resolve().parents[2] / "labseq" / "examples" / "demo_dc_flyback.toml"
 LINES = 100

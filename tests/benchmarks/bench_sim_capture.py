@@ -23,7 +23,7 @@ from collections.abc import Callable
 import numpy as np
 import pytest
 
-from sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
+from labseq_sim_instruments.flyback import DEMO_DUTS, FlybackModel, load_dut
 
 SAMPLES = 100_000
 REPEATS = 7

@@ -27,8 +27,7 @@ import pytest
 from paired import interleaved_times, paired
 
 import labseq.store
-import sim_instruments.scope
-from instruments import Waveform
+import labseq_sim_instruments.scope
 from labseq.progress import Progress
 from labseq.runner import execute, start_run
 from labseq.sequence import load_sequence
@@ -40,6 +39,7 @@ from labseq.store import (
     PointReadings,
     Store,
 )
+from labseq_instruments import Waveform
 
 SEQUENCE = Path(__file__).resolve().parents[2] / "labseq" / "examples" / "demo_dc_flyback.toml"
 LINES_V = (36.0, 48.0, 60.0, 75.0)
@@ -49,7 +49,7 @@ EDGES_PER_CAPTURE = 4
 MAX_RAW_BYTES_PER_SAMPLE = 1.05
 MAX_PACKED_BYTES_PER_SAMPLE = 0.5
 #: Scope noise of the simulator, and the stronger level a real probe chain shows (LSB rms).
-SIM_NOISE_LSB = sim_instruments.scope.NOISE_LSB_RMS
+SIM_NOISE_LSB = labseq_sim_instruments.scope.NOISE_LSB_RMS
 PROBE_NOISE_LSB = 1.5
 PAGE_REPEATS = 7
 
@@ -176,7 +176,7 @@ def test_demo_store_per_sample(
 ) -> None:
     """The demo's whole file with compressed codes: ≤ 0.5 bytes/sample with the simulator's
     noise; printed for the stronger noise."""
-    monkeypatch.setattr(sim_instruments.scope, "NOISE_LSB_RMS", noise_lsb)
+    monkeypatch.setattr(labseq_sim_instruments.scope, "NOISE_LSB_RMS", noise_lsb)
     sequence = load_sequence(SEQUENCE)
     path = tmp_path / "demo.sqlite"
     with Store(path) as store:

@@ -37,11 +37,11 @@ from multiprocessing.connection import Connection
 import pytest
 from paired import interleaved_times, paired
 
-from instruments.block import length_digit_count, parse_length
-from instruments.limits import LoadLimits, SourceLimits
-from instruments.roles import ElectronicLoad, LineSource, Oscilloscope
-from sim_instruments.bench import SimBench
-from sim_instruments.flyback import DEMO_DUTS, load_dut
+from labseq_instruments.block import length_digit_count, parse_length
+from labseq_instruments.limits import LoadLimits, SourceLimits
+from labseq_instruments.roles import ElectronicLoad, LineSource, Oscilloscope
+from labseq_sim_instruments.bench import SimBench
+from labseq_sim_instruments.flyback import DEMO_DUTS, load_dut
 
 #: Record length → (repeats, target for the median time ratio fetch / raw, the largest median
 #: accepted).
