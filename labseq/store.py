@@ -1193,19 +1193,17 @@ class Store:
             self.db.execute("DELETE FROM node_verdicts WHERE point_id = ?", [point_id])
             for node, figures in node_figures.items():
                 self._insert_point_figures(point_id, node, figures)
-            rows = [
-                {
-                    "point_id": point_id,
-                    "node": node,
-                    "verdict": node_verdict,
-                    "verdict_reasons": json.dumps(list(node_reasons)),
-                }
-                for node, (node_verdict, node_reasons) in node_verdicts.items()
-            ]
-            if rows:
-                self.db["node_verdicts"].insert_all(rows)
-            self.db["points"].update(
-                point_id, {"verdict": verdict, "verdict_reasons": json.dumps(list(reasons))}
+            self.db.conn.executemany(
+                "INSERT INTO node_verdicts (point_id, node, verdict, verdict_reasons) "
+                "VALUES (?, ?, ?, ?)",
+                [
+                    (point_id, node, node_verdict, json.dumps(list(node_reasons)))
+                    for node, (node_verdict, node_reasons) in node_verdicts.items()
+                ],
+            )
+            self.db.execute(
+                "UPDATE points SET verdict = ?, verdict_reasons = ? WHERE id = ?",
+                [verdict, json.dumps(list(reasons)), point_id],
             )
 
     def point_figures(self, run_id: int, *, node: str) -> dict[int, dict[str, dict[str, Any]]]:
@@ -1396,34 +1394,38 @@ class Store:
         rows = list(self.db.query("SELECT run_id FROM points WHERE id = ?", [point_id]))
         if not rows:
             raise StoreError(f"no point with id {point_id}")
-        table = self.db["captures"].insert(
-            {
-                "point_id": point_id,
-                "run_id": rows[0]["run_id"],
-                "capture_index": int(
-                    self.db.execute(
-                        "SELECT COALESCE(MAX(capture_index) + 1, 0) FROM captures "
-                        "WHERE point_id = ? AND node = ?",
-                        [point_id, capture.node],
-                    ).fetchone()[0]
-                ),
-                "node": capture.node,
-                "channel": int(capture.channel),
-                "dtype": dtype,
-                "x_increment_s": float(waveform.x_increment_s),
-                "x_origin_s": float(waveform.x_origin_s),
-                "y_increment_v": float(waveform.y_increment_v),
-                "y_origin_v": float(waveform.y_origin_v),
-                "y_reference": float(waveform.y_reference),
-                "code_min": waveform.code_min,
-                "code_max": waveform.code_max,
-                "points": count,
-                "captured_at": _now_iso(capture.captured_at),
-                "codes": blob,
-                "codec": codec,
-            }
+        capture_index = self.db.execute(
+            "SELECT COALESCE(MAX(capture_index) + 1, 0) FROM captures "
+            "WHERE point_id = ? AND node = ?",
+            [point_id, capture.node],
+        ).fetchone()[0]
+        # plain SQL on this hot path: sqlite-utils would read the schema again for every row
+        cursor = self.db.execute(
+            "INSERT INTO captures (point_id, run_id, capture_index, node, channel, dtype, "
+            "x_increment_s, x_origin_s, y_increment_v, y_origin_v, y_reference, code_min, "
+            "code_max, points, captured_at, codes, codec) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            [
+                point_id,
+                rows[0]["run_id"],
+                int(capture_index),
+                capture.node,
+                int(capture.channel),
+                dtype,
+                float(waveform.x_increment_s),
+                float(waveform.x_origin_s),
+                float(waveform.y_increment_v),
+                float(waveform.y_origin_v),
+                float(waveform.y_reference),
+                waveform.code_min,
+                waveform.code_max,
+                count,
+                _now_iso(capture.captured_at),
+                blob,
+                codec,
+            ],
         )
-        return int(table.last_pk)
+        return int(cursor.lastrowid)
 
     def _update_point(
         self,

@@ -125,15 +125,24 @@ def bound_grid(review: RunReview, figure: str) -> np.ndarray:
     return bounds
 
 
+def beyond_grids(review: RunReview) -> dict[str, np.ndarray]:
+    """Line × load grids, one per figure of the viewed node that is beyond its limit somewhere:
+    True where it is (each point's excesses worked out once, for every figure)."""
+    shape = (len(review.line_values_v), len(review.load_values_a))
+    grids: dict[str, np.ndarray] = {}
+    for (row, column), point in zip(_cells(review), review.points, strict=True):
+        for excess in review.excesses(point):
+            if excess.beyond and excess.node == review.node_name:
+                grids.setdefault(excess.figure, np.zeros(shape, dtype=bool))[row, column] = True
+    return grids
+
+
 def beyond_grid(review: RunReview, figure: str) -> np.ndarray:
     """Line × load grid, True where the viewed node's ``figure`` is beyond its limit."""
-    beyond = np.zeros((len(review.line_values_v), len(review.load_values_a)), dtype=bool)
-    for (row, column), point in zip(_cells(review), review.points, strict=True):
-        beyond[row, column] = any(
-            e.beyond and e.figure == figure and e.node == review.node_name
-            for e in review.excesses(point)
-        )
-    return beyond
+    found = beyond_grids(review).get(figure)
+    if found is None:
+        return np.zeros((len(review.line_values_v), len(review.load_values_a)), dtype=bool)
+    return found
 
 
 def _cells(review: RunReview) -> list[tuple[int, int]]:
@@ -158,6 +167,8 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
     word = review.peak_word
     where = "switch-node voltage" if review.polarity > 0 else f"{review.node_title.lower()} voltage"
     peak_bounds = bound_grid(review, "peak_v")
+    beyond = beyond_grids(review)
+    nowhere = np.zeros(peak.shape, dtype=bool)
     if np.isfinite(peak).any():
         if rating_v:
             share = 100 * np.abs(peak) / rating_v
@@ -175,7 +186,7 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
                 f"({format_si(rating_v, 'V')})",
                 colour_label="|peak| / derated rating (%)",
                 cell_text=texts,
-                outlined=beyond_grid(review, "peak_v"),
+                outlined=beyond.get("peak_v", nowhere),
             )
             caption = f"Peak {where}; 100 % is the rating × derating. {OUTLINE_NOTE}"
         else:
@@ -205,7 +216,6 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
             continue
         bounds = bound_grid(review, figure)
         texts = cell_texts(values, lambda v, f=figure: format_figure(f, v), bounds)
-        beyond = beyond_grid(review, figure)
         if figure == "snubber_loss_w":
             texts = with_loss_methods(review, texts)
         shown = 100 * values if figure == "efficiency" else values
@@ -221,10 +231,10 @@ def run_maps(review: RunReview) -> list[tuple[str, str, bytes]]:
             colour_label=f"{FIGURE_TITLES[figure]}" + (f" ({unit})" if unit else ""),
             cell_text=texts,
             colour_format=None if figure == "efficiency" else _colour_format(figure),
-            outlined=beyond,
+            outlined=beyond.get(figure, nowhere),
         )
         caption = f"{FIGURE_TITLES[figure].capitalize()} at each point; brighter is worse."
-        if beyond.any():
+        if figure in beyond:
             caption += " " + OUTLINE_NOTE
         if bounds.any():
             caption += " " + CLIP_NOTE
